@@ -1,0 +1,20 @@
+"""qcd: background quality control for electrophysiology rigs.
+
+Public API: open_recording, analyze_path, FileMeasures and the errors.
+"""
+__version__ = "0.1.0"
+
+from qcd.errors import ConfigError, DeliveryError, QcdError, RecordingError, StoreError
+
+__all__ = ["__version__", "QcdError", "ConfigError", "RecordingError", "DeliveryError",
+           "StoreError", "open_recording", "analyze_path", "FileMeasures"]
+
+
+def __getattr__(name: str):  # lazy, so `import qcd` stays cheap for the CLI and workers
+    if name == "open_recording":
+        from qcd.recording import open_recording
+        return open_recording
+    if name in ("analyze_path", "FileMeasures"):
+        import qcd.analyze as _a
+        return getattr(_a, name)
+    raise AttributeError(name)

@@ -1,0 +1,249 @@
+"""The command line: parse, call one library function, print, map errors to exit codes.
+
+Exit codes: 0 all good, 1 some file failed (or an alert/delivery problem was found), 2 usage or
+config error. A QcdError prints as one line; a traceback only with --debug.
+Each command's body is a ``_cmd_<name>(args) -> int`` below; library code lives in its module.
+"""
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+from pathlib import Path
+
+from qcd import __version__
+from qcd.errors import ConfigError, QcdError
+
+__all__ = ["main", "build_parser"]
+
+log = logging.getLogger("qcd")
+
+EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> None:  # argparse exits 2 already; keep one clean line
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+
+
+def _common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--config", "-c", type=Path, metavar="FILE",
+                   help="qcd.toml to use (default: ./qcd.toml, then ~/.config/qcd/qcd.toml)")
+    p.add_argument("--debug", action="store_true", help="show tracebacks and debug logging")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The whole command surface; every command's --help explains itself."""
+    parser = _Parser(
+        prog="qcd",
+        description="Quality control for electrophysiology rigs: measures every finished "
+                    "recording (noise, mains hum, test-pulse resistances, drift), keeps each "
+                    "rig's history in SQLite, alerts the lab when a rig drifts, and writes a "
+                    "morning report.",
+        epilog="Example: qcd scan --json recordings/  |  qcd demo  |  qcd watch --config qcd.toml")
+    parser.add_argument("--version", action="version", version=f"qcd {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    p = sub.add_parser("scan", help="measure recordings now and print the measures",
+                       description="Measure files or folders (recursive, *.abf) and print one "
+                                   "row per file, or one JSON object per file per line with "
+                                   "--json. With --store, also store, judge and alert as the "
+                                   "service would.",
+                       epilog="Example: qcd scan --json --pulse=-5,10,20 cell01.abf")
+    p.add_argument("paths", nargs="+", type=Path, metavar="PATH", help="files or folders")
+    p.add_argument("--json", action="store_true", help="one JSON object per file per line")
+    p.add_argument("--pulse", metavar="AMP,START_MS,LENGTH_MS",
+                   help="declared test step when the file has none: AMP in mV (voltage clamp) "
+                        "or pA (current clamp), START and LENGTH in ms from the sweep start")
+    p.add_argument("--mains", type=float, choices=(50.0, 60.0), metavar="HZ",
+                   help="mains frequency of the building (50 or 60); default: found from data")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="measure N files in parallel processes (default 1)")
+    p.add_argument("--store", action="store_true",
+                   help="store, judge, alert and deliver as the service does (needs --rig)")
+    p.add_argument("--rig", metavar="NAME", help="rig the files belong to (with --store)")
+    _common(p)
+
+    p = sub.add_parser("watch", help="run the service: watch the rigs' folders",
+                       description="Watch every rig folder of the config, measure each finished "
+                                   "recording once, store, judge, alert and deliver. Catches up "
+                                   "on files written while it was not running.",
+                       epilog="Example: qcd watch --config C:/qcd/qcd.toml")
+    p.add_argument("--no-catch-up", action="store_true",
+                   help="skip the start-up scan of files not yet in the store")
+    p.add_argument("--workers", type=int, default=0, metavar="N",
+                   help="measuring processes (default: number of cores, at most 4)")
+    _common(p)
+
+    p = sub.add_parser("status", help="is the service alive; queue, last file per rig",
+                       description="Read the heartbeat the running service leaves in the "
+                                   "database: alive or not, queue length, last file per rig, "
+                                   "open alerts, undelivered messages.",
+                       epilog="Example: qcd status")
+    _common(p)
+
+    p = sub.add_parser("report", help="morning report of the recent runs",
+                       description="Per rig: files since --since, each key measure against the "
+                                   "rig's normal range, open alerts and likely noise sources.",
+                       epilog="Example: qcd report --since 18h --html morning.html")
+    p.add_argument("--since", default="18h", metavar="AGE",
+                   help="how far back: 18h, 3d, 90m, or an ISO date (default 18h)")
+    p.add_argument("--rig", metavar="NAME", action="append", help="only this rig (repeatable)")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.add_argument("--html", type=Path, metavar="FILE",
+                   help="also write one self-contained HTML file with plots")
+    _common(p)
+
+    p = sub.add_parser("trend", help="one measure's series for one rig",
+                       description="Print a rig's values of one measure over time, with a "
+                                   "terminal sparkline, or as CSV.",
+                       epilog="Example: qcd trend rig-b hum_rms --days 30 --csv > hum.csv")
+    p.add_argument("rig", metavar="RIG")
+    p.add_argument("measure", metavar="MEASURE", help="e.g. noise_rms, hum_rms, access_resistance")
+    p.add_argument("--channel", type=int, default=None, metavar="N", help="input channel")
+    p.add_argument("--days", type=float, default=30.0, metavar="D", help="how far back (30)")
+    p.add_argument("--csv", action="store_true", help="CSV on stdout")
+    _common(p)
+
+    p = sub.add_parser("compare", help="what a change at the rig did: before vs after",
+                       description="Compare two recordings (or two sets) made before and after "
+                                   "one change at the rig: noise per band and per mains "
+                                   "harmonic in dB and in the measure's unit, which changes "
+                                   "exceed the files' own variation, and the hint that fits.",
+                       epilog="Example: qcd compare before.abf after.abf --html change.html")
+    p.add_argument("before", type=Path, metavar="BEFORE", help="file or folder")
+    p.add_argument("after", type=Path, metavar="AFTER", help="file or folder")
+    p.add_argument("--channel", type=int, default=0, metavar="N", help="input channel (0)")
+    p.add_argument("--mains", type=float, choices=(50.0, 60.0), metavar="HZ")
+    p.add_argument("--json", action="store_true", help="print the comparison as JSON")
+    p.add_argument("--html", type=Path, metavar="FILE", help="write the spectra overlaid")
+    _common(p)
+
+    p = sub.add_parser("alerts", help="open and recent alerts, undelivered messages",
+                       description="List open alerts, alerts resolved recently, active "
+                                   "silences and messages still waiting in the outbox.",
+                       epilog="Example: qcd alerts --days 7")
+    p.add_argument("--days", type=float, default=7.0, metavar="D",
+                   help="resolved alerts of the last D days (7)")
+    p.add_argument("--rig", metavar="NAME", help="only this rig")
+    _common(p)
+
+    p = sub.add_parser("silence", help="mute a rig's messages for a while",
+                       description="Mute the messages of a rig (glob) for a duration, or until "
+                                   "its open alerts resolve. Alerts keep being evaluated.",
+                       epilog="Example: qcd silence rig-b 2h --reason 'replacing headstage'")
+    p.add_argument("rig", metavar="RIG", help="rig name or glob ('*' for all)")
+    p.add_argument("duration", metavar="FOR", help="2h, 30m, 1d, or 'resolved'")
+    p.add_argument("--rule", default="*", metavar="GLOB", help="only rules matching (default *)")
+    p.add_argument("--reason", default="", help="why (shown in qcd alerts and the report)")
+    _common(p)
+
+    p = sub.add_parser("init", help="write a commented starter qcd.toml",
+                       description="Write a starter config with one example rig to edit.",
+                       epilog="Example: qcd init qcd.toml")
+    p.add_argument("path", nargs="?", type=Path, default=Path("qcd.toml"), metavar="FILE")
+    p.add_argument("--force", action="store_true", help="overwrite an existing file")
+    _common(p)
+
+    p = sub.add_parser("notify-test", help="send a test message to the configured targets",
+                       description="Send one test message through every configured target and "
+                                   "say which ones accepted it.",
+                       epilog="Example: qcd notify-test --config qcd.toml")
+    _common(p)
+
+    p = sub.add_parser("demo", help="run the whole pipeline on a generated demo lab",
+                       description="Generate an invented four-rig lab with a few weeks of "
+                                   "recordings (one slowly degrading ground, one failing "
+                                   "headstage, one seal lost mid-recording, one healthy rig) in "
+                                   "a temporary folder, run the real service over it, deliver "
+                                   "the alerts to a local file, and print the morning report.",
+                       epilog="Example: qcd demo --keep demo-lab")
+    p.add_argument("--keep", type=Path, metavar="DIR",
+                   help="build the lab in DIR and keep it (default: a temporary folder)")
+    p.add_argument("--days", type=int, default=21, metavar="N", help="days of recordings (21)")
+    _common(p)
+    return parser
+
+
+def _not_yet(name: str) -> int:
+    print(f"qcd {name}: not available in this build", file=sys.stderr)
+    return EXIT_USAGE
+
+
+def _cmd_scan(args: argparse.Namespace) -> int:
+    return _not_yet("scan")
+
+
+def _cmd_watch(args: argparse.Namespace) -> int:
+    return _not_yet("watch")
+
+
+def _cmd_status(args: argparse.Namespace) -> int:
+    return _not_yet("status")
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    return _not_yet("report")
+
+
+def _cmd_trend(args: argparse.Namespace) -> int:
+    return _not_yet("trend")
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    return _not_yet("compare")
+
+
+def _cmd_alerts(args: argparse.Namespace) -> int:
+    return _not_yet("alerts")
+
+
+def _cmd_silence(args: argparse.Namespace) -> int:
+    return _not_yet("silence")
+
+
+def _cmd_init(args: argparse.Namespace) -> int:
+    return _not_yet("init")
+
+
+def _cmd_notify_test(args: argparse.Namespace) -> int:
+    return _not_yet("notify-test")
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    return _not_yet("demo")
+
+
+_COMMANDS = {
+    "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
+    "trend": _cmd_trend, "compare": _cmd_compare, "alerts": _cmd_alerts,
+    "silence": _cmd_silence, "init": _cmd_init, "notify-test": _cmd_notify_test,
+    "demo": _cmd_demo,
+}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``qcd`` command."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not args.command:
+        parser.print_help()
+        return EXIT_USAGE
+    logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    try:
+        return _COMMANDS[args.command](args)
+    except ConfigError as e:
+        if args.debug:
+            raise
+        print(f"qcd {args.command}: {e}", file=sys.stderr)
+        return EXIT_USAGE
+    except QcdError as e:
+        if args.debug:
+            raise
+        print(f"qcd {args.command}: {e}", file=sys.stderr)
+        return EXIT_FAILED
+    except KeyboardInterrupt:
+        print(f"qcd {args.command}: interrupted", file=sys.stderr)
+        return 130

@@ -1,0 +1,63 @@
+"""Shared fixtures: the real recordings folder, thread-leak guard.
+
+Real recordings come from ../shared/data/abf/ beside the checkout or $QCD_ABF_DATA; without
+them the tests that need them skip, unless QCD_REQUIRE_DATA=1 (CI), where they fail.
+"""
+from __future__ import annotations
+
+import os
+import threading
+import time
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def _abf_dir() -> Path:
+    env = os.environ.get("QCD_ABF_DATA")
+    return Path(env) if env else ROOT.parent / "shared" / "data" / "abf"
+
+
+ABF_DIR = _abf_dir()
+ABF_FILES = sorted(ABF_DIR.glob("*.abf")) if ABF_DIR.is_dir() else []
+
+
+def require_data() -> Path:
+    """The real-recordings folder, or skip (fail under QCD_REQUIRE_DATA=1) when absent."""
+    if not ABF_FILES:
+        msg = (f"real recordings not found in {ABF_DIR} (set QCD_ABF_DATA to the folder "
+               f"holding the sample .abf files)")
+        if os.environ.get("QCD_REQUIRE_DATA") == "1":
+            pytest.fail(msg)
+        pytest.skip(msg)
+    return ABF_DIR
+
+
+@pytest.fixture
+def abf_dir() -> Path:
+    return require_data()
+
+
+def abf(name: str) -> Path:
+    """Path of one real recording by its manifest name (skips when the folder is absent)."""
+    require_data()
+    path = ABF_DIR / name
+    assert path.is_file(), f"{path} listed in MANIFEST.md but missing"
+    return path
+
+
+@pytest.fixture(autouse=True)
+def no_leaked_threads():
+    """Every test must stop the threads it started (observers, servers, senders)."""
+    before = set(threading.enumerate())
+    yield
+    deadline = time.monotonic() + 5.0
+    while True:
+        extra = [t for t in threading.enumerate() if t not in before and t.is_alive()
+                 and not t.daemon]
+        if not extra or time.monotonic() > deadline:
+            break
+        time.sleep(0.05)
+    assert not extra, f"threads left running: {[t.name for t in extra]}"
