@@ -1,0 +1,330 @@
+"""The demo lab: an invented four-rig lab, its recordings as real ABF1 files, and a run of the
+real pipeline over them (store, judge, alerts, apprise delivery to a local file, report).
+
+The signal and circuit models here (test-pulse cell, seal, Bessel filter, thermal noise, hum)
+are the ones tests/test_demo.py checks against the analytic references in tests/references.py.
+Imports numpy, scipy, pyabf, apprise and, for the run, qcd.config/pipeline/watch/store/report.
+"""
+from __future__ import annotations
+
+import math
+import os
+import shutil
+import struct
+import sys
+import tempfile
+import time
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+from typing import Callable, Iterator
+
+import numpy as np
+
+__all__ = ["LAB_NAME", "MAINS_HZ", "BOLTZMANN", "TEMPERATURE_K", "RigPlan", "FileSpec",
+           "LabPlan", "plan_lab", "cell_step_current", "seal_step_current", "bessel_lowpass",
+           "thermal_noise_rms", "hum_wave", "whole_cell_sweeps", "seal_sweeps", "field_trace",
+           "write_abf1", "build_lab", "run_demo", "DemoResult", "demo_config_text"]
+
+LAB_NAME = "retina and slice physiology lab"
+MAINS_HZ = 50.0                 # the invented building's mains frequency
+BOLTZMANN = 1.380649e-23        # J/K (SI, exact)
+TEMPERATURE_K = 295.0
+
+# Acquisition settings of the invented rigs (common practice: fs = 5-10 x the Bessel corner).
+_PATCH_FS = 20_000.0
+_PATCH_FC = 2_000.0
+_FIELD_FS = 10_000.0
+_FIELD_FC = 1_000.0
+_SWEEP_S = 0.30                 # one episodic sweep
+_STEP_START_S = 0.10            # declared test step: starts 100 ms into each sweep ...
+_STEP_LEN_S = 0.10              # ... and lasts 100 ms
+_WHOLE_CELL_STEP_V = -5e-3      # -5 mV test step (voltage clamp)
+_SEAL_STEP_V = 10e-3            # +10 mV seal test (cell-attached)
+_FIELD_DURATION_S = 8.0
+
+
+# ----------------------------------------------------------------------------- models
+
+def cell_step_current(t_s: np.ndarray, dv: float, ra: float, rm: float, cm: float) -> np.ndarray:
+    """Current (A) of Ra in series with Rm||Cm after an ideal voltage step dv at t = 0.
+
+    I(t) = dv/Rt + (dv/Ra - dv/Rt) exp(-t/tau), Rt = Ra + Rm, tau = Cm Ra Rm / Rt; zero before
+    the step. Source: the time-domain test-pulse method (Lindau & Neher 1988); closed form
+    derived in METHODS.md section 1.1.
+    """
+    t = np.asarray(t_s, dtype=float)
+    rt = ra + rm
+    tau = cm * ra * rm / rt
+    i = dv / rt + (dv / ra - dv / rt) * np.exp(-np.clip(t, 0.0, None) / tau)
+    return np.where(t >= 0.0, i, 0.0)
+
+
+def seal_step_current(t_s: np.ndarray, dv: float, rseal: float) -> np.ndarray:
+    """Current (A) through a seal resistance after a voltage step dv at t = 0 (Ohm's law)."""
+    t = np.asarray(t_s, dtype=float)
+    return np.where(t >= 0.0, dv / rseal, 0.0)
+
+
+def bessel_lowpass(x: np.ndarray, fs: float, fc: float, poles: int = 4) -> np.ndarray:
+    """Causal Bessel low-pass, -3 dB at fc (scipy.signal.bessel, norm='mag'), unity DC gain."""
+    from scipy.signal import bessel, sosfilt
+    sos = bessel(poles, fc, btype="low", norm="mag", fs=fs, output="sos")
+    return sosfilt(sos, x, axis=-1)
+
+
+def thermal_noise_rms(resistance_ohm: float, bandwidth_hz: float,
+                      temperature_k: float = TEMPERATURE_K) -> float:
+    """Johnson-Nyquist current noise sqrt(4kTB/R) in A (Johnson 1928; Nyquist 1928)."""
+    return math.sqrt(4.0 * BOLTZMANN * temperature_k * bandwidth_hz / resistance_ohm)
+
+
+def hum_wave(t_s: np.ndarray, f0_hz: float, amplitudes: tuple[float, ...],
+             phases: tuple[float, ...] | None = None) -> np.ndarray:
+    """Sum of mains harmonics: sum_h A_h sin(2 pi h f0 t + phi_h); A_h is the peak amplitude."""
+    t = np.asarray(t_s, dtype=float)
+    out = np.zeros_like(t)
+    for h, a in enumerate(amplitudes, start=1):
+        phi = phases[h - 1] if phases else 0.0
+        out += a * np.sin(2.0 * np.pi * h * f0_hz * t + phi)
+    return out
+
+
+def _noise(rng: np.random.Generator, n: int, sd: float, fs: float, fc: float) -> np.ndarray:
+    """White Gaussian noise filtered by the rig's Bessel filter, scaled to sd after filtering."""
+    pad = 256
+    raw = rng.standard_normal(n + pad)
+    y = bessel_lowpass(raw, fs, fc)[pad:]
+    return y * (sd / max(float(np.std(y)), 1e-30))
+
+
+def whole_cell_sweeps(rng: np.random.Generator, *, n_sweeps: int, fs: float, fc: float,
+                      ra: float, rm: float, cm: float, noise_sd: float,
+                      hum_amps: tuple[float, ...], holding: float,
+                      hum_phase: float = 0.0, t0_s: float = 0.0) -> np.ndarray:
+    """Voltage-clamp sweeps (A): holding + filtered test-step response + noise + hum."""
+    n = int(round(_SWEEP_S * fs))
+    over = 8                                   # simulate the cell at 8x, filter, then sample
+    tf = np.arange(n * over) / (fs * over) - _STEP_START_S
+    step = (cell_step_current(tf, _WHOLE_CELL_STEP_V, ra, rm, cm)
+            - cell_step_current(tf - _STEP_LEN_S, _WHOLE_CELL_STEP_V, ra, rm, cm))
+    clean = bessel_lowpass(step, fs * over, fc)[::over]
+    t = np.arange(n) / fs
+    out = np.empty((n_sweeps, n))
+    for k in range(n_sweeps):
+        tk = t + t0_s + k * _SWEEP_S
+        out[k] = (holding + clean + _noise(rng, n, noise_sd, fs, fc)
+                  + hum_wave(tk, MAINS_HZ, hum_amps, (hum_phase, 0.7, 1.9)))
+    return out
+
+
+def seal_sweeps(rng: np.random.Generator, *, n_sweeps: int, fs: float, fc: float,
+                seals: tuple[float, ...], noise_sd: float, hum_amps: tuple[float, ...],
+                holding: float, hum_phase: float = 0.0) -> np.ndarray:
+    """Cell-attached seal tests (A): a +10 mV step through seal resistance seals[k] per sweep."""
+    n = int(round(_SWEEP_S * fs))
+    t = np.arange(n) / fs
+    out = np.empty((n_sweeps, n))
+    for k in range(n_sweeps):
+        rs = seals[k]
+        step = (seal_step_current(t - _STEP_START_S, _SEAL_STEP_V, rs)
+                - seal_step_current(t - _STEP_START_S - _STEP_LEN_S, _SEAL_STEP_V, rs))
+        out[k] = (holding + bessel_lowpass(step, fs, fc) + _noise(rng, n, noise_sd, fs, fc)
+                  + hum_wave(t + k * _SWEEP_S, MAINS_HZ, hum_amps, (hum_phase, 0.7, 1.9)))
+    return out
+
+
+def field_trace(rng: np.random.Generator, *, fs: float, fc: float, duration_s: float,
+                noise_sd: float, hum_amps: tuple[float, ...], offset: float,
+                hum_phase: float = 0.0) -> np.ndarray:
+    """Extracellular field recording (V), gap-free: offset + filtered noise + hum."""
+    n = int(round(duration_s * fs))
+    t = np.arange(n) / fs
+    return (offset + _noise(rng, n, noise_sd, fs, fc)
+            + hum_wave(t, MAINS_HZ, hum_amps, (hum_phase, 0.7, 1.9)))[None, :]
+
+
+# ----------------------------------------------------------------------------- ABF writing
+
+def write_abf1(path: Path, sweeps: np.ndarray, fs: float, unit: str, recorded_at: float,
+               gap_free: bool = False) -> None:
+    """Write sweeps (display unit, one row per sweep) as ABF1 with pyabf's writer.
+
+    pyabf's writer leaves the start date at zero (readers then fall back to the file's creation
+    time), so the ABF1 header's lFileStartDate (offset 20, YYYYMMDD), lFileStartTime (24,
+    seconds since midnight) and nFileStartMillisecs (366) are filled in afterwards, in UTC.
+    A gap-free file gets nOperationMode 3 (offset 8). The file mtime is set to the end of the
+    simulated acquisition.
+    """
+    import pyabf.abfWriter
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".part")
+    pyabf.abfWriter.writeABF1(np.ascontiguousarray(sweeps, dtype=float), str(tmp), fs, unit)
+    when = datetime.fromtimestamp(recorded_at, tz=timezone.utc)
+    with open(tmp, "r+b") as f:
+        if gap_free:
+            f.seek(8)
+            f.write(struct.pack("<h", 3))
+        f.seek(20)
+        f.write(struct.pack("<ii", when.year * 10000 + when.month * 100 + when.day,
+                            when.hour * 3600 + when.minute * 60 + when.second))
+        f.seek(366)
+        f.write(struct.pack("<h", when.microsecond // 1000))
+    duration = sweeps.size / fs
+    os.utime(tmp, (recorded_at + duration, recorded_at + duration))
+    os.replace(tmp, path)
+
+
+# ----------------------------------------------------------------------------- the lab plan
+
+@dataclass(frozen=True)
+class RigPlan:
+    name: str
+    kind: str            # 'whole_cell' | 'cell_attached' | 'field'
+    fault: str           # 'none' | 'ground' | 'headstage' | 'seal'
+    fault_day: int | None  # 0-based simulated day the fault starts (None: healthy)
+    description: str
+
+
+@dataclass(frozen=True)
+class FileSpec:
+    rig: str
+    relpath: str         # under the lab folder: '<rig>/<date>_cellNN.abf'
+    recorded_at: float   # Unix seconds, UTC
+    day: int
+    index: int           # file number of the day (1-based)
+    faulty: bool         # the scripted fault shows in this file
+    params: dict = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class LabPlan:
+    start: float         # Unix seconds of day 0, 00:00 UTC
+    days: int
+    files_per_day: int
+    rigs: tuple[RigPlan, ...]
+    files: tuple[FileSpec, ...]
+
+    def day_start(self, day: int) -> float:
+        return self.start + 86400.0 * day
+
+    @property
+    def end(self) -> float:
+        return self.day_start(self.days)
+
+
+def _fault_days(days: int, files_per_day: int) -> tuple[int, int, int]:
+    """(ground starts, headstage fails, seal lost): after the rigs' learning phase (10 files)."""
+    learn = math.ceil(12 / files_per_day) + 1
+    ground = max(learn, round(days * 0.35))
+    headstage = max(learn + 1, round(days * 0.55))
+    seal = max(learn + 1, round(days * 0.75))
+    return min(ground, days - 1), min(headstage, days - 1), min(seal, days - 1)
+
+
+def plan_lab(days: int = 21, files_per_day: int = 3, end: datetime | None = None,
+             seed: int = 7) -> LabPlan:
+    """The scenario: four rigs, ``days`` days of ``files_per_day`` files each, ending the day
+    before ``end`` (default: today, UTC). Deterministic for a seed."""
+    if days < 6:
+        raise ValueError("the demo lab needs at least 6 days (learning phase plus faults)")
+    end = end or datetime.now(timezone.utc)
+    last = datetime(end.year, end.month, end.day, tzinfo=timezone.utc)
+    start = (last - timedelta(days=days)).timestamp()
+    g, h, s = _fault_days(days, files_per_day)
+    rigs = (
+        RigPlan("patch-1", "whole_cell", "none", None,
+                "whole-cell patch rig, healthy throughout"),
+        RigPlan("patch-2", "whole_cell", "headstage", h,
+                "whole-cell patch rig whose headstage fails: broadband noise steps up"),
+        RigPlan("patch-3", "cell_attached", "seal", s,
+                "cell-attached rig: on one day a seal is lost during the recording"),
+        RigPlan("field-1", "field", "ground", g,
+                "field-recording rig whose ground slowly degrades: mains hum creeps up"),
+    )
+    rng = np.random.default_rng(seed)
+    files: list[FileSpec] = []
+    for rig in rigs:
+        for day in range(days):
+            day0 = start + 86400.0 * day
+            hours = np.sort(rng.uniform(9.0, 19.0, files_per_day))
+            for i, hour in enumerate(hours, start=1):
+                date = datetime.fromtimestamp(day0, tz=timezone.utc).strftime("%Y-%m-%d")
+                stem = "slice" if rig.kind == "field" else "cell"
+                params, faulty = _file_params(rng, rig, day, i)
+                files.append(FileSpec(rig.name, f"{rig.name}/{date}_{stem}{i:02d}.abf",
+                                      round(day0 + hour * 3600.0, 3), day, i, faulty, params))
+    files.sort(key=lambda f: f.recorded_at)
+    return LabPlan(start, days, files_per_day, rigs, tuple(files))
+
+
+def _file_params(rng: np.random.Generator, rig: RigPlan, day: int, index: int) -> tuple[dict, bool]:
+    """Per-file circuit and noise values: a rig's normal scatter plus its scripted fault."""
+    jitter = lambda s: float(math.exp(rng.normal(0.0, s)))  # noqa: E731 - lognormal scatter
+    p: dict = {"seed": int(rng.integers(0, 2**31)), "hum_phase": float(rng.uniform(0, 6.28))}
+    faulty = False
+    if rig.kind in ("whole_cell", "cell_attached"):
+        p["noise_sd"] = 1.2e-12 * jitter(0.06)                     # A, 2 kHz band
+        p["hum_amps"] = tuple(a * jitter(0.10) for a in (0.35e-12, 0.10e-12, 0.06e-12))
+        p["holding"] = -40e-12 * jitter(0.15)
+    if rig.kind == "whole_cell":
+        p.update(ra=11e6 * jitter(0.12), rm=450e6 * jitter(0.15), cm=30e-12 * jitter(0.10))
+        if rig.fault == "headstage" and day >= rig.fault_day:
+            p["noise_sd"] *= 3.5                                     # broadband step
+            faulty = True
+    elif rig.kind == "cell_attached":
+        p["holding"] = -2e-12 * jitter(0.3)
+        p["noise_sd"] = 0.35e-12 * jitter(0.06)
+        seal = 12e9 * jitter(0.15)
+        seals = [seal] * 12
+        if rig.fault == "seal" and day == rig.fault_day and index == 2:
+            # the seal holds for three sweeps, then gives way to about 150 MOhm
+            seals = [seal] * 3 + [max(150e6, seal * math.exp(-1.6 * (k + 1)))
+                                  for k in range(9)]
+            faulty = True
+        p["seals"] = tuple(seals)
+    else:  # field
+        p["noise_sd"] = 12e-6 * jitter(0.06)                         # V, 1 kHz band
+        growth = 1.0
+        if rig.fault == "ground" and day >= rig.fault_day:
+            growth = min(40.0, 1.45 ** (day - rig.fault_day + 1))    # creeping ground fault
+            faulty = True
+        p["hum_amps"] = tuple(a * growth * jitter(0.10) for a in (4e-6, 1.2e-6, 1.6e-6))
+        p["offset"] = 0.2e-3 * rng.normal()
+    return p, faulty
+
+
+def synthesize(spec: FileSpec, kind: str) -> tuple[np.ndarray, float, str, bool]:
+    """(sweeps in display unit, fs, unit, gap_free) for one planned file."""
+    p = spec.params
+    rng = np.random.default_rng(p["seed"])
+    if kind == "whole_cell":
+        a = whole_cell_sweeps(rng, n_sweeps=12, fs=_PATCH_FS, fc=_PATCH_FC, ra=p["ra"],
+                              rm=p["rm"], cm=p["cm"], noise_sd=p["noise_sd"],
+                              hum_amps=p["hum_amps"], holding=p["holding"],
+                              hum_phase=p["hum_phase"])
+        return a * 1e12, _PATCH_FS, "pA", False
+    if kind == "cell_attached":
+        a = seal_sweeps(rng, n_sweeps=len(p["seals"]), fs=_PATCH_FS, fc=_PATCH_FC,
+                        seals=p["seals"], noise_sd=p["noise_sd"], hum_amps=p["hum_amps"],
+                        holding=p["holding"], hum_phase=p["hum_phase"])
+        return a * 1e12, _PATCH_FS, "pA", False
+    a = field_trace(rng, fs=_FIELD_FS, fc=_FIELD_FC, duration_s=_FIELD_DURATION_S,
+                    noise_sd=p["noise_sd"], hum_amps=p["hum_amps"], offset=p["offset"],
+                    hum_phase=p["hum_phase"])
+    return a * 1e3, _FIELD_FS, "mV", True
+
+
+def build_lab(folder: Path, plan: LabPlan,
+              progress: Callable[[int, int], None] | None = None) -> list[Path]:
+    """Write every planned file under ``folder`` (oldest first); returns their paths."""
+    kinds = {r.name: r.kind for r in plan.rigs}
+    out = []
+    for n, spec in enumerate(plan.files, start=1):
+        sweeps, fs, unit, gap_free = synthesize(spec, kinds[spec.rig])
+        path = folder / spec.relpath
+        write_abf1(path, sweeps, fs, unit, spec.recorded_at, gap_free=gap_free)
+        out.append(path)
+        if progress:
+            progress(n, len(plan.files))
+    return out
