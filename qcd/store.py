@@ -1,0 +1,810 @@
+"""The SQLite store: schema and forward migrations, WAL, busy timeout; all of qcd's SQL.
+
+One writer process (the service); short writes from a second process (``qcd silence``) are
+safe because every write transaction starts with BEGIN IMMEDIATE. Times are Unix seconds.
+Imports sqlite-utils, numpy, qcd.errors and qcd.analyze (dataclasses only).
+"""
+from __future__ import annotations
+
+import json
+import logging
+import math
+import os
+import sqlite3
+import threading
+from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sqlite_utils import Database
+from sqlite_utils.migrations import Migrations
+
+from qcd.analyze import ChannelMeasures, FileMeasures, Measure, Spectrum
+from qcd.errors import StoreError
+
+__all__ = ["Store", "FileState", "Silence", "MIGRATIONS", "to_unix"]
+
+log = logging.getLogger("qcd.store")
+
+MIGRATIONS = Migrations("qcd")
+
+
+@MIGRATIONS(name="m001_tables")
+def _m001_tables(db: Database) -> None:
+    for sql in (
+        """CREATE TABLE files (
+            id INTEGER PRIMARY KEY,
+            rig TEXT NOT NULL,
+            path TEXT NOT NULL,
+            size INTEGER, mtime REAL, sha256 TEXT,
+            recorded_at REAL,          -- ordering time: header time, else mtime, else analysed_at
+            time_source TEXT,          -- 'header', 'header_tz', 'mtime' or 'analysed'
+            analysed_at REAL NOT NULL,
+            status TEXT NOT NULL,      -- ok / error / skipped
+            error_kind TEXT, error TEXT,
+            mode TEXT, format TEXT, fs_hz REAL, duration_s REAL, n_sweeps INTEGER,
+            gap_free INTEGER,
+            notes TEXT NOT NULL DEFAULT '[]',
+            extra TEXT NOT NULL DEFAULT '{}',
+            flagged INTEGER NOT NULL DEFAULT 0,
+            superseded INTEGER NOT NULL DEFAULT 0)""",
+        """CREATE TABLE channels (
+            file_id INTEGER NOT NULL REFERENCES files(id) ON DELETE CASCADE,
+            channel INTEGER NOT NULL, name TEXT, unit TEXT, dimension TEXT,
+            notes TEXT NOT NULL DEFAULT '[]',
+            PRIMARY KEY (file_id, channel))""",
+        """CREATE TABLE measures (
+            file_id INTEGER NOT NULL REFERENCES files(id) ON DELETE CASCADE,
+            channel INTEGER NOT NULL,
+            name TEXT NOT NULL,
+            value REAL,                -- the number (NULL when not a finite number)
+            unit TEXT NOT NULL,
+            kind TEXT NOT NULL,        -- 'float', 'int', 'bool' or 'json'
+            json TEXT,                 -- exact value when REAL cannot hold it
+            flagged INTEGER NOT NULL DEFAULT 0,
+            PRIMARY KEY (file_id, channel, name))""",
+        """CREATE TABLE spectra (
+            file_id INTEGER NOT NULL REFERENCES files(id) ON DELETE CASCADE,
+            channel INTEGER NOT NULL, unit TEXT,
+            freqs BLOB NOT NULL, density BLOB NOT NULL,   -- little-endian float32
+            PRIMARY KEY (file_id, channel))""",
+        """CREATE TABLE findings (
+            id INTEGER PRIMARY KEY,
+            file_id INTEGER NOT NULL REFERENCES files(id) ON DELETE CASCADE,
+            rig TEXT, mode TEXT, channel INTEGER, measure TEXT, rule TEXT, kind TEXT,
+            bad INTEGER NOT NULL, severity TEXT, value REAL, unit TEXT, limit_text TEXT,
+            hint TEXT)""",
+        """CREATE TABLE alerts (
+            key TEXT PRIMARY KEY,
+            rig TEXT, mode TEXT, channel INTEGER, measure TEXT, rule TEXT, state TEXT,
+            state_json TEXT NOT NULL,
+            opened_at REAL, updated_at REAL, resolved_at REAL, announced INTEGER)""",
+        """CREATE TABLE outbox (
+            id INTEGER PRIMARY KEY,
+            alert_key TEXT NOT NULL, transition INTEGER NOT NULL,
+            kind TEXT, priority, rig TEXT, title TEXT, body TEXT,
+            created_at REAL NOT NULL,
+            status TEXT NOT NULL DEFAULT 'pending',   -- pending / sent / stuck
+            attempts INTEGER NOT NULL DEFAULT 0,
+            next_at REAL NOT NULL, last_error TEXT, sent_at REAL,
+            UNIQUE (alert_key, transition))""",
+        """CREATE TABLE silences (
+            id INTEGER PRIMARY KEY,
+            rig_glob TEXT NOT NULL, rule_glob TEXT NOT NULL,
+            start_at REAL NOT NULL, end_at REAL,      -- NULL: until the alerts resolve
+            reason TEXT NOT NULL DEFAULT '', created_at REAL NOT NULL)""",
+        """CREATE TABLE heartbeat (
+            id INTEGER PRIMARY KEY CHECK (id = 1),
+            pid INTEGER, host TEXT, started_at REAL, beat_at REAL, queue_len INTEGER,
+            state_json TEXT)""",
+    ):
+        db.execute(sql)
+
+
+@MIGRATIONS(name="m002_indexes")
+def _m002_indexes(db: Database) -> None:
+    for sql in (
+        "CREATE INDEX files_rig_path ON files (rig, path, superseded)",
+        "CREATE INDEX files_rig_sha256 ON files (rig, sha256)",
+        "CREATE INDEX files_history ON files (rig, mode, status, flagged, superseded, recorded_at)",
+        "CREATE INDEX files_recorded_at ON files (recorded_at)",
+        "CREATE INDEX measures_name ON measures (name, channel)",
+        "CREATE INDEX findings_file ON findings (file_id)",
+        "CREATE INDEX alerts_rig ON alerts (rig, state)",
+        "CREATE INDEX outbox_due ON outbox (status, next_at)",
+        "CREATE INDEX silences_end ON silences (end_at)",
+    ):
+        db.execute(sql)
+
+
+@dataclass(frozen=True)
+class FileState:
+    """What the store knows of a path: enough for the watcher to skip unchanged files."""
+    id: int
+    size: int | None
+    mtime: float | None
+    sha256: str | None
+    status: str
+
+
+@dataclass(frozen=True)
+class Silence:
+    id: int
+    rig_glob: str
+    rule_glob: str
+    start_at: float
+    end_at: float | None          # None: until the silenced alerts resolve
+    reason: str
+
+
+def to_unix(value: datetime | float | int | None) -> float | None:
+    """A datetime (naive = UTC, as file headers give it) or a number -> Unix seconds."""
+    if value is None:
+        return None
+    if isinstance(value, datetime):
+        if value.tzinfo is None:
+            value = value.replace(tzinfo=timezone.utc)
+        return value.timestamp()
+    return float(value)
+
+
+def _get(obj: Any, name: str, default: Any = None) -> Any:
+    if isinstance(obj, dict):
+        return obj.get(name, default)
+    return getattr(obj, name, default)
+
+
+def _plain(value: Any) -> Any:
+    """numpy scalars -> Python scalars (np.float64 is a float already; np.int64, np.bool_ not)."""
+    if isinstance(value, np.generic):
+        return value.item()
+    return value
+
+
+def _real(value: Any) -> float | None:
+    value = _plain(value)
+    if isinstance(value, bool):
+        return float(value)
+    if isinstance(value, (int, float)) and math.isfinite(value):
+        return float(value)
+    return None
+
+
+def _dumps(value: Any) -> str:
+    return json.dumps(value, default=_json_default, sort_keys=False, allow_nan=True)
+
+
+def _json_default(o: Any) -> Any:
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, (set, frozenset)):
+        return sorted(o)
+    if isinstance(o, datetime):
+        return o.isoformat()
+    if isinstance(o, Path):
+        return os.fspath(o)
+    raise TypeError(f"cannot store a {type(o).__name__} as JSON")
+
+
+def _encode_value(value: Any) -> tuple[float | None, str, str | None]:
+    """A measure value -> (value column, kind, json column), exactly reversible."""
+    value = _plain(value)
+    if isinstance(value, bool):
+        return float(value), "bool", None
+    if isinstance(value, int):
+        exact = abs(value) <= 2 ** 53
+        return (float(value) if exact else None), "int", str(value)
+    if isinstance(value, float):
+        # NaN is stored by SQLite as NULL and -0.0 may come back as 0.0: keep them in text
+        if math.isfinite(value) and not (value == 0.0 and math.copysign(1.0, value) < 0):
+            return value, "float", None
+        return None, "float", repr(value)
+    return None, "json", _dumps(value)
+
+
+def _decode_value(value: float | None, kind: str, text: str | None) -> Any:
+    if kind == "bool":
+        return bool(value)
+    if kind == "int":
+        return int(text) if text is not None else int(value)  # type: ignore[arg-type]
+    if kind == "float":
+        return float(text) if text is not None else float(value)  # type: ignore[arg-type]
+    return json.loads(text) if text is not None else None
+
+
+def _f32(values: Iterable[float]) -> bytes:
+    return np.asarray(tuple(values), dtype="<f4").tobytes()
+
+
+def _from_f32(blob: bytes) -> tuple[float, ...]:
+    return tuple(float(x) for x in np.frombuffer(blob, dtype="<f4"))
+
+
+def _bad_targets(findings: Iterable[Any]) -> tuple[bool, set[tuple[int | None, str]]]:
+    """(any bad finding, {(channel or None, measure)} named by bad findings)."""
+    any_bad, named = False, set()
+    for f in findings:
+        if _get(f, "bad"):
+            any_bad = True
+            measure = _get(f, "measure")
+            if measure:
+                named.add((_get(f, "channel"), str(measure)))
+    return any_bad, named
+
+
+class Store:
+    """The qcd database. ``Store(path)`` creates or migrates it; use as a context manager.
+
+    ``before_commit`` (for crash tests only) is called inside ``commit_file``'s transaction
+    just before COMMIT.
+    """
+
+    def __init__(self, path: Path | str, timeout_s: float = 30.0, *,
+                 before_commit: Callable[[], None] | None = None) -> None:
+        self.path = Path(path)
+        self.timeout_s = float(timeout_s)
+        self._before_commit = before_commit
+        self._lock = threading.RLock()
+        self._closed = True
+        if not self.path.parent.is_dir():
+            raise StoreError(f"{self.path}: folder {self.path.parent} does not exist")
+        try:
+            # isolation_level=None: the driver opens no transaction of its own; every write
+            # transaction here starts with an explicit BEGIN IMMEDIATE.
+            conn = sqlite3.connect(os.fspath(self.path), timeout=self.timeout_s,
+                                   isolation_level=None, check_same_thread=False)
+        except sqlite3.Error as e:
+            raise StoreError(f"{self.path}: cannot open the database: {e}") from e
+        self._closed = False
+        try:
+            self.db = Database(conn, execute_plugins=False)
+            conn.execute(f"PRAGMA busy_timeout = {int(self.timeout_s * 1000)}")
+            conn.execute("PRAGMA foreign_keys = ON")
+            self.db.enable_wal()
+            conn.execute("PRAGMA synchronous = FULL")
+            if self.db.journal_mode != "wal":
+                log.warning("%s: write-ahead log not available (journal_mode=%s); keep the "
+                            "database on a local disk", self.path, self.db.journal_mode)
+            self._migrate()
+        except sqlite3.DatabaseError as e:
+            conn.close()
+            self._closed = True
+            raise StoreError(f"{self.path}: not a usable qcd database: {e}") from e
+        except BaseException:
+            conn.close()
+            self._closed = True
+            raise
+
+    # --- lifecycle ----------------------------------------------------------------------------
+
+    def _migrate(self) -> None:
+        known = {m.name for m in MIGRATIONS._migrations}
+        applied = {m.name for m in MIGRATIONS.applied(self.db)}
+        newer = sorted(applied - known)
+        if newer:
+            raise StoreError(f"{self.path}: written by a newer qcd (schema steps {', '.join(newer)}"
+                             f" unknown here); upgrade qcd")
+        if not MIGRATIONS.pending(self.db):
+            return
+        with self._write():      # BEGIN IMMEDIATE: two processes opening at once migrate once
+            MIGRATIONS.apply(self.db)
+
+    def schema_steps(self) -> list[str]:
+        """Names of the applied schema steps, in order."""
+        return [m.name for m in MIGRATIONS.applied(self.db)]
+
+    def close(self) -> None:
+        with self._lock:
+            if self._closed:
+                return
+            self._closed = True
+            conn = self.db.conn
+            try:
+                if conn.in_transaction:
+                    conn.execute("ROLLBACK")
+            finally:
+                conn.close()
+
+    def __enter__(self) -> Store:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"Store({os.fspath(self.path)!r})"
+
+    def checkpoint(self) -> tuple[int, int, int]:
+        """``PRAGMA wal_checkpoint(TRUNCATE)``: (busy, wal pages, pages checkpointed)."""
+        with self._lock:
+            row = self.db.conn.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()
+            return int(row[0]), int(row[1]), int(row[2])
+
+    def wal_bytes(self) -> int:
+        """Size of the -wal file (0 when absent): call ``checkpoint`` when it grows large."""
+        try:
+            return os.stat(f"{os.fspath(self.path)}-wal").st_size
+        except OSError:
+            return 0
+
+    @contextmanager
+    def _write(self) -> Iterator[sqlite3.Connection]:
+        """One write transaction, BEGIN IMMEDIATE (waits up to timeout_s for another writer)."""
+        with self._lock:
+            conn = self.db.conn
+            try:
+                conn.execute("BEGIN IMMEDIATE")
+            except sqlite3.OperationalError as e:
+                raise StoreError(f"{self.path}: cannot start a write ({e}); another process "
+                                 f"held the database longer than {self.timeout_s:g} s") from e
+            try:
+                yield conn
+                conn.execute("COMMIT")
+            except BaseException as e:
+                if conn.in_transaction:
+                    conn.execute("ROLLBACK")
+                if isinstance(e, sqlite3.Error):
+                    raise StoreError(f"{self.path}: write failed: {e}") from e
+                raise
+
+    def _rows(self, sql: str, params: Iterable[Any] = ()) -> list[dict[str, Any]]:
+        with self._lock:
+            cur = self.db.conn.execute(sql, tuple(params))
+            names = [d[0] for d in cur.description]
+            return [dict(zip(names, row)) for row in cur.fetchall()]
+
+    def _one(self, sql: str, params: Iterable[Any] = ()) -> Any:
+        with self._lock:
+            return self.db.conn.execute(sql, tuple(params)).fetchone()
+
+    # --- intake ---------------------------------------------------------------------------------
+
+    def file_state(self, rig: str, path: Path | str) -> FileState | None:
+        """The latest non-superseded row of ``rig``/``path``, or None."""
+        row = self._one("SELECT id, size, mtime, sha256, status FROM files WHERE rig = ? AND "
+                        "path = ? AND superseded = 0 ORDER BY id DESC LIMIT 1",
+                        (rig, os.fspath(path)))
+        return FileState(*row) if row else None
+
+    def has_content(self, rig: str, sha256: str) -> bool:
+        """A current (non-superseded) row of this rig holds this content already."""
+        return self._one("SELECT 1 FROM files WHERE rig = ? AND sha256 = ? AND superseded = 0 "
+                         "LIMIT 1", (rig, sha256)) is not None
+
+    # --- history for the judge ----------------------------------------------------------------
+
+    def history(self, rig: str, mode: str, channel: int, measure: str, *, limit: int = 30,
+                days: float = 30.0, before: float) -> list[tuple[float, float]]:
+        """[(recorded_at, value)] of ok, unflagged, current files in [before - days, before),
+        newest first, at most ``limit``."""
+        rows = self._one_all(
+            "SELECT f.recorded_at, m.value FROM files f JOIN measures m ON m.file_id = f.id "
+            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.flagged = 0 "
+            "AND f.superseded = 0 AND f.recorded_at < ? AND f.recorded_at >= ? "
+            "AND m.channel = ? AND m.name = ? AND m.flagged = 0 AND m.value IS NOT NULL "
+            "ORDER BY f.recorded_at DESC, f.id DESC LIMIT ?",
+            (rig, mode, before, before - days * 86400.0, channel, measure, int(limit)))
+        return [(float(t), float(v)) for t, v in rows]
+
+    def _one_all(self, sql: str, params: Iterable[Any] = ()) -> list[tuple]:
+        with self._lock:
+            return self.db.conn.execute(sql, tuple(params)).fetchall()
+
+    def reference_spectrum(self, rig: str, mode: str, channel: int, *, limit: int = 30,
+                           days: float = 30.0, before: float) -> Spectrum | None:
+        """Per-frequency median of the last ``limit`` unflagged spectra (same frequency grid
+        and unit as the newest of them), or None when there is none."""
+        rows = self._one_all(
+            "SELECT s.unit, s.freqs, s.density FROM files f JOIN spectra s ON s.file_id = f.id "
+            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.flagged = 0 "
+            "AND f.superseded = 0 AND f.recorded_at < ? AND f.recorded_at >= ? "
+            "AND s.channel = ? ORDER BY f.recorded_at DESC, f.id DESC LIMIT ?",
+            (rig, mode, before, before - days * 86400.0, channel, int(limit)))
+        if not rows:
+            return None
+        unit, freqs, _ = rows[0]
+        same = [np.frombuffer(d, dtype="<f4") for u, f, d in rows if u == unit and f == freqs]
+        median = np.median(np.vstack(same).astype(np.float64), axis=0)
+        return Spectrum(freqs_hz=_from_f32(freqs), density=tuple(float(x) for x in median),
+                        unit=unit)
+
+    def good_file_count(self, rig: str, mode: str) -> int:
+        """Files of the rig/mode that can enter the baseline: ok, unflagged, current."""
+        return int(self._one("SELECT count(*) FROM files WHERE rig = ? AND mode = ? AND "
+                             "status = 'ok' AND flagged = 0 AND superseded = 0",
+                             (rig, mode))[0])
+
+    # --- one processed file ---------------------------------------------------------------------
+
+    def commit_file(self, rig: str, fm: FileMeasures, *, analysed_at: float,
+                    findings: Iterable[Any] = (), alert_states: Iterable[dict] = (),
+                    messages: Iterable[Any] = ()) -> int:
+        """Store everything of one processed file in ONE transaction; returns the file id.
+
+        Content already stored for the rig (same sha256, current row) is not stored again:
+        the existing id is returned and nothing is written (unless the old row was an error
+        and this one is ok, which re-measures it). Otherwise an older row of the same
+        rig/path is marked superseded.
+        """
+        findings = list(findings)
+        alert_states = list(alert_states)
+        messages = list(messages)
+        any_bad, named = _bad_targets(findings)
+        path = os.fspath(fm.path)
+        with self._write() as conn:
+            replaces: list[int] = []
+            if fm.sha256:
+                row = conn.execute("SELECT id, status FROM files WHERE rig = ? AND sha256 = ? "
+                                   "AND superseded = 0 ORDER BY id DESC LIMIT 1",
+                                   (rig, fm.sha256)).fetchone()
+                if row is not None:
+                    if not (row[1] == "error" and fm.status == "ok"):
+                        return int(row[0])
+                    replaces.append(int(row[0]))
+            conn.execute("UPDATE files SET superseded = 1 WHERE rig = ? AND path = ? AND "
+                         "superseded = 0", (rig, path))
+            for old in replaces:
+                conn.execute("UPDATE files SET superseded = 1 WHERE id = ?", (old,))
+            file_id = self._insert_file(conn, rig, fm, path, analysed_at, any_bad)
+            for ch in fm.channels:
+                self._insert_channel(conn, file_id, ch, named)
+            for f in findings:
+                self._insert_finding(conn, file_id, rig, fm.mode, f)
+            self._upsert_alerts(conn, alert_states, analysed_at)
+            self._queue(conn, messages, analysed_at)
+            if self._before_commit is not None:
+                self._before_commit()
+        return file_id
+
+    @staticmethod
+    def _insert_file(conn: sqlite3.Connection, rig: str, fm: FileMeasures, path: str,
+                     analysed_at: float, flagged: bool) -> int:
+        if fm.recorded_at is not None:
+            recorded_at = to_unix(fm.recorded_at)
+            aware = isinstance(fm.recorded_at, datetime) and fm.recorded_at.tzinfo is not None
+            source = "header_tz" if aware else "header"
+        elif fm.mtime is not None:
+            recorded_at, source = float(fm.mtime), "mtime"
+        else:
+            recorded_at, source = float(analysed_at), "analysed"
+        cur = conn.execute(
+            "INSERT INTO files (rig, path, size, mtime, sha256, recorded_at, time_source, "
+            "analysed_at, status, error_kind, error, mode, format, fs_hz, duration_s, n_sweeps, "
+            "gap_free, notes, extra, flagged, superseded) "
+            "VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,0)",
+            (rig, path, _plain(fm.size), _plain(fm.mtime), fm.sha256, recorded_at, source,
+             float(analysed_at), fm.status, fm.error_kind, fm.error, fm.mode, fm.format,
+             _plain(fm.fs_hz), _plain(fm.duration_s), _plain(fm.n_sweeps),
+             None if fm.gap_free is None else int(bool(fm.gap_free)),
+             _dumps(list(fm.notes)), _dumps(fm.extra or {}), int(flagged)))
+        return int(cur.lastrowid)
+
+    @staticmethod
+    def _insert_channel(conn: sqlite3.Connection, file_id: int, ch: ChannelMeasures,
+                        named: set[tuple[int | None, str]]) -> None:
+        idx = int(ch.index)
+        conn.execute("INSERT INTO channels (file_id, channel, name, unit, dimension, notes) "
+                     "VALUES (?,?,?,?,?,?)",
+                     (file_id, idx, ch.name, ch.unit, ch.dimension, _dumps(list(ch.notes))))
+        rows = []
+        for key, m in ch.measures.items():
+            value, kind, text = _encode_value(m.value)
+            flagged = (idx, key) in named or (None, key) in named
+            rows.append((file_id, idx, key, value, m.unit, kind, text, int(flagged)))
+        conn.executemany("INSERT INTO measures (file_id, channel, name, value, unit, kind, json, "
+                         "flagged) VALUES (?,?,?,?,?,?,?,?)", rows)
+        if ch.spectrum is not None:
+            sp = ch.spectrum
+            if len(sp.freqs_hz) != len(sp.density):
+                raise StoreError(f"{file_id}: channel {idx} spectrum has {len(sp.freqs_hz)} "
+                                 f"frequencies but {len(sp.density)} densities")
+            conn.execute("INSERT INTO spectra (file_id, channel, unit, freqs, density) "
+                         "VALUES (?,?,?,?,?)",
+                         (file_id, idx, sp.unit, _f32(sp.freqs_hz), _f32(sp.density)))
+
+    @staticmethod
+    def _insert_finding(conn: sqlite3.Connection, file_id: int, rig: str, mode: str,
+                        f: Any) -> None:
+        ch = _get(f, "channel")
+        conn.execute(
+            "INSERT INTO findings (file_id, rig, mode, channel, measure, rule, kind, bad, "
+            "severity, value, unit, limit_text, hint) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+            (file_id, _get(f, "rig", rig), _get(f, "mode", mode),
+             None if ch is None else int(ch), _get(f, "measure"), _get(f, "rule"),
+             _get(f, "kind"), int(bool(_get(f, "bad"))), _str_or_none(_get(f, "severity")),
+             _real(_get(f, "value")), _get(f, "unit"), _get(f, "limit_text"), _get(f, "hint")))
+
+    @staticmethod
+    def _upsert_alerts(conn: sqlite3.Connection, states: Iterable[dict], now: float) -> None:
+        for st in states:
+            if not isinstance(st, dict):
+                st = st.to_dict()
+            ch = st.get("channel")
+            announced = _plain(st.get("announced"))
+            conn.execute(
+                "INSERT INTO alerts (key, rig, mode, channel, measure, rule, state, state_json, "
+                "opened_at, updated_at, resolved_at, announced) VALUES (?,?,?,?,?,?,?,?,?,?,?,?) "
+                "ON CONFLICT(key) DO UPDATE SET rig = excluded.rig, mode = excluded.mode, "
+                "channel = excluded.channel, measure = excluded.measure, rule = excluded.rule, "
+                "state = excluded.state, state_json = excluded.state_json, "
+                "opened_at = excluded.opened_at, updated_at = excluded.updated_at, "
+                "resolved_at = excluded.resolved_at, announced = excluded.announced",
+                (str(st["key"]), st.get("rig"), st.get("mode"),
+                 None if ch is None else int(ch), st.get("measure"), st.get("rule"),
+                 st.get("state"), _dumps(st), _real(st.get("opened_at")),
+                 float(now), _real(st.get("resolved_at")),
+                 int(announced) if isinstance(announced, (bool, int)) else
+                 (None if announced is None else int(bool(announced)))))
+
+    @staticmethod
+    def _queue(conn: sqlite3.Connection, messages: Iterable[Any], now: float) -> None:
+        for m in messages:
+            created = _real(_get(m, "created_at")) or float(now)
+            conn.execute(
+                "INSERT OR IGNORE INTO outbox (alert_key, transition, kind, priority, rig, title, "
+                "body, created_at, status, attempts, next_at) "
+                "VALUES (?,?,?,?,?,?,?,?,'pending',0,?)",
+                (str(_get(m, "alert_key")), _plain(_get(m, "transition")), _get(m, "kind"),
+                 _plain(_get(m, "priority")), _get(m, "rig"), _get(m, "title"),
+                 _get(m, "body"), created, created))
+
+    def commit_alerts(self, alert_states: Iterable[dict] = (), messages: Iterable[Any] = (),
+                      *, now: float | None = None) -> None:
+        """Alert states and outbox rows without a file (silence ends, digests), one transaction.
+
+        ``now`` (Unix seconds) stamps updated_at/created_at; None takes the current time.
+        """
+        import time
+        now = time.time() if now is None else float(now)
+        with self._write() as conn:
+            self._upsert_alerts(conn, list(alert_states), now)
+            self._queue(conn, list(messages), now)
+
+    # --- alerts -----------------------------------------------------------------------------------
+
+    def alert_states(self, rig: str | None = None) -> dict[str, dict]:
+        """{key: the state dict as stored} for one rig (every rig when None)."""
+        sql, params = "SELECT key, state_json FROM alerts", ()
+        if rig is not None:
+            sql, params = sql + " WHERE rig = ?", (rig,)
+        return {k: json.loads(s) for k, s in self._one_all(sql + " ORDER BY key", params)}
+
+    _OPEN = "state NOT IN ('ok', 'suspect')"
+
+    def open_alerts(self, rig: str | None = None) -> list[dict[str, Any]]:
+        """Alerts in any state but 'ok' and 'suspect', oldest opening first."""
+        sql, params = f"SELECT * FROM alerts WHERE {self._OPEN}", []
+        if rig is not None:
+            sql += " AND rig = ?"
+            params.append(rig)
+        return [_alert_row(r) for r in self._rows(sql + " ORDER BY opened_at, key", params)]
+
+    def recent_alerts(self, since: float, rig: str | None = None) -> list[dict[str, Any]]:
+        """Alerts back to 'ok' with resolved_at >= since, newest first."""
+        sql, params = "SELECT * FROM alerts WHERE resolved_at >= ? AND state = 'ok'", [since]
+        if rig is not None:
+            sql += " AND rig = ?"
+            params.append(rig)
+        return [_alert_row(r) for r in self._rows(sql + " ORDER BY resolved_at DESC", params)]
+
+    # --- outbox ----------------------------------------------------------------------------------
+
+    def outbox_due(self, now: float, limit: int = 50) -> list[dict[str, Any]]:
+        """Pending rows with next_at <= now, oldest first."""
+        return self._rows("SELECT * FROM outbox WHERE status = 'pending' AND next_at <= ? "
+                          "ORDER BY created_at, id LIMIT ?", (now, int(limit)))
+
+    def mark_sent(self, id: int, now: float) -> None:
+        with self._write() as conn:
+            conn.execute("UPDATE outbox SET status = 'sent', sent_at = ?, attempts = attempts + 1"
+                         " WHERE id = ?", (now, id))
+
+    def mark_retry(self, id: int, now: float, next_at: float, error: str) -> None:
+        """One more failed attempt; try again at ``next_at``. ``error`` must be redacted."""
+        with self._write() as conn:
+            conn.execute("UPDATE outbox SET attempts = attempts + 1, next_at = ?, last_error = ?"
+                         " WHERE id = ? AND status = 'pending'", (next_at, error, id))
+
+    def mark_stuck(self, id: int, now: float, error: str) -> None:
+        """Give up retrying; the row stays, shown by ``qcd alerts`` and the report."""
+        with self._write() as conn:
+            conn.execute("UPDATE outbox SET status = 'stuck', attempts = attempts + 1, "
+                         "last_error = ?, next_at = ? WHERE id = ? AND status = 'pending'",
+                         (error, now, id))
+
+    def outbox_counts(self) -> dict[str, int]:
+        counts = {"pending": 0, "sent": 0, "stuck": 0}
+        for status, n in self._one_all("SELECT status, count(*) FROM outbox GROUP BY status"):
+            counts[status] = int(n)
+        return counts
+
+    def stuck_rows(self) -> list[dict[str, Any]]:
+        return self._rows("SELECT * FROM outbox WHERE status = 'stuck' ORDER BY created_at, id")
+
+    def outbox_rows(self, alert_key: str | None = None) -> list[dict[str, Any]]:
+        """Every outbox row (of one key), oldest first."""
+        if alert_key is None:
+            return self._rows("SELECT * FROM outbox ORDER BY created_at, id")
+        return self._rows("SELECT * FROM outbox WHERE alert_key = ? ORDER BY created_at, id",
+                          (alert_key,))
+
+    # --- silences --------------------------------------------------------------------------------
+
+    def add_silence(self, rig_glob: str, rule_glob: str, start_at: float, end_at: float | None,
+                    reason: str, now: float) -> int:
+        """Mute messages of rigs/rules matching the globs; end_at None: until resolved."""
+        if end_at is not None and end_at <= start_at:
+            raise StoreError(f"{self.path}: a silence must end after it starts")
+        with self._write() as conn:
+            cur = conn.execute("INSERT INTO silences (rig_glob, rule_glob, start_at, end_at, "
+                               "reason, created_at) VALUES (?,?,?,?,?,?)",
+                               (rig_glob, rule_glob, float(start_at),
+                                None if end_at is None else float(end_at), reason or "",
+                                float(now)))
+            return int(cur.lastrowid)
+
+    def active_silences(self, now: float) -> list[Silence]:
+        rows = self._one_all("SELECT id, rig_glob, rule_glob, start_at, end_at, reason FROM "
+                             "silences WHERE start_at <= ? AND (end_at IS NULL OR end_at > ?) "
+                             "ORDER BY start_at, id", (now, now))
+        return [Silence(*r) for r in rows]
+
+    def recent_silences(self, since: float) -> list[Silence]:
+        """Silences still open-ended or ending at or after ``since`` (active or just ended)."""
+        rows = self._one_all("SELECT id, rig_glob, rule_glob, start_at, end_at, reason FROM "
+                             "silences WHERE end_at IS NULL OR end_at >= ? ORDER BY start_at, id",
+                             (since,))
+        return [Silence(*r) for r in rows]
+
+    def end_silence(self, id: int, now: float) -> bool:
+        """End a silence now; False when it had already ended (or does not exist)."""
+        with self._write() as conn:
+            cur = conn.execute("UPDATE silences SET end_at = ? WHERE id = ? AND "
+                               "(end_at IS NULL OR end_at > ?)", (now, id, now))
+            return cur.rowcount == 1
+
+    # --- heartbeat -------------------------------------------------------------------------------
+
+    def beat(self, pid: int, host: str, started_at: float, now: float, queue_len: int,
+             state: dict | None = None) -> None:
+        with self._write() as conn:
+            conn.execute("INSERT INTO heartbeat (id, pid, host, started_at, beat_at, queue_len, "
+                         "state_json) VALUES (1,?,?,?,?,?,?) ON CONFLICT(id) DO UPDATE SET "
+                         "pid = excluded.pid, host = excluded.host, "
+                         "started_at = excluded.started_at, beat_at = excluded.beat_at, "
+                         "queue_len = excluded.queue_len, state_json = excluded.state_json",
+                         (int(pid), host, float(started_at), float(now), int(queue_len),
+                          _dumps(state or {})))
+
+    def heartbeat(self) -> dict[str, Any] | None:
+        """{pid, host, started_at, beat_at, queue_len, state} of the last beat, or None."""
+        rows = self._rows("SELECT pid, host, started_at, beat_at, queue_len, state_json "
+                          "FROM heartbeat WHERE id = 1")
+        if not rows:
+            return None
+        row = rows[0]
+        row["state"] = json.loads(row.pop("state_json") or "{}")
+        return row
+
+    # --- reads for the report --------------------------------------------------------------------
+
+    def rigs(self) -> list[str]:
+        """Names of the rigs with stored files or alerts, sorted."""
+        return [r[0] for r in self._one_all(
+            "SELECT rig FROM files UNION SELECT rig FROM alerts WHERE rig IS NOT NULL "
+            "ORDER BY 1")]
+
+    def files(self, rig: str | None = None, since: float | None = None,
+              until: float | None = None, *, include_superseded: bool = False
+              ) -> list[dict[str, Any]]:
+        """File rows (notes/extra decoded) with since <= recorded_at < until, oldest first."""
+        where, params = [], []
+        if not include_superseded:
+            where.append("superseded = 0")
+        if rig is not None:
+            where.append("rig = ?")
+            params.append(rig)
+        if since is not None:
+            where.append("recorded_at >= ?")
+            params.append(since)
+        if until is not None:
+            where.append("recorded_at < ?")
+            params.append(until)
+        sql = "SELECT * FROM files" + (" WHERE " + " AND ".join(where) if where else "")
+        rows = self._rows(sql + " ORDER BY recorded_at, id", params)
+        for r in rows:
+            r["notes"] = json.loads(r["notes"])
+            r["extra"] = json.loads(r["extra"])
+            r["gap_free"] = None if r["gap_free"] is None else bool(r["gap_free"])
+            r["flagged"], r["superseded"] = bool(r["flagged"]), bool(r["superseded"])
+        return rows
+
+    def measure_series(self, rig: str, measure: str, *, channel: int | None = None,
+                       since: float | None = None
+                       ) -> list[tuple[float, float, str, bool, int, str]]:
+        """[(recorded_at, value, unit, flagged, file_id, path)] of current ok files, oldest first."""
+        sql = ("SELECT f.recorded_at, m.value, m.unit, m.flagged, f.id, f.path FROM files f "
+               "JOIN measures m ON m.file_id = f.id WHERE f.rig = ? AND f.status = 'ok' AND "
+               "f.superseded = 0 AND m.name = ? AND m.value IS NOT NULL")
+        params: list[Any] = [rig, measure]
+        if channel is not None:
+            sql += " AND m.channel = ?"
+            params.append(channel)
+        if since is not None:
+            sql += " AND f.recorded_at >= ?"
+            params.append(since)
+        rows = self._one_all(sql + " ORDER BY f.recorded_at, f.id, m.channel", params)
+        return [(float(t), float(v), u, bool(fl), int(i), p) for t, v, u, fl, i, p in rows]
+
+    def spectrum(self, file_id: int, channel: int) -> Spectrum | None:
+        row = self._one("SELECT unit, freqs, density FROM spectra WHERE file_id = ? AND "
+                        "channel = ?", (file_id, channel))
+        if row is None:
+            return None
+        return Spectrum(freqs_hz=_from_f32(row[1]), density=_from_f32(row[2]), unit=row[0])
+
+    def findings(self, file_id: int) -> list[dict[str, Any]]:
+        rows = self._rows("SELECT * FROM findings WHERE file_id = ? ORDER BY id", (file_id,))
+        for r in rows:
+            r["bad"] = bool(r["bad"])
+        return rows
+
+    def file_measures(self, file_id: int) -> dict[int, dict[str, tuple[Any, str]]]:
+        """{channel: {name: (value, unit)}}, values exactly as FileMeasures carried them."""
+        out: dict[int, dict[str, tuple[Any, str]]] = {}
+        for ch, name, value, unit, kind, text in self._one_all(
+                "SELECT channel, name, value, unit, kind, json FROM measures WHERE file_id = ? "
+                "ORDER BY rowid", (file_id,)):
+            out.setdefault(int(ch), {})[name] = (_decode_value(value, kind, text), unit)
+        return out
+
+    def flagged_measures(self, file_id: int) -> set[tuple[int, str]]:
+        """{(channel, measure)} flagged by a bad finding."""
+        return {(int(c), n) for c, n in self._one_all(
+            "SELECT channel, name FROM measures WHERE file_id = ? AND flagged = 1", (file_id,))}
+
+    def load_file(self, file_id: int) -> FileMeasures | None:
+        """The stored file rebuilt as a FileMeasures (spectra as float32 gave them)."""
+        rows = self._rows("SELECT * FROM files WHERE id = ?", (file_id,))
+        if not rows:
+            return None
+        f = rows[0]
+        measures = self.file_measures(file_id)
+        channels = []
+        for ch, name, unit, dim, notes in self._one_all(
+                "SELECT channel, name, unit, dimension, notes FROM channels WHERE file_id = ? "
+                "ORDER BY rowid", (file_id,)):
+            ms = {k: Measure(k, v, u) for k, (v, u) in measures.get(int(ch), {}).items()}
+            channels.append(ChannelMeasures(index=int(ch), name=name, unit=unit, dimension=dim,
+                                            measures=ms, notes=tuple(json.loads(notes)),
+                                            spectrum=self.spectrum(file_id, int(ch))))
+        recorded: datetime | None = None
+        if f["time_source"] in ("header", "header_tz"):
+            recorded = datetime.fromtimestamp(f["recorded_at"], timezone.utc)
+            if f["time_source"] == "header":
+                recorded = recorded.replace(tzinfo=None)
+        return FileMeasures(
+            path=f["path"], status=f["status"], error=f["error"], error_kind=f["error_kind"],
+            mode=f["mode"], format=f["format"], fs_hz=f["fs_hz"], duration_s=f["duration_s"],
+            n_sweeps=f["n_sweeps"],
+            gap_free=None if f["gap_free"] is None else bool(f["gap_free"]),
+            recorded_at=recorded, size=f["size"], mtime=f["mtime"], sha256=f["sha256"],
+            channels=tuple(channels), notes=tuple(json.loads(f["notes"])),
+            extra=json.loads(f["extra"]))
+
+
+def _str_or_none(v: Any) -> str | None:
+    return None if v is None else str(v)
+
+
+def _alert_row(r: dict[str, Any]) -> dict[str, Any]:
+    r["details"] = json.loads(r.pop("state_json"))
+    if r.get("announced") is not None:
+        r["announced"] = bool(r["announced"])
+    return r
