@@ -196,15 +196,100 @@ def _cmd_compare(args: argparse.Namespace) -> int:
 
 
 def _cmd_alerts(args: argparse.Namespace) -> int:
-    return _not_yet("alerts")
+    import fnmatch
+    import time
+
+    from qcd.config import find_config, load_config, redact_text
+    from qcd.store import Store
+
+    cfg = load_config(find_config(args.config))
+    if not cfg.database.exists():
+        print(f"qcd alerts: no database yet at {cfg.database} (start 'qcd watch' first)",
+              file=sys.stderr)
+        return EXIT_FAILED
+    now = time.time()
+
+    def when(t: float | None) -> str:
+        if t is None:
+            return "-"
+        from datetime import datetime
+        return datetime.fromtimestamp(t).astimezone().strftime("%Y-%m-%d %H:%M %Z")
+
+    def table(title: str, head: tuple[str, ...], rows: list[tuple]) -> None:
+        print(f"{title}: {len(rows) or 'none'}")
+        if not rows:
+            return
+        cells = [tuple(head)] + [tuple("-" if c is None else str(c) for c in r) for r in rows]
+        widths = [max(len(r[i]) for r in cells) for i in range(len(head))]
+        for r in cells:
+            print("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())
+
+    with Store(cfg.database) as store:
+        open_ = store.open_alerts(args.rig)
+        resolved = store.recent_alerts(now - args.days * 86400.0, args.rig)
+        silences = [s for s in store.active_silences(now)
+                    if args.rig is None or fnmatch.fnmatchcase(args.rig, s.rig_glob)]
+        counts = store.outbox_counts()
+        stuck = [r for r in store.stuck_rows() if args.rig is None or r["rig"] == args.rig]
+    table("open alerts", ("rig", "channel", "measure", "rule", "state", "opened", "announced"),
+          [(a["rig"], a["channel"], a["measure"], a["rule"], a["state"], when(a["opened_at"]),
+            "yes" if a["announced"] else "no") for a in open_])
+    table(f"resolved in the last {args.days:g} days", ("rig", "channel", "measure", "rule",
+                                                       "opened", "resolved"),
+          [(a["rig"], a["channel"], a["measure"], a["rule"], when(a["opened_at"]),
+            when(a["resolved_at"])) for a in resolved])
+    table("active silences", ("id", "rig", "rules", "from", "until", "reason"),
+          [(s.id, s.rig_glob, s.rule_glob, when(s.start_at),
+            "resolved" if s.end_at is None else when(s.end_at), s.reason) for s in silences])
+    print(f"outbox: {counts['pending']} pending, {counts['sent']} sent, {counts['stuck']} stuck")
+    table("undeliverable messages", ("id", "rig", "title", "attempts", "created", "last error"),
+          [(r["id"], r["rig"], r["title"], r["attempts"], when(r["created_at"]),
+            redact_text(r["last_error"] or "", cfg.notify)) for r in stuck])
+    return EXIT_FAILED if open_ or stuck else EXIT_OK
 
 
 def _cmd_silence(args: argparse.Namespace) -> int:
-    return _not_yet("silence")
+    import fnmatch
+    import time
+
+    from qcd.config import find_config, load_config, parse_duration
+    from qcd.store import Store
+
+    cfg = load_config(find_config(args.config))
+    until_resolved = args.duration.strip().lower() == "resolved"
+    seconds = None if until_resolved else parse_duration(args.duration, "FOR")
+    if not any(fnmatch.fnmatchcase(r.name, args.rig) for r in cfg.rigs):
+        known = ", ".join(r.name for r in cfg.rigs) or "none"
+        raise ConfigError(cfg.path, "RIG", f"no configured rig matches {args.rig!r} "
+                          f"(configured: {known})")
+    now = time.time()
+    end_at = None if seconds is None else now + seconds
+    with Store(cfg.database) as store:
+        sid = store.add_silence(args.rig, args.rule, now, end_at, args.reason, now)
+    if end_at is None:
+        until = "its open alerts resolve"
+    else:
+        from datetime import datetime
+        until = datetime.fromtimestamp(end_at).astimezone().strftime("%Y-%m-%d %H:%M %Z")
+    rules = "" if args.rule == "*" else f" (rules {args.rule})"
+    print(f"silenced {args.rig}{rules} until {until} (silence {sid}); alerts are still "
+          f"evaluated and shown by 'qcd alerts'")
+    return EXIT_OK
 
 
 def _cmd_init(args: argparse.Namespace) -> int:
-    return _not_yet("init")
+    from qcd.config import starter_config
+
+    path: Path = args.path
+    if path.exists() and not args.force:
+        print(f"qcd init: {path} exists already; pass --force to overwrite it", file=sys.stderr)
+        return EXIT_USAGE
+    if not path.parent.is_dir():
+        print(f"qcd init: folder {path.parent} does not exist", file=sys.stderr)
+        return EXIT_USAGE
+    path.write_text(starter_config(), encoding="utf-8")
+    print(f"wrote {path}: set the rig's folders, then run 'qcd watch --config {path}'")
+    return EXIT_OK
 
 
 def _cmd_notify_test(args: argparse.Namespace) -> int:
