@@ -1,0 +1,276 @@
+"""Intake: which files in a rig folder are finished recordings, ready to measure.
+
+A file is ready once its size and mtime have not changed for ``settle_s`` and its header fits
+its size. Live files (seen through an event) go ahead of the start-up backlog. Clock (``now``)
+and ``stat`` are parameters. Imports qcd.errors and qcd.recording (lazily) only.
+"""
+from __future__ import annotations
+
+import fnmatch
+import heapq
+import itertools
+import logging
+import os
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterable
+
+from qcd.errors import RecordingError
+
+__all__ = ["Ready", "GaveUp", "Intake", "is_candidate_name", "header_fits", "held_open"]
+
+log = logging.getLogger("qcd.intake")
+
+# Names acquisition programs, editors and copiers use for files still being written.
+_TEMP_SUFFIXES = (".tmp", ".part", ".crdownload", ".partial", ".swp")
+
+Stat = Callable[[str], os.stat_result]
+HeaderCheck = Callable[[Path, int], "str | None"]
+
+
+def is_candidate_name(path: Path, patterns: Iterable[str], root: Path | None = None) -> bool:
+    """False for hidden and temporary files, files in hidden folders, and names no pattern matches."""
+    name = path.name
+    low = name.lower()
+    if not name or name.startswith((".", "~$", "~")) or low.endswith(_TEMP_SUFFIXES):
+        return False
+    if root is not None:
+        try:
+            parts = path.relative_to(root).parts[:-1]
+        except ValueError:
+            parts = ()
+        if any(p.startswith(".") for p in parts):
+            return False
+    return any(fnmatch.fnmatch(low, pat.lower()) for pat in patterns)
+
+
+def header_fits(path: Path, size: int) -> str | None:
+    """None when the header parses and its data fits ``size``; else why the file is not ready.
+
+    Only 'truncated' (and an empty file) mean "still being written"; any other bad header is
+    the pipeline's business (it stores the error), so the file counts as ready.
+    """
+    if size == 0:
+        return "empty so far"
+    try:
+        from qcd.recording import open_recording
+    except ImportError:                       # reader not installed: size/mtime only
+        return None
+    try:
+        with open_recording(path):
+            return None
+    except RecordingError as e:
+        if e.kind == "truncated":
+            return e.detail
+        if e.kind == "empty":
+            return "empty so far"
+        return None
+    except NotImplementedError:
+        return None
+    except Exception:                         # the pipeline will record what is wrong
+        return None
+
+
+def held_open(path: Path) -> bool:
+    """True when another program holds the file open for writing (Windows only).
+
+    Windows: CreateFileW with share mode 0 fails with ERROR_SHARING_VIOLATION (32) while the
+    acquisition program still has the file open. POSIX has no mandatory locks, so there this
+    is always False and intake relies on size/mtime and the header fitting the size.
+    """
+    if sys.platform != "win32":
+        return False
+    import ctypes
+    from ctypes import wintypes
+    kernel32 = ctypes.WinDLL("kernel32", use_last_error=True)
+    create = kernel32.CreateFileW
+    create.argtypes = [wintypes.LPCWSTR, wintypes.DWORD, wintypes.DWORD, wintypes.LPVOID,
+                       wintypes.DWORD, wintypes.DWORD, wintypes.HANDLE]
+    create.restype = wintypes.HANDLE
+    generic_read, open_existing, normal = 0x80000000, 3, 0x80
+    handle = create(str(path), generic_read, 0, None, open_existing, normal, None)
+    if handle == wintypes.HANDLE(-1).value:
+        return ctypes.get_last_error() == 32   # ERROR_SHARING_VIOLATION
+    kernel32.CloseHandle(handle)              # keep our handle short: it blocks renames
+    return False
+
+
+@dataclass(frozen=True)
+class Ready:
+    rig: str
+    path: Path
+    size: int
+    mtime: float
+    live: bool
+
+
+@dataclass(frozen=True)
+class GaveUp:
+    """``reason`` empty: settled but never fit its header; measure it so the real error is stored."""
+    rig: str
+    path: Path
+    reason: str
+    size: int = -1
+    mtime: float = -1.0
+
+
+@dataclass
+class _Item:
+    rig: str
+    path: Path
+    live: bool
+    first_seen: float
+    size: int = -1
+    mtime: float = -1.0
+    stable_since: float = 0.0
+    due: float = 0.0
+    gen: int = 0                              # heap entries of older generations are stale
+    why: str = ""
+
+
+class Intake:
+    """Files waiting to settle, in two lanes: live (events) before backlog (catch-up, oldest first).
+
+    ``offer()`` is called for every hint (event, scan); ``check(now)`` stats due files and
+    returns those ready and those given up on. Ready backlog files are released only while
+    fewer than ``backlog_window`` are out, so a new file never waits behind the whole backlog.
+    """
+
+    def __init__(self, *, settle_s: float, give_up_s: float, stat: Stat = os.stat,
+                 header_check: HeaderCheck = header_fits,
+                 probe: Callable[[Path], bool] = held_open) -> None:
+        self.settle_s = float(settle_s)
+        self.give_up_s = float(give_up_s)
+        self._stat, self._header, self._probe = stat, header_check, probe
+        self._items: dict[tuple[str, Path], _Item] = {}
+        self._live: list = []                 # heap of (due, seq, gen, key)
+        self._backlog: list = []              # heap of (mtime, seq, gen, key): oldest first
+        self._seq = itertools.count()
+
+    def __len__(self) -> int:
+        return len(self._items)
+
+    def counts(self) -> dict[str, int]:
+        live = sum(1 for it in self._items.values() if it.live)
+        return {"live": live, "backlog": len(self._items) - live}
+
+    def offer(self, rig: str, path: Path, now: float, *, live: bool = True,
+              closed: bool = False, mtime: float | None = None) -> None:
+        """A hint that ``path`` may be new or changed. Duplicates collapse into one item."""
+        key = (rig, Path(path))
+        it = self._items.get(key)
+        if it is None:
+            it = _Item(rig, key[1], live, now, due=now)
+            if not live and mtime is not None:
+                it.mtime = -1.0
+                it.stable_since = min(now, mtime)     # orders the backlog, oldest first
+            self._items[key] = it
+            self._push(it, now)
+            return
+        if live and not it.live:              # an event for a backlog file: move it up
+            it.live = True
+            self._push(it, now)
+        elif closed and it.live:              # Linux close-after-write: re-check soon
+            self._push(it, min(it.due, max(now, it.stable_since + self.settle_s)))
+
+    def discard(self, rig: str, path: Path) -> None:
+        """Forget a file (deleted, or moved away)."""
+        self._items.pop((rig, Path(path)), None)
+
+    def _push(self, it: _Item, due: float) -> None:
+        it.gen += 1
+        it.due = due
+        key = (it.rig, it.path)
+        if it.live:
+            heapq.heappush(self._live, (due, next(self._seq), it.gen, key))
+        else:
+            order = it.mtime if it.mtime >= 0 else it.stable_since
+            heapq.heappush(self._backlog, (order, due, next(self._seq), it.gen, key))
+
+    def check(self, now: float, *, backlog_window: int = 8, max_checks: int = 200
+              ) -> tuple[list[Ready], list[GaveUp]]:
+        """Stat the due files; return (ready, given_up). Live ready files come first."""
+        ready: list[Ready] = []
+        gave_up: list[GaveUp] = []
+        checks = 0
+        while self._live and self._live[0][0] <= now and checks < max_checks:
+            _, _, gen, key = heapq.heappop(self._live)
+            it = self._items.get(key)
+            if it is None or it.gen != gen or not it.live:
+                continue
+            checks += 1
+            self._examine(it, now, ready, gave_up)
+        deferred = []
+        n_backlog = 0
+        pops = 0
+        while (self._backlog and n_backlog < backlog_window and checks < max_checks
+               and pops < 4 * max_checks):
+            pops += 1
+            entry = heapq.heappop(self._backlog)
+            _, due, _, gen, key = entry
+            it = self._items.get(key)
+            if it is None or it.gen != gen or it.live:
+                continue
+            if due > now:
+                deferred.append(entry)
+                continue
+            checks += 1
+            before = len(ready)
+            self._examine(it, now, ready, gave_up)
+            n_backlog += len(ready) - before
+        for entry in deferred:
+            heapq.heappush(self._backlog, entry)
+        return ready, gave_up
+
+    def _examine(self, it: _Item, now: float, ready: list[Ready], gave_up: list[GaveUp]) -> None:
+        key = (it.rig, it.path)
+        try:
+            st = self._stat(os.fspath(it.path))
+        except FileNotFoundError:
+            self._items.pop(key, None)        # deleted or renamed away: a moved event follows
+            return
+        except OSError as e:                  # a share gone offline: keep trying until give-up
+            it.why = f"cannot stat: {e.strerror or e}"
+            self._retry_or_give_up(it, now, gave_up, stable=False)
+            return
+        size, mtime = st.st_size, st.st_mtime
+        if (size, mtime) != (it.size, it.mtime):
+            first = it.size < 0
+            it.size, it.mtime = size, mtime
+            # a backlog file has not changed since its mtime (clamped: clocks may differ);
+            # a live one must be seen unchanged for settle_s by us
+            it.stable_since = min(now, mtime) if first and not it.live else now
+        if now - it.stable_since < self.settle_s:
+            it.why = "still changing"
+            self._retry_or_give_up(it, now, gave_up, stable=False,
+                                   due=it.stable_since + self.settle_s)
+            return
+        why = self._header(it.path, size)
+        if why is None and self._probe(it.path):
+            why = "held open by another program"
+        if why is not None:
+            it.why = why
+            self._retry_or_give_up(it, now, gave_up, stable=True)
+            return
+        self._items.pop(key, None)
+        ready.append(Ready(it.rig, it.path, size, mtime, it.live))
+
+    def _retry_or_give_up(self, it: _Item, now: float, gave_up: list[GaveUp], *, stable: bool,
+                          due: float | None = None) -> None:
+        waited = now - it.first_seen
+        if waited >= self.give_up_s:
+            self._items.pop((it.rig, it.path), None)
+            if stable:
+                # settled but the header still disagrees: the pipeline stores the real error
+                # (truncated, empty) rather than a vague never_settled
+                gave_up.append(GaveUp(it.rig, it.path, "", it.size, it.mtime))
+            else:
+                gave_up.append(GaveUp(it.rig, it.path,
+                                      f"{it.path}: {it.why} for {waited / 3600:.2f} h (give_up_hours "
+                                      f"{self.give_up_s / 3600:g}); the file kept changing or "
+                                      f"could not be read, so it was never measured"))
+            return
+        if due is None:
+            due = now + max(self.settle_s, 0.2)
+        self._push(it, max(due, now + 0.05))
