@@ -1,0 +1,395 @@
+"""FileMeasures + the rig's history + Rules -> Findings, with noise-source hints (pure).
+
+Also the drift statistics on their own: ``robust_z``, ``ewma``, ``cusum``. Imports qcd.config
+(rule dataclasses), qcd.units and numpy; never reads TOML, never touches the store.
+"""
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from typing import Any, Callable, Iterable, Sequence
+
+import numpy as np
+
+from qcd.config import HistoryRule, LimitRule, Rules
+from qcd.units import DIMENSION, FACTORS
+
+__all__ = ["SAFETY_NOTE", "MAD_SCALE", "Finding", "Chart", "CusumChart", "judge", "robust_z",
+           "baseline", "ewma", "ewma_limits", "cusum", "noise_hints", "file_time"]
+
+log = logging.getLogger(__name__)
+
+SAFETY_NOTE = ("Safety: follow your institution's electrical-safety rules and local codes; never "
+               "open mains-powered equipment; leave building wiring and earth to a qualified, "
+               "licensed electrician.")
+
+# 1/Phi^-1(0.75): MAD -> SD for normal data (Rousseeuw & Croux 1993).
+MAD_SCALE = 1.482602218505602
+
+History = Callable[[str, int, str], Sequence[tuple[float, float]]]
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One evaluated (channel, measure, rule) of one file; ``bad`` False counts as a good file.
+
+    ``kind`` is 'limit' (fixed limit), 'drift' (against the rig's history) or 'rig' (rig-level:
+    intake errors, clipping, the learning note). ``clear`` says a good value lies beyond the
+    clear level (hysteresis). Lifecycle parameters travel with the finding.
+    """
+    rig: str
+    mode: str
+    channel: int
+    measure: str
+    rule: str
+    kind: str
+    bad: bool
+    severity: str
+    value: float | None
+    unit: str
+    limit_text: str
+    hint: str = ""
+    clear: bool = True
+    for_files: int = 2
+    clear_files: int = 3
+    repeat_h: float = 24.0
+    learning: bool = False
+    path: str = ""
+
+    @property
+    def key(self) -> str:
+        return f"{self.rig}|{self.mode}|{self.channel}|{self.measure}|{self.rule}"
+
+
+# --- statistics ----------------------------------------------------------------------------------
+
+def baseline(values: Iterable[float], *, min_spread: float = 0.0) -> tuple[float, float]:
+    """(median, 1.4826 x MAD) of ``values``, the scale floored at ``min_spread`` (> 0 always)."""
+    x = np.asarray(list(values), dtype=float)
+    if x.size == 0:
+        raise ValueError("baseline of no values")
+    med = float(np.median(x))
+    scale = MAD_SCALE * float(np.median(np.abs(x - med)))
+    return med, max(scale, float(min_spread), 1e-300)
+
+
+def robust_z(x: float, values: Iterable[float], *, min_spread: float = 0.0) -> float:
+    """(x - median) / (1.4826 MAD) of ``values`` (Iglewicz & Hoaglin 1993)."""
+    med, scale = baseline(values, min_spread=min_spread)
+    return (float(x) - med) / scale
+
+
+@dataclass(frozen=True)
+class Chart:
+    """A control chart: the statistic per point, its limits and where it signals."""
+    statistic: tuple[float, ...]
+    upper: tuple[float, ...]
+    lower: tuple[float, ...]
+    signal: tuple[bool, ...]
+
+
+@dataclass(frozen=True)
+class CusumChart:
+    """Tabular CUSUM: S+ and S- per point and where each exceeds h."""
+    upper: tuple[float, ...]
+    lower: tuple[float, ...]
+    signal_up: tuple[bool, ...]
+    signal_down: tuple[bool, ...]
+
+
+def ewma_limits(target: float, sigma: float, lam: float, L: float = 3.0,
+                t: int | None = None) -> tuple[float, float]:
+    """EWMA control limits; exact at point ``t`` (1-based), asymptotic when ``t`` is None.
+
+    target +- L sigma sqrt(lam/(2-lam) (1-(1-lam)^(2t))) (NIST/SEMATECH e-Handbook 6.3.2.4).
+    """
+    w = lam / (2.0 - lam)
+    if t is not None:
+        w *= 1.0 - (1.0 - lam) ** (2 * t)
+    half = L * sigma * math.sqrt(w)
+    return target + half, target - half
+
+
+def ewma(x: Iterable[float], lam: float, *, target: float, sigma: float, L: float = 3.0,
+         start: float | None = None, exact: bool = True) -> Chart:
+    """z_t = lam x_t + (1-lam) z_(t-1), z_0 = ``start`` (default ``target``) (Roberts 1959)."""
+    z = target if start is None else float(start)
+    stat, up, lo, sig = [], [], [], []
+    for t, xi in enumerate(x, start=1):
+        z = lam * float(xi) + (1.0 - lam) * z
+        u, low = ewma_limits(target, sigma, lam, L, t if exact else None)
+        stat.append(z)
+        up.append(u)
+        lo.append(low)
+        sig.append(z > u or z < low)
+    return Chart(tuple(stat), tuple(up), tuple(lo), tuple(sig))
+
+
+def cusum(x: Iterable[float], target: float, k: float, h: float) -> CusumChart:
+    """Tabular CUSUM (Page 1954): S+ = max(0, S+ + x - target - k), S- = max(0, S- + target - k - x)."""
+    sp = sm = 0.0
+    up, lo, su, sd = [], [], [], []
+    for xi in x:
+        sp = max(0.0, sp + float(xi) - target - k)
+        sm = max(0.0, sm + target - k - float(xi))
+        up.append(sp)
+        lo.append(sm)
+        su.append(sp > h)
+        sd.append(sm > h)
+    return CusumChart(tuple(up), tuple(lo), tuple(su), tuple(sd))
+
+
+# --- noise-source hints -------------------------------------------------------------------------
+
+_MAINS = "mains"
+_HINTS = {
+    _MAINS: "mains hum and its harmonics grew: check the grounding (a single ground point, no "
+            "ground loops, a loose or corroded ground lead, the bath ground) and any mains-"
+            "powered device newly placed near the rig",
+    "high": "broadband high-frequency noise grew: check the headstage and its connector, the "
+            "pipette capacitance (glass, coating, fill) and the bath level",
+    "mid": "mid-band noise grew: check the headstage, the pipette holder and electronics "
+           "newly placed near the rig",
+    "mech": "noise at 10-70 Hz grew: check for vibration (air table, pumps, manipulators, "
+            "building work) and mechanical coupling to the rig",
+    "lines": "narrow spectral lines that are not mains harmonics appeared: check switching power "
+             "supplies, displays, LED drivers and chargers near the rig",
+    "low": "slow fluctuation and drift grew: check the perfusion (flow, bubbles, bath level), "
+           "the reference electrode and the temperature",
+}
+# measure -> hint group; the band names are the measures' (DESIGN.md band list)
+_HINT_MEASURES = {
+    "hum_rms": _MAINS, "hum_fundamental_rms": _MAINS, "hum_fraction": _MAINS,
+    "band_rms_1k_corner": "high", "band_rms_70_1k": "mid", "band_rms_10_70": "mech",
+    "spectral_lines": "lines", "band_rms_0.5_10": "low", "baseline_drift": "low",
+}
+_NOISE_MEASURES = {"noise_rms", "noise_rms_1k", "noise_pp", "pp_over_rms"} | set(_HINT_MEASURES)
+_GROWN_Z = 3.0          # a band "grew" at robust z > 3 on log values ...
+_GROWN_RATIO = 1.5      # ... and at least 1.5x its median (common practice, not a published rule)
+
+
+def _hint_text(groups: Sequence[str]) -> str:
+    if not groups:
+        return ""
+    text = "Possible source (a check to make, not a diagnosis): " + "; ".join(
+        _HINTS[g] for g in groups) + "."
+    if _MAINS in groups:
+        text += " " + SAFETY_NOTE
+    return text
+
+
+def noise_hints(ch: Any, mode: str, history: History, rules: Rules) -> list[str]:
+    """Hint groups of the bands that grew against the rig's history, biggest growth first."""
+    grown: dict[str, float] = {}
+    for name, group in _HINT_MEASURES.items():
+        m = ch.measures.get(name)
+        if m is None or isinstance(m.value, bool):
+            continue
+        value = float(m.value)
+        if name == "baseline_drift":
+            value = abs(value)
+        past = [abs(v) if name == "baseline_drift" else v for v in
+                _values(history(mode, ch.index, name), rules.settings.history_files)]
+        past = [v for v in past if v > 0]
+        if value <= 0 or len(past) < 3:
+            continue
+        med = float(np.median(past))
+        z = robust_z(math.log(value), [math.log(v) for v in past], min_spread=0.05)
+        if z > _GROWN_Z and value >= _GROWN_RATIO * med:
+            grown[group] = max(grown.get(group, 0.0), z)
+    return sorted(grown, key=lambda g: -grown[g])
+
+
+# --- the judge ---------------------------------------------------------------------------------
+
+def file_time(fm: Any, now: float) -> float:
+    """The file's recording time as Unix seconds (header time, else mtime, else ``now``)."""
+    rec = getattr(fm, "recorded_at", None)
+    if isinstance(rec, datetime):
+        if rec.tzinfo is None:
+            rec = rec.replace(tzinfo=timezone.utc)
+        return rec.timestamp()
+    if isinstance(rec, (int, float)):
+        return float(rec)
+    mtime = getattr(fm, "mtime", None)
+    return float(mtime) if mtime else float(now)
+
+
+def _values(rows: Iterable[Any], limit: int) -> list[float]:
+    """Finite values of history rows (newest first), at most ``limit``, returned oldest first."""
+    rows = sorted(rows, key=lambda r: -float(r[0]))[:limit]
+    out = []
+    for r in reversed(rows):
+        try:
+            v = float(r[1])
+        except (TypeError, ValueError):
+            continue
+        if math.isfinite(v):
+            out.append(v)
+    return out
+
+
+def _matches(modes: tuple[str, ...], mode: str) -> bool:
+    return "*" in modes or mode in modes
+
+
+def _fmt(value: float | None, unit: str) -> str:
+    if value is None:
+        return "-"
+    return f"{value:.4g} {unit}".strip()
+
+
+def _to_si(value: float, unit: str) -> tuple[float, str]:
+    canon = unit if unit in FACTORS else ""
+    return float(value) * FACTORS.get(canon, 1.0), DIMENSION.get(canon, "")
+
+
+def _limit(rule: LimitRule, m: Any) -> tuple[bool, bool] | None:
+    """(bad, clear) for one measure against a fixed limit; None when the rule cannot apply."""
+    if rule.equals is not None:
+        is_true = bool(m.value)
+        return is_true == rule.equals, is_true != rule.equals
+    if isinstance(m.value, bool):
+        v, dim = float(m.value), ""
+    elif rule.dimension:
+        v, dim = _to_si(m.value, m.unit)
+        if dim != rule.dimension:
+            log.warning("rule %s: %s is in %r, the limit in %r; rule skipped",
+                        rule.name, m.name, m.unit, rule.dimension)
+            return None
+    else:
+        v = float(m.value)
+    if not math.isfinite(v):
+        return None
+    if rule.absolute:
+        v = abs(v)
+    bad = (rule.above is not None and v > rule.above) or (rule.below is not None and v < rule.below)
+    clear_ok = not bad
+    if rule.above is not None:
+        clear_ok &= v <= rule.above - rule.clear_margin * abs(rule.above)
+    if rule.below is not None:
+        clear_ok &= v >= rule.below + rule.clear_margin * abs(rule.below)
+    return bad, clear_ok
+
+
+def _drift(rule: HistoryRule, value: float, past: list[float]) -> tuple[bool, bool, str] | None:
+    """(bad, clear, text) for one value against the history values (oldest first)."""
+    if rule.log:
+        if value <= 0:
+            return None
+        past = [math.log(v) for v in past if v > 0]
+        x = math.log(value)
+    else:
+        x = value
+    if len(past) < 3:
+        return None
+    med, scale = baseline(past)
+    floor = rule.min_spread if rule.log else rule.min_spread * abs(med)
+    scale = max(scale, floor, 1e-300)
+    up, down = rule.side in ("up", "both"), rule.side in ("down", "both")
+    if rule.test == "z":
+        z = (x - med) / scale
+        bad = (up and z > rule.z) or (down and z < -rule.z)
+        clear_ok = not bad and (not up or z < rule.clear_z) and (not down or z > -rule.clear_z)
+        return bad, clear_ok, f"robust z {z:+.1f} (flag beyond {rule.z:g})"
+    series = [(p - med) / scale for p in past] + [(x - med) / scale]
+    if rule.test == "ewma":
+        chart = ewma(series, rule.lam, target=0.0, sigma=1.0, L=rule.L)
+        s, u = chart.statistic[-1], chart.upper[-1]
+        bad = (up and s > u) or (down and s < -u)
+        clear_ok = not bad and (not up or s < 0.75 * u) and (not down or s > -0.75 * u)
+        return bad, clear_ok, f"EWMA {s:+.2f} sigma (limit {u:.2f})"
+    cs = cusum(series, 0.0, rule.k, rule.h)
+    sp, sm = cs.upper[-1], cs.lower[-1]
+    bad = (up and sp > rule.h) or (down and sm > rule.h)
+    clear_ok = not bad and (not up or sp < rule.h / 2) and (not down or sm < rule.h / 2)
+    stat = sp if rule.side == "up" else sm if rule.side == "down" else max(sp, sm)
+    return bad, clear_ok, f"CUSUM {stat:.2f} sigma (limit {rule.h:g})"
+
+
+def _normal_range(past: list[float], unit: str) -> str:
+    lo, hi = np.percentile(past, [10, 90])
+    return f"normal {lo:.3g}-{hi:.3g} {unit} (median {np.median(past):.3g}, {len(past)} files)"
+
+
+def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list[Finding]:
+    """Every evaluated (channel, measure, rule) of one file as a Finding, plus rig-level ones.
+
+    ``rig`` is a RigConfig (or its name); ``history(mode, channel, measure)`` gives the rig's
+    [(recorded_at, value)] of good, unflagged files before this one.
+    """
+    rig_name = rig if isinstance(rig, str) else rig.name
+    st = rules.settings
+    path = str(getattr(fm, "path", ""))
+    intake = dict(rig=rig_name, mode="*", channel=-1, measure="file", rule="intake_error",
+                  kind="rig", severity="warning", unit="", for_files=st.intake_for_files,
+                  clear_files=st.clear_files, repeat_h=st.repeat_h, path=path)
+    if fm.status != "ok":
+        return [Finding(bad=True, value=None, clear=False,
+                        limit_text=f"file not measured ({fm.error_kind or 'error'})",
+                        hint=fm.error or "", **intake)]
+    out = [Finding(bad=False, value=None, limit_text="file measured", **intake)]
+    mode = fm.mode
+    seen = 0
+    for ch in fm.channels:
+        groups = None
+        for m in ch.measures.values():
+            for rule in rules.limits:
+                if rule.measure != m.name or not _matches(rule.modes, mode):
+                    continue
+                res = _limit(rule, m)
+                if res is None:
+                    continue
+                bad, clear_ok = res
+                hint = ""
+                if bad and m.name in _NOISE_MEASURES:
+                    groups = noise_hints(ch, mode, history, rules) if groups is None else groups
+                    g = groups or ([_HINT_MEASURES[m.name]] if m.name in _HINT_MEASURES else [])
+                    hint = _hint_text(g)
+                out.append(Finding(
+                    rig=rig_name, mode=mode, channel=ch.index, measure=m.name, rule=rule.name,
+                    kind="rig" if rule.scope == "rig" else "limit", bad=bad,
+                    severity=rule.severity,
+                    value=float(m.value) if not isinstance(m.value, bool) else float(m.value),
+                    unit=m.unit, limit_text=rule.text, hint=hint, clear=clear_ok,
+                    for_files=rule.for_files, clear_files=rule.clear_files,
+                    repeat_h=rule.repeat_h, path=path))
+            hist_rules = [r for r in rules.history
+                          if r.measure == m.name and _matches(r.modes, mode)]
+            if not hist_rules or isinstance(m.value, bool):
+                continue
+            past = _values(history(mode, ch.index, m.name), st.history_files)
+            seen = max(seen, len(past))
+            learning = len(past) < st.learning_files
+            value = float(m.value)
+            if not math.isfinite(value):
+                continue
+            for rule in hist_rules:
+                res = _drift(rule, value, past)
+                if res is None:
+                    continue
+                bad, clear_ok, stat_text = res
+                hint = ""
+                if bad and m.name in _NOISE_MEASURES:
+                    groups = noise_hints(ch, mode, history, rules) if groups is None else groups
+                    g = groups or ([_HINT_MEASURES[m.name]] if m.name in _HINT_MEASURES else [])
+                    hint = _hint_text(g)
+                text = f"{_normal_range(past, m.unit)}; {stat_text}"
+                if learning:
+                    text += f"; learning ({len(past)} of {st.learning_files} files)"
+                out.append(Finding(
+                    rig=rig_name, mode=mode, channel=ch.index, measure=m.name, rule=rule.name,
+                    kind="drift", bad=bad, severity=rule.severity, value=value, unit=m.unit,
+                    limit_text=text, hint=hint, clear=clear_ok, for_files=rule.for_files,
+                    clear_files=rule.clear_files, repeat_h=rule.repeat_h, learning=learning,
+                    path=path))
+    if rules.history and seen < st.learning_files:
+        out.append(Finding(rig=rig_name, mode=mode, channel=-1, measure="files", rule="learning",
+                           kind="rig", bad=False, severity="info", value=float(seen), unit="",
+                           limit_text=f"learning: {seen} of {st.learning_files} files",
+                           hint=f"learning: {seen} of {st.learning_files} files; history "
+                                f"checks are provisional and send no messages yet",
+                           learning=True, path=path))
+    return out

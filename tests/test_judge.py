@@ -1,0 +1,242 @@
+"""judge: drift statistics against published worked examples, rules against fixed limits."""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.stats import median_abs_deviation
+
+from qcd.analyze import ChannelMeasures, FileMeasures, Measure
+from qcd.config import load_rules
+from qcd.errors import ConfigError
+from qcd.judge import SAFETY_NOTE, baseline, cusum, ewma, ewma_limits, judge, robust_z
+
+# --- NIST/SEMATECH e-Handbook 6.3.2.4 "EWMA Control Charts", worked example -------------------
+EWMA_X = [52.0, 47.0, 53.0, 49.3, 50.1, 47.0, 51.0, 50.1, 51.2, 50.5,
+          49.6, 47.6, 49.9, 51.3, 47.8, 51.2, 52.6, 52.4, 53.6, 52.1]
+EWMA_Z = [50.60, 49.52, 50.56, 50.18, 50.16, 49.21, 49.75, 49.85, 50.26, 50.33,
+          50.11, 49.36, 49.52, 50.05, 49.38, 49.92, 50.73, 51.23, 51.94, 51.99]
+
+# --- NIST/SEMATECH e-Handbook 6.3.2.3 "Cusum Control Charts", tabular example ----------------
+CUSUM_X = [324.925, 324.675, 324.725, 324.350, 325.350, 325.225, 324.125, 324.525, 325.225,
+           324.600, 324.625, 325.150, 328.325, 327.250, 327.825, 328.500, 326.675, 327.775,
+           326.875, 328.350]
+CUSUM_UP = [0.00, 0.00, 0.00, 0.00, 0.03, 0.00, 0.00, 0.00, 0.00, 0.00,
+            0.00, 0.00, 3.01, 4.94, 7.45, 10.63, 11.99, 14.44, 16.00, 19.04]
+CUSUM_DOWN = [0.00, 0.01, 0.00, 0.33, 0.00, 0.00, 0.56, 0.72, 0.17, 0.25,
+              0.31, 0.00, 0.00, 0.00, 0.00, 0.00, 0.00, 0.00, 0.00, 0.00]
+
+
+def test_ewma_reproduces_nist_worked_example():
+    # NIST 6.3.2.4: EWMA_0 = 50, lambda = 0.3, s = 2.0539; values printed to 2 dp
+    chart = ewma(EWMA_X, 0.3, target=50.0, sigma=2.0539, L=3.0)
+    assert [round(z, 2) for z in chart.statistic] == EWMA_Z
+
+
+def test_ewma_limits_match_nist_to_printed_precision():
+    # NIST 6.3.2.4: UCL 52.5884, LCL 47.4115 (two roundings mixed on the page: +-2e-4)
+    ucl, lcl = ewma_limits(50.0, 2.0539, 0.3, 3.0)
+    assert ucl == pytest.approx(52.5884, abs=2e-4)
+    assert lcl == pytest.approx(47.4115, abs=2e-4)
+
+
+def test_ewma_exact_time_varying_limits_first_points():
+    # exact limit multiplies by sqrt(1-(1-lambda)^(2t)); recomputed values 51.8485, 52.2564, 52.4314
+    chart = ewma(EWMA_X, 0.3, target=50.0, sigma=2.0539, L=3.0)
+    assert chart.upper[:3] == pytest.approx([51.8485, 52.2564, 52.4314], abs=1e-4)
+    assert chart.upper[13] == pytest.approx(52.5884, abs=2e-4)   # from t = 14 on
+
+
+def test_ewma_nist_example_never_signals():
+    # NIST 6.3.2.4: every EWMA lies within the limits, exact or asymptotic
+    assert not any(ewma(EWMA_X, 0.3, target=50.0, sigma=2.0539).signal)
+    assert not any(ewma(EWMA_X, 0.3, target=50.0, sigma=2.0539, exact=False).signal)
+
+
+def test_cusum_reproduces_nist_tabular_example():
+    # NIST 6.3.2.3: target 325, k = 0.3175, h = 4.1959; S values to abs 0.01 (page rounds halves)
+    chart = cusum(CUSUM_X, 325.0, 0.3175, 4.1959)
+    assert chart.upper == pytest.approx(CUSUM_UP, abs=0.01)
+    assert chart.lower == pytest.approx(CUSUM_DOWN, abs=0.01)
+
+
+def test_cusum_first_signal_is_group_14_and_lower_never_signals():
+    # NIST 6.3.2.3: groups 14-20 out of control, S- never signals
+    chart = cusum(CUSUM_X, 325.0, 0.3175, 4.1959)
+    assert [i + 1 for i, s in enumerate(chart.signal_up) if s] == list(range(14, 21))
+    assert not any(chart.signal_down)
+
+
+RA_HISTORY = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]
+
+
+def test_robust_z_matches_methods_check_values():
+    # METHODS 7 check: median 9.5, MAD 0.5 (scaled 0.7413), new 18 MOhm -> z = 11.47
+    med, scale = baseline(RA_HISTORY)
+    assert med == 9.5
+    assert scale == pytest.approx(0.7413, abs=1e-4)
+    assert robust_z(18.0, RA_HISTORY) == pytest.approx(11.47, abs=0.005)
+
+
+def test_robust_scale_equals_scipy_normal_mad():
+    # scipy.stats.median_abs_deviation(scale='normal') as the reference library
+    rng = np.random.default_rng(7)
+    for _ in range(20):
+        x = rng.lognormal(0.0, 0.5, size=int(rng.integers(5, 60)))
+        assert baseline(x)[1] == pytest.approx(median_abs_deviation(x, scale="normal"), rel=1e-12)
+
+
+def test_robust_z_scale_is_floored_when_values_tie():
+    # over half the values equal: MAD 0; the floor keeps z finite (drift reference: floor MAD)
+    assert math.isfinite(robust_z(2.0, [1.0] * 8 + [1.5], min_spread=0.1))
+    assert robust_z(2.0, [1.0] * 8 + [1.5], min_spread=0.1) == pytest.approx(10.0)
+
+
+# --- the judge on hand-built FileMeasures -------------------------------------------------------
+
+def _fm(measures: dict[str, tuple[float, str]], mode: str = "voltage_clamp",
+        path: str = "f.abf") -> FileMeasures:
+    ch = ChannelMeasures(index=0, name="IN 0", unit="pA", dimension="A",
+                         measures={k: Measure(k, v, u) for k, (v, u) in measures.items()})
+    return FileMeasures(path=path, status="ok", mode=mode, channels=(ch,))
+
+
+def _no_history(mode, channel, measure):
+    return []
+
+
+def _by_rule(findings):
+    return {f.rule: f for f in findings}
+
+
+@pytest.fixture(scope="module")
+def rules():
+    return load_rules()
+
+
+def test_seal_below_one_gigaohm_is_bad(rules):
+    # gigaseal >= 1 GOhm (Hamill et al. 1981); seal stored in GOhm
+    bad = _by_rule(judge(_fm({"seal_resistance": (0.6, "GOhm")}), "rig-a", _no_history, rules, 0))
+    good = _by_rule(judge(_fm({"seal_resistance": (3.0, "GOhm")}), "rig-a", _no_history, rules, 0))
+    assert bad["gigaseal"].bad and bad["gigaseal"].kind == "limit"
+    assert not good["gigaseal"].bad and good["gigaseal"].clear
+    assert bad["gigaseal"].for_files == 1 and "1 GOhm" in bad["gigaseal"].limit_text
+
+
+def test_limits_compare_across_units(rules):
+    # 25 MOhm limit against a value given in MOhm and in GOhm (units are converted, not assumed)
+    f1 = _by_rule(judge(_fm({"access_resistance": (30.0, "MOhm")}), "r", _no_history, rules, 0))
+    f2 = _by_rule(judge(_fm({"access_resistance": (0.02, "GOhm")}), "r", _no_history, rules, 0))
+    assert f1["access_high"].bad and not f2["access_high"].bad
+
+
+def test_limit_clear_level_lies_short_of_open_level(rules):
+    # just under 25 MOhm is good but not yet beyond the clear level (10 % margin: 22.5 MOhm)
+    f = _by_rule(judge(_fm({"access_resistance": (24.0, "MOhm")}), "r", _no_history, rules, 0))
+    assert not f["access_high"].bad and not f["access_high"].clear
+    f = _by_rule(judge(_fm({"access_resistance": (20.0, "MOhm")}), "r", _no_history, rules, 0))
+    assert f["access_high"].clear
+
+
+def test_access_change_and_holding_use_magnitude(rules):
+    # access change > 20 % and |I_hold| > 200 pA (common practice), either sign
+    f = _by_rule(judge(_fm({"access_change_pct": (-25.0, "%"), "holding": (-250.0, "pA")}),
+                       "r", _no_history, rules, 0))
+    assert f["access_change"].bad and f["holding_current"].bad
+
+
+def test_limits_apply_only_to_their_mode(rules):
+    f = _by_rule(judge(_fm({"seal_resistance": (0.2, "GOhm")}, mode="current_clamp"),
+                       "r", _no_history, rules, 0))
+    assert "gigaseal" not in f
+
+
+def test_error_file_gives_a_rig_level_intake_finding(rules):
+    fm = FileMeasures(path="x.abf", status="error", error="x.abf: truncated", error_kind="truncated")
+    (f,) = judge(fm, "rig-a", _no_history, rules, 0)
+    assert f.kind == "rig" and f.bad and f.rule == "intake_error" and f.for_files == 1
+    assert "truncated" in f.limit_text and f.hint == "x.abf: truncated"
+
+
+def _history_from(values, measure="hum_rms"):
+    def history(mode, channel, name):
+        if name != measure:
+            return []
+        return [(1000.0 - i, v) for i, v in enumerate(values)]      # newest first
+    return history
+
+
+def test_hum_jump_flags_against_rig_history_with_mains_hint_and_safety_note(rules):
+    rng = np.random.default_rng(1)
+    past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
+    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0))
+    assert f["hum_jump"].bad and f["hum_jump"].kind == "drift"
+    assert "normal" in f["hum_jump"].limit_text
+    assert "grounding" in f["hum_jump"].hint and SAFETY_NOTE in f["hum_jump"].hint
+    assert "not a diagnosis" in f["hum_jump"].hint
+    normal = _by_rule(judge(_fm({"hum_rms": (0.1, "pA")}), "r", _history_from(past), rules, 0))
+    assert not normal["hum_jump"].bad and normal["hum_jump"].hint == ""
+
+
+def test_hum_going_down_is_not_bad(rules):
+    past = [0.1, 0.11, 0.09, 0.1, 0.12, 0.1, 0.095, 0.105, 0.1, 0.1, 0.11]
+    f = _by_rule(judge(_fm({"hum_rms": (0.01, "pA")}), "r", _history_from(past), rules, 0))
+    assert not f["hum_jump"].bad
+
+
+def test_vibration_hint_names_the_grown_band(rules):
+    past = [1.0, 1.05, 0.95, 1.0, 1.02, 0.98, 1.01, 0.99, 1.03, 0.97, 1.0]
+    fm = _fm({"noise_rms": (3.0, "pA"), "band_rms_10_70": (3.0, "pA"),
+              "band_rms_1k_corner": (1.0, "pA")})
+
+    def history(mode, channel, name):
+        return [(1000.0 - i, v) for i, v in enumerate(past)]
+    f = _by_rule(judge(fm, "r", history, rules, 0))
+    assert f["noise_jump"].bad
+    assert "vibration" in f["noise_jump"].hint and "headstage" not in f["noise_jump"].hint
+    assert SAFETY_NOTE not in f["noise_jump"].hint
+
+
+def test_new_rig_learns_and_says_so(rules):
+    past = [0.1, 0.11, 0.09, 0.1]
+    fs = judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0)
+    note = _by_rule(fs)["learning"]
+    assert note.kind == "rig" and not note.bad and "learning: 4 of 10 files" in note.limit_text
+    assert _by_rule(fs)["hum_jump"].learning
+    fs = judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past * 3), rules, 0)
+    assert "learning" not in _by_rule(fs) and not _by_rule(fs)["hum_jump"].learning
+
+
+def test_cusum_rule_flags_a_sustained_small_shift(rules):
+    # a 1.5-sigma shift held over 8 files trips CUSUM k=0.5, h=5 while robust z (4) stays quiet
+    rng = np.random.default_rng(3)
+    base = list(np.exp(rng.normal(0.0, 0.05, 22)))
+    shifted = list(np.exp(rng.normal(0.0, 0.05, 8) + 0.075))     # +1.5 sigma in log units
+    past = list(reversed(base + shifted))              # newest first
+    f = _by_rule(judge(_fm({"hum_rms": (math.exp(0.11), "pA")}), "r", _history_from(past),
+                       rules, 0))
+    assert f["hum_drift"].bad and not f["hum_jump"].bad
+
+
+
+def test_rules_file_errors_name_file_and_key(tmp_path: Path):
+    p = tmp_path / "bad.toml"
+    p.write_text('[[limit]]\nname = "x"\nmeasure = "noise_rms"\nabove = "3 parsecs"\n')
+    with pytest.raises(ConfigError, match=r"bad.toml: limit\[x\]\.above"):
+        load_rules([p])
+    p.write_text('[[history]]\nname = "x"\nmeasure = "noise_rms"\ntset = "z"\n')
+    with pytest.raises(ConfigError, match=r"did you mean 'test'"):
+        load_rules([p])
+
+
+def test_later_rule_file_overrides_and_disables(tmp_path: Path):
+    p = tmp_path / "lab.toml"
+    p.write_text('[settings]\nlearning_files = 5\n'
+                 '[[limit]]\nname = "access_high"\nmeasure = "access_resistance"\nabove = "20 MOhm"\n'
+                 '[[limit]]\nname = "gigaseal"\nmeasure = "seal_resistance"\nbelow = "1 GOhm"\nenabled = false\n')
+    r = load_rules([Path(load_rules().sources[0]), p])
+    names = {x.name: x for x in r.limits}
+    assert "gigaseal" not in names and names["access_high"].above == pytest.approx(20e6)
+    assert r.settings.learning_files == 5 and r.settings.clear_files == 3
