@@ -328,3 +328,191 @@ def build_lab(folder: Path, plan: LabPlan,
         if progress:
             progress(n, len(plan.files))
     return out
+
+
+# ----------------------------------------------------------------------------- the run
+
+_SCHEMA = "qcdfile"
+_REGISTERED = False
+
+
+def _register_file_schema(echo: Callable[[str], None] | None) -> None:
+    """An apprise schema ``qcdfile:///abs/path/alerts.log``: appends each message to the file."""
+    global _REGISTERED, _ECHO
+    _ECHO = echo
+    if _REGISTERED:
+        return
+    from apprise.decorators import notify
+
+    @notify(on=_SCHEMA, name="qcd demo alert log")
+    def _append(body, title, notify_type, meta, *args, **kwargs):  # noqa: ANN001
+        host = meta.get("host") or ""
+        path = Path(("/" + host if host else "") + (meta.get("fullpath") or ""))
+        stamp = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S")
+        with open(path, "a", encoding="utf-8") as f:
+            f.write(f"--- {stamp} UTC [{notify_type}] {title}\n{body}\n\n")
+        if _ECHO:
+            _ECHO(f"  message: {title}")
+        return True
+
+    _REGISTERED = True
+
+
+_ECHO: Callable[[str], None] | None = None
+
+
+def demo_config_text(lab: Path) -> str:
+    """The embedded demo config: four rigs, the packaged rules, delivery to alerts.log."""
+    lab = Path(lab).resolve()
+    log = (lab / "alerts.log").as_posix()
+    return f'''# qcd demo lab: {LAB_NAME} (invented; made by qcd demo)
+database = "qcd.sqlite"
+notify = ["{_SCHEMA}://{log}"]
+settle_seconds = 2
+give_up_hours = 6
+
+[[rig]]
+name = "patch-1"
+folders = ["patch-1"]
+test_pulse = "-5,{_STEP_START_S * 1e3:g},{_STEP_LEN_S * 1e3:g}"
+mains_hz = {MAINS_HZ:g}
+
+[[rig]]
+name = "patch-2"
+folders = ["patch-2"]
+test_pulse = "-5,{_STEP_START_S * 1e3:g},{_STEP_LEN_S * 1e3:g}"
+mains_hz = {MAINS_HZ:g}
+
+[[rig]]
+name = "patch-3"
+folders = ["patch-3"]
+test_pulse = "10,{_STEP_START_S * 1e3:g},{_STEP_LEN_S * 1e3:g}"
+mains_hz = {MAINS_HZ:g}
+
+[[rig]]
+name = "field-1"
+folders = ["field-1"]
+mains_hz = {MAINS_HZ:g}
+'''
+
+
+@dataclass(frozen=True)
+class DemoResult:
+    folder: Path
+    database: Path
+    html: Path | None
+    alerts_log: Path
+    n_files: int
+    seconds: float
+    report_text: str
+    plan: LabPlan
+
+
+def _printer(out) -> Callable[[str], None]:
+    def p(text: str) -> None:
+        print(text, file=out, flush=True)
+    return p
+
+
+def _make_sender(config):
+    from qcd import notify
+    for name in ("Sender", "AppriseSender"):
+        cls = getattr(notify, name, None)
+        if cls is not None:
+            try:
+                return cls.from_config(config) if hasattr(cls, "from_config") else cls(config)
+            except TypeError:
+                return cls(config.notify)
+    make = getattr(notify, "make_sender", None) or getattr(notify, "sender_from_config")
+    return make(config)
+
+
+def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int = 3,
+             now: float | None = None, out=None, write_html: bool = True,
+             workers: int | None = None) -> DemoResult:
+    """Build the lab in ``folder`` (a new temporary folder when None), run the watch service's
+    start-up catch-up over it with a simulated clock, deliver the alerts to alerts.log, and
+    write the morning report (text and HTML)."""
+    from qcd.config import load_config, load_rules
+    from qcd.report import build_report, render_html, render_text
+    from qcd.store import Store
+    from qcd.watch import Service
+    out = out or sys.stdout
+    say = _printer(out)
+    t_start = time.monotonic()
+    folder = Path(folder) if folder else Path(tempfile.mkdtemp(prefix="qcd-demo-"))
+    folder.mkdir(parents=True, exist_ok=True)
+    for stale in ("qcd.sqlite", "qcd.sqlite-wal", "qcd.sqlite-shm", "alerts.log",
+                  "report.html"):
+        (folder / stale).unlink(missing_ok=True)
+    for rig in ("patch-1", "patch-2", "patch-3", "field-1"):
+        shutil.rmtree(folder / rig, ignore_errors=True)
+    plan = plan_lab(days, files_per_day)
+    say(f"qcd demo: {LAB_NAME} (invented), 4 rigs, {days} days, {len(plan.files)} recordings")
+    for r in plan.rigs:
+        when = ("" if r.fault_day is None else
+                f" (from {_date(plan.day_start(r.fault_day))})")
+        say(f"  {r.name:8} {r.description}{when}")
+    say(f"writing the recordings to {folder} ...")
+    last = [0.0]
+
+    def progress(n: int, total: int) -> None:
+        if n == total or time.monotonic() - last[0] > 2.0:
+            last[0] = time.monotonic()
+            say(f"  {n}/{total} files written")
+    build_lab(folder, plan, progress)
+    (folder / "qcd.toml").write_text(demo_config_text(folder), encoding="utf-8")
+    (folder / "alerts.log").touch()
+    config = load_config(folder / "qcd.toml")
+    rules = load_rules(config.rules)
+    _register_file_schema(say)
+    sender = _make_sender(config)
+    clock = float(now if now is not None else max(time.time(), plan.files[-1].recorded_at + 600))
+    say("measuring, judging and alerting (the service's start-up catch-up) ...")
+    with Store(config.database) as store:
+        svc = Service(config, store, rules, sender=sender, workers=workers, catch_up=True,
+                      progress_tty=False, rescan_s=1e9, beat_s=1e9)
+        try:
+            svc.start(clock)
+            idle = 0
+            deadline = time.monotonic() + 600.0
+            while time.monotonic() < deadline:
+                clock += config.settle_seconds + 0.5
+                busy = svc.step(clock)
+                if svc.queue_len() == 0 and not busy:
+                    idle += 1
+                    if idle >= 3:
+                        break
+                else:
+                    idle = 0
+                    if not busy:
+                        time.sleep(0.005)   # workers are measuring: let them run
+        finally:
+            svc.close(clock)
+        from qcd import notify
+        for _ in range(3):                  # anything still due (retries come later in time)
+            clock += 60.0
+            notify.deliver_due(store, sender, clock)
+        since = plan.day_start(plan.days - 1)
+        report = build_report(store, clock, since)
+        text = render_text(report)
+        html_path = None
+        if write_html:
+            html_path = folder / "report.html"
+            html_path.write_text(render_html(report, store), encoding="utf-8")
+    seconds = time.monotonic() - t_start
+    say("")
+    say(text)
+    say("")
+    if html_path:
+        say(f"HTML report: {html_path}")
+    say(f"messages delivered to: {folder / 'alerts.log'}")
+    say(f"demo lab folder: {folder} (config {folder / 'qcd.toml'}); try "
+        f"qcd report --config {folder / 'qcd.toml'} --since {days}d")
+    say(f"done in {seconds:.1f} s")
+    return DemoResult(folder, config.database, html_path, folder / "alerts.log",
+                      len(plan.files), seconds, text, plan)
+
+
+def _date(t: float) -> str:
+    return datetime.fromtimestamp(t, tz=timezone.utc).strftime("%Y-%m-%d")
