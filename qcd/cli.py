@@ -183,16 +183,83 @@ def _cmd_status(args: argparse.Namespace) -> int:
     return _not_yet("status")
 
 
+def _report_store(args: argparse.Namespace, name: str):
+    """The configured database opened for reading, or None (message printed) when absent."""
+    from qcd.config import find_config, load_config
+    from qcd.store import Store
+    cfg = load_config(find_config(args.config))
+    if not cfg.database.exists():
+        print(f"qcd {name}: no database yet at {cfg.database} (start 'qcd watch' first)",
+              file=sys.stderr)
+        return None
+    return Store(cfg.database)
+
+
 def _cmd_report(args: argparse.Namespace) -> int:
-    return _not_yet("report")
+    import json
+    import time
+
+    from qcd.report import build_report, parse_since, render_html, render_text
+    now = time.time()
+    since = parse_since(args.since, now)
+    store = _report_store(args, "report")
+    if store is None:
+        return EXIT_FAILED
+    with store:
+        known = store.rigs()
+        for rig in args.rig or ():
+            if rig not in known:
+                raise ConfigError(None, "--rig", f"no files stored for rig {rig!r} "
+                                  f"(known: {', '.join(known) or 'none'})")
+        report = build_report(store, now, since, args.rig)
+        if args.html:
+            args.html.write_text(render_html(report, store), encoding="utf-8")
+    if args.json:
+        print(json.dumps(report.to_json(), indent=1, default=str))
+    else:
+        print(render_text(report))
+    if args.html:
+        print(f"HTML report written to {args.html}", file=sys.stderr if args.json else sys.stdout)
+    bad = any(r.open_alerts or r.n_error for r in report.rigs) or report.outbox.get("stuck")
+    return EXIT_FAILED if bad else EXIT_OK
 
 
 def _cmd_trend(args: argparse.Namespace) -> int:
-    return _not_yet("trend")
+    import time
+
+    from qcd.report import render_trend_csv, render_trend_text, trend_rows
+    store = _report_store(args, "trend")
+    if store is None:
+        return EXIT_FAILED
+    with store:
+        if args.rig not in store.rigs():
+            raise ConfigError(None, "RIG", f"no files stored for rig {args.rig!r} "
+                              f"(known: {', '.join(store.rigs()) or 'none'})")
+        rows = trend_rows(store, args.rig, args.measure, channel=args.channel, days=args.days,
+                          now=time.time())
+    if args.csv:
+        sys.stdout.write(render_trend_csv(rows))
+    else:
+        print(render_trend_text(args.rig, args.measure, rows))
+    return EXIT_OK if rows else EXIT_FAILED
 
 
 def _cmd_compare(args: argparse.Namespace) -> int:
-    return _not_yet("compare")
+    import json
+
+    from qcd.compare import compare_paths, render_compare_html, render_compare_text
+    for p in (args.before, args.after):
+        if not p.exists():
+            raise ConfigError(None, "", f"{p}: no such file or folder")
+    c = compare_paths(args.before, args.after, channel=args.channel, mains_hz=args.mains)
+    if args.json:
+        print(json.dumps(c.to_json(), indent=1))
+    else:
+        print(render_compare_text(c))
+    if args.html:
+        args.html.write_text(render_compare_html(c), encoding="utf-8")
+        print(f"HTML written to {args.html}", file=sys.stderr if args.json else sys.stdout)
+    return EXIT_OK
 
 
 def _cmd_alerts(args: argparse.Namespace) -> int:
@@ -297,7 +364,9 @@ def _cmd_notify_test(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
-    return _not_yet("demo")
+    from qcd.demo import run_demo
+    run_demo(args.keep, days=args.days)
+    return EXIT_OK
 
 
 _COMMANDS = {
