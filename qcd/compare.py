@@ -350,10 +350,12 @@ def render_compare_text(c: Comparison) -> str:
         lines.append(f"{ch.label[:28]:28} {_fmt(ch.before):>10} {_fmt(ch.after):>10} "
                      f"{_fmt(ch.change):>11} {ch.change_db:7.1f} {se}  "
                      f"{'yes' if ch.significant else 'no'}")
-    lines += ["", c.hint]
+    import textwrap
+    lines += [""] + textwrap.wrap(c.hint, 100)
     if c.safety_note:
-        lines.append(c.safety_note)
-    return "\n".join(lines)
+        lines += textwrap.wrap(c.safety_note, 100)
+    head = textwrap.wrap(lines[0], 100)
+    return "\n".join(head + lines[1:])
 
 
 def render_compare_html(c: Comparison) -> str:
