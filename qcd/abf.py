@@ -124,8 +124,8 @@ def check_file(path: Path) -> int:
         raise _err(path, "unreadable", f"the system refused to look at the file "
                    f"({e.strerror or e}); check permissions and links") from e
     if stat.S_ISDIR(st.st_mode):
-        raise _err(path, "not_a_file", "this is a folder, not a recording file; a folder "
-                   "name ending in the recording suffix")
+        raise _err(path, "not_a_file", "this is a folder, not a recording file; only its "
+                   "name ends like a recording's")
     if not stat.S_ISREG(st.st_mode):
         raise _err(path, "not_a_file", "this is a special file (pipe, device or socket), "
                    "not a regular recording file")
@@ -167,6 +167,11 @@ _ABF2_SECTIONS = {
     "tag": (252, _MAX_TAGS, 64),
     "synch": (316, MAX_SWEEPS, 8),
 }
+_PLAIN = {"protocol": "protocol section", "adc": "input-channel table",
+          "dac": "command-channel table", "epoch": "epoch table",
+          "epoch_per_dac": "per-command epoch table", "user_list": "user-list table",
+          "strings": "text section", "data": "data section", "tag": "tag list",
+          "synch": "sweep table"}
 
 
 def _precheck_abf2(path: Path, size: int, head: bytes) -> dict[str, tuple[int, int, int]]:
@@ -177,10 +182,10 @@ def _precheck_abf2(path: Path, size: int, head: bytes) -> dict[str, tuple[int, i
     for name, (off, cap, min_entry) in _ABF2_SECTIONS.items():
         block, entry, count = struct.unpack_from("<IIq", head, off)
         if count < 0 or count > cap:
-            raise _err(path, "bad_header", f"the header's {name} section claims {count} "
+            raise _err(path, "bad_header", f"the header's {_PLAIN[name]} claims {count} "
                        f"entries (expected 0..{cap}); the header is corrupt")
         if count and (entry < min_entry or entry > 65536):
-            raise _err(path, "bad_header", f"the header's {name} section has entries of "
+            raise _err(path, "bad_header", f"the header's {_PLAIN[name]} has entries of "
                        f"{entry} bytes (expected {min_entry}..65536); the header is corrupt")
         sections[name] = (block * 512, entry, count)
     if sections["protocol"][2] != 1 or sections["protocol"][0] < 512:
@@ -218,11 +223,9 @@ def _precheck_abf2(path: Path, size: int, head: bytes) -> dict[str, tuple[int, i
     for name, (start, entry, count) in sections.items():
         if name == "data":
             continue
-        need = entry if name == "protocol" else entry * count
-        if name == "protocol":
-            need = max(entry, 208)
+        need = max(entry, 208) if name == "protocol" else entry * count
         if count and start + need > size:
-            raise _err(path, "truncated", f"the header's {name} section ends at byte "
+            raise _err(path, "truncated", f"the header's {_PLAIN[name]} ends at byte "
                        f"{start + need} but the file has {size} bytes; it was cut short or "
                        f"is still being written")
     return sections
@@ -570,6 +573,9 @@ def _layout(path: Path, abf, head: bytes, size: int, notes: list[str]) -> Layout
     points = int(abf.dataPointCount)
     data_offset = int(abf.dataByteStart)
     itemsize = 4 if is_float else 2
+    if data_offset < 512:
+        raise _err(path, "bad_header", f"the samples would start at byte {data_offset}, inside "
+                   f"the header (expected 512 or later); the header is corrupt")
     if points <= 0:
         raise _err(path, "bad_header", "the header declares no samples; the acquisition was "
                    "aborted or the file was closed before any data were written")

@@ -203,11 +203,12 @@ class Recording:
         scale = not (gain == 1.0 and offset == 0.0)
         for view in self._raw_windows(channel, a, b, size):
             out = np.empty(view.shape[0], dtype=np.float64)
-            if scale:
-                np.multiply(view, gain, out=out)
-                out += offset
-            else:
-                out[:] = view
+            with np.errstate(all="ignore"):  # float samples may hold NaN/inf: passed through
+                if scale:
+                    np.multiply(view, gain, out=out)
+                    out += offset
+                else:
+                    out[:] = view
             yield out
 
     def sweep(self, channel: int, k: int) -> np.ndarray:

@@ -1,0 +1,179 @@
+"""Corrupt-file table built from real recordings: each case makes one bad file in a folder.
+
+``build(folder, abf2_source, abf1_source)`` returns ``[(name, path, expected_kind, what)]``.
+Header offsets follow the ABF2 section table (16-byte entries from byte 76: block, entry size,
+entry count) and the fixed ABF1 header layout (offsets as read by pyabf's header modules).
+Run as a script (``python badfiles.py FOLDER ABF2 ABF1``) it opens every case under a memory
+limit and prints one JSON line per case; test_recording.py does that in a subprocess.
+"""
+from __future__ import annotations
+
+import json
+import os
+import random
+import resource
+import struct
+import sys
+import time
+import tracemalloc
+from pathlib import Path
+
+# ABF2 section-table entries (byte offset of each 16-byte entry in the header)
+_ADC, _DATA, _STRINGS, _SYNCH, _TAG = 92, 236, 220, 316, 252
+
+
+def _patch(src: bytes, *edits: tuple[int, str, object]) -> bytes:
+    buf = bytearray(src)
+    for off, fmt, value in edits:
+        struct.pack_into(fmt, buf, off, value)
+    return bytes(buf)
+
+
+def _section(src: bytes, off: int) -> tuple[int, int, int]:
+    return struct.unpack_from("<IIq", src, off)
+
+
+def build(folder: Path, abf2_source: Path, abf1_source: Path) -> list[tuple[str, Path, str, str]]:
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    v2 = Path(abf2_source).read_bytes()
+    v1 = Path(abf1_source).read_bytes()
+    cases: list[tuple[str, Path, str, str]] = []
+
+    def put(name: str, data: bytes, kind: str, what: str) -> None:
+        p = folder / f"{name}.abf"
+        p.write_bytes(data)
+        cases.append((name, p, kind, what))
+
+    d_block, d_entry, d_count = _section(v2, _DATA)
+    data_end = d_block * 512 + d_entry * d_count
+    proto_block = _section(v2, 76)[0]
+    adc_block = _section(v2, _ADC)[0]
+
+    put("zero_length", b"", "empty", "0 bytes, as when a copy has just been created")
+    put("signature_only", v2[:4], "truncated", "just the 4-byte ABF2 signature")
+    put("cut_in_header", v2[:300], "truncated", "cut inside the 512-byte ABF2 header")
+    put("cut_after_header", v2[:600], "truncated", "cut before the protocol section ends")
+    put("cut_in_data", v2[:d_block * 512 + (data_end - d_block * 512) // 2], "truncated",
+        "cut half-way through the samples")
+    put("cut_one_sample_short", v2[:data_end - 2], "truncated", "one sample missing")
+    put("wrong_signature", b"XBF2" + v2[4:], "bad_signature", "first byte changed")
+    put("text_renamed", b"time,value\n0.0,1.5\n0.1,1.6\n" * 100, "bad_signature",
+        "a CSV text file renamed to .abf")
+    put("image_renamed", b"\x89PNG\r\n\x1a\n" + bytes(range(256)) * 8, "bad_signature",
+        "an image file renamed to .abf")
+    rng = random.Random(20240601)
+    put("garbage_after_abf2_signature", b"ABF2" + rng.randbytes(65536), "bad_header",
+        "ABF2 signature followed by random bytes")
+    put("garbage_after_abf1_signature", b"ABF " + rng.randbytes(65536), "bad_header",
+        "ABF1 signature followed by random bytes")
+    put("absurd_channel_count", _patch(v2, (_ADC + 8, "<q", 1_000_000)), "bad_header",
+        "the input-channel count patched to a million")
+    put("zero_channels", _patch(v2, (_ADC + 8, "<q", 0)), "bad_header",
+        "the input-channel count patched to 0")
+    put("absurd_sweep_count", _patch(v2, (12, "<I", 0xFFFFFFF0)), "bad_header",
+        "the sweep count patched to about 4 billion")
+    put("absurd_sweep_table", _patch(v2, (_SYNCH + 8, "<q", 2 ** 40)), "bad_header",
+        "the sweep table's entry count patched to 2**40")
+    put("zero_size_entries", _patch(v2, (_TAG, "<I", 1), (_TAG + 4, "<I", 0),
+                                    (_TAG + 8, "<q", 50_000)), "bad_header",
+        "50,000 tags of 0 bytes each (the header library would loop on one spot)")
+    put("huge_text_section", _patch(v2, (_STRINGS + 4, "<I", 60_000),
+                                    (_STRINGS + 8, "<q", 4000)), "bad_header",
+        "a 240 MB text section (read byte by byte by the header library)")
+    put("claims_double_data", _patch(v2, (_DATA + 8, "<q", d_count * 2)), "truncated",
+        "the data section's sample count doubled")
+    put("data_inside_header", _patch(v2, (_DATA, "<I", 0)), "bad_header",
+        "the data section pointed at byte 0")
+    put("bad_sample_format", _patch(v2, (30, "<H", 7)), "bad_header",
+        "sample format code 7")
+    put("zero_sample_interval", _patch(v2, (proto_block * 512 + 2, "<f", 0.0)), "bad_header",
+        "sample interval 0 (the header library divides by it)")
+    put("nan_sample_interval", _patch(v2, (proto_block * 512 + 2, "<f", float("nan"))),
+        "bad_header", "sample interval NaN")
+    put("zero_instrument_scale", _patch(v2, (adc_block * 512 + 40, "<f", 0.0)), "bad_header",
+        "channel 0's instrument scale factor 0 (the header library divides by it)")
+
+    # ABF1: fixed header offsets
+    put("abf1_cut_in_header", v1[:3000], "truncated", "ABF1 cut inside its 6 KB header")
+    a1_ptr = struct.unpack_from("<i", v1, 40)[0]
+    a1_len = struct.unpack_from("<i", v1, 10)[0]
+    put("abf1_cut_in_data", v1[:a1_ptr * 512 + a1_len], "truncated",
+        "ABF1 cut half-way through the samples")
+    put("abf1_absurd_channels", _patch(v1, (120, "<h", 99)), "bad_header",
+        "ABF1 channel count 99")
+    put("abf1_bad_sampling_sequence", _patch(v1, (410, "<h", -3)), "bad_header",
+        "ABF1 sampling sequence naming channel -3")
+    put("abf1_absurd_tags", _patch(v1, (48, "<i", 2 ** 31 - 1)), "bad_header",
+        "ABF1 tag count 2**31-1 (the header library preallocates a list that long)")
+    put("abf1_absurd_sweeps", _patch(v1, (16, "<i", -5)), "bad_header",
+        "ABF1 sweep count -5")
+    put("abf1_claims_more_data", _patch(v1, (10, "<i", a1_len * 4)), "truncated",
+        "ABF1 sample count four times too large")
+    put("abf1_float_samples", _patch(v1, (100, "<h", 1)), "unsupported",
+        "ABF1 with 32-bit float samples, which the header library cannot read")
+    put("abf1_bad_version", _patch(v1, (4, "<f", float("inf"))), "bad_header",
+        "ABF1 format version infinity")
+
+    # not regular files / not readable
+    d = folder / "folder.abf"
+    d.mkdir()
+    cases.append(("folder_named_abf", d, "not_a_file", "a folder named x.abf"))
+    fifo = folder / "pipe.abf"
+    os.mkfifo(fifo)
+    cases.append(("fifo_named_abf", fifo, "not_a_file",
+                  "a named pipe (opening it would block forever)"))
+    dangling = folder / "dangling.abf"
+    dangling.symlink_to(folder / "gone" / "missing.abf")
+    cases.append(("dangling_link", dangling, "unreadable", "a link to a file that is gone"))
+    loop = folder / "loop.abf"
+    loop.symlink_to(loop)
+    cases.append(("link_loop", loop, "unreadable", "a link that points at itself"))
+    cases.append(("missing", folder / "never_written.abf", "unreadable",
+                  "a path that does not exist"))
+    if os.geteuid() != 0:  # root reads any file whatever its mode: the links above stand in
+        locked = folder / "locked.abf"
+        locked.write_bytes(v2)
+        locked.chmod(0)
+        cases.append(("no_read_permission", locked, "unreadable", "mode 000"))
+    unknown = folder / "recording.dat"
+    unknown.write_bytes(v2)
+    cases.append(("unknown_suffix", unknown, "unsupported", "a valid ABF2 named .dat"))
+    return cases
+
+
+def _run(folder: Path, abf2: Path, abf1: Path, limit_mb: int) -> None:
+    """Open every case under an address-space limit; one JSON line per case."""
+    from qcd.recording import open_recording  # after the limit is set below
+
+    cases = build(folder, abf2, abf1)
+    for name, path, kind, _what in cases:
+        tracemalloc.start()
+        t0 = time.perf_counter()
+        res = {"name": name, "expected": kind}
+        try:
+            with open_recording(path) as rec:
+                for ch in range(len(rec.channels)):
+                    for _ in rec.chunks(ch):
+                        pass
+            res.update(type="none", kind=None, message="")
+        except BaseException as e:  # noqa: BLE001 - report every type, the test judges
+            res.update(type=type(e).__name__, kind=getattr(e, "kind", None), message=str(e))
+        res["seconds"] = time.perf_counter() - t0
+        res["peak_bytes"] = tracemalloc.get_traced_memory()[1]
+        tracemalloc.stop()
+        res["path"] = str(path)
+        print(json.dumps(res), flush=True)
+    print(json.dumps({"done": True, "limit_mb": limit_mb}), flush=True)
+
+
+if __name__ == "__main__":
+    _folder, _abf2, _abf1, _limit = sys.argv[1:5]
+    import numpy  # noqa: F401 - imported before the limit so its arenas are counted in the base
+    import pyabf  # noqa: F401
+
+    with open("/proc/self/statm") as fh:
+        base = int(fh.read().split()[0]) * os.sysconf("SC_PAGE_SIZE")
+    cap = base + int(_limit) * (1 << 20)
+    resource.setrlimit(resource.RLIMIT_AS, (cap, cap))
+    _run(Path(_folder), Path(_abf2), Path(_abf1), int(_limit))
