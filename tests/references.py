@@ -1,0 +1,164 @@
+"""Analytic reference signals and circuits for the tests, each with its source.
+
+Test-pulse references (METHODS.md §1): the exact step response of Ra in series with Rm ∥ Cm
+(closed form, METHODS §1.1 [D]; time-domain method of Lindau & Neher 1988), a seal or open
+pipette (a pure resistor), and a current-clamp RC cell with an unbalanced bridge (Rall 1969
+single compartment). Each can be passed through an analog Bessel low-pass (scipy.signal.bessel,
+norm='mag', so ``filter_hz`` is the -3 dB point), simulated on a fine time grid with
+scipy.signal.lsim and then sampled by picking grid points at an arbitrary sampling phase.
+Imports numpy and scipy only (never qcd), so the references stay independent of the code under test.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import signal
+
+# ---------------------------------------------------------------------------------------------
+# Test-pulse references (METHODS.md §1)
+# ---------------------------------------------------------------------------------------------
+
+
+def cell_step_current(t: np.ndarray, dv: float, ra: float, rm: float, cm: float) -> np.ndarray:
+    """Exact current (A) after a voltage step dv (V) at t = 0 into Ra + (Rm ∥ Cm), ideal clamp.
+
+    I(t) = dV/Rt + (dV/Ra - dV/Rt)·exp(-t/τ), τ = Cm·Ra·Rm/Rt, zero for t < 0
+    (METHODS §1.1 closed form [D]).
+    """
+    t = np.asarray(t, dtype=float)
+    rt = ra + rm
+    tau = cm * ra * rm / rt
+    out = dv / rt + (dv / ra - dv / rt) * np.exp(-np.clip(t, 0.0, None) / tau)
+    return np.where(t > 0.0, out, 0.0)
+
+
+def cell_constants(dv: float, ra: float, rm: float, cm: float) -> dict[str, float]:
+    """METHODS §1.1 closed forms: I0, I_ss, A, tau, Q (SI) for a step dv into Ra + (Rm ∥ Cm)."""
+    rt = ra + rm
+    tau = cm * ra * rm / rt
+    i0, iss = dv / ra, dv / rt
+    return {"i0": i0, "i_ss": iss, "a": i0 - iss, "tau": tau, "q": (i0 - iss) * tau,
+            "q_closed": dv * cm * (rm / rt) ** 2, "dvm_inf": dv * rm / rt}
+
+
+def bessel_filter_ss(filter_hz: float, poles: int = 4):
+    """Analog Bessel low-pass, -3 dB at filter_hz (scipy.signal.bessel, norm='mag'), as state space."""
+    b, a = signal.bessel(poles, 2 * np.pi * filter_hz, btype="low", analog=True, norm="mag")
+    return signal.StateSpace(*signal.tf2ss(b, a))
+
+
+def _sample(fine_t: np.ndarray, fine_y: np.ndarray, fs: float, oversample: int, n_pre: int,
+            n_total: int, phase: float, filter_hz: float | None, poles: int) -> np.ndarray:
+    """Filter a fine-grid signal (onset at fine_t == 0) and pick one grid point per sample.
+
+    The sample with index n_pre (the first sample at the new level) lands phase/fs after the
+    onset, phase in (0, 1], rounded to the fine grid.
+    """
+    if filter_hz is not None:
+        _, fine_y, _ = signal.lsim(bessel_filter_ss(filter_hz, poles), fine_y, fine_t - fine_t[0])
+    j = int(round(phase * oversample))
+    j = min(max(j, 1), oversample)
+    onset = int(np.argmin(np.abs(fine_t)))
+    idx = onset + j + (np.arange(n_total) - n_pre) * oversample
+    if idx[0] < 0 or idx[-1] >= len(fine_t):
+        raise ValueError("fine grid too short for the requested samples")
+    return fine_y[idx]
+
+
+def _fine_grid(fs: float, oversample: int, n_pre: int, n_total: int,
+               n_step: int) -> tuple[np.ndarray, np.ndarray]:
+    """Fine time grid (onset at exactly 0) and the time since the step's end, both exact
+    multiples of the grid step, so a sample on a boundary sees the old level."""
+    dt = 1.0 / (fs * oversample)
+    k0 = (n_pre + 2) * oversample
+    k1 = (n_total - n_pre + 2) * oversample
+    k = np.arange(-k0, k1)
+    return k * dt, (k - n_step * oversample) * dt
+
+
+def sampled_cell(dv: float, ra: float, rm: float, cm: float, fs: float, *, n_pre: int,
+                 n_step: int, n_post: int = 0, filter_hz: float | None = None, poles: int = 4,
+                 phase: float = 0.5, holding: float = 0.0, noise_sd: float = 0.0,
+                 cp: float = 0.0, tau_cp: float = 20e-6, oversample: int = 40,
+                 rng: np.random.Generator | None = None) -> np.ndarray:
+    """A sampled voltage-clamp sweep (A) of Ra + (Rm ∥ Cm) for a rectangular step of n_step samples.
+
+    On and off transients by superposition of the METHODS §1.1 closed form; ``cp`` adds an
+    uncompensated pipette capacitance charged with time constant ``tau_cp`` (charge cp·dV,
+    METHODS §1.2 caution); ``holding`` is the DC holding current; white Gaussian noise of SD
+    ``noise_sd`` is added after filtering and sampling.
+    """
+    n_total = n_pre + n_step + n_post
+    t, t_off = _fine_grid(fs, oversample, n_pre, n_total, n_step)
+    y = cell_step_current(t, dv, ra, rm, cm) - cell_step_current(t_off, dv, ra, rm, cm)
+    if cp:
+        def _cp(tt):
+            return np.where(tt > 0, cp * dv / tau_cp * np.exp(-np.clip(tt, 0, None) / tau_cp), 0.0)
+        y = y + _cp(t) - _cp(t_off)
+    out = _sample(t, y, fs, oversample, n_pre, n_total, phase, filter_hz, poles) + holding
+    if noise_sd:
+        out = out + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, n_total)
+    return out
+
+
+def sampled_resistor(dv: float, r: float, fs: float, *, n_pre: int, n_step: int,
+                     n_post: int = 0, filter_hz: float | None = None, poles: int = 4,
+                     phase: float = 0.5, holding: float = 0.0, noise_sd: float = 0.0,
+                     cp: float = 0.0, tau_cp: float = 20e-6, oversample: int = 40,
+                     rng: np.random.Generator | None = None) -> np.ndarray:
+    """A sampled voltage-clamp sweep (A) of a pure resistor r (seal or open pipette), I = dV/R.
+
+    Ohm's law; METHODS §1.3 checks (1 GΩ at +10 mV gives 10.0 pA; 5 MΩ at 5 mV gives 1000 pA).
+    """
+    n_total = n_pre + n_step + n_post
+    t, t_off = _fine_grid(fs, oversample, n_pre, n_total, n_step)
+    y = np.where((t > 0) & (t_off <= 0), dv / r, 0.0)
+    if cp:
+        def _cp(tt):
+            return np.where(tt > 0, cp * dv / tau_cp * np.exp(-np.clip(tt, 0, None) / tau_cp), 0.0)
+        y = y + _cp(t) - _cp(t_off)
+    out = _sample(t, y, fs, oversample, n_pre, n_total, phase, filter_hz, poles) + holding
+    if noise_sd:
+        out = out + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, n_total)
+    return out
+
+
+def sampled_current_clamp(di: float, rin: float, tau_m: float, fs: float, *, n_pre: int,
+                          n_step: int, n_post: int = 0, r_bridge: float = 0.0,
+                          filter_hz: float | None = None, poles: int = 4, phase: float = 0.5,
+                          v_rest: float = -0.065, noise_sd: float = 0.0, oversample: int = 20,
+                          rng: np.random.Generator | None = None) -> np.ndarray:
+    """A sampled current-clamp sweep (V): single-compartment RC cell, current step di (A).
+
+    V = V_rest + di·R_bridge (instantaneous, unbalanced bridge) + di·Rin·(1 - exp(-t/τm))
+    [Rall 1969 single compartment; METHODS §1.4: -50 pA into 200 MΩ gives -10 mV, a 20 MΩ
+    unbalanced bridge a -1.0 mV jump, τm 20 ms with Rin 200 MΩ means Cm 100 pF].
+    """
+    n_total = n_pre + n_step + n_post
+    t, t_off = _fine_grid(fs, oversample, n_pre, n_total, n_step)
+
+    def _r(tt):
+        tc = np.clip(tt, 0, None)
+        return np.where(tt > 0, di * r_bridge + di * rin * (1 - np.exp(-tc / tau_m)), 0.0)
+
+    y = _r(t) - _r(t_off)
+    out = _sample(t, y, fs, oversample, n_pre, n_total, phase, filter_hz, poles) + v_rest
+    if noise_sd:
+        out = out + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, n_total)
+    return out
+
+
+def command_trace(level: float, holding: float, fs: float, *, n_pre: int, n_step: int,
+                  n_post: int, noise_sd: float = 0.0, filter_hz: float | None = None,
+                  rng: np.random.Generator | None = None) -> np.ndarray:
+    """A recorded command channel (V or A): holding, a rectangular step to ``level``, holding.
+
+    Optionally behind a 4-pole Bessel low-pass and with white noise (a recorded, not ideal, command).
+    """
+    y = np.full(n_pre + n_step + n_post, holding, dtype=float)
+    y[n_pre:n_pre + n_step] = level
+    if filter_hz is not None:
+        b, a = signal.bessel(4, filter_hz / (fs / 2), norm="mag")
+        y = signal.lfilter(b, a, y - holding, zi=None) + holding
+    if noise_sd:
+        y = y + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, len(y))
+    return y
