@@ -1,0 +1,516 @@
+"""The watch service: intake settle rules, real watchdog observers on real folders, catch-up,
+a real SQLite store, and the `qcd watch` / `qcd status` commands in subprocesses.
+
+Waits are bounded (wait-until-condition with a timeout); network only on 127.0.0.1.
+"""
+from __future__ import annotations
+
+import hashlib
+import os
+import shutil
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from conftest import abf
+from qcd.config import Config, RigConfig
+from qcd.intake import GaveUp, Intake, Ready, header_fits, is_candidate_name
+from qcd.store import Store
+from qcd.watch import Service, is_network_path, scan_folder, status
+
+RIG = "rig-a"
+
+
+# ---------------------------------------------------------------- helpers
+
+class _St:
+    """A stat result for the intake tests (stat is passed in, never patched)."""
+
+    def __init__(self, size: int, mtime: float) -> None:
+        self.st_size, self.st_mtime = size, mtime
+
+
+def _fake_stat(table: dict):
+    def stat(path: str):
+        if path not in table:
+            raise FileNotFoundError(path)
+        return _St(*table[path])
+    return stat
+
+
+def _fits(path, size):
+    return None
+
+
+def wait_until(cond, timeout: float, step=None, interval: float = 0.02):
+    """Call step() (the service loop body) until cond() is true; fail after timeout seconds."""
+    deadline = time.monotonic() + timeout
+    while True:
+        if step is not None:
+            step()
+        if cond():
+            return
+        if time.monotonic() > deadline:
+            raise AssertionError(f"condition not met within {timeout} s")
+        time.sleep(interval)
+
+
+def _config(tmp_path: Path, folders, *, settle_s=0.5, give_up_h=1.0, polling=False,
+            patterns=("*.abf",)) -> Config:
+    return Config(path=None, database=tmp_path / "qcd.sqlite", rules=(), settle_seconds=settle_s,
+                  give_up_hours=give_up_h,
+                  rigs=(RigConfig(RIG, tuple(folders), patterns=patterns, polling=polling),))
+
+
+def _analyze_ready() -> bool:
+    """True once the measures stage and pipeline.commit exist (then the tests use them)."""
+    try:
+        from qcd import pipeline
+        from qcd.analyze import analyze_path
+        if not hasattr(pipeline, "commit"):
+            return False
+        analyze_path(abf("variable_sweep_length.abf"))
+        return True
+    except (ImportError, NotImplementedError):
+        return False
+
+
+class Recorder:
+    """Counts what the service commits; commits through the real pipeline when it exists."""
+
+    def __init__(self, store: Store) -> None:
+        self.store = store
+        self.committed: list = []
+        self.real = _analyze_ready()
+        if self.real:
+            from qcd.config import load_rules
+            self.rules = load_rules()
+
+    def measure(self, path: str, rig):
+        if self.real:
+            from qcd.analyze import analyze_path
+            return analyze_path(path, pulse=rig.test_pulse, mains_hz=rig.mains_hz)
+        return reader_measures(path)
+
+    def commit(self, fm, rig, now):
+        self.committed.append(fm)
+        if self.real:
+            from qcd import pipeline
+            return pipeline.commit(fm, rig, self.store, self.rules, now)
+        self.store.commit_file(rig.name, fm, analysed_at=now)
+
+    def paths(self):
+        return [Path(fm.path).name for fm in self.committed]
+
+
+def reader_measures(path: str):
+    """FileMeasures from the reader alone (header facts and content hash)."""
+    from qcd.analyze import FileMeasures
+    from qcd.errors import RecordingError
+    from qcd.recording import open_recording
+    st = os.stat(path)
+    sha = hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    try:
+        with open_recording(path) as rec:
+            return FileMeasures(path=path, status="ok", format=rec.format, fs_hz=rec.fs,
+                                n_sweeps=rec.n_sweeps, size=st.st_size, mtime=st.st_mtime,
+                                sha256=sha)
+    except RecordingError as e:
+        return FileMeasures(path=path, status="error", error=str(e), error_kind=e.kind,
+                            size=st.st_size, mtime=st.st_mtime, sha256=sha)
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = Store(tmp_path / "qcd.sqlite")
+    yield s
+    s.close()
+
+
+def _service(cfg, store, rec: Recorder, **kw) -> Service:
+    kw.setdefault("workers", 0)
+    kw.setdefault("poll_s", 0.02)
+    kw.setdefault("folder_check_s", 0.2)
+    kw.setdefault("progress_tty", False)
+    return Service(cfg, store, measure=rec.measure, commit=rec.commit, **kw)
+
+
+def _write_slowly(path: Path, data: bytes, pieces: int, gap_s: float, step) -> None:
+    """Write data in pieces gap_s apart, running the service loop meanwhile."""
+    with open(path, "wb") as f:
+        for i in range(pieces):
+            f.write(data[i * len(data) // pieces:(i + 1) * len(data) // pieces])
+            f.flush()
+            end = time.monotonic() + gap_s
+            while time.monotonic() < end:
+                step()
+                time.sleep(0.02)
+
+
+def _tiny_abf(path: Path, seed: int) -> None:
+    """A small, distinct ABF1 file written with pyabf's own writer."""
+    import pyabf.abfWriter
+    rng = np.random.default_rng(seed)
+    sweeps = rng.normal(0.0, 5.0, size=(1, 2000)).astype(np.float32)
+    pyabf.abfWriter.writeABF1(sweeps, str(path), 10000.0, units="pA")
+
+
+# ---------------------------------------------------------------- intake, chosen timestamps
+
+def test_growing_file_is_ready_only_after_settle_seconds():
+    table = {"/r/a.abf": (100, 1.0)}
+    it = Intake(settle_s=5.0, give_up_s=3600.0, stat=_fake_stat(table), header_check=_fits,
+                probe=lambda p: False)
+    it.offer(RIG, Path("/r/a.abf"), 1.0)
+    assert it.check(1.0) == ([], [])           # first sight: unchanged for 0 s
+    table["/r/a.abf"] = (200, 3.0)             # it grew
+    assert it.check(6.0) == ([], [])           # the change is seen now: settles at 11.0
+    assert it.check(10.9) == ([], [])
+    ready, _ = it.check(11.0)
+    assert [r.path for r in ready] == [Path("/r/a.abf")] and ready[0].size == 200
+    assert len(it) == 0
+
+
+def test_duplicate_hints_collapse_into_one_item():
+    table = {"/r/a.abf": (100, 1.0)}
+    it = Intake(settle_s=1.0, give_up_s=3600.0, stat=_fake_stat(table), header_check=_fits,
+                probe=lambda p: False)
+    for t in (0.0, 0.1, 0.2, 0.3):
+        it.offer(RIG, Path("/r/a.abf"), t, closed=(t == 0.3))
+    assert len(it) == 1
+    it.check(0.3)
+    ready, _ = it.check(1.3)
+    assert len(ready) == 1 and it.check(5.0) == ([], [])
+
+
+def test_truncated_header_waits_then_hands_over_for_the_real_error():
+    table = {"/r/a.abf": (100, 0.0)}
+    calls = []
+
+    def header(path, size):
+        calls.append(size)
+        return "header implies more data than present"
+    it = Intake(settle_s=1.0, give_up_s=100.0, stat=_fake_stat(table), header_check=header,
+                probe=lambda p: False)
+    it.offer(RIG, Path("/r/a.abf"), 0.0)
+    for t in (0.0, 1.0, 2.0, 50.0):
+        assert it.check(t) == ([], [])
+    assert calls                               # the header was consulted, and said "not yet"
+    ready, gave_up = it.check(100.5)
+    # settled but never fit: the pipeline gets it so the stored error is 'truncated'
+    assert ready == [] and gave_up == [GaveUp(RIG, Path("/r/a.abf"), "", 100, 0.0)]
+
+
+def test_file_that_keeps_changing_is_given_up_as_never_settled():
+    table = {"/r/a.abf": (0, 0.0)}
+    it = Intake(settle_s=2.0, give_up_s=10.0, stat=_fake_stat(table), header_check=_fits,
+                probe=lambda p: False)
+    it.offer(RIG, Path("/r/a.abf"), 0.0)
+    t = 0.0
+    gave_up = []
+    while t < 12.0 and not gave_up:
+        table["/r/a.abf"] = (int(t * 10) + 1, t)   # grows every second
+        ready, gave_up = it.check(t)
+        assert ready == []
+        t += 1.0
+    assert len(gave_up) == 1 and gave_up[0].reason
+    assert "still changing" in gave_up[0].reason and "/r/a.abf" in gave_up[0].reason
+
+
+def test_live_files_go_ahead_of_the_backlog_and_backlog_is_oldest_first():
+    table = {f"/r/b{i}.abf": (10, float(100 - i)) for i in range(20)}
+    table["/r/new.abf"] = (10, 1000.0)
+    it = Intake(settle_s=1.0, give_up_s=3600.0, stat=_fake_stat(table), header_check=_fits,
+                probe=lambda p: False)
+    for i in range(20):
+        it.offer(RIG, Path(f"/r/b{i}.abf"), 1000.0, live=False, mtime=float(100 - i))
+    it.offer(RIG, Path("/r/new.abf"), 1000.0, live=True)
+    assert it.check(1000.0, backlog_window=0) == ([], [])   # new.abf first seen: settling
+    ready, _ = it.check(1001.0, backlog_window=3)
+    names = [r.path.name for r in ready]
+    assert names[0] == "new.abf"               # the live file first
+    assert names[1:] == ["b19.abf", "b18.abf", "b17.abf"]   # then the oldest mtimes, 3 at a time
+    assert it.counts() == {"live": 0, "backlog": 17}
+
+
+def test_event_for_a_backlog_file_moves_it_to_the_live_lane():
+    table = {"/r/old.abf": (10, 5.0), "/r/x.abf": (10, 1.0)}
+    it = Intake(settle_s=1.0, give_up_s=3600.0, stat=_fake_stat(table), header_check=_fits,
+                probe=lambda p: False)
+    it.offer(RIG, Path("/r/x.abf"), 10.0, live=False, mtime=1.0)
+    it.offer(RIG, Path("/r/old.abf"), 10.0, live=False, mtime=5.0)
+    it.offer(RIG, Path("/r/old.abf"), 10.0, live=True)   # an event: it may be changing again
+    assert it.check(10.0, backlog_window=0) == ([], [])
+    ready, _ = it.check(11.0, backlog_window=0)
+    assert [r.path.name for r in ready] == ["old.abf"] and ready[0].live
+
+
+@pytest.mark.parametrize("name,ok", [
+    ("cell01.abf", True), ("CELL01.ABF", True), (".cell01.abf", False), ("~$cell01.abf", False),
+    ("cell01.abf.tmp", False), ("cell01.abf.part", False), ("cell01.crdownload", False),
+    ("cell01.txt", False), ("notes.abf~", False)])
+def test_temporary_and_hidden_names_are_ignored(name, ok):
+    assert is_candidate_name(Path("/r") / name, ("*.abf",), Path("/r")) is ok
+
+
+def test_files_in_hidden_folders_are_ignored():
+    assert not is_candidate_name(Path("/r/.trash/a.abf"), ("*.abf",), Path("/r"))
+    assert is_candidate_name(Path("/r/day1/a.abf"), ("*.abf",), Path("/r"))
+
+
+def test_network_mounts_are_detected_from_the_mount_table():
+    # /proc/mounts format: device mountpoint fstype options (proc(5))
+    mounts = ("/dev/sda1 / ext4 rw 0 0\n//nas/lab /mnt/lab cifs rw 0 0\n"
+              "srv:/data /mnt/nfs nfs4 rw 0 0\nu@h:/x /mnt/my\\040share fuse.sshfs rw 0 0\n")
+    assert is_network_path(Path("/mnt/lab/rig1"), mounts_text=mounts, platform="linux")
+    assert is_network_path(Path("/mnt/nfs"), mounts_text=mounts, platform="linux")
+    assert is_network_path(Path("/mnt/my share/a"), mounts_text=mounts, platform="linux")
+    assert not is_network_path(Path("/home/lab"), mounts_text=mounts, platform="linux")
+    assert not is_network_path(Path("/mnt/labx"), mounts_text=mounts, platform="linux")
+    assert is_network_path(Path("//nas/share/rig"), platform="win32") or os.name != "nt"
+
+
+def test_header_check_says_truncated_copy_is_not_ready(tmp_path):
+    data = abf("vc_cell_step.abf").read_bytes()
+    p = tmp_path / "part.abf"
+    p.write_bytes(data[:len(data) // 2])
+    assert header_fits(p, p.stat().st_size)   # a reason: cut short / still being written
+    p.write_bytes(data)
+    assert header_fits(p, p.stat().st_size) is None
+
+
+# ---------------------------------------------------------------- real observers and store
+
+@pytest.mark.parametrize("polling", [False, True], ids=["native", "polling"])
+def test_file_written_in_pieces_is_measured_once_after_it_settled(tmp_path, store, polling):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _config(tmp_path, [folder], settle_s=1.0, polling=polling)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec, poll_interval_s=0.2)
+    svc.start(time.time())
+    try:
+        step = lambda: svc.step(time.time())
+        src = abf("vc_cell_step.abf").read_bytes()
+        target = folder / "cell01.abf"
+        _write_slowly(target, src, 5, 0.5, step)
+        closed_at = time.monotonic()
+        assert rec.committed == []             # nothing measured while it was being written
+        wait_until(lambda: rec.committed, 10.0, step)
+        assert time.monotonic() - closed_at >= 0.5   # it waited for the file to settle
+        # keep the loop going: no second measurement of the same file
+        end = time.monotonic() + 2.0
+        while time.monotonic() < end:
+            step()
+            time.sleep(0.02)
+    finally:
+        svc.close()
+    assert rec.paths() == ["cell01.abf"]
+    rows = store.files(rig=RIG, include_superseded=True)
+    assert len(rows) == 1 and rows[0]["status"] == "ok"
+    # the values are those of the complete file: same content hash, same as measuring it now
+    fm = rec.committed[0]
+    assert fm.sha256 == hashlib.sha256(src).hexdigest()
+    finished = rec.measure(str(target), cfg.rigs[0])
+    assert fm == finished
+
+
+def test_corrupt_file_is_stored_as_error_and_next_file_is_measured(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _config(tmp_path, [folder], settle_s=0.3)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec)
+    svc.start(time.time())
+    try:
+        step = lambda: svc.step(time.time())
+        (folder / "broken.abf").write_bytes(b"this is not a recording" * 100)
+        wait_until(lambda: len(rec.committed) == 1, 10.0, step)
+        shutil.copy(abf("vc_model_cell_step.abf"), folder / "good.abf")
+        wait_until(lambda: len(rec.committed) == 2, 10.0, step)
+    finally:
+        svc.close()
+    by_name = {Path(r["path"]).name: r for r in store.files(rig=RIG)}
+    assert by_name["broken.abf"]["status"] == "error"
+    assert by_name["broken.abf"]["error_kind"] == "bad_signature"
+    assert "broken.abf" in by_name["broken.abf"]["error"]
+    assert by_name["good.abf"]["status"] == "ok"
+
+
+def test_folder_removed_and_recreated_is_watched_again(tmp_path, store):
+    folder = tmp_path / "usb" / "rig"
+    folder.mkdir(parents=True)
+    cfg = _config(tmp_path, [folder], settle_s=0.3)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec)
+    svc.start(time.time())
+    try:
+        step = lambda: svc.step(time.time())
+        shutil.copy(abf("vc_model_cell_step.abf"), folder / "one.abf")
+        wait_until(lambda: len(rec.committed) == 1, 10.0, step)
+        shutil.rmtree(tmp_path / "usb")        # unplugged
+        wait_until(lambda: svc._folders[0].state == "missing", 10.0, step)
+        folder.mkdir(parents=True)             # plugged in again
+        shutil.copy(abf("vc_cell_step.abf"), folder / "two.abf")
+        wait_until(lambda: len(rec.committed) == 2, 15.0, step)
+        shutil.copy(abf("cc_steps.abf"), folder / "three.abf")
+        wait_until(lambda: len(rec.committed) == 3, 10.0, step)
+    finally:
+        svc.close()
+    assert sorted(rec.paths()) == ["one.abf", "three.abf", "two.abf"]
+
+
+def test_catch_up_queues_new_and_changed_files_and_skips_stored_ones(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for name, src in [("a.abf", "vc_cell_step.abf"), ("b.abf", "cc_steps.abf"),
+                      ("c.abf", "vc_model_cell_step.abf")]:
+        shutil.copy(abf(src), folder / name)
+    os.utime(folder / "a.abf", (1000.0, 1000.0))
+    os.utime(folder / "b.abf", (3000.0, 3000.0))
+    os.utime(folder / "c.abf", (2000.0, 2000.0))
+    (folder / "skip.abf.part").write_bytes(b"x")
+    cfg = _config(tmp_path, [folder], settle_s=0.3)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec)
+    svc.start(time.time())
+    try:
+        wait_until(lambda: len(rec.committed) == 3, 20.0, lambda: svc.step(time.time()))
+    finally:
+        svc.close()
+    assert rec.paths() == ["a.abf", "c.abf", "b.abf"]       # oldest first
+    # b changes while the service is down; a and c do not
+    shutil.copy(abf("vc_step_series_tagged.abf"), folder / "b.abf")
+    rec2 = Recorder(store)
+    svc = _service(cfg, store, rec2)
+    svc.start(time.time())
+    try:
+        wait_until(lambda: len(rec2.committed) == 1, 20.0, lambda: svc.step(time.time()))
+        end = time.monotonic() + 1.0
+        while time.monotonic() < end:
+            svc.step(time.time())
+            time.sleep(0.02)
+    finally:
+        svc.close()
+    assert rec2.paths() == ["b.abf"]
+    rows = {Path(r["path"]).name for r in store.files(rig=RIG)}
+    assert rows == {"a.abf", "b.abf", "c.abf"}
+    assert len(store.files(rig=RIG, include_superseded=True)) == 4
+
+
+def test_new_file_goes_ahead_of_a_backlog(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for i in range(40):
+        _tiny_abf(folder / f"old{i:03d}.abf", i)
+        os.utime(folder / f"old{i:03d}.abf", (1000.0 + i, 1000.0 + i))
+    cfg = _config(tmp_path, [folder], settle_s=0.3)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec)
+    svc.start(time.time())
+    try:
+        step = lambda: svc.step(time.time())
+        wait_until(lambda: len(rec.committed) >= 2, 10.0, step)
+        _tiny_abf(folder / "new.abf", 999)
+        wait_until(lambda: "new.abf" in rec.paths(), 10.0, step)
+        position = rec.paths().index("new.abf")
+        wait_until(lambda: len(rec.committed) == 41, 30.0, step)
+    finally:
+        svc.close()
+    # with one file measured per step, the new file passes the rest of the backlog
+    assert position < 20, rec.paths()
+
+
+def test_never_settled_file_is_stored_as_error(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    p = folder / "stuck.abf"
+    data = abf("vc_cell_step.abf").read_bytes()
+    p.write_bytes(data[:5000])
+    sizes = {"n": 5000}
+
+    def growing_stat(path: str):              # the acquisition keeps appending
+        st = os.stat(path)
+        if path == os.fspath(p):
+            sizes["n"] += 1
+            return _St(sizes["n"], st.st_mtime + sizes["n"])
+        return st
+    cfg = _config(tmp_path, [folder], settle_s=1.0, give_up_h=0.01)   # 36 s
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec, stat=growing_stat, rescan_s=1e9)
+    t0 = time.time()
+    svc.start(t0)
+    try:
+        for t in np.arange(0.0, 40.0, 0.5):   # chosen timestamps: no waiting for 36 s
+            svc.step(t0 + t)
+    finally:
+        svc.close(t0 + 40.0)
+    rows = store.files(rig=RIG)
+    assert len(rows) == 1 and rows[0]["error_kind"] == "never_settled"
+    assert "stuck.abf" in rows[0]["error"] and "give_up_hours" in rows[0]["error"]
+
+
+def test_measuring_in_worker_processes(tmp_path, store):
+    if not _analyze_ready():
+        pytest.skip("the measures stage (analyze_path) is not in this build yet")
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for i in range(4):
+        _tiny_abf(folder / f"f{i}.abf", 100 + i)
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = Service(cfg, store, workers=2, commit=rec.commit, poll_s=0.02, progress_tty=False)
+    svc.start(time.time())
+    try:
+        wait_until(lambda: len(rec.committed) == 4, 60.0, lambda: svc.step(time.time()))
+    finally:
+        svc.close()
+    assert sorted(rec.paths()) == [f"f{i}.abf" for i in range(4)]
+    assert [fm.status for fm in rec.committed] == ["ok"] * 4
+
+
+@pytest.mark.slow
+def test_thousand_small_files_dropped_at_once_are_all_measured(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    staging = tmp_path / "staging"
+    staging.mkdir()
+    for i in range(1000):
+        _tiny_abf(staging / f"s{i:04d}.abf", i)
+    cfg = _config(tmp_path, [folder], settle_s=0.3)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec)
+    svc.start(time.time())
+    try:
+        for f in staging.iterdir():
+            os.rename(f, folder / f.name)      # moved in: watchdog reports dest_path
+        wait_until(lambda: len(rec.committed) >= 1000, 120.0, lambda: svc.step(time.time()),
+                   interval=0.0)
+    finally:
+        svc.close()
+    assert len(rec.committed) == 1000
+    assert len(store.files(rig=RIG, include_superseded=True)) == 1000
+
+
+def test_status_reports_a_stopped_service(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    shutil.copy(abf("vc_model_cell_step.abf"), folder / "one.abf")
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec, beat_s=1.0)
+    svc.start(time.time())
+    try:
+        wait_until(lambda: rec.committed, 10.0, lambda: svc.step(time.time()))
+        wait_until(lambda: status(store, time.time())["queue_len"] == 0, 5.0,
+                   lambda: svc.step(time.time()))
+        live = status(store, time.time())
+        assert live["alive"] and "alive" in live["reason"]
+    finally:
+        svc.close()
+    st = status(store, time.time())
+    assert not st["alive"] and "stopped" in st["reason"]
+    assert Path(st["last_file"][RIG]["path"]).name == "one.abf"
+    assert st["outbox"]["pending"] == 0
