@@ -23,7 +23,7 @@ __all__ = ["BANDS", "Change", "Side", "Comparison", "compare_paths", "segment_po
 
 # Noise bands (DESIGN.md measures table), mains bins removed; the top band ends at the
 # channel's filter corner or at 0.45 fs.
-BANDS = (("band_rms_0.5_10", 0.5, 10.0), ("band_rms_10_70", 10.0, 70.0),
+BANDS = (("band_rms_0p5_10", 0.5, 10.0), ("band_rms_10_70", 10.0, 70.0),
          ("band_rms_70_1k", 70.0, 1000.0), ("band_rms_1k_corner", 1000.0, None))
 N_HARMONICS = 5
 SIGNIFICANCE_SIGMAS = 3.0      # a change counts when |change| > 3 standard errors ...
@@ -39,7 +39,7 @@ _HINTS = {
     "band_rms_70_1k": "mid-band noise: headstage or pipette holder, nearby electronics",
     "band_rms_10_70": "10-70 Hz: vibration or mechanical coupling (table, perfusion pump, "
                       "manipulators)",
-    "band_rms_0.5_10": "slow fluctuation: perfusion, reference electrode, temperature",
+    "band_rms_0p5_10": "slow fluctuation: perfusion, reference electrode, temperature",
 }
 
 

@@ -1,0 +1,177 @@
+"""The morning report and trend read the store and show exactly its numbers.
+
+The store is filled through Store.commit_file with FileMeasures whose values are the access-
+resistance history of METHODS.md section 7 (median 9.5 MOhm, MAD 0.5 MOhm, robust SD 0.7413;
+Iglewicz & Hoaglin 1993, robust z), plus one outlier.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import json
+import re
+from datetime import datetime, timezone
+from html.parser import HTMLParser
+
+import numpy as np
+import pytest
+
+from qcd.analyze import ChannelMeasures, FileMeasures, Measure, Spectrum
+from qcd.report import (build_report, normal_range, parse_since, render_html, render_text,
+                        render_trend_csv, render_trend_text, sparkline, trend_rows)
+from qcd.store import Store
+
+NOW = datetime(2026, 11, 20, 8, 0, tzinfo=timezone.utc).timestamp()
+RA = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]   # METHODS.md §7 check values
+
+
+def _fm(i: int, t: float, ra: float, hum: float, status: str = "ok") -> FileMeasures:
+    f = np.geomspace(1, 5000, 50)
+    spec = Spectrum(tuple(f), tuple(1e-4 * (1 + (abs(f - 50) < 2) * 50.0)), "pA")
+    ch = ChannelMeasures(0, "Im", "pA", "A", {
+        "access_resistance": Measure("access_resistance", ra, "MOhm"),
+        "hum_rms": Measure("hum_rms", hum, "pA"),
+        "line_hz": Measure("line_hz", 50.0, "Hz"),
+        "noise_rms": Measure("noise_rms", 1.0 + 0.01 * i, "pA")}, spectrum=spec)
+    if status == "error":
+        return FileMeasures(f"/lab/rig-a/2026-11-19_cell{i:02d}.abf", "error",
+                            error=f"/lab/rig-a/2026-11-19_cell{i:02d}.abf: header implies more "
+                                  "data than the file holds", error_kind="truncated",
+                            mtime=t, size=10, sha256=f"e{i}")
+    return FileMeasures(f"/lab/rig-a/2026-11-{1 + i:02d}_cell{i:02d}.abf", "ok",
+                        mode="voltage_clamp", format="ABF1", fs_hz=20000.0,
+                        recorded_at=datetime.fromtimestamp(t, tz=timezone.utc).replace(
+                            tzinfo=None), mtime=t, size=1000, sha256=f"s{i}", channels=(ch,))
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = Store(tmp_path / "qcd.sqlite")
+    for i, ra in enumerate(RA):
+        s.commit_file("rig-a", _fm(i, NOW - (12 - i) * 86400.0, ra, 0.3), analysed_at=NOW)
+    hint = "mains hum rose against the reference: check the grounding of the rig"
+    fid = s.commit_file(
+        "rig-a", _fm(10, NOW - 3600.0, 18.0, 3.0), analysed_at=NOW,
+        findings=[{"channel": 0, "measure": "access_resistance", "rule": "access_high",
+                   "kind": "limit", "bad": True, "severity": "warning", "value": 18.0,
+                   "unit": "MOhm", "limit_text": "> 15 MOhm", "hint": None},
+                  {"channel": 0, "measure": "hum_rms", "rule": "hum_drift", "kind": "drift",
+                   "bad": True, "severity": "warning", "value": 3.0, "unit": "pA",
+                   "limit_text": "z > 4", "hint": hint}],
+        alert_states=[{"key": "rig-a|voltage_clamp|0|hum_rms|hum_drift", "rig": "rig-a",
+                       "mode": "voltage_clamp", "channel": 0, "measure": "hum_rms",
+                       "rule": "hum_drift", "state": "open", "opened_at": NOW - 3600.0,
+                       "resolved_at": None, "announced": True}])
+    s.commit_file("rig-a", _fm(11, NOW - 1800.0, 0, 0, status="error"), analysed_at=NOW)
+    s.commit_file("rig-b", _fm(12, NOW - 7200.0, 9.0, 0.2), analysed_at=NOW)
+    s.fid = fid
+    yield s
+    s.close()
+
+
+def test_normal_range_matches_the_published_robust_z_example():
+    med, sd, n = normal_range(RA)
+    assert med == 9.5 and n == 10
+    assert sd == pytest.approx(0.7413, abs=1e-4)       # 1.4826 x MAD 0.5 (METHODS §7)
+    assert (18.0 - med) / sd == pytest.approx(11.47, abs=0.01)
+
+
+def test_report_numbers_equal_the_store(store):
+    r = build_report(store, NOW, parse_since("18h", NOW))
+    rig = {x.rig: x for x in r.rigs}["rig-a"]
+    files = store.files(rig="rig-a", since=NOW - 18 * 3600.0)
+    assert rig.n_files == len(files) == 2
+    assert rig.n_ok == 1 and rig.n_error == 1 and rig.n_flagged == 1
+    lines = {m.measure: m for m in rig.measures}
+    series = store.measure_series("rig-a", "access_resistance", channel=0)
+    assert lines["access_resistance"].latest == series[-1][1] == 18.0
+    assert lines["access_resistance"].median == pytest.approx(np.median([v for _, v, *_ in
+                                                                         series[:-1]]))
+    assert lines["access_resistance"].median == 9.5
+    assert lines["access_resistance"].state == "high"
+    assert lines["access_resistance"].unit == "MOhm"
+    assert [a["key"] for a in rig.open_alerts] == [a["key"] for a in
+                                                  store.open_alerts(rig="rig-a")]
+    assert rig.hints and "grounding" in rig.hints[0]
+    assert rig.safety_note and "electrician" in rig.safety_note
+    assert r.outbox == store.outbox_counts()
+
+
+def test_terminal_report_fits_100_columns_and_shows_values(store):
+    text = render_text(build_report(store, NOW, parse_since("18h", NOW)))
+    assert max(len(line) for line in text.splitlines()) <= 100
+    assert "rig-a" in text and "rig-b" in text
+    assert re.search(r"access_resistance\s+0\s+18\s+9\.5\s+7\.28 \.\. 11\.7\s+MOhm\s+HIGH", text)
+    assert "truncated" in text or "header implies" in text
+    assert "electrician" in text
+
+
+def test_json_report_round_trips(store):
+    d = json.loads(json.dumps(build_report(store, NOW, NOW - 86400).to_json(), default=str))
+    assert {r["rig"] for r in d["rigs"]} == {"rig-a", "rig-b"}
+
+
+class _Collect(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.imgs, self.refs, self.tags = [], [], []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        a = dict(attrs)
+        if tag == "img":
+            self.imgs.append(a.get("src", ""))
+        for k in ("src", "href"):
+            if k in a and tag != "img":
+                self.refs.append(a[k])
+
+
+def test_html_report_is_one_self_contained_file(store):
+    page = render_html(build_report(store, NOW, parse_since("18h", NOW)), store)
+    p = _Collect()
+    p.feed(page)
+    p.close()
+    assert p.imgs, "the report has plots"
+    assert all(src.startswith("data:image/png;base64,") for src in p.imgs)
+    assert not p.refs                                  # no links to other files
+    assert "http://" not in page and "https://" not in page
+    assert "<script" not in page and "@import" not in page
+    assert "electrician" in page
+
+
+def test_trend_prints_the_stored_series_and_csv_parses(store):
+    rows = trend_rows(store, "rig-a", "access_resistance", channel=0, days=30, now=NOW)
+    assert [r[1] for r in rows] == RA + [18.0]
+    text = render_trend_text("rig-a", "access_resistance", rows)
+    assert len(sparkline([r[1] for r in rows])) == len(rows)
+    for v in RA:
+        assert f"{v:g}" in text
+    parsed = list(csv.DictReader(io.StringIO(render_trend_csv(rows))))
+    assert [float(r["value"]) for r in parsed] == RA + [18.0]
+    assert {r["unit"] for r in parsed} == {"MOhm"}
+    assert parsed[-1]["flagged"] == "1"
+
+
+def test_parse_since_forms():
+    assert parse_since("18h", NOW) == NOW - 18 * 3600
+    assert parse_since("3d", NOW) == NOW - 3 * 86400
+    assert parse_since("2026-11-19", NOW) == datetime(2026, 11, 19, tzinfo=timezone.utc).timestamp()
+    from qcd.errors import ConfigError
+    with pytest.raises(ConfigError, match="18h"):
+        parse_since("yesterday", NOW)
+
+
+def test_cli_report_and_trend(store, tmp_path, capsys):
+    from qcd.cli import main
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "{(tmp_path / "qcd.sqlite").as_posix()}"\n'
+                   '[[rig]]\nname = "rig-a"\nfolders = ["a"]\n', encoding="utf-8")
+    assert main(["trend", "rig-a", "access_resistance", "--csv", "--days", "9999",
+                 "--config", str(cfg)]) == 0
+    out = capsys.readouterr().out
+    assert len(list(csv.DictReader(io.StringIO(out)))) == 11
+    assert main(["trend", "nope", "noise_rms", "--config", str(cfg)]) == 2
+    html_path = tmp_path / "r.html"
+    rc = main(["report", "--since", "9999d", "--html", str(html_path), "--config", str(cfg)])
+    assert rc == 1                                      # an open alert and an error file
+    assert html_path.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
