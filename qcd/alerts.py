@@ -1,0 +1,399 @@
+"""Alert lifecycle (pure): (states, findings, silences, now, settings) -> (states, messages).
+
+Key = (rig, mode, channel, measure, rule); states ok -> suspect -> open -> ok. Opening counts
+consecutive bad files, clearing counts good files beyond the clear level, a flap guard quiets
+unstable keys, reminders repeat at most every repeat_h while bad files arrive. Silences,
+inhibition and the learning phase hold messages back; the state machine always runs. One
+file's events become ONE message; a backlog (``batch=True`` + ``flush_digest``) becomes one
+digest. Every event has a number (``seq``) so an outbox row is unique on (key, transition).
+Imports only the standard library.
+"""
+from __future__ import annotations
+
+import fnmatch
+from dataclasses import asdict, dataclass, field, fields
+from datetime import datetime, timezone
+from typing import Any, Iterable, Mapping
+
+__all__ = ["AlertState", "Message", "advance", "flush_digest", "tick", "PRIORITY"]
+
+# Outbox priorities: firing above reminders above resolved (resolved are lower priority).
+PRIORITY = {"firing": 2, "unstable": 2, "digest": 2, "reminder": 1, "resolved": 0}
+
+
+@dataclass
+class AlertState:
+    """The lifecycle of one key; ``to_dict()``/``from_dict()`` are what the store keeps."""
+    key: str
+    rig: str
+    mode: str
+    channel: int
+    measure: str
+    rule: str
+    kind: str = "limit"
+    severity: str = "warning"
+    state: str = "ok"                  # the machine: ok | suspect | open
+    seq: int = 0                       # number of the last event (outbox transition)
+    bad_run: int = 0
+    clear_run: int = 0
+    opened_at: float | None = None
+    resolved_at: float | None = None
+    updated_at: float | None = None
+    announced: bool = False            # this episode's opening has been sent
+    last_sent_at: float | None = None
+    flapping: bool = False
+    changes: list[int] = field(default_factory=list)   # 1 per file with an open/resolve change
+    stable_files: int = 0
+    muted: str = ""                    # why the last message was held: silence|learning|inhibited
+    silences: list[int] = field(default_factory=list)  # until-resolved silences used this episode
+    spent: list[int] = field(default_factory=list)     # until-resolved silences whose episode ended
+    pending_resolved: bool = False     # batch mode: resolved, to be reported in the digest
+    bad_files: int = 0                 # bad files in this episode
+    value: float | None = None
+    unit: str = ""
+    limit_text: str = ""
+    hint: str = ""
+    path: str = ""
+    for_files: int = 2
+    clear_files: int = 3
+    repeat_h: float = 24.0
+    learning: bool = False
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain dict; ``state`` is 'open' while the flap guard holds the key open."""
+        d = asdict(self)
+        d["machine"] = self.state
+        if self.flapping:
+            d["state"] = "open"
+        return d
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> "AlertState":
+        """Inverse of to_dict; extra keys (store columns, state_json) are ignored or unpacked."""
+        data = dict(d)
+        if isinstance(data.get("state_json"), str):
+            import json
+            data = {**data, **json.loads(data["state_json"])}
+        if "machine" in data:
+            data["state"] = data["machine"]
+        names = {f.name for f in fields(cls)}
+        kw = {k: v for k, v in data.items() if k in names}
+        for k in ("changes", "silences", "spent"):
+            kw[k] = list(kw.get(k) or [])
+        kw["announced"] = bool(kw.get("announced", False))
+        kw["flapping"] = bool(kw.get("flapping", False))
+        return cls(**kw)
+
+    @classmethod
+    def new(cls, f: Any) -> "AlertState":
+        return cls(key=f.key, rig=f.rig, mode=f.mode, channel=f.channel, measure=f.measure,
+                   rule=f.rule, kind=f.kind)
+
+
+@dataclass(frozen=True)
+class Message:
+    """One outbox row: unique on (alert_key, transition)."""
+    alert_key: str
+    transition: int
+    kind: str                 # firing | reminder | resolved | unstable | digest
+    priority: int
+    rig: str
+    title: str
+    body: str
+
+
+@dataclass(frozen=True)
+class _Event:
+    what: str                 # opened | reminder | resolved | unstable | stable | late
+    state: AlertState
+    seq: int
+
+
+def _get(obj: Any, name: str, default: Any = None) -> Any:
+    if isinstance(obj, Mapping):
+        return obj.get(name, default)
+    return getattr(obj, name, default)
+
+
+def _silence_for(s: AlertState, silences: Iterable[Any], now: float) -> Any:
+    """The first silence that mutes this key now (until-resolved ones once per episode)."""
+    for sil in silences:
+        start, end = _get(sil, "start_at") or 0.0, _get(sil, "end_at")
+        if now < start or (end is not None and now >= end):
+            continue
+        if not fnmatch.fnmatchcase(s.rig, _get(sil, "rig_glob") or "*"):
+            continue
+        if not fnmatch.fnmatchcase(s.rule, _get(sil, "rule_glob") or "*"):
+            continue
+        if end is None and _get(sil, "id") in s.spent:
+            continue
+        return sil
+    return None
+
+
+def _inhibited(s: AlertState, states: Mapping[str, AlertState], rig_bad: set[str]) -> bool:
+    """Rig-level trouble mutes a rig's measure alerts; a hard limit mutes drift on its measure."""
+    if s.kind == "rig":
+        return False
+    if s.rig in rig_bad:
+        return True
+    for o in states.values():
+        if o is s or o.rig != s.rig or o.state != "open":
+            continue
+        if o.kind == "rig":
+            return True
+        if s.kind == "drift" and o.kind == "limit" and (o.mode, o.channel, o.measure) == \
+                (s.mode, s.channel, s.measure):
+            return True
+    return False
+
+
+def _mute_reason(s: AlertState, states: Mapping[str, AlertState], silences: Iterable[Any],
+                 rig_bad: set[str], now: float) -> str:
+    if s.learning and s.kind == "drift":
+        return "learning"
+    sil = _silence_for(s, silences, now)
+    if sil is not None:
+        if _get(sil, "end_at") is None and _get(sil, "id") not in s.silences:
+            s.silences.append(_get(sil, "id"))
+        return "silence"
+    if _inhibited(s, states, rig_bad):
+        return "inhibited"
+    return ""
+
+
+def _step(s: AlertState, f: Any, now: float, settings: Any) -> list[str]:
+    """Advance one key by one file; the raw events ('opened', 'resolved', 'reminder', ...)."""
+    for name in ("severity", "value", "unit", "limit_text", "hint", "path", "for_files",
+                 "clear_files", "repeat_h", "learning"):
+        setattr(s, name, getattr(f, name))
+    s.updated_at = now
+    events: list[str] = []
+    change = False
+    if f.bad:
+        s.clear_run = 0
+        s.bad_run += 1
+        if s.state == "ok":
+            s.state = "suspect"
+            s.bad_files = 0
+        s.bad_files += 1
+        if s.state == "suspect" and s.bad_run >= max(1, f.for_files):
+            s.state, s.opened_at, s.resolved_at = "open", now, None
+            s.announced = s.announced and s.flapping     # the flap guard's message still holds
+            change = True
+            events.append("opened")
+        elif s.state == "open" and s.announced and s.last_sent_at is not None and \
+                now - s.last_sent_at >= f.repeat_h * 3600.0:
+            events.append("reminder")
+    else:
+        s.bad_run = 0
+        if s.state == "suspect":
+            s.state = "ok"
+        elif s.state == "open":
+            s.clear_run = s.clear_run + 1 if f.clear else 0
+            if s.clear_run >= max(1, f.clear_files):
+                s.state, s.resolved_at, s.clear_run = "ok", now, 0
+                change = True
+                events.append("resolved")
+    window = int(getattr(settings, "flap_window", 21))
+    s.changes = (s.changes + [1 if change else 0])[-window:]
+    if s.flapping:
+        s.stable_files = 0 if change else s.stable_files + 1
+        if s.stable_files >= window:
+            s.flapping, s.changes, s.stable_files = False, [], 0
+            return ["stable"]
+        return []
+    if sum(s.changes) >= int(getattr(settings, "flap_changes", 6)):
+        s.flapping, s.stable_files = True, 0
+        return ["unstable"]
+    return events
+
+
+def _load(states: Mapping[str, Any]) -> dict[str, AlertState]:
+    return {k: (v if isinstance(v, AlertState) else AlertState.from_dict(v))
+            for k, v in states.items()}
+
+
+def advance(states: Mapping[str, Any], findings: Iterable[Any], silences: Iterable[Any],
+            now: float, settings: Any, *, batch: bool = False
+            ) -> tuple[dict[str, AlertState], list[Message]]:
+    """One file's findings -> (all states, messages: at most one per rig).
+
+    ``states`` maps key -> AlertState or its dict. With ``batch`` no message is made: openings
+    stay unannounced and announced resolutions are kept for ``flush_digest``.
+    """
+    out = _load(states)
+    silences = list(silences)
+    findings = list(findings)
+    rig_bad = {f.rig for f in findings if f.kind == "rig" and f.bad}
+    raw: list[tuple[str, AlertState]] = []
+    for f in findings:
+        s = out.get(f.key)
+        if s is None:
+            if not f.bad:
+                continue            # a key that was never bad needs no state
+            s = out[f.key] = AlertState.new(f)
+        for what in _step(s, f, now, settings):
+            raw.append((what, s))
+    events: list[_Event] = []
+    for what, s in raw:
+        s.seq += 1
+        if what == "resolved":
+            s.silences, s.spent = [], sorted(set(s.spent) | set(s.silences))
+        if what == "resolved":      # resolutions are held only by a silence
+            reason = "silence" if _silence_for(s, silences, now) is not None else ""
+        else:
+            reason = _mute_reason(s, out, silences, rig_bad, now)
+        if what == "resolved":
+            was = s.announced
+            s.announced = False
+            if not was:
+                continue
+            if batch:
+                s.pending_resolved = True
+                continue
+            if reason:
+                s.muted = reason
+                continue
+            events.append(_Event("resolved", s, s.seq))
+            continue
+        if what == "stable":
+            if s.state == "ok" and s.announced:
+                s.announced = False
+                if not batch and not reason:
+                    events.append(_Event("resolved", s, s.seq))
+            continue
+        if batch or reason:
+            s.muted = reason or s.muted
+            continue
+        if what in ("opened", "unstable"):
+            s.announced = True
+        s.last_sent_at, s.muted = now, ""
+        events.append(_Event(what, s, s.seq))
+    if not batch:
+        done = {e.state.key for e in events}
+        events += _late(out, silences, rig_bad, now, skip=done)
+    return out, _group(events, now)
+
+
+def _late(out: dict[str, AlertState], silences: list[Any], rig_bad: set[str], now: float,
+          skip: set[str] = frozenset()) -> list[_Event]:
+    """Open keys never announced (held by a silence that ended, inhibition, learning): announce."""
+    events = []
+    for s in sorted(out.values(), key=lambda x: x.key):
+        if s.key in skip or s.state != "open" or s.announced:
+            continue
+        if _mute_reason(s, out, silences, rig_bad, now):
+            continue
+        s.seq += 1
+        s.announced, s.last_sent_at = True, now
+        events.append(_Event("unstable" if s.flapping else "late", s, s.seq))
+        s.muted = ""
+    return events
+
+
+def tick(states: Mapping[str, Any], silences: Iterable[Any], now: float, settings: Any
+         ) -> tuple[dict[str, AlertState], list[Message]]:
+    """No new file: announce open alerts whose silence has ended (one message per rig)."""
+    out = _load(states)
+    return out, _group(_late(out, list(silences), set(), now), now)
+
+
+def flush_digest(states: Mapping[str, Any], silences: Iterable[Any], now: float, settings: Any
+                 ) -> tuple[dict[str, AlertState], Message | None]:
+    """After a backlog: ONE message listing what opened and what resolved, or None."""
+    out = _load(states)
+    events = _late(out, list(silences), set(), now)
+    for s in sorted(out.values(), key=lambda x: x.key):
+        if s.pending_resolved:
+            s.pending_resolved = False
+            s.seq += 1
+            events.append(_Event("resolved", s, s.seq))
+    if not events:
+        return out, None
+    first = min(events, key=lambda e: (e.state.key, e.seq))
+    rigs = sorted({e.state.rig for e in events})
+    n_open = sum(e.what != "resolved" for e in events)
+    n_res = len(events) - n_open
+    title = f"qcd digest: {n_open} open, {n_res} resolved ({', '.join(rigs)})"
+    body = "\n\n".join(_describe(e) for e in sorted(events, key=lambda e: (e.what == "resolved",
+                                                                            e.state.key)))
+    return out, Message(alert_key=f"digest:{first.state.key}", transition=first.seq,
+                        kind="digest", priority=PRIORITY["digest"] if n_open else
+                        PRIORITY["resolved"], rig=rigs[0] if len(rigs) == 1 else "*",
+                        title=title, body=body)
+
+
+# --- message text ---------------------------------------------------------------------------------
+
+_HEAD = {"opened": "OPEN", "late": "OPEN (held back until now)", "reminder": "STILL BAD",
+         "resolved": "RESOLVED", "unstable": "UNSTABLE"}
+_KIND = {"opened": "firing", "late": "firing", "reminder": "reminder", "resolved": "resolved",
+         "unstable": "unstable"}
+
+
+def _when(t: float | None) -> str:
+    if t is None:
+        return "-"
+    return datetime.fromtimestamp(t, tz=timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+
+
+def _value(s: AlertState) -> str:
+    return "-" if s.value is None else f"{s.value:.4g} {s.unit}".strip()
+
+
+def _what(s: AlertState) -> str:
+    where = "" if s.channel < 0 else f" channel {s.channel}"
+    return f"{s.measure}{where}" if s.measure != "file" else "file intake"
+
+
+def _describe(e: _Event) -> str:
+    s = e.state
+    lines = [f"{_HEAD[e.what]}: {_what(s)} on rig {s.rig} ({s.mode}; rule {s.rule}, {s.severity})",
+             f"  file: {s.path}",
+             f"  value: {_value(s)}; limit: {s.limit_text}"]
+    if e.what == "resolved":
+        lines.append(f"  resolved after {s.clear_files} good files; open since {_when(s.opened_at)}")
+    elif e.what == "unstable":
+        lines.append("  this alert keeps opening and resolving: it stays open and quiet until "
+                     "it has been stable for a while")
+    elif e.what == "reminder":
+        lines.append(f"  open since {_when(s.opened_at)}, {s.bad_files} bad files so far")
+    elif e.what == "late":
+        lines.append(f"  open since {_when(s.opened_at)} (messages were held back: silence, "
+                     f"learning phase or a rig-level alert)")
+    if s.hint and e.what != "resolved":
+        lines.append(f"  {s.hint}")
+    return "\n".join(lines)
+
+
+def _title(rig: str, events: list[_Event]) -> str:
+    if len(events) == 1:
+        e = events[0]
+        s = e.state
+        verb = {"opened": "", "late": "", "reminder": "still ", "resolved": "resolved: ",
+                "unstable": "unstable: "}[e.what]
+        if e.what in ("opened", "late", "reminder"):
+            return f"qcd {rig}: {verb}{_what(s)} {s.limit_text.split(';')[0]}"[:120]
+        return f"qcd {rig}: {verb}{_what(s)}"[:120]
+    names = sorted({_what(e.state) for e in events})
+    n_res = sum(e.what == "resolved" for e in events)
+    head = f"{len(events) - n_res} alerts" if n_res < len(events) else f"{n_res} resolved"
+    return f"qcd {rig}: {head} ({', '.join(names)})"[:120]
+
+
+def _group(events: list[_Event], now: float) -> list[Message]:
+    """One message per rig for one file's events."""
+    by_rig: dict[str, list[_Event]] = {}
+    for e in events:
+        by_rig.setdefault(e.state.rig, []).append(e)
+    out = []
+    for rig, evs in sorted(by_rig.items()):
+        evs.sort(key=lambda e: (-PRIORITY[_KIND[e.what]], e.state.key))
+        first = min(evs, key=lambda e: (e.state.key, e.seq))
+        kinds = [_KIND[e.what] for e in evs]
+        kind = max(kinds, key=lambda k: PRIORITY[k])
+        body = "\n\n".join(_describe(e) for e in evs)
+        out.append(Message(alert_key=first.state.key, transition=first.seq, kind=kind,
+                           priority=PRIORITY[kind], rig=rig, title=_title(rig, evs), body=body))
+    return out

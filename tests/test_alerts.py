@@ -1,0 +1,241 @@
+"""alerts: the lifecycle semantics (open after for_files, clear after clear_files, flap guard,
+reminders, silences, inhibition, learning, digest), checked file by file with chosen times."""
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+from hypothesis import given, settings as hsettings, strategies as st
+
+from qcd.alerts import AlertState, advance, flush_digest, tick
+from qcd.config import RuleSettings
+from qcd.judge import Finding
+
+SET = RuleSettings()
+H = 3600.0
+
+
+def F(bad: bool, *, rule="hum_jump", kind="drift", measure="hum_rms", rig="rig-a", clear=True,
+      for_files=2, clear_files=3, repeat_h=24.0, learning=False, value=1.0, channel=0):
+    return Finding(rig=rig, mode="voltage_clamp", channel=channel, measure=measure, rule=rule,
+                   kind=kind, bad=bad, severity="warning", value=value, unit="pA",
+                   limit_text="normal 0.1-0.12 pA", hint="check grounding", clear=clear,
+                   for_files=for_files, clear_files=clear_files, repeat_h=repeat_h,
+                   learning=learning, path=f"/data/{rig}/cell.abf")
+
+
+@dataclass
+class Sil:
+    id: int
+    rig_glob: str
+    rule_glob: str
+    start_at: float
+    end_at: float | None
+    reason: str = ""
+
+
+def run(seq, *, states=None, silences=(), t0=0.0, dt=600.0, **kw):
+    """Feed one finding per file; return states, all messages and per-file message lists."""
+    states = dict(states or {})
+    per_file = []
+    now = t0
+    for bad in seq:
+        fs = bad if isinstance(bad, list) else [F(bad, **kw)]
+        states, msgs = advance(states, fs, silences, now, SET)
+        states = {k: v.to_dict() for k, v in states.items()}     # round-trip as the store does
+        per_file.append(msgs)
+        now += dt
+    return states, [m for ms in per_file for m in ms], per_file
+
+
+def test_opens_after_for_files_consecutive_bad_files_with_one_message():
+    _, msgs, per = run([True, False, True, True])
+    assert [len(m) for m in per] == [0, 0, 0, 1]          # suspect is never announced
+    (m,) = msgs
+    assert m.kind == "firing" and "rig-a" in m.title and "hum_rms" in m.title
+    assert "rig-a" in m.body and "/data/rig-a/cell.abf" in m.body and "1 pA" in m.body
+    assert "normal 0.1-0.12 pA" in m.body and "check grounding" in m.body
+
+
+def test_hard_limit_with_for_files_1_opens_at_once():
+    _, msgs, per = run([True], for_files=1, kind="limit", rule="gigaseal")
+    assert len(per[0]) == 1 and per[0][0].kind == "firing"
+
+
+def test_clears_after_clear_files_good_files_beyond_clear_level():
+    seq = [True, True] + [False] * 2 + [False] * 3
+    kws = {}
+    states, msgs, per = run(seq, **kws)
+    assert [len(m) for m in per] == [0, 1, 0, 0, 1, 0, 0]
+    assert per[4][0].kind == "resolved" and per[4][0].priority < per[1][0].priority
+
+
+def test_good_values_short_of_the_clear_level_keep_it_open():
+    states, _, _ = run([True, True])
+    fs = [F(False, clear=False)] * 5
+    states, _, per = run(fs and [[f] for f in fs], states=states, t0=1e5)
+    assert all(not m for m in per)
+    assert AlertState.from_dict(next(iter(states.values()))).state == "open"
+
+
+def test_resolved_only_for_announced_alerts():
+    silence = [Sil(1, "rig-a", "*", 0.0, 1e4)]
+    states, msgs, _ = run([True, True], silences=silence)
+    assert msgs == []
+    states, msgs, _ = run([False] * 3, states=states, silences=silence, t0=2e3)
+    assert msgs == []                                    # never announced: no resolved message
+
+
+def test_silence_suppresses_messages_but_state_runs_and_end_sends_one_message():
+    silence = [Sil(1, "rig-*", "hum_*", 0.0, 5000.0)]
+    states, msgs, _ = run([True, True, True], silences=silence)
+    assert msgs == []
+    s = AlertState.from_dict(next(iter(states.values())))
+    assert s.state == "open" and not s.announced and s.muted == "silence"
+    states2, msgs = tick(states, silence, 4000.0, SET)        # still silenced
+    assert msgs == []
+    states2, msgs = tick(states, silence, 6000.0, SET)        # silence over: one message
+    assert len(msgs) == 1 and msgs[0].kind == "firing" and "held back" in msgs[0].body
+    states3, msgs = tick({k: v.to_dict() for k, v in states2.items()}, silence, 7000.0, SET)
+    assert msgs == []                                         # and only one
+
+
+def test_silence_for_other_rule_or_rig_does_not_mute():
+    _, msgs, _ = run([True, True], silences=[Sil(1, "rig-b", "*", 0, None), Sil(2, "*", "seal*", 0, None)])
+    assert len(msgs) == 1
+
+
+def test_until_resolved_silence_covers_one_episode():
+    sil = [Sil(7, "rig-a", "*", 0.0, None)]
+    states, msgs, _ = run([True, True, True, False, False, False], silences=sil)
+    assert msgs == []
+    states, msgs, _ = run([True, True], states=states, silences=sil, t0=1e5)
+    assert len(msgs) == 1                                     # next episode is announced
+
+
+def test_reminder_only_after_repeat_hours_and_only_while_bad_files_arrive():
+    states, msgs, _ = run([True, True], dt=600.0)
+    assert len(msgs) == 1
+    # bad files every 2 h: reminders at most every 24 h
+    states, msgs, per = run([True] * 30, states=states, t0=1200.0, dt=2 * H)
+    assert [m.kind for m in msgs] == ["reminder", "reminder"]
+    sent = [i for i, m in enumerate(per) if m]
+    assert (sent[1] - sent[0]) * 2 * H >= 24 * H
+    # no files for 3 days, then a good-but-not-clear file: no reminder without a bad file
+    states, msgs, _ = run([[F(False, clear=False)]], states=states, t0=1e6)
+    assert msgs == []
+
+
+def test_flap_guard_sends_one_unstable_message_then_quiet_until_stable():
+    cycle = [True, False, False, False]                        # for 1 / clear 3: 2 changes per 4
+    states, msgs, per = run(cycle * 5, for_files=1)
+    kinds = [m.kind for m in msgs]
+    assert kinds.count("unstable") == 1
+    first_unstable = kinds.index("unstable")
+    assert all(k != "firing" and k != "resolved" for k in kinds[first_unstable + 1:])
+    s = AlertState.from_dict(next(iter(states.values())))
+    assert s.flapping and s.to_dict()["state"] == "open"
+    # stable (good) for 21 files: leaves the guard with one resolved message
+    states, msgs, _ = run([False] * 21, states=states, t0=1e6, for_files=1)
+    assert [m.kind for m in msgs] == ["resolved"]
+    assert not AlertState.from_dict(next(iter(states.values()))).flapping
+
+
+def test_one_file_with_many_findings_gives_one_message():
+    fs = [F(True, for_files=1, measure=m, rule=m + "_jump") for m in ("hum_rms", "noise_rms", "noise_pp")]
+    _, msgs = advance({}, fs, [], 0.0, SET)
+    (m,) = msgs
+    assert "3 alerts" in m.title and all(x in m.body for x in ("hum_rms", "noise_rms", "noise_pp"))
+
+
+def test_rig_level_finding_inhibits_measure_alerts_then_they_are_announced():
+    rigf = F(True, kind="rig", rule="clipping", measure="clipping_fraction", for_files=1)
+    hum = F(True, for_files=1)
+    states, msgs = advance({}, [rigf, hum], [], 0.0, SET)
+    (m,) = msgs
+    assert "clipping_fraction" in m.body and "hum_rms" not in m.body
+    states = {k: v.to_dict() for k, v in states.items()}
+    rig_ok = replace(rigf, bad=False)
+    for i in range(3):                                           # clipping clears after 3 files
+        states, msgs = advance(states, [rig_ok, hum], [], 600.0 * (i + 1), SET)
+        states = {k: v.to_dict() for k, v in states.items()}
+    bodies = "".join(m.body for m in msgs)
+    assert "RESOLVED: clipping_fraction" in bodies and "hum_rms" in bodies
+
+
+def test_hard_limit_alert_mutes_drift_on_same_measure():
+    lim = F(True, kind="limit", rule="access_high", measure="access_resistance", for_files=1)
+    drift = F(True, kind="drift", rule="access_rise", measure="access_resistance", for_files=1)
+    _, msgs = advance({}, [lim, drift], [], 0.0, SET)
+    (m,) = msgs
+    assert "rule access_high" in m.body and "access_rise" not in m.body
+
+
+def test_learning_phase_suppresses_drift_messages_but_state_runs():
+    states, msgs, _ = run([True, True, True], learning=True)
+    assert msgs == []
+    assert AlertState.from_dict(next(iter(states.values()))).state == "open"
+    states, msgs, _ = run([True], states=states, t0=1e4, learning=False)
+    assert len(msgs) == 1 and msgs[0].kind == "firing"
+
+
+def test_backlog_gives_one_digest():
+    states: dict = {}
+    for i in range(200):
+        fs = [F(i % 50 >= 10, rig=r, measure=m, rule=m + "_x") for r in ("rig-a", "rig-b")
+              for m in ("hum_rms", "noise_rms")]
+        states, msgs = advance(states, fs, [], float(i), SET, batch=True)
+        assert msgs == []
+        states = {k: v.to_dict() for k, v in states.items()}
+    states, digest = flush_digest(states, [], 300.0, SET)
+    assert digest is not None and digest.kind == "digest"
+    assert "4 open" in digest.title and "rig-a" in digest.title and "rig-b" in digest.title
+    states, again = flush_digest({k: v.to_dict() for k, v in states.items()}, [], 301.0, SET)
+    assert again is None
+
+
+def test_transitions_are_unique_per_key():
+    _, msgs, _ = run([True, True, False, False, False, True, True, False, False, False])
+    ids = [(m.alert_key, m.transition) for m in msgs]
+    assert len(ids) == 4 and len(set(ids)) == 4
+
+
+def test_state_dict_round_trips():
+    states, _, _ = run([True, True, True])
+    d = next(iter(states.values()))
+    assert AlertState.from_dict(d).to_dict() == d
+    for name in ("key", "rig", "mode", "channel", "measure", "rule", "state", "opened_at",
+                 "resolved_at", "announced"):
+        assert name in d
+
+
+@hsettings(max_examples=150, deadline=None)
+@given(st.lists(st.tuples(st.booleans(), st.booleans()), min_size=1, max_size=80),
+       st.integers(1, 3), st.integers(1, 4))
+def test_alerts_never_open_a_key_twice_without_a_resolve_between(seq, for_files, clear_files):
+    # SEMANTICS: opens after for_files consecutive bad files, clears after clear_files clear files
+    states: dict = {}
+    opened = False
+    bad_run = clear_run = 0
+    sent_open = 0
+    for i, (bad, clear) in enumerate(seq):
+        f = F(bad, clear=clear, for_files=for_files, clear_files=clear_files)
+        before = AlertState.from_dict(states[f.key]).state if f.key in states else "ok"
+        states, msgs = advance(states, [f], [], i * 60.0, SET)
+        s = states[f.key] if f.key in states else None
+        states = {k: v.to_dict() for k, v in states.items()}
+        after = s.state if s else "ok"
+        bad_run = bad_run + 1 if bad else 0
+        clear_run = (clear_run + 1 if (not bad and clear) else 0) if before == "open" else 0
+        if before != "open" and after == "open":
+            assert not opened, "opened twice without a resolve"
+            assert bad_run >= for_files
+            opened = True
+        if before == "open" and after != "open":
+            assert clear_run >= clear_files
+            opened = False
+        if before != "open" and bad_run >= for_files:
+            assert after == "open"
+        for m in msgs:
+            if m.kind == "firing":
+                sent_open += 1
+                assert opened
