@@ -176,11 +176,40 @@ def _cmd_scan(args: argparse.Namespace) -> int:
 
 
 def _cmd_watch(args: argparse.Namespace) -> int:
-    return _not_yet("watch")
+    from qcd import watch
+    from qcd.config import find_config, load_config, load_rules
+    from qcd.store import Store
+    cfg = load_config(find_config(args.config))
+    if not cfg.rigs:
+        raise ConfigError(cfg.path, "rig", "no [[rig]] tables: there is no folder to watch")
+    if args.workers < 0:
+        raise ConfigError(None, "--workers", f"expected 0 (automatic) or more, got {args.workers}")
+    rules = load_rules(cfg.rules)
+    log_path = watch.setup_logging(cfg.database, debug=args.debug)
+    sender = watch.make_sender(cfg)
+    with Store(cfg.database) as store:
+        service = watch.Service(cfg, store, rules, sender=sender,
+                                workers=args.workers or None, catch_up=not args.no_catch_up)
+        print(f"qcd watch: {len(cfg.rigs)} rig(s), database {cfg.database}, log {log_path}; "
+              f"stop with Ctrl-C", file=sys.stderr)
+        return service.run()
 
 
 def _cmd_status(args: argparse.Namespace) -> int:
-    return _not_yet("status")
+    import time
+    from qcd import watch
+    from qcd.config import find_config, load_config
+    from qcd.store import Store
+    cfg = load_config(find_config(args.config))
+    if not cfg.database.is_file():
+        print(f"qcd status: no database at {cfg.database}: the service has never run with "
+              f"this config", file=sys.stderr)
+        return EXIT_FAILED
+    with Store(cfg.database) as store:
+        now = time.time()
+        st = watch.status(store, now)
+    print(watch.format_status(st, now))
+    return EXIT_OK if st["alive"] else EXIT_FAILED
 
 
 def _report_store(args: argparse.Namespace, name: str):

@@ -30,7 +30,7 @@ from watchdog.observers.polling import PollingObserver
 from qcd.intake import GaveUp, Intake, Ready, is_candidate_name
 
 __all__ = ["Service", "status", "format_status", "setup_logging", "is_network_path",
-           "scan_folder", "default_workers", "LOG_NAME"]
+           "scan_folder", "default_workers", "make_sender", "LOG_NAME"]
 
 log = logging.getLogger("qcd.watch")
 
@@ -203,13 +203,35 @@ def _error_measures(path: Path, kind: str, reason: str, size: int = -1, mtime: f
                         size=size if size >= 0 else None, mtime=mtime if mtime >= 0 else None)
 
 
-def _pipeline_commit(store, rules, sender) -> Callable:
-    """The one writer's commit: pipeline.commit(fm, rig, store, rules, now)."""
+def _pipeline_commit(store, rules) -> Callable:
+    """The one writer's commit: pipeline.commit(fm, rig, store, rules, now[, batch=])."""
+    import inspect
     from qcd import pipeline
+    takes_batch = "batch" in inspect.signature(pipeline.commit).parameters
 
-    def commit(fm, rig, now):
+    def commit(fm, rig, now, batch=False):
+        if takes_batch:
+            return pipeline.commit(fm, rig, store, rules, now, batch=batch)
         return pipeline.commit(fm, rig, store, rules, now)
     return commit
+
+
+def _pipeline_digest(store, rules) -> Callable | None:
+    from qcd import pipeline
+    flush = getattr(pipeline, "flush_digest", None)
+    if flush is None:
+        return None
+    return lambda now: flush(store, rules, now)
+
+
+def make_sender(config: Any):
+    """The notification sender for the config's targets, or None when there are none."""
+    if not config.notify and config.notify_config is None:
+        log.warning("no notification targets configured: alerts are stored but not sent")
+        return None
+    from qcd import notify
+    factory = getattr(notify.Sender, "from_config", None)
+    return factory(config) if factory else notify.Sender(config.notify, config.notify_config)
 
 
 @dataclass
@@ -265,7 +287,8 @@ class Service:
                  beat_s: float = 5.0, rescan_s: float = 300.0, folder_check_s: float = 2.0,
                  poll_interval_s: float = 1.0, stat=os.stat,
                  commit: Callable | None = None, measure: Callable | None = None,
-                 deliver: Callable | None = None, progress_tty: bool | None = None) -> None:
+                 deliver: Callable | None = None, digest: Callable | None = None,
+                 progress_tty: bool | None = None) -> None:
         self.config, self.store, self.rules, self.sender = config, store, rules, sender
         self.workers = default_workers() if workers is None else max(0, int(workers))
         self.catch_up = catch_up
@@ -280,7 +303,13 @@ class Service:
         self._folders = [_FolderWatch(r, Path(os.path.abspath(f)), self._events,
                                       poll_interval_s=poll_interval_s)
                          for r in config.rigs for f in r.folders]
-        self._commit = commit or _pipeline_commit(store, rules, sender)
+        if commit is None:
+            self._commit = _pipeline_commit(store, rules)
+            self._digest = digest or _pipeline_digest(store, rules)
+        else:
+            self._commit, self._digest = commit, digest
+        self._batch_pending = False         # backlog files were committed without messages
+        self._seen: dict[tuple[str, Path], tuple[int, float]] = {}
         self._measure_inline = measure
         self._deliver = deliver
         self._pool: cf.ProcessPoolExecutor | None = None
@@ -305,6 +334,8 @@ class Service:
             fw.ensure()
         self._last_folder_check = now
         if self.catch_up:
+            # also flushes what a run killed mid-backlog left unannounced
+            self._batch_pending = self._digest is not None
             n = self._scan_all(now, live=False)
             log.info("start-up: %d file(s) to catch up on", n)
             if n:
@@ -382,6 +413,7 @@ class Service:
         for r in ready:
             self._submit(r, now)
         busy |= self._collect(now)
+        self._flush_digest(now)
         if self._deliver is not None or self.sender is not None:
             try:
                 (self._deliver or self._deliver_due)(now)
@@ -429,6 +461,9 @@ class Service:
         return None
 
     def _needs_measuring(self, rig: str, path: Path, st: os.stat_result) -> bool:
+        # files committed in this run (a copy of content already stored has no row of its own)
+        if self._seen.get((rig, path)) == (st.st_size, st.st_mtime):
+            return False
         state = self.store.file_state(rig, os.fspath(path))
         return state is None or state.size != st.st_size or state.mtime != st.st_mtime
 
@@ -534,12 +569,14 @@ class Service:
             self.intake.offer(r.rig, r.path, now, live=True)
             return
         rig = self._rigs[r.rig]
+        batch = (r.rig, r.path) in self._backlog_keys
         try:
-            self._commit(fm, rig, now)
+            self._call_commit(fm, rig, now, batch)
         except Exception:
             log.exception("storing %s failed; it will be measured again", r.path)
             self.intake.offer(r.rig, r.path, now + 30.0, live=r.live)
             return
+        self._seen[(r.rig, r.path)] = (r.size, r.mtime)
         self._backlog_done(r)
         if getattr(fm, "status", "ok") == "ok":
             self.counts["measured"] += 1
@@ -556,12 +593,19 @@ class Service:
         self.counts["never_settled"] += 1
         fm = _error_measures(g.path, "never_settled", g.reason, g.size, g.mtime)
         try:
-            self._commit(fm, self._rigs[g.rig], now)
+            self._call_commit(fm, self._rigs[g.rig], now, (g.rig, g.path) in self._backlog_keys)
             self._last_file[g.rig] = {"path": os.fspath(g.path), "at": now, "status": "error"}
             self._backlog_done(Ready(g.rig, g.path, g.size, g.mtime, False))
         except Exception:
             log.exception("storing the never_settled error of %s", g.path)
         log.warning("%s", g.reason)
+
+    def _call_commit(self, fm: Any, rig: Any, now: float, batch: bool) -> None:
+        if batch and self._digest is not None:
+            self._batch_pending = True
+            self._commit(fm, rig, now, batch=True)
+        else:
+            self._commit(fm, rig, now)
 
     def _backlog_done(self, r: Ready) -> None:
         key = (r.rig, r.path)
@@ -569,6 +613,15 @@ class Service:
             self._backlog_keys.discard(key)
             if self.progress.total:
                 self.progress.done += 1
+
+    def _flush_digest(self, now: float) -> None:
+        """After the backlog: one digest message instead of one per file."""
+        if self._batch_pending and not self._backlog_keys and self._digest is not None:
+            self._batch_pending = False
+            try:
+                self._digest(now)
+            except Exception:
+                log.exception("writing the catch-up digest")
 
     # -- heartbeat
 
