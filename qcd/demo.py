@@ -49,15 +49,15 @@ _FIELD_DURATION_S = 8.0
 def cell_step_current(t_s: np.ndarray, dv: float, ra: float, rm: float, cm: float) -> np.ndarray:
     """Current (A) of Ra in series with Rm||Cm after an ideal voltage step dv at t = 0.
 
-    I(t) = dv/Rt + (dv/Ra - dv/Rt) exp(-t/tau), Rt = Ra + Rm, tau = Cm Ra Rm / Rt; zero before
-    the step. Source: the time-domain test-pulse method (Lindau & Neher 1988); closed form
+    I(t) = dv/Rt + (dv/Ra - dv/Rt) exp(-t/tau), Rt = Ra + Rm, tau = Cm Ra Rm / Rt; zero up to
+    and at t = 0 (a sample on the boundary sees the old level). Source: the time-domain test-pulse method (Lindau & Neher 1988); closed form
     derived in METHODS.md section 1.1.
     """
     t = np.asarray(t_s, dtype=float)
     rt = ra + rm
     tau = cm * ra * rm / rt
     i = dv / rt + (dv / ra - dv / rt) * np.exp(-np.clip(t, 0.0, None) / tau)
-    return np.where(t >= 0.0, i, 0.0)
+    return np.where(t > 0.0, i, 0.0)
 
 
 def seal_step_current(t_s: np.ndarray, dv: float, rseal: float) -> np.ndarray:
@@ -67,9 +67,14 @@ def seal_step_current(t_s: np.ndarray, dv: float, rseal: float) -> np.ndarray:
 
 
 def bessel_lowpass(x: np.ndarray, fs: float, fc: float, poles: int = 4) -> np.ndarray:
-    """Causal Bessel low-pass, -3 dB at fc (scipy.signal.bessel, norm='mag'), unity DC gain."""
-    from scipy.signal import bessel, sosfilt
-    sos = bessel(poles, fc, btype="low", norm="mag", fs=fs, output="sos")
+    """Analog Bessel low-pass, -3 dB at fc (scipy.signal.bessel, norm='mag'), unity DC gain,
+    applied to samples at fs by first-order-hold discretisation (exact for an input that is
+    linear between samples, as scipy.signal.lsim assumes)."""
+    from scipy.signal import bessel, cont2discrete, sosfilt, zpk2sos
+    z, p, k = bessel(poles, 2.0 * np.pi * fc, btype="low", analog=True, norm="mag",
+                     output="zpk")
+    zd, pd, kd, _ = cont2discrete((z, p, k), 1.0 / fs, method="foh")
+    sos = zpk2sos(np.atleast_1d(zd), pd, float(np.real(kd)))
     return sosfilt(sos, x, axis=-1)
 
 
@@ -104,10 +109,12 @@ def whole_cell_sweeps(rng: np.random.Generator, *, n_sweeps: int, fs: float, fc:
                       hum_phase: float = 0.0, t0_s: float = 0.0) -> np.ndarray:
     """Voltage-clamp sweeps (A): holding + filtered test-step response + noise + hum."""
     n = int(round(_SWEEP_S * fs))
-    over = 8                                   # simulate the cell at 8x, filter, then sample
-    tf = np.arange(n * over) / (fs * over) - _STEP_START_S
-    step = (cell_step_current(tf, _WHOLE_CELL_STEP_V, ra, rm, cm)
-            - cell_step_current(tf - _STEP_LEN_S, _WHOLE_CELL_STEP_V, ra, rm, cm))
+    over = 40                                  # simulate the cell at 40x, filter, then sample
+    on, length = round(_STEP_START_S * fs) * over, round(_STEP_LEN_S * fs) * over
+    k = np.arange(n * over)                    # integer grid: the onset falls exactly on t = 0
+    step = (cell_step_current((k - on) / (fs * over), _WHOLE_CELL_STEP_V, ra, rm, cm)
+            - cell_step_current((k - on - length) / (fs * over), _WHOLE_CELL_STEP_V, ra, rm,
+                                cm))
     clean = bessel_lowpass(step, fs * over, fc)[::over]
     t = np.arange(n) / fs
     out = np.empty((n_sweeps, n))
