@@ -199,33 +199,33 @@ def mains_family_db(freqs: np.ndarray, psd: np.ndarray, k_segments: int = 1) -> 
 
 
 def _refine(freqs, psd, nominal, df, floor_fix, max_hz) -> float:
-    """f0 from Hann peak interpolation of each clear harmonic, weighted by P_h h^2."""
+    """f0 from Hann peak interpolation of harmonics 1-5 that stand clear of the floor,
+    weighted by P_h h^2 (a higher harmonic pins f0 h times tighter). Only h <= 5 is used so a
+    strong non-mains line near a high harmonic cannot pull the estimate."""
     num, den = 0.0, 0.0
-    h = 1
-    while h * nominal <= max_hz and h * nominal < 0.9 * freqs[-1]:
+    for h in range(1, 6):
         centre = h * nominal
+        if centre > max_hz or centre >= 0.9 * freqs[-1]:
+            break
         half = max(3 * df, centre * SEARCH_DEVIATION)
         sel = np.flatnonzero(np.abs(freqs - centre) <= half)
         p, floor, nb = _harmonic_power(freqs, psd, centre, half, floor_fix)
-        if len(sel) >= 3 and p > 0:
-            k = int(sel[np.argmax(psd[sel])])
-            if 0 < k < len(psd) - 1:
-                mag = np.sqrt(np.maximum(psd[k - 1:k + 2] - floor, 0.0))
-                if mag[1] > 0 and p > 25 * floor * df:
-                    # Hann-window interpolation (Grandke 1983): delta = (2a-1)/(a+1),
-                    # a = |X_{k+-1}|/|X_k| on the larger side; exact for one tone.
-                    if mag[2] >= mag[0]:
-                        a = mag[2] / mag[1]
-                        delta = (2 * a - 1) / (a + 1)
-                    else:
-                        a = mag[0] / mag[1]
-                        delta = -(2 * a - 1) / (a + 1)
-                    delta = float(np.clip(delta, -1.0, 1.0))
-                    f_h = freqs[k] + delta * df
-                    w = p * h * h
-                    num += w * f_h / h
-                    den += w
-        h += 1
+        if len(sel) < 3 or p <= 25 * floor * df:
+            continue
+        k = int(sel[np.argmax(psd[sel])])
+        if not 0 < k < len(psd) - 1:
+            continue
+        mag = np.sqrt(np.maximum(psd[k - 1:k + 2] - floor, 0.0))
+        if mag[1] <= 0:
+            continue
+        # Hann-window interpolation (Grandke 1983): delta = (2a-1)/(a+1), a = |X_{k+-1}|/|X_k|
+        # on the larger side; exact for one tone without noise.
+        side = 1.0 if mag[2] >= mag[0] else -1.0
+        a = (mag[2] if side > 0 else mag[0]) / mag[1]
+        delta = side * float(np.clip((2 * a - 1) / (a + 1), 0.0, 1.0))
+        w = p * h * h
+        num += w * (freqs[k] + delta * df) / h
+        den += w
     if den == 0:
         return nominal
     f0 = num / den
