@@ -200,15 +200,15 @@ class Recording:
         a, b = self._span(channel, sweep, start, stop)
         ch = self.channels[channel]
         gain, offset = ch.gain, ch.offset
-        scale = not (gain == 1.0 and offset == 0.0)
         for view in self._raw_windows(channel, a, b, size):
-            out = np.empty(view.shape[0], dtype=np.float64)
             with np.errstate(all="ignore"):  # float samples may hold NaN/inf: passed through
-                if scale:
-                    np.multiply(view, gain, out=out)
+                # a plain cast, then scale in place: measured faster than a mixed-type
+                # multiply, a lookup table or cache-sized blocks
+                out = view.astype(np.float64)
+                if gain != 1.0:
+                    out *= gain
+                if offset != 0.0:
                     out += offset
-                else:
-                    out[:] = view
             yield out
 
     def sweep(self, channel: int, k: int) -> np.ndarray:
