@@ -171,8 +171,116 @@ def _not_yet(name: str) -> int:
     return EXIT_USAGE
 
 
+def _scan_files(paths: list[Path]) -> list[Path]:
+    """Files named and *.abf files under folders (recursive, sorted), in argument order.
+
+    ConfigError (exit 2) for a path that does not exist."""
+    out: list[Path] = []
+    seen: set[Path] = set()
+    for p in paths:
+        if p.is_dir():
+            found = sorted(q for q in p.rglob("*") if q.suffix.lower() == ".abf"
+                           and not q.is_dir())
+        elif p.exists():
+            found = [p]
+        else:
+            raise ConfigError(None, "", f"no such file or folder: {p}")
+        for q in found:
+            if q not in seen:
+                seen.add(q)
+                out.append(q)
+    return out
+
+
+def _scan_one(job: tuple) -> object:
+    """Measure one file (runs in a worker process with --workers)."""
+    from qcd.analyze import analyze_path
+    path, pulse, mains_hz = job
+    return analyze_path(path, pulse=pulse, mains_hz=mains_hz, digest=False)
+
+
+_SCAN_MODES = {"voltage_clamp": "VC", "current_clamp": "CC", "extracellular": "EXT",
+               "unknown": "?"}
+
+
+def _scan_value(ms: dict, name: str, digits: int = 3) -> str:
+    m = ms.get(name)
+    if m is None:
+        return "-"
+    return f"{m.value:.{digits}g} {m.unit}".strip()
+
+
+def _scan_row(fm: object, width: int = 26) -> str:
+    """One line of the scan table (fits 100 columns)."""
+    name = Path(fm.path).name
+    name = name if len(name) <= width else name[:width - 1] + "~"
+    if fm.status != "ok":
+        err = (fm.error or "").replace(str(fm.path) + ": ", "")
+        return f"{name:<{width}} {'':4} error: {err}"[:100]
+    prim = fm.extra.get("primary_channel")
+    chans = {c.index: c for c in fm.channels}
+    ch = chans.get(prim) or (fm.channels[0] if fm.channels else None)
+    ms = ch.measures if ch else {}
+    hum = "-"
+    if "hum_rms" in ms and "line_hz" in ms:
+        hum = f"{_scan_value(ms, 'hum_rms')}@{ms['line_hz'].value:.4g}"
+    if "access_resistance" in ms:
+        tp = (f"Ra {ms['access_resistance'].value:.3g}/Rm {ms['membrane_resistance'].value:.3g}"
+              f" MOhm Cm {_scan_value(ms, 'membrane_capacitance')}"
+              if "membrane_resistance" in ms else f"Ra {_scan_value(ms, 'access_resistance')}")
+    elif "seal_resistance" in ms:
+        tp = f"seal {_scan_value(ms, 'seal_resistance')}"
+    elif "input_resistance" in ms:
+        tp = f"Rin {_scan_value(ms, 'input_resistance')}"
+    else:
+        tp = "-"
+    return (f"{name:<{width}} {_SCAN_MODES.get(fm.mode, '?'):<4}"
+            f"{_scan_value(ms, 'noise_rms'):>10} {_scan_value(ms, 'noise_rms_1k'):>10} "
+            f"{hum:>16} {tp:<28}")[:100]
+
+
 def _cmd_scan(args: argparse.Namespace) -> int:
-    return _not_yet("scan")
+    if args.store:
+        # hook for the store/judge/alert path (qcd.pipeline); it needs --rig and a config
+        print("qcd scan --store: needs --rig and a config (storing from scan is not available "
+              "in this build yet)", file=sys.stderr)
+        return EXIT_USAGE
+    import json
+    from concurrent.futures import ProcessPoolExecutor
+
+    from qcd.config import parse_pulse
+    pulse = parse_pulse(args.pulse) if args.pulse else None
+    if args.workers < 1:
+        raise ConfigError(None, "workers", f"needs at least 1, got {args.workers}")
+    files = _scan_files(list(args.paths))
+    jobs = [(f, pulse, args.mains) for f in files]
+    progress = sys.stderr.isatty() and len(files) > 1
+    if not args.json:
+        print(f"{'file':<26} {'mode':<4}{'noise_rms':>10} {'rms_1k':>10} {'hum@line_hz':>16} "
+              f"{'test pulse':<28}")
+    failed = 0
+    pool = ProcessPoolExecutor(max_workers=args.workers) if args.workers > 1 else None
+    try:
+        results = pool.map(_scan_one, jobs) if pool else map(_scan_one, jobs)
+        for i, fm in enumerate(results, 1):
+            if progress:
+                print("\r" + " " * 79 + "\r", end="", file=sys.stderr)
+            failed += fm.status != "ok"
+            if args.json:
+                print(json.dumps(fm.to_json()), flush=True)
+            else:
+                print(_scan_row(fm), flush=True)
+            if progress and i < len(files):
+                print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
+                      file=sys.stderr, flush=True)
+    finally:
+        if pool:
+            pool.shutdown(cancel_futures=True)
+    if progress:
+        print("\r" + " " * 79 + "\r", end="", file=sys.stderr, flush=True)
+    if not files:
+        print("qcd scan: no *.abf files found", file=sys.stderr)
+    return EXIT_FAILED if failed else EXIT_OK
 
 
 def _cmd_watch(args: argparse.Namespace) -> int:
