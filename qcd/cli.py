@@ -497,7 +497,17 @@ def _cmd_init(args: argparse.Namespace) -> int:
 
 
 def _cmd_notify_test(args: argparse.Namespace) -> int:
-    return _not_yet("notify-test")
+    from qcd.config import find_config, load_config
+    from qcd.notify import Sender
+    cfg = load_config(find_config(args.config))
+    if not cfg.notify and cfg.notify_config is None:
+        raise ConfigError(cfg.path, "notify", "no notification targets configured")
+    results = Sender.from_config(cfg).test()
+    for target, ok in results:              # targets are redacted by the Sender
+        print(f"{'accepted' if ok else 'FAILED  '}  {target}")
+    failed = sum(not ok for _, ok in results)
+    print(f"{len(results) - failed} of {len(results)} targets accepted the test message")
+    return EXIT_FAILED if failed else EXIT_OK
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:

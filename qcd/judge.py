@@ -163,9 +163,17 @@ _HINTS = {
 _HINT_MEASURES = {
     "hum_rms": _MAINS, "hum_fundamental_rms": _MAINS, "hum_fraction": _MAINS,
     "band_rms_1k_corner": "high", "band_rms_70_1k": "mid", "band_rms_10_70": "mech",
-    "spectral_lines": "lines", "band_rms_0.5_10": "low", "baseline_drift": "low",
+    "band_rms_0.5_10": "low", "baseline_drift": "low",
 }
 _NOISE_MEASURES = {"noise_rms", "noise_rms_1k", "noise_pp", "pp_over_rms"} | set(_HINT_MEASURES)
+
+
+def _number(v: Any) -> float | None:
+    """A finite float of a measure value; None for bools, lists, text and NaN."""
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return None
+    v = float(v)
+    return v if math.isfinite(v) else None
 _GROWN_Z = 3.0          # a band "grew" at robust z > 3 on log values ...
 _GROWN_RATIO = 1.5      # ... and at least 1.5x its median (common practice, not a published rule)
 
@@ -183,11 +191,18 @@ def _hint_text(groups: Sequence[str]) -> str:
 def noise_hints(ch: Any, mode: str, history: History, rules: Rules) -> list[str]:
     """Hint groups of the bands that grew against the rig's history, biggest growth first."""
     grown: dict[str, float] = {}
+    lines = ch.measures.get("spectral_lines")
+    noise = _number(ch.measures["noise_rms"].value) if "noise_rms" in ch.measures else None
+    if lines is not None and isinstance(lines.value, (list, tuple)) and noise:
+        # strongest non-mains line carrying >= 30 % of the baseline RMS (common practice)
+        rms = [float(x[1]) for x in lines.value if isinstance(x, (list, tuple)) and len(x) >= 2]
+        if rms and max(rms) >= 0.3 * noise:
+            grown["lines"] = _GROWN_Z
     for name, group in _HINT_MEASURES.items():
         m = ch.measures.get(name)
-        if m is None or isinstance(m.value, bool):
+        value = _number(m.value) if m is not None else None
+        if value is None:
             continue
-        value = float(m.value)
         if name == "baseline_drift":
             value = abs(value)
         past = [abs(v) if name == "baseline_drift" else v for v in
@@ -248,6 +263,8 @@ def _to_si(value: float, unit: str) -> tuple[float, str]:
 
 def _limit(rule: LimitRule, m: Any) -> tuple[bool, bool] | None:
     """(bad, clear) for one measure against a fixed limit; None when the rule cannot apply."""
+    if not isinstance(m.value, (bool, int, float)):
+        return None
     if rule.equals is not None:
         is_true = bool(m.value)
         return is_true == rule.equals, is_true != rule.equals
@@ -352,13 +369,13 @@ def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list
                     rig=rig_name, mode=mode, channel=ch.index, measure=m.name, rule=rule.name,
                     kind="rig" if rule.scope == "rig" else "limit", bad=bad,
                     severity=rule.severity,
-                    value=float(m.value) if not isinstance(m.value, bool) else float(m.value),
+                    value=float(m.value),
                     unit=m.unit, limit_text=rule.text, hint=hint, clear=clear_ok,
                     for_files=rule.for_files, clear_files=rule.clear_files,
                     repeat_h=rule.repeat_h, path=path))
             hist_rules = [r for r in rules.history
                           if r.measure == m.name and _matches(r.modes, mode)]
-            if not hist_rules or isinstance(m.value, bool):
+            if not hist_rules or _number(m.value) is None:
                 continue
             past = _values(history(mode, ch.index, m.name), st.history_files)
             seen = max(seen, len(past))

@@ -61,3 +61,43 @@ def no_leaked_threads():
             break
         time.sleep(0.05)
     assert not extra, f"threads left running: {[t.name for t in extra]}"
+
+
+# --- loopback notification sinks (tests/sinks.py) ----------------------------------------------
+
+@pytest.fixture(scope="session")
+def apprise_pools():
+    """Start apprise's process-wide worker pools once, at full size, before any test snapshot.
+
+    apprise 2.x sends through shared ThreadPoolExecutors that live for the whole process and
+    grow on demand; filling them up front keeps the leaked-thread guard about the test's own
+    threads.
+    """
+    import apprise.apprise as _ap
+    import apprise.utils.http as _http
+    for pool in (_ap.get_shared_executor(), _ap.get_coordinator_executor(), _http._DNS_POOL):
+        n = pool._max_workers
+        gate = threading.Barrier(n + 1)
+        futures = [pool.submit(gate.wait, 10) for _ in range(n)]
+        gate.wait(10)
+        for f in futures:
+            f.result(10)
+    yield
+
+
+@pytest.fixture
+def http_sink(apprise_pools):
+    """A JSON webhook on 127.0.0.1 recording what apprise posts (``.url`` is its apprise URL)."""
+    from sinks import HttpSink
+    sink = HttpSink().start()
+    yield sink
+    sink.stop()
+
+
+@pytest.fixture
+def smtp_sink(apprise_pools):
+    """An SMTP server on 127.0.0.1 (aiosmtpd) recording the mails (``.url`` is a mailto URL)."""
+    from sinks import SmtpSink
+    sink = SmtpSink().start()
+    yield sink
+    sink.stop()

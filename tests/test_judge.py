@@ -240,3 +240,15 @@ def test_later_rule_file_overrides_and_disables(tmp_path: Path):
     names = {x.name: x for x in r.limits}
     assert "gigaseal" not in names and names["access_high"].above == pytest.approx(20e6)
     assert r.settings.learning_files == 5 and r.settings.clear_files == 3
+
+
+def test_strong_non_mains_line_suggests_switching_supplies(rules):
+    past = [1.0, 1.05, 0.95, 1.0, 1.02, 0.98, 1.01, 0.99, 1.03, 0.97, 1.0]
+    fm = _fm({"noise_rms": (3.0, "pA")})
+    ch = fm.channels[0]
+    ch.measures["spectral_lines"] = Measure("spectral_lines", [[1234.5, 1.2], [3000.0, 0.1]], "pA")
+
+    def history(mode, channel, name):
+        return [(1000.0 - i, v) for i, v in enumerate(past)] if name == "noise_rms" else []
+    f = _by_rule(judge(fm, "r", history, rules, 0))
+    assert f["noise_jump"].bad and "switching power supplies" in f["noise_jump"].hint

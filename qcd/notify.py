@@ -1,0 +1,162 @@
+"""Outbox -> apprise: send due rows, retry with back-off, mark stuck after a day; notify-test.
+
+Delivery is at least once: a row is marked sent right after apprise reports success, so only a
+crash between the send and that mark can send it again (once) on the next start; a failed send
+stays pending and is retried (30 s doubling to 1 h), and after 24 h it is marked ``stuck``,
+never dropped. Imports apprise, qcd.config (redact), qcd.errors.
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+from typing import Any, Iterable
+
+import apprise
+
+from qcd.config import redact, redact_text
+from qcd.errors import DeliveryError
+
+__all__ = ["Sender", "SendResult", "Delivery", "deliver_due", "backoff_s", "BACKOFF_START_S",
+           "BACKOFF_CAP_S", "STUCK_AFTER_S"]
+
+log = logging.getLogger(__name__)
+
+BACKOFF_START_S = 30.0
+BACKOFF_CAP_S = 3600.0
+STUCK_AFTER_S = 24 * 3600.0
+
+_TYPE = {"firing": apprise.NotifyType.WARNING, "unstable": apprise.NotifyType.WARNING,
+         "digest": apprise.NotifyType.WARNING, "reminder": apprise.NotifyType.INFO,
+         "resolved": apprise.NotifyType.SUCCESS, "test": apprise.NotifyType.INFO}
+
+
+def backoff_s(attempts: int) -> float:
+    """Wait before the next try after ``attempts`` failed ones: 30 s, 60 s, ... capped at 1 h."""
+    return min(BACKOFF_START_S * 2.0 ** max(0, int(attempts)), BACKOFF_CAP_S)
+
+
+@dataclass(frozen=True)
+class SendResult:
+    ok: bool
+    status: str               # SUCCESS, FAILURE, PARTIAL, TIMEOUT
+    detail: str               # redacted reasons from apprise's log, '' on success
+
+
+@dataclass(frozen=True)
+class Delivery:
+    """What one deliver_due call did."""
+    sent: int = 0
+    retried: int = 0
+    stuck: int = 0
+
+
+def _status_name(result: Any) -> str:
+    status = getattr(result, "status", None)
+    if status is None:                       # apprise 1.x: True/False/None
+        return {True: "SUCCESS", False: "FAILURE", None: "NOMATCH"}.get(result, "FAILURE")
+    return getattr(status, "name", str(status))
+
+
+class Sender:
+    """All configured apprise targets as one: URLs and/or an apprise config file."""
+
+    def __init__(self, urls: Iterable[str] = (), config_path: Any = None) -> None:
+        self._urls = tuple(str(u) for u in urls)
+        self._apprise = apprise.Apprise()
+        for url in self._urls:
+            if not self._apprise.add(url):
+                raise DeliveryError(f"notification target not understood by apprise: {redact(url)}")
+        if config_path is not None:
+            cfg = apprise.AppriseConfig()
+            if not cfg.add(str(config_path)):
+                raise DeliveryError(f"{config_path}: apprise config file cannot be read")
+            self._apprise.add(cfg)
+        if len(self._apprise) == 0:
+            where = f" (config file {config_path} has no valid URL)" if config_path else ""
+            raise DeliveryError("no notification targets configured" + where)
+
+    @classmethod
+    def from_config(cls, config: Any) -> "Sender":
+        """From ``Config.notify`` URLs and ``Config.notify_config``."""
+        return cls(getattr(config, "notify", ()) or (), getattr(config, "notify_config", None))
+
+    def targets(self) -> list[str]:
+        """The targets, redacted (safe to print)."""
+        return [redact(s.url(privacy=True)) for s in self._apprise]
+
+    def _clean(self, text: str) -> str:
+        return redact_text(text, list(self._urls))
+
+    def send(self, title: str, body: str, kind: str = "firing") -> SendResult:
+        """Send to every target; DeliveryError when no target matched (a configuration error)."""
+        result = self._apprise.notify(body=body, title=title,
+                                      notify_type=_TYPE.get(kind, apprise.NotifyType.INFO))
+        status = _status_name(result)
+        if status == "NOMATCH":
+            raise DeliveryError("no notification target matched (check the configured URLs)")
+        ok = bool(result)
+        detail = ""
+        if not ok:
+            msgs = []
+            logs = getattr(result, "logs", None)
+            for entry in (logs() if callable(logs) else ()):
+                if getattr(entry, "level", "") in ("WARNING", "ERROR", "CRITICAL"):
+                    msgs.append(str(getattr(entry, "message", entry)))
+            detail = self._clean("; ".join(msgs) or f"apprise status {status}")
+        return SendResult(ok, status, detail)
+
+    def test(self, title: str = "qcd test message",
+             body: str = "This is a test message from qcd: the target is reachable.") -> list[tuple[str, bool]]:
+        """Send a test message to each target on its own: [(redacted target, accepted)]."""
+        out = []
+        for service in self._apprise:
+            try:
+                ok = bool(service.notify(body=body, title=title,
+                                         notify_type=apprise.NotifyType.INFO))
+            except Exception:                # a plugin bug must not hide the other targets
+                log.exception("test message to %s", redact(service.url(privacy=True)))
+                ok = False
+            out.append((redact(service.url(privacy=True)), ok))
+        return out
+
+
+def _field(row: Any, name: str) -> Any:
+    return row[name] if isinstance(row, dict) else getattr(row, name)
+
+
+def deliver_due(store: Any, sender: Any, now: float, *, limit: int = 50) -> Delivery:
+    """Send the outbox rows due at ``now``; record sent, retry (back-off) or stuck.
+
+    After the first failed send the call stops, so a dead target costs one attempt per call,
+    not one per queued row.
+    """
+    sent = retried = stuck = 0
+    for row in store.outbox_due(now, limit=limit):
+        rid = _field(row, "id")
+        try:
+            res = sender.send(_field(row, "title") or "", _field(row, "body") or "",
+                              _field(row, "kind") or "firing")
+            ok, error = res.ok, res.detail
+        except DeliveryError as e:
+            ok, error = False, str(e)
+        except Exception as e:               # never let one row stop the service
+            log.exception("sending outbox row %s", rid)
+            ok, error = False, f"internal error while sending: {type(e).__name__}"
+        if ok:
+            store.mark_sent(rid, now)        # at once: a crash before this mark resends once
+            sent += 1
+            continue
+        created = float(_field(row, "created_at"))
+        attempts = int(_field(row, "attempts") or 0)
+        if now - created >= STUCK_AFTER_S:
+            store.mark_stuck(rid, now, error)
+            log.error("message %s (%s) undelivered for 24 h, marked stuck: %s", rid,
+                      _field(row, "title"), error)
+            stuck += 1
+        else:
+            wait = backoff_s(attempts)
+            store.mark_retry(rid, now, now + wait, error)
+            log.warning("message %s not delivered (%s); retry in %.0f s", rid, error, wait)
+            retried += 1
+        break
+    return Delivery(sent, retried, stuck)

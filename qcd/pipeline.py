@@ -1,0 +1,132 @@
+"""One home for the step order: analyze -> judge -> alerts -> store (one transaction) -> deliver.
+
+``process`` measures and commits one file; ``commit`` is the second half for a FileMeasures
+measured elsewhere (the service's workers); ``flush_digest`` ends a backlog with one message;
+``tick`` announces alerts whose silence ended. Only here are unexpected errors caught: a bad
+file becomes an error row, a bug becomes error_kind 'internal' (logged with its traceback).
+Imports qcd.analyze, qcd.judge, qcd.alerts, qcd.notify, qcd.errors.
+"""
+from __future__ import annotations
+
+import logging
+import os
+from dataclasses import replace
+from typing import Any
+
+from qcd import alerts
+from qcd.analyze import FileMeasures, analyze_path
+from qcd.errors import RecordingError, StoreError
+from qcd.judge import file_time, judge
+
+__all__ = ["process", "commit", "flush_digest", "tick", "judge_file"]
+
+log = logging.getLogger(__name__)
+
+
+def _error(path: Any, kind: str, reason: str, fm: FileMeasures | None = None) -> FileMeasures:
+    if fm is not None:
+        return replace(fm, status="error", error_kind=kind, error=reason)
+    return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind)
+
+
+def _rig_name(rig: Any) -> str:
+    return rig if isinstance(rig, str) else rig.name
+
+
+def judge_file(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float) -> list:
+    """The judge with the rig's history bound to the store (files recorded before this one)."""
+    st = rules.settings
+    name, before = _rig_name(rig), file_time(fm, now)
+
+    def history(mode: str, channel: int, measure: str) -> list[tuple[float, float]]:
+        return store.history(name, mode, channel, measure, limit=st.history_files,
+                             days=st.history_days, before=before)
+    return judge(fm, rig, history, rules, now)
+
+
+def _changed(before: dict[str, dict], after: dict[str, Any]) -> list[dict]:
+    out = []
+    for key, s in after.items():
+        d = s.to_dict()
+        if before.get(key) != d:
+            out.append(d)
+    return out
+
+
+def _deliver(store: Any, sender: Any, now: float) -> None:
+    if sender is None:
+        return
+    from qcd.notify import deliver_due
+    try:
+        deliver_due(store, sender, now)
+    except StoreError:
+        raise
+    except Exception:                        # delivery trouble never loses the stored file
+        log.exception("delivering notifications")
+
+
+def commit(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float, sender: Any = None,
+           *, batch: bool = False) -> FileMeasures:
+    """Judge a measured file, advance its rig's alerts and store it all in one transaction.
+
+    Never raises for a bad file; a StoreError (the database itself failing) propagates.
+    With ``batch`` no message is queued per file (see ``flush_digest``).
+    """
+    name = _rig_name(rig)
+    try:
+        findings = judge_file(fm, rig, store, rules, now)
+        before = store.alert_states(name)
+        states, messages = alerts.advance(before, findings, store.active_silences(now), now,
+                                          rules.settings, batch=batch)
+        changed = _changed(before, states)
+    except StoreError:
+        raise
+    except Exception as e:
+        log.exception("judging %s", fm.path)
+        fm = _error(fm.path, "internal", f"{fm.path}: internal error while judging "
+                                        f"({type(e).__name__}: {e})", fm)
+        findings, changed, messages = [], [], []
+    store.commit_file(name, fm, analysed_at=now, findings=findings, alert_states=changed,
+                      messages=messages)
+    _deliver(store, sender, now)             # also retries rows still pending
+    return fm
+
+
+def process(path: Any, rig: Any, store: Any, rules: Any, now: float, *, sender: Any = None,
+            batch: bool = False) -> FileMeasures:
+    """Measure one file (rig's test pulse and mains frequency) and ``commit`` it."""
+    try:
+        fm = analyze_path(path, pulse=getattr(rig, "test_pulse", None),
+                          mains_hz=getattr(rig, "mains_hz", None))
+    except RecordingError as e:              # analyze_path should return these; be safe
+        fm = _error(path, e.kind, str(e))
+    except Exception as e:
+        log.exception("measuring %s", path)
+        fm = _error(path, "internal", f"{os.fspath(path)}: internal error while measuring "
+                                      f"({type(e).__name__}: {e})")
+    return commit(fm, rig, store, rules, now, sender, batch=batch)
+
+
+def flush_digest(store: Any, rules: Any, now: float, sender: Any = None) -> alerts.Message | None:
+    """After a backlog: one digest of what opened and resolved, queued with its states."""
+    before = store.alert_states()
+    states, message = alerts.flush_digest(before, store.active_silences(now), now,
+                                          rules.settings)
+    changed = _changed(before, states)
+    if changed or message is not None:
+        store.commit_alerts(changed, [message] if message is not None else [], now=now)
+    if message is not None:
+        _deliver(store, sender, now)
+    return message
+
+
+def tick(store: Any, rules: Any, now: float, sender: Any = None) -> list[alerts.Message]:
+    """No new file: one message per rig for open alerts whose silence has just ended."""
+    before = store.alert_states()
+    states, messages = alerts.tick(before, store.active_silences(now), now, rules.settings)
+    changed = _changed(before, states)
+    if changed or messages:
+        store.commit_alerts(changed, messages, now=now)
+    if messages:
+        _deliver(store, sender, now)
+    return messages
