@@ -3,8 +3,9 @@
 ``build(folder, abf2_source, abf1_source)`` returns ``[(name, path, expected_kind, what)]``.
 Header offsets follow the ABF2 section table (16-byte entries from byte 76: block, entry size,
 entry count) and the fixed ABF1 header layout (offsets as read by pyabf's header modules).
-Run as a script (``python badfiles.py FOLDER ABF2 ABF1``) it opens every case under a memory
-limit and prints one JSON line per case; test_recording.py does that in a subprocess.
+Run as a script (``python badfiles.py FOLDER ABF2 ABF1 LIMIT_MB``) it opens every case, then
+300 seeded random corruptions, under an address-space limit and prints JSON lines;
+test_recording.py does that in a subprocess.
 """
 from __future__ import annotations
 
@@ -142,6 +143,57 @@ def build(folder: Path, abf2_source: Path, abf1_source: Path) -> list[tuple[str,
     return cases
 
 
+def mutations(sources: list[Path], n: int, seed: int):
+    """``n`` seeded corruptions of real files: random bytes, extreme integers and floats
+    written mostly into the header, sometimes a cut. Yields (label, bytes)."""
+    rng = random.Random(seed)
+    blobs = [Path(p).read_bytes() for p in sources]
+    extremes = [0, 1, 2, 63, 64, 65, 0x7FFF, 0xFFFF, 2 ** 31 - 1, 2 ** 32 - 1]
+    for i in range(n):
+        buf = bytearray(rng.choice(blobs))
+        for _ in range(rng.choice([1, 2, 4, 16])):
+            r = rng.random()
+            off = rng.randrange(4, 512) if r < 0.6 else rng.randrange(4, min(8192, len(buf)))
+            pick = rng.random()
+            if pick < 0.4:
+                buf[off] = rng.randrange(256)
+            elif pick < 0.8:
+                struct.pack_into("<I", buf, off & ~1, rng.choice(extremes))
+            else:
+                struct.pack_into("<f", buf, off & ~3,
+                                 rng.choice([0.0, -1.0, 1e30, float("inf"), float("nan")]))
+        if rng.random() < 0.2:
+            buf = buf[:rng.randrange(4, len(buf))]
+        yield f"mutation_{i}", bytes(buf)
+
+
+def _fuzz(folder: Path, sources: list[Path], n: int) -> dict:
+    """Open every mutation and read all it offers; collect anything but RecordingError."""
+    from qcd.errors import RecordingError
+    from qcd.recording import open_recording
+
+    other, slowest, outcomes = [], 0.0, {}
+    path = folder / "mutation.abf"
+    for label, data in mutations(sources, n, seed=7):
+        path.write_bytes(data)
+        t0 = time.perf_counter()
+        try:
+            with open_recording(path) as rec:
+                for ch in range(len(rec.channels)):
+                    for _ in rec.chunks(ch, size=1 << 16):
+                        pass
+                    rec.sweep(ch, rec.n_sweeps - 1)
+                for cmd in rec.commands.values():
+                    cmd.waveform(0)
+            outcomes["ok"] = outcomes.get("ok", 0) + 1
+        except RecordingError as e:
+            outcomes[e.kind] = outcomes.get(e.kind, 0) + 1
+        except BaseException as e:  # noqa: BLE001 - exactly what the test forbids
+            other.append(f"{label}: {type(e).__name__}: {str(e)[:200]}")
+        slowest = max(slowest, time.perf_counter() - t0)
+    return {"fuzz": n, "other": other, "slowest": slowest, "outcomes": outcomes}
+
+
 def _run(folder: Path, abf2: Path, abf1: Path, limit_mb: int) -> None:
     """Open every case under an address-space limit; one JSON line per case."""
     from qcd.recording import open_recording  # after the limit is set below
@@ -164,6 +216,7 @@ def _run(folder: Path, abf2: Path, abf1: Path, limit_mb: int) -> None:
         tracemalloc.stop()
         res["path"] = str(path)
         print(json.dumps(res), flush=True)
+    print(json.dumps(_fuzz(folder, [abf2, abf1], 300)), flush=True)
     print(json.dumps({"done": True, "limit_mb": limit_mb}), flush=True)
 
 

@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import os
 import re
+import struct
 import subprocess
 import sys
 import warnings
@@ -186,6 +187,18 @@ def test_dates_that_cannot_be_right_become_none_with_a_note():
         assert rec.recorded_at == _reference("vc_step_family.abf").abfDateTime
 
 
+def test_abf1_without_a_date_does_not_take_the_copy_time(tmp_path):
+    # ABF1 keeps its start date at byte 20 (pyabf's header module); 0 means "no date", and
+    # pyabf then substitutes the file's creation time, which a copy changes
+    data = bytearray(abf("cc_steps_abf1.abf").read_bytes())
+    struct.pack_into("<i", data, 20, 0)
+    path = tmp_path / "no_date.abf"
+    path.write_bytes(bytes(data))
+    with open_recording(path) as rec:
+        assert rec.recorded_at is None
+        assert any("creation time" in n for n in rec.notes)
+
+
 def test_units_are_cleaned_and_tags_read():
     with open_recording(abf("sine sweep unknown units.abf")) as rec:
         assert rec.channels[0].unit == "?"
@@ -351,7 +364,7 @@ def bad_results(tmp_path_factory):
     assert out.returncode == 0, out.stderr[-2000:]
     lines = [json.loads(x) for x in out.stdout.splitlines() if x.strip()]
     assert lines[-1].get("done"), out.stderr[-2000:]
-    return {d["name"]: d for d in lines[:-1]}
+    return {d.get("name", "(fuzz)"): d for d in lines[:-1]}
 
 
 def _case_names() -> list[str]:
@@ -371,8 +384,16 @@ def test_bad_file_gives_recording_error_of_its_kind(bad_results, case):
     assert r["peak_bytes"] < 16 * 2**20, r        # no big allocation before failing
 
 
+def test_random_corruptions_give_only_recording_errors(bad_results):
+    fuzz = bad_results["(fuzz)"]
+    assert fuzz["other"] == []          # opened fine or RecordingError: nothing else, ever
+    assert fuzz["slowest"] < 2.0        # no hang on any of them
+    assert sum(fuzz["outcomes"].values()) == fuzz["fuzz"] == 300
+    assert fuzz["outcomes"].get("bad_header", 0) > 0 and fuzz["outcomes"].get("ok", 0) > 0
+
+
 def test_bad_table_covers_every_case(bad_results):
-    assert set(bad_results) == set(_case_names())
+    assert set(bad_results) - {"(fuzz)"} == set(_case_names())
     if os.geteuid() == 0:
         # root reads files whatever their mode, so the mode-000 case cannot fail here; the
         # dangling link, the link loop and the missing path stand in for 'unreadable'
