@@ -399,7 +399,11 @@ def _sweeps(path: Path, abf, head: bytes, n_ch: int, n_per_ch: int, fs: float, g
         t_starts = synch[:, 0] * float(unit_us) * 1e-6
     else:
         t_starts = synch[:, 0] * float(tick_us) * 1e-6
-    starts = tuple(float(t) for t in t_starts)
+    if np.all(np.isfinite(t_starts)) and t_starts.min() >= 0 and np.all(np.diff(t_starts) > 0):
+        starts = tuple(float(t) for t in t_starts)
+    else:
+        notes.append("the sweep table's start times are not increasing; sweeps are taken to "
+                     "follow each other without gaps")
     if synch[:, 1].min() > 0 and int(synch[:, 1].sum()) // n_ch <= n_per_ch \
             and not (synch[:, 1] % n_ch).any():
         real = tuple(int(x) // n_ch for x in synch[:, 1])
