@@ -233,6 +233,12 @@ def _precheck_abf2(path: Path, size: int, head: bytes) -> dict[str, tuple[int, i
 
 def _precheck_abf1(path: Path, size: int, head: bytes) -> None:
     if size < _ABF1_HEADER_READ or len(head) < _ABF1_HEADER_READ:
+        if len(head) >= 2048:  # an old 2 KB header: complete if its samples fit in the file
+            ptr, acq = struct.unpack_from("<i", head, 40)[0], struct.unpack_from("<i", head, 10)[0]
+            if 4 <= ptr and acq > 0 and ptr * 512 + 2 * acq <= size:
+                raise _err(path, "unsupported", f"a short ABF1 file ({size} bytes) with a 2 KB "
+                           f"header: the header library reads {_ABF1_HEADER_READ} header bytes"
+                           f" and cannot open files shorter than that")
         raise _err(path, "truncated", f"the file has {size} bytes but an ABF1 header needs "
                    f"{_ABF1_HEADER_READ}; it was cut short or is still being written")
     version = struct.unpack_from("<f", head, 4)[0]

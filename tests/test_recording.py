@@ -341,6 +341,27 @@ def test_no_memory_map_stays_open_between_reads(tmp_path):
         next(rec.chunks(0))
 
 
+def test_files_written_by_pyabf_read_as_pyabf_reads_them(tmp_path):
+    # pyabf's ABF1 writer (2 KB header) is the reference producer here; benchmarks use it
+    import pyabf
+    import pyabf.abfWriter
+    sweeps = np.random.default_rng(3).normal(0.0, 5.0, (3, 4000))
+    path = tmp_path / "written.abf"
+    pyabf.abfWriter.writeABF1(sweeps, str(path), 20000.0, "pA")
+    ref = pyabf.ABF(str(path))
+    with open_recording(path) as rec:
+        assert rec.fs == 20000.0 and rec.sweep_lengths == (4000,) * 3
+        assert rec.channels[0].unit == "pA"
+        got = np.concatenate(list(rec.chunks(0)))
+        bound = 2 * EPS32 * 32768 * abs(rec.channels[0].gain)
+        assert np.max(np.abs(got - ref.data[0])) <= bound
+    # a file shorter than the 5806 header bytes pyabf reads cannot be opened by it at all
+    pyabf.abfWriter.writeABF1(sweeps[:1, :500], str(path), 20000.0, "pA")
+    with pytest.raises(RecordingError) as e:
+        open_recording(path)
+    assert e.value.kind == "unsupported"
+
+
 def test_unknown_suffix_is_unsupported(tmp_path):
     p = tmp_path / "trace.dat"
     p.write_bytes(b"ABF2" + bytes(600))
