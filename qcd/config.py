@@ -166,9 +166,15 @@ class _Reader:
     def check_keys(self, table: dict, allowed: tuple[str, ...], label: str) -> None:
         for key in table:
             if key not in allowed:
-                close = difflib.get_close_matches(key, allowed + _TOP_KEYS + _RIG_KEYS, n=1)
-                hint = f"; did you mean {close[0]!r}?" if close else \
-                    f"; expected one of {', '.join(allowed)}"
+                close = (difflib.get_close_matches(key, allowed, n=1)
+                         or difflib.get_close_matches(key, _TOP_KEYS + _RIG_KEYS, n=1))
+                hint = f"; expected one of {', '.join(allowed)}"
+                if close:
+                    hint = f"; did you mean {close[0]!r}?"
+                    if close[0] not in allowed:
+                        where = "at the top level, above the [[rig]] tables" \
+                            if close[0] in _TOP_KEYS else "in a [[rig]] table"
+                        hint += f" (that key belongs {where})"
                 raise ConfigError(self.path, f"{self.where}{key}",
                                   f"unknown key {key!r} in {label}{hint}")
 
@@ -303,6 +309,8 @@ def load_config(path: Path | str) -> Config:
                          f"got {redact(url)!r}")
     notify_config = _resolve(base, r.string(data, "notify_config")) \
         if "notify_config" in data else None
+    if notify_config is not None and not notify_config.is_file():
+        raise r.fail("notify_config", f"apprise config file {notify_config} not found")
     settle = r.number(data, "settle_seconds", 5.0)
     give_up = r.number(data, "give_up_hours", 6.0, strictly=True)
     if give_up * 3600.0 <= settle:

@@ -105,6 +105,10 @@ MISTAKES = [
     ('notify = ["not a url"]\n', "notify[0]", "apprise URL"),
     ('notify = [1]\n', "notify[0]", "non-empty string"),
     ('database = 3\n', "database", "expected a string"),
+    ('notify_config = "apprise.yml"\n', "notify_config", "not found"),
+    ('name = "rig-a"\n', "name", "belongs in a [[rig]] table"),
+    (RIG + 'give_up_hour = 3\n', "give_up_hour", "belongs at the top level"),
+    ('rig = 3\n', "rig", "expected [[rig]] tables"),
 ]
 
 
@@ -119,6 +123,12 @@ def test_each_mistake_names_the_file_and_the_key(tmp_path, text, key, words):
     assert key in e.key, (e.key, str(e))
     assert words in str(e), str(e)
     assert str(p) in str(e)
+
+
+def test_notify_config_resolves_against_the_file(tmp_path):
+    (tmp_path / "apprise.yml").write_text("version: 1\nurls:\n  - json://127.0.0.1:9/x\n")
+    cfg = load_config(write(tmp_path, 'notify_config = "apprise.yml"\n'))
+    assert cfg.notify_config == tmp_path.resolve() / "apprise.yml"
 
 
 def test_toml_syntax_error_names_line_and_column(tmp_path):
