@@ -394,13 +394,16 @@ def redact(url: str) -> str:
     return f"{parts.scheme}://{new_netloc}{path}{query}"
 
 
-def redact_text(text: str, urls: tuple[str, ...] | list[str]) -> str:
-    """``text`` with every occurrence of one of ``urls`` replaced by its redacted form."""
+_URL_IN_TEXT = re.compile(r"\b[A-Za-z][A-Za-z0-9+.-]*://[^\s'\"<>]+")
+
+
+def redact_text(text: str, urls: tuple[str, ...] | list[str] = ()) -> str:
+    """``text`` with each of ``urls``, and anything else shaped like a URL, redacted."""
     out = str(text)
     for u in sorted(urls, key=len, reverse=True):
         if u:
             out = out.replace(u, redact(u))
-    return out
+    return _URL_IN_TEXT.sub(lambda m: redact(m.group(0)), out)
 
 
 # --- the starter file --------------------------------------------------------------------------
