@@ -674,3 +674,32 @@ def test_qcd_alerts_lists_alerts_silences_and_stuck_messages_without_secrets(tmp
     assert main(["alerts", "--config", str(cfg), "--rig", "rig-b"]) == 0
     out = capsys.readouterr().out
     assert "open alerts: none" in out and "undeliverable messages: none" in out
+
+
+def test_reads_leave_no_snapshot_open_so_a_later_write_never_hits_the_upgrade_pitfall(tmp_path):
+    path = tmp_path / "qcd.sqlite"
+    with Store(path) as s, Store(path) as other:
+        s.commit_file("rig-a", fmeasures(), analysed_at=T0)
+        # The pitfall itself (OPERATIONS.md section 5, measured; sqlite.org/wal.html
+        # "SQLITE_BUSY_SNAPSHOT"): a deferred transaction that read before another connection
+        # committed cannot upgrade to a write, and fails at once despite the busy timeout.
+        raw = sqlite3.connect(path, isolation_level=None, timeout=5)
+        raw.execute("BEGIN")
+        raw.execute("SELECT count(*) FROM files").fetchone()
+        other.add_silence("rig-a", "*", 1.0, None, "", 1.0)
+        t = time.monotonic()
+        with pytest.raises(sqlite3.OperationalError, match="locked"):
+            raw.execute("INSERT INTO silences (rig_glob, rule_glob, start_at, reason, "
+                        "created_at) VALUES ('x', '*', 0, '', 0)")
+        assert time.monotonic() - t < 1.0
+        raw.execute("ROLLBACK")
+        raw.close()
+        # The store's reads are autocommit: nothing stays open between calls ...
+        s.file_state("rig-a", "/data/rig-a/c01.abf")
+        s.history("rig-a", "voltage_clamp", 0, "noise_rms", before=T0)
+        s.files()
+        assert not s.db.conn.in_transaction
+        other.add_silence("rig-b", "*", 1.0, None, "", 1.0)
+        # ... and its read-then-write transactions start with BEGIN IMMEDIATE
+        s.commit_file("rig-a", fmeasures(path="/n.abf", sha="9" * 64), analysed_at=T0)
+        assert len(s.files()) == 2 and len(s.active_silences(2.0)) == 2
