@@ -241,10 +241,50 @@ def _scan_row(fm: object, width: int = 26) -> str:
 
 def _cmd_scan(args: argparse.Namespace) -> int:
     if args.store:
-        # hook for the store/judge/alert path (qcd.pipeline); it needs --rig and a config
-        print("qcd scan --store: needs --rig and a config (storing from scan is not available "
-              "in this build yet)", file=sys.stderr)
-        return EXIT_USAGE
+        # measure -> store -> judge -> alerts -> delivery, as the service does (qcd.pipeline)
+        import time
+
+        from qcd.config import find_config, load_config, load_rules
+        from qcd.pipeline import scan
+        from qcd.store import Store
+        if not args.rig:
+            raise ConfigError(None, "rig", "scan --store needs --rig NAME (a rig of the config)")
+        cfg = load_config(find_config(args.config))
+        rig = next((r for r in cfg.rigs if r.name == args.rig), None)
+        if rig is None:
+            known = ", ".join(r.name for r in cfg.rigs) or "none"
+            raise ConfigError(cfg.path, "rig", f"no rig named {args.rig!r} (rigs: {known})")
+        if args.pulse or args.mains:
+            from dataclasses import replace as _replace
+
+            from qcd.config import parse_pulse
+            rig = _replace(rig, test_pulse=parse_pulse(args.pulse) if args.pulse else
+                           rig.test_pulse, mains_hz=args.mains or rig.mains_hz)
+        rules = load_rules(cfg.rules)
+        sender = None
+        if cfg.notify or cfg.notify_config is not None:
+            from qcd.notify import Sender
+            sender = Sender.from_config(cfg)
+        files = _scan_files(list(args.paths))
+
+        def said(fm) -> None:
+            what = "ok" if fm.status == "ok" else f"error ({fm.error_kind}): {fm.error}"
+            print(f"stored  {fm.path}  {what}", flush=True)
+        with Store(cfg.database) as store:
+            res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said)
+        failed = sum(fm.status != "ok" for fm in res.files)
+        print(f"qcd scan: {len(res.files)} files stored for rig {rig.name}, {failed} failed")
+        for a in res.opened:
+            print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "
+                  f"mode {a['mode']})")
+        if res.digest is not None:
+            print(f"digest queued: {res.digest.title}")
+        ob = res.outbox
+        print(f"messages: {ob.get('sent', 0)} sent, {ob.get('pending', 0)} pending, "
+              f"{ob.get('stuck', 0)} stuck" + ("" if sender else " (no notification targets)"))
+        if not files:
+            print("qcd scan: no *.abf files found", file=sys.stderr)
+        return EXIT_FAILED if failed or ob.get("stuck", 0) else EXIT_OK
     import json
     from concurrent.futures import ProcessPoolExecutor
 

@@ -518,6 +518,8 @@ class HistoryRule:
     k: float = 0.5                   # 'cusum': reference value (sigma units)
     h: float = 5.0                   # 'cusum': decision interval (sigma units)
     min_spread: float = 0.05         # floor of the robust scale (log units, or fraction of median)
+    min_spread_abs: float | None = None   # or an absolute floor in SI ('min_spread = "12 pA"')
+    spread_dimension: str = ""
     severity: str = "warning"
     for_files: int = 2
     clear_files: int = 3
@@ -648,6 +650,12 @@ def _history_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> Hi
         if not isinstance(t["log"], bool):
             raise ConfigError(path, f"{where}.log", f"expected true or false, got {t['log']!r}")
         kw["log"] = t["log"]
+    if isinstance(t.get("min_spread"), str):
+        kw["min_spread_abs"], kw["spread_dimension"] = _rule_quantity(path, where, "min_spread",
+                                                                      t["min_spread"])
+        if kw["min_spread_abs"] < 0:
+            raise ConfigError(path, f"{where}.min_spread", "must not be negative")
+        t = {k: v for k, v in t.items() if k != "min_spread"}
     for key, attr in (("z", "z"), ("clear_z", "clear_z"), ("lambda", "lam"), ("L", "L"), ("k", "k"),
                       ("h", "h"), ("min_spread", "min_spread")):
         if key in t:

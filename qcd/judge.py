@@ -163,7 +163,7 @@ _HINTS = {
 _HINT_MEASURES = {
     "hum_rms": _MAINS, "hum_fundamental_rms": _MAINS, "hum_fraction": _MAINS,
     "band_rms_1k_corner": "high", "band_rms_70_1k": "mid", "band_rms_10_70": "mech",
-    "band_rms_0.5_10": "low", "baseline_drift": "low",
+    "band_rms_0p5_10": "low", "band_rms_0.5_10": "low", "baseline_drift": "low",
 }
 _NOISE_MEASURES = {"noise_rms", "noise_rms_1k", "noise_pp", "pp_over_rms"} | set(_HINT_MEASURES)
 
@@ -291,8 +291,17 @@ def _limit(rule: LimitRule, m: Any) -> tuple[bool, bool] | None:
     return bad, clear_ok
 
 
-def _drift(rule: HistoryRule, value: float, past: list[float]) -> tuple[bool, bool, str] | None:
+def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = ""
+           ) -> tuple[bool, bool, str] | None:
     """(bad, clear, text) for one value against the history values (oldest first)."""
+    abs_floor = 0.0
+    if rule.min_spread_abs is not None and not rule.log:
+        si, dim = _to_si(1.0, unit)
+        if rule.spread_dimension and dim != rule.spread_dimension:
+            log.warning("rule %s: spread floor in %r, the measure in %r; rule skipped",
+                        rule.name, rule.spread_dimension, unit)
+            return None
+        abs_floor = rule.min_spread_abs / si
     if rule.log:
         if value <= 0:
             return None
@@ -303,7 +312,7 @@ def _drift(rule: HistoryRule, value: float, past: list[float]) -> tuple[bool, bo
     if len(past) < 3:
         return None
     med, scale = baseline(past)
-    floor = rule.min_spread if rule.log else rule.min_spread * abs(med)
+    floor = rule.min_spread if rule.log else max(rule.min_spread * abs(med), abs_floor)
     scale = max(scale, floor, 1e-300)
     up, down = rule.side in ("up", "both"), rule.side in ("down", "both")
     if rule.test == "z":
@@ -383,11 +392,19 @@ def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list
             value = float(m.value)
             if not math.isfinite(value):
                 continue
-            for rule in hist_rules:
-                res = _drift(rule, value, past)
+            jump = ""
+            for rule in sorted(hist_rules, key=lambda r: r.test != "z"):    # z rules first
+                res = _drift(rule, value, past, m.unit)
                 if res is None:
                     continue
                 bad, clear_ok, stat_text = res
+                if rule.test == "z" and bad:
+                    jump = rule.name
+                elif bad and jump:
+                    # a jump already flagged explains the trend statistic: one alert, not two;
+                    # neither bad nor clear, so an open trend alert neither grows nor clears
+                    bad = clear_ok = False
+                    stat_text += f" (a jump, flagged by {jump})"
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
                     groups = noise_hints(ch, mode, history, rules) if groups is None else groups

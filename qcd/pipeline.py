@@ -10,15 +10,20 @@ from __future__ import annotations
 
 import logging
 import os
-from dataclasses import replace
-from typing import Any
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any, Callable, Iterable
 
 from qcd import alerts
 from qcd.analyze import FileMeasures, analyze_path
 from qcd.errors import RecordingError, StoreError
 from qcd.judge import file_time, judge
 
-__all__ = ["process", "commit", "flush_digest", "tick", "judge_file"]
+__all__ = ["process", "commit", "flush_digest", "tick", "judge_file", "scan", "ScanResult",
+           "recording_order", "DIGEST_FILES"]
+
+# More files than this in one ``scan`` is a backlog: one digest instead of a message per file.
+DIGEST_FILES = 20
 
 log = logging.getLogger(__name__)
 
@@ -130,3 +135,59 @@ def tick(store: Any, rules: Any, now: float, sender: Any = None) -> list[alerts.
     if messages:
         _deliver(store, sender, now)
     return messages
+
+
+def _recording_time(path: Path) -> tuple[float, str]:
+    """Header time of a file (for ordering), else its mtime; unreadable files sort by mtime."""
+    from qcd.recording import open_recording
+    try:
+        with open_recording(path) as rec:
+            if rec.recorded_at is not None:
+                return file_time(rec, 0.0), os.fspath(path)
+    except Exception:                        # a bad file is measured (and reported) later
+        pass
+    try:
+        return path.stat().st_mtime, os.fspath(path)
+    except OSError:
+        return 0.0, os.fspath(path)
+
+
+def recording_order(paths: Iterable[Any]) -> list[Path]:
+    """Files sorted by recording time (header, else mtime), then by name."""
+    return sorted((Path(p) for p in paths), key=_recording_time)
+
+
+@dataclass
+class ScanResult:
+    files: list[FileMeasures] = field(default_factory=list)
+    opened: list[dict] = field(default_factory=list)      # alert rows that opened in this scan
+    digest: Any = None                                      # the digest Message, if any
+    outbox: dict[str, int] = field(default_factory=dict)
+
+
+def scan(paths: Iterable[Any], rig: Any, store: Any, rules: Any, *, clock: Callable[[], float],
+         sender: Any = None, on_file: Callable[[FileMeasures], None] | None = None,
+         batch: bool | None = None) -> ScanResult:
+    """``qcd scan --store``: measure -> store -> judge -> alerts -> delivery, in recording order.
+
+    ``batch`` (default: more than DIGEST_FILES files) ends with one digest instead of one
+    message per file.
+    """
+    files = recording_order(paths)
+    batch = len(files) > DIGEST_FILES if batch is None else batch
+    name = _rig_name(rig)
+    was_open = {a["key"] for a in store.open_alerts(name)}
+    out = ScanResult()
+    for path in files:
+        fm = process(path, rig, store, rules, clock(), sender=None if batch else sender,
+                     batch=batch)
+        out.files.append(fm)
+        if on_file is not None:
+            on_file(fm)
+    if batch:
+        out.digest = flush_digest(store, rules, clock(), sender)
+    elif sender is not None:
+        _deliver(store, sender, clock())
+    out.opened = [a for a in store.open_alerts(name) if a["key"] not in was_open]
+    out.outbox = store.outbox_counts()
+    return out

@@ -252,3 +252,21 @@ def test_strong_non_mains_line_suggests_switching_supplies(rules):
         return [(1000.0 - i, v) for i, v in enumerate(past)] if name == "noise_rms" else []
     f = _by_rule(judge(fm, "r", history, rules, 0))
     assert f["noise_jump"].bad and "switching power supplies" in f["noise_jump"].hint
+
+
+def test_a_jump_flagged_by_z_does_not_also_open_the_trend_rule(rules):
+    rng = np.random.default_rng(1)
+    past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
+    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0))
+    assert f["hum_jump"].bad
+    assert not f["hum_drift"].bad and not f["hum_drift"].clear
+    assert "flagged by hum_jump" in f["hum_drift"].limit_text
+
+
+def test_holding_shift_uses_an_absolute_spread_floor(rules):
+    # holding near 0 pA: tiny MAD; the 12.5 pA floor means only jumps > 50 pA flag (common practice)
+    past = [0.001, -0.002, 0.0015, 0.0005, -0.001, 0.002, 0.0, -0.0005, 0.001, 0.0]
+    hist = _history_from(past, measure="holding")
+    small = _by_rule(judge(_fm({"holding": (-30.0, "pA")}), "r", hist, rules, 0))
+    big = _by_rule(judge(_fm({"holding": (-80.0, "pA")}), "r", hist, rules, 0))
+    assert not small["holding_shift"].bad and big["holding_shift"].bad
