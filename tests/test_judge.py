@@ -270,3 +270,13 @@ def test_holding_shift_uses_an_absolute_spread_floor(rules):
     small = _by_rule(judge(_fm({"holding": (-30.0, "pA")}), "r", hist, rules, 0))
     big = _by_rule(judge(_fm({"holding": (-80.0, "pA")}), "r", hist, rules, 0))
     assert not small["holding_shift"].bad and big["holding_shift"].bad
+
+
+def test_field_example_rules_load_over_the_defaults(rules):
+    field = Path(__file__).resolve().parent.parent / "rules" / "field.toml"
+    r = load_rules([rules.sources[0], field])
+    names = {x.name for x in r.limits} | {x.name for x in r.history}
+    assert {"gigaseal", "field_noise_high", "field_hum_jump"} <= names
+    # 25 uV against a 20 uV limit, in mV as stored for an extracellular channel
+    fm = _fm({"noise_rms_1k": (0.025, "mV")}, mode="extracellular")
+    assert _by_rule(judge(fm, "r", _no_history, r, 0))["field_noise_high"].bad
