@@ -253,8 +253,9 @@ def _rig(path: Path, base: Path, index: int, table: object) -> RigConfig:
         raise ConfigError(path, f"rig[{index}]", f"expected a [[rig]] table, got {_kind(table)}")
     name = table.get("name")
     label = f"[[rig]] {name!r}" if isinstance(name, str) else f"[[rig]] number {index + 1}"
-    r = _Reader(path, f"rig[{index}].")
+    r = _Reader(path, f"rig {name!r}: " if isinstance(name, str) else f"rig[{index}].")
     r.check_keys(table, _RIG_KEYS, label)
+    r.where = f"rig[{index}]."
     if "name" not in table:
         raise r.fail("name", f"missing in {label} (every rig needs a name)")
     name = r.string(table, "name")
@@ -322,12 +323,13 @@ def load_config(path: Path | str) -> Config:
     if not isinstance(rig_tables, list):
         raise r.fail("rig", f"expected [[rig]] tables, got {_kind(rig_tables)}")
     rigs = tuple(_rig(path, base, i, t) for i, t in enumerate(rig_tables))
-    seen: set[str] = set()
-    for rig in rigs:
+    seen: dict[str, int] = {}
+    for i, rig in enumerate(rigs):
         if rig.name in seen:
-            raise ConfigError(path, "rig.name", f"duplicate rig name {rig.name!r}; "
-                              "each [[rig]] needs its own name")
-        seen.add(rig.name)
+            raise ConfigError(path, f"rig[{i}].name", f"duplicate rig name {rig.name!r} (also "
+                              f"[[rig]] number {seen[rig.name] + 1}); each [[rig]] needs its "
+                              "own name")
+        seen[rig.name] = i
     return Config(path=path, database=database, rules=rules, notify=notify,
                   notify_config=notify_config, settle_seconds=settle, give_up_hours=give_up,
                   rigs=rigs)
