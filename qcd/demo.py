@@ -7,6 +7,7 @@ Imports numpy, scipy, pyabf, apprise and, for the run, qcd.config/pipeline/watch
 """
 from __future__ import annotations
 
+import functools
 import math
 import os
 import shutil
@@ -32,16 +33,16 @@ BOLTZMANN = 1.380649e-23        # J/K (SI, exact)
 TEMPERATURE_K = 295.0
 
 # Acquisition settings of the invented rigs (common practice: fs = 5-10 x the Bessel corner).
-_PATCH_FS = 20_000.0
+_PATCH_FS = 10_000.0
 _PATCH_FC = 2_000.0
-_FIELD_FS = 10_000.0
+_FIELD_FS = 5_000.0
 _FIELD_FC = 1_000.0
 _SWEEP_S = 0.30                 # one episodic sweep
 _STEP_START_S = 0.10            # declared test step: starts 100 ms into each sweep ...
 _STEP_LEN_S = 0.10              # ... and lasts 100 ms
 _WHOLE_CELL_STEP_V = -5e-3      # -5 mV test step (voltage clamp)
 _SEAL_STEP_V = 10e-3            # +10 mV seal test (cell-attached)
-_FIELD_DURATION_S = 8.0
+_FIELD_DURATION_S = 6.0
 
 
 # ----------------------------------------------------------------------------- models
@@ -70,12 +71,17 @@ def bessel_lowpass(x: np.ndarray, fs: float, fc: float, poles: int = 4) -> np.nd
     """Analog Bessel low-pass, -3 dB at fc (scipy.signal.bessel, norm='mag'), unity DC gain,
     applied to samples at fs by first-order-hold discretisation (exact for an input that is
     linear between samples, as scipy.signal.lsim assumes)."""
-    from scipy.signal import bessel, cont2discrete, sosfilt, zpk2sos
+    from scipy.signal import sosfilt
+    return sosfilt(_bessel_sos(float(fs), float(fc), int(poles)), x, axis=-1)
+
+
+@functools.lru_cache(maxsize=16)
+def _bessel_sos(fs: float, fc: float, poles: int) -> np.ndarray:
+    from scipy.signal import bessel, cont2discrete, zpk2sos
     z, p, k = bessel(poles, 2.0 * np.pi * fc, btype="low", analog=True, norm="mag",
                      output="zpk")
     zd, pd, kd, _ = cont2discrete((z, p, k), 1.0 / fs, method="foh")
-    sos = zpk2sos(np.atleast_1d(zd), pd, float(np.real(kd)))
-    return sosfilt(sos, x, axis=-1)
+    return zpk2sos(np.atleast_1d(zd), pd, float(np.real(kd)))
 
 
 def thermal_noise_rms(resistance_ohm: float, bandwidth_hz: float,
@@ -271,23 +277,23 @@ def _file_params(rng: np.random.Generator, rig: RigPlan, day: int, index: int) -
     p: dict = {"seed": int(rng.integers(0, 2**31)), "hum_phase": float(rng.uniform(0, 6.28))}
     faulty = False
     if rig.kind in ("whole_cell", "cell_attached"):
-        p["noise_sd"] = 1.2e-12 * jitter(0.06)                     # A, 2 kHz band
+        p["noise_sd"] = 1.2e-12 * jitter(0.05)                     # A, 2 kHz band
         p["hum_amps"] = tuple(a * jitter(0.10) for a in (0.35e-12, 0.10e-12, 0.06e-12))
-        p["holding"] = -40e-12 * jitter(0.15)
+        p["holding"] = -40e-12 * jitter(0.06)
     if rig.kind == "whole_cell":
         p.update(ra=11e6 * jitter(0.12), rm=450e6 * jitter(0.15), cm=30e-12 * jitter(0.10))
         if rig.fault == "headstage" and day >= rig.fault_day:
             p["noise_sd"] *= 3.5                                     # broadband step
             faulty = True
     elif rig.kind == "cell_attached":
-        p["holding"] = -2e-12 * jitter(0.3)
+        p["holding"] = -2e-12 * jitter(0.10)
         p["noise_sd"] = 0.35e-12 * jitter(0.06)
-        seal = 12e9 * jitter(0.15)
-        seals = [seal] * 12
+        seal = 12e9 * jitter(0.06)
+        seals = [seal] * 10
         if rig.fault == "seal" and day == rig.fault_day and index == 2:
             # the seal holds for three sweeps, then gives way to about 150 MOhm
             seals = [seal] * 3 + [max(150e6, seal * math.exp(-1.6 * (k + 1)))
-                                  for k in range(9)]
+                                  for k in range(7)]
             faulty = True
         p["seals"] = tuple(seals)
     else:  # field
@@ -306,7 +312,7 @@ def synthesize(spec: FileSpec, kind: str) -> tuple[np.ndarray, float, str, bool]
     p = spec.params
     rng = np.random.default_rng(p["seed"])
     if kind == "whole_cell":
-        a = whole_cell_sweeps(rng, n_sweeps=12, fs=_PATCH_FS, fc=_PATCH_FC, ra=p["ra"],
+        a = whole_cell_sweeps(rng, n_sweeps=10, fs=_PATCH_FS, fc=_PATCH_FC, ra=p["ra"],
                               rm=p["rm"], cm=p["cm"], noise_sd=p["noise_sd"],
                               hum_amps=p["hum_amps"], holding=p["holding"],
                               hum_phase=p["hum_phase"])
@@ -322,18 +328,37 @@ def synthesize(spec: FileSpec, kind: str) -> tuple[np.ndarray, float, str, bool]
     return a * 1e3, _FIELD_FS, "mV", True
 
 
+def _build_one(args: tuple) -> str:
+    folder, spec, kind = args
+    sweeps, fs, unit, gap_free = synthesize(spec, kind)
+    path = Path(folder) / spec.relpath
+    write_abf1(path, sweeps, fs, unit, spec.recorded_at, gap_free=gap_free)
+    return str(path)
+
+
 def build_lab(folder: Path, plan: LabPlan,
-              progress: Callable[[int, int], None] | None = None) -> list[Path]:
-    """Write every planned file under ``folder`` (oldest first); returns their paths."""
+              progress: Callable[[int, int], None] | None = None,
+              workers: int = 1) -> list[Path]:
+    """Write every planned file under ``folder``; returns their paths, oldest first.
+
+    ``workers`` > 1 writes in that many processes (the files are independent)."""
     kinds = {r.name: r.kind for r in plan.rigs}
-    out = []
-    for n, spec in enumerate(plan.files, start=1):
-        sweeps, fs, unit, gap_free = synthesize(spec, kinds[spec.rig])
-        path = folder / spec.relpath
-        write_abf1(path, sweeps, fs, unit, spec.recorded_at, gap_free=gap_free)
-        out.append(path)
+    jobs = [(str(folder), spec, kinds[spec.rig]) for spec in plan.files]
+    out: list[Path] = []
+    if workers > 1 and len(jobs) > 8:
+        import concurrent.futures as cf
+        import multiprocessing
+        ctx = multiprocessing.get_context("spawn" if sys.platform == "win32" else "fork")
+        with cf.ProcessPoolExecutor(workers, mp_context=ctx) as pool:
+            for n, p in enumerate(pool.map(_build_one, jobs, chunksize=8), start=1):
+                out.append(Path(p))
+                if progress:
+                    progress(n, len(jobs))
+        return out
+    for n, job in enumerate(jobs, start=1):
+        out.append(Path(_build_one(job)))
         if progress:
-            progress(n, len(plan.files))
+            progress(n, len(jobs))
     return out
 
 
@@ -421,92 +446,91 @@ def _printer(out) -> Callable[[str], None]:
     return p
 
 
-def _make_sender(config):
-    from qcd import notify
-    for name in ("Sender", "AppriseSender"):
-        cls = getattr(notify, name, None)
-        if cls is not None:
-            try:
-                return cls.from_config(config) if hasattr(cls, "from_config") else cls(config)
-            except TypeError:
-                return cls(config.notify)
-    make = getattr(notify, "make_sender", None) or getattr(notify, "sender_from_config")
-    return make(config)
-
-
 def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int = 3,
-             now: float | None = None, out=None, write_html: bool = True,
-             workers: int | None = None) -> DemoResult:
-    """Build the lab in ``folder`` (a new temporary folder when None), run the watch service's
-    start-up catch-up over it with a simulated clock, deliver the alerts to alerts.log, and
-    write the morning report (text and HTML)."""
+             out=None, write_html: bool = True, workers: int | None = None,
+             end: datetime | None = None) -> DemoResult:
+    """Build the lab in ``folder`` (a new temporary folder when None) and run the real watch
+    service over it with a simulated clock: each simulated day's recordings appear in the rig
+    folders in the evening, the service measures, judges and alerts, and its messages go
+    through apprise to alerts.log. Ends with the morning report (text and HTML)."""
+    from qcd import notify
     from qcd.config import load_config, load_rules
     from qcd.report import build_report, render_html, render_text
     from qcd.store import Store
-    from qcd.watch import Service
+    from qcd.watch import Service, default_workers, make_sender
     out = out or sys.stdout
     say = _printer(out)
     t_start = time.monotonic()
     folder = Path(folder) if folder else Path(tempfile.mkdtemp(prefix="qcd-demo-"))
+    folder = folder.resolve()
     folder.mkdir(parents=True, exist_ok=True)
     for stale in ("qcd.sqlite", "qcd.sqlite-wal", "qcd.sqlite-shm", "alerts.log",
-                  "report.html"):
+                  "report.html", "qcd.log"):
         (folder / stale).unlink(missing_ok=True)
-    for rig in ("patch-1", "patch-2", "patch-3", "field-1"):
-        shutil.rmtree(folder / rig, ignore_errors=True)
-    plan = plan_lab(days, files_per_day)
-    say(f"qcd demo: {LAB_NAME} (invented), 4 rigs, {days} days, {len(plan.files)} recordings")
+    staging = folder / ".incoming"
+    for d in ("patch-1", "patch-2", "patch-3", "field-1", ".incoming"):
+        shutil.rmtree(folder / d, ignore_errors=True)
+        if not d.startswith("."):
+            (folder / d).mkdir()
+    plan = plan_lab(days, files_per_day, end=end)
+    n_workers = default_workers() if workers is None else max(1, workers)
+    say(f"qcd demo: a {LAB_NAME} (invented), 4 rigs, {days} days, "
+        f"{len(plan.files)} recordings")
     for r in plan.rigs:
         when = ("" if r.fault_day is None else
                 f" (from {_date(plan.day_start(r.fault_day))})")
         say(f"  {r.name:8} {r.description}{when}")
-    say(f"writing the recordings to {folder} ...")
-    last = [0.0]
+    say(f"[1/3] writing the recordings (ABF1) to {folder} ...")
+    last = [time.monotonic()]
 
     def progress(n: int, total: int) -> None:
-        if n == total or time.monotonic() - last[0] > 2.0:
+        if n == total or time.monotonic() - last[0] > 3.0:
             last[0] = time.monotonic()
-            say(f"  {n}/{total} files written")
-    build_lab(folder, plan, progress)
+            say(f"      {n}/{total} files written")
+    build_lab(staging, plan, progress, workers=n_workers)
     (folder / "qcd.toml").write_text(demo_config_text(folder), encoding="utf-8")
     (folder / "alerts.log").touch()
     config = load_config(folder / "qcd.toml")
     rules = load_rules(config.rules)
     _register_file_schema(say)
-    sender = _make_sender(config)
-    clock = float(now if now is not None else max(time.time(), plan.files[-1].recorded_at + 600))
-    say("measuring, judging and alerting (the service's start-up catch-up) ...")
+    sender = make_sender(config)
+    say("[2/3] running the service day by day (simulated clock): measure, store, judge, "
+        "alert, deliver ...")
+    clock = plan.start + 8 * 3600.0
+    by_day: dict[int, list[FileSpec]] = {}
+    for f in plan.files:
+        by_day.setdefault(f.day, []).append(f)
     with Store(config.database) as store:
-        svc = Service(config, store, rules, sender=sender, workers=workers, catch_up=True,
-                      progress_tty=False, rescan_s=1e9, beat_s=1e9)
+        svc = Service(config, store, rules, sender=sender, workers=n_workers, catch_up=True,
+                      progress_tty=False, rescan_s=600.0, beat_s=3600.0)
         try:
             svc.start(clock)
-            idle = 0
-            deadline = time.monotonic() + 600.0
-            while time.monotonic() < deadline:
-                clock += config.settle_seconds + 0.5
-                busy = svc.step(clock)
-                if svc.queue_len() == 0 and not busy:
-                    idle += 1
-                    if idle >= 3:
-                        break
-                else:
-                    idle = 0
-                    if not busy:
-                        time.sleep(0.005)   # workers are measuring: let them run
+            for day in range(plan.days):
+                for f in by_day.get(day, ()):       # the day's acquisitions arrive
+                    dest = folder / f.relpath
+                    os.replace(staging / f.relpath, dest)
+                clock = max(clock, plan.day_start(day) + 20 * 3600.0)
+                clock = _drain(svc, clock, config.settle_seconds)
+                counts = store.outbox_counts()
+                if day % max(1, plan.days // 7) == 0 or day == plan.days - 1:
+                    say(f"      day {day + 1}/{plan.days} ({_date(plan.day_start(day))}): "
+                        f"{len(store.files())} files stored, "
+                        f"{counts.get('sent', 0)} message(s) sent")
         finally:
             svc.close(clock)
-        from qcd import notify
-        for _ in range(3):                  # anything still due (retries come later in time)
-            clock += 60.0
+        for _ in range(3):                  # anything still due
+            clock += 120.0
             notify.deliver_due(store, sender, clock)
+        say("[3/3] the morning report")
+        report_at = plan.end + 7.5 * 3600.0
         since = plan.day_start(plan.days - 1)
-        report = build_report(store, clock, since)
+        report = build_report(store, max(report_at, clock), since)
         text = render_text(report)
         html_path = None
         if write_html:
             html_path = folder / "report.html"
             html_path.write_text(render_html(report, store), encoding="utf-8")
+    shutil.rmtree(staging, ignore_errors=True)
     seconds = time.monotonic() - t_start
     say("")
     say(text)
@@ -514,11 +538,30 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
     if html_path:
         say(f"HTML report: {html_path}")
     say(f"messages delivered to: {folder / 'alerts.log'}")
-    say(f"demo lab folder: {folder} (config {folder / 'qcd.toml'}); try "
-        f"qcd report --config {folder / 'qcd.toml'} --since {days}d")
+    say(f"demo lab: {folder} (config {folder / 'qcd.toml'})")
+    say(f"  try: qcd report --config {folder / 'qcd.toml'} --since {days}d")
+    say(f"       qcd trend --config {folder / 'qcd.toml'} --days {days + 1} field-1 hum_rms")
     say(f"done in {seconds:.1f} s")
     return DemoResult(folder, config.database, html_path, folder / "alerts.log",
                       len(plan.files), seconds, text, plan)
+
+
+def _drain(svc, clock: float, settle_s: float, limit_s: float = 120.0) -> float:
+    """Step the service until it has nothing left to do; returns the simulated clock."""
+    idle = 0
+    deadline = time.monotonic() + limit_s
+    while time.monotonic() < deadline:
+        clock += settle_s + 0.5
+        busy = svc.step(clock)
+        if svc.queue_len() == 0 and not busy:
+            idle += 1
+            if idle >= 2:
+                break
+        else:
+            idle = 0
+            if not busy:
+                time.sleep(0.003)       # the workers are measuring: give them the cores
+    return clock
 
 
 def _date(t: float) -> str:

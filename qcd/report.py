@@ -167,8 +167,10 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
             for fd in store.findings(f["id"]):
                 h = fd.get("hint") if isinstance(fd, dict) else getattr(fd, "hint", None)
                 bad = fd.get("bad") if isinstance(fd, dict) else getattr(fd, "bad", True)
-                if h and bad and h not in hints:
-                    hints.append(h)
+                if h and bad:
+                    h = h.replace(safety_note(), "").strip()
+                    if h not in hints:
+                        hints.append(h)
         alerts = tuple(store.open_alerts(rig=rig))
         slim = tuple({k: f.get(k) for k in ("id", "path", "recorded_at", "mtime", "status",
                                             "error_kind", "error", "mode", "flagged")}
@@ -365,18 +367,28 @@ _LABELS = {"noise_rms": "baseline RMS noise", "noise_rms_1k": "RMS noise, 1 kHz 
            "clipping_fraction": "clipped samples"}
 
 
+# Trend plots per rig (the table lists every key measure).
+_PLOTTED = ("noise_rms", "noise_rms_1k", "hum_rms", "band_rms_1k_corner", "holding",
+            "seal_resistance", "access_resistance", "membrane_resistance",
+            "membrane_capacitance")
+
+
 def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None:
     from matplotlib.dates import DateFormatter
     plt = _plt()
-    lines = [m for m in rig.measures][:8]
+    lines = [m for m in rig.measures if m.measure in _PLOTTED][:6]
     if not lines:
         return None
     ncol = 2
     nrow = math.ceil(len(lines) / ncol)
-    fig, axes = plt.subplots(nrow, ncol, figsize=(11, 2.35 * nrow), dpi=100, squeeze=False)
+    fig, axes = plt.subplots(nrow, ncol, figsize=(11, 2.3 * nrow), dpi=84, squeeze=False)
+    fig.subplots_adjust(left=0.07, right=0.985, top=1 - 0.32 / nrow, bottom=0.55 / (nrow + 1),
+                        hspace=0.55, wspace=0.16)
     t0 = now - HISTORY_DAYS * 86400.0
-    opened = [a.get("opened_at") for a in rig.open_alerts if a.get("opened_at")]
     for ax, m in zip(axes.flat, lines):
+        opened = [a.get("opened_at") for a in rig.open_alerts
+                  if a.get("opened_at") and a.get("measure") == m.measure
+                  and a.get("channel") in (None, m.channel)]
         rows = _series(store, rig.rig, m.measure, m.channel, t0)
         ts = [datetime.fromtimestamp(r[0], tz=timezone.utc) for r in rows]
         vs = np.array([r[1] for r in rows], dtype=float)
@@ -411,7 +423,6 @@ def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None
     for ax in axes[-1]:
         if ax.has_data():
             ax.set_xlabel("date (UTC)", fontsize=9)
-    fig.tight_layout()
     uri = figure_data_uri(fig)
     plt.close(fig)
     return uri
@@ -436,7 +447,8 @@ def _spectrum_figure(store, rig: RigReport, now: float) -> str | None:
     except TypeError:
         ref = None
     plt = _plt()
-    fig, ax = plt.subplots(figsize=(11, 3.6), dpi=100)
+    fig, ax = plt.subplots(figsize=(11, 3.6), dpi=84)
+    fig.subplots_adjust(left=0.07, right=0.985, top=0.91, bottom=0.14)
     f = np.asarray(spec.freqs_hz, dtype=float)
     d = np.asarray(spec.density, dtype=float)
     sel = (f > 0) & (d > 0)
@@ -449,18 +461,17 @@ def _spectrum_figure(store, rig: RigReport, now: float) -> str | None:
     line = _latest_value(store, rig.rig, "line_hz", now) or 0.0
     if line:
         top = f[sel].max() if sel.any() else 0
-        for h in range(1, 21):
+        for h in range(1, 11):
             if h * line > min(top, 1000.0):
                 break
             ax.axvline(h * line, color="#c98a00", lw=0.7, ls=":", alpha=0.8,
                        label=f"mains harmonics ({line:g} Hz)" if h == 1 else None)
     ax.set_xlabel("frequency (Hz)")
     ax.set_ylabel(f"PSD ({spec.unit}\u00b2/Hz)")
-    ax.grid(True, which="both", alpha=0.22)
+    ax.grid(True, which="major", alpha=0.3)
     ax.legend(fontsize=8, loc="lower left")
     ax.set_title("latest baseline spectrum against the rig's reference, channel 0",
                  fontsize=10, loc="left")
-    fig.tight_layout()
     uri = figure_data_uri(fig)
     plt.close(fig)
     return uri
