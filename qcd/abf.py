@@ -461,6 +461,10 @@ def _commands(path: Path, abf, head: bytes, n_ch: int, sweep_len: int, old_abf1:
             out.append(CommandLayout(ch, _clean(h.sDACChannelUnit[ch]),
                                      _clean(h.sDACChannelName[ch]), holding, enabled,
                                      tuple(epochs), bool(h.nInterEpisodeLevel[ch]), sweep_len))
+        if any(e.kind not in ("step", "ramp") for c in out for e in c.epochs):
+            notes.append("ABF1 train epochs (pulse and the like): their period and width are "
+                         "not read, so their segments have period 0 and waveform() draws them "
+                         "at the previous level, as the header library does")
         if n_ch > 2 and out:
             notes.append("ABF1 holds epoch tables for two command channels only; input channels"
                          " from 2 on have no command (the header library reuses channel 0's)")
