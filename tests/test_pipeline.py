@@ -206,12 +206,15 @@ def test_second_reader_reads_during_writes_without_errors(lab, rig, tmp_path, ru
     def reader():
         con = sqlite3.connect(db, timeout=5)
         try:
-            while not stop.is_set():
+            while True:
+                last = stop.is_set()             # one more read after the writer is done
                 try:
                     counts.append(con.execute("SELECT count(*) FROM files").fetchone()[0])
                     con.execute("SELECT * FROM outbox").fetchall()
                 except sqlite3.Error as e:
                     errors.append(repr(e))
+                if last:
+                    break
         finally:
             con.close()
     t = threading.Thread(target=reader, name="second-reader")
