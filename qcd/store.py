@@ -17,14 +17,16 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
-from qcd.analyze import ChannelMeasures, FileMeasures, Measure, Spectrum
 from qcd.errors import StoreError
+
+if TYPE_CHECKING:  # qcd.analyze pulls in scipy: imported lazily so `qcd silence` starts fast
+    from qcd.analyze import ChannelMeasures, FileMeasures, Spectrum
 
 __all__ = ["Store", "FileState", "Silence", "MIGRATIONS", "to_unix"]
 
@@ -409,6 +411,7 @@ class Store:
         if not rows:
             return None
         unit, freqs, _ = rows[0]
+        from qcd.analyze import Spectrum
         same = [np.frombuffer(d, dtype="<f4") for u, f, d in rows if u == unit and f == freqs]
         median = np.median(np.vstack(same).astype(np.float64), axis=0)
         return Spectrum(freqs_hz=_from_f32(freqs), density=tuple(float(x) for x in median),
@@ -747,6 +750,7 @@ class Store:
                         "channel = ?", (file_id, channel))
         if row is None:
             return None
+        from qcd.analyze import Spectrum
         return Spectrum(freqs_hz=_from_f32(row[1]), density=_from_f32(row[2]), unit=row[0])
 
     def findings(self, file_id: int) -> list[dict[str, Any]]:
@@ -771,6 +775,7 @@ class Store:
 
     def load_file(self, file_id: int) -> FileMeasures | None:
         """The stored file rebuilt as a FileMeasures (spectra as float32 gave them)."""
+        from qcd.analyze import ChannelMeasures, FileMeasures, Measure
         rows = self._rows("SELECT * FROM files WHERE id = ?", (file_id,))
         if not rows:
             return None
