@@ -127,6 +127,7 @@ _MIN_BLOCK = 16           # fewer baseline samples than this per window: no nois
 _MAX_HUM_DF = 2.0         # 50 and 60 Hz families need bins of at most 2 Hz to stay apart
 _NO_COMMAND_FRACTION = 8  # no command known: the first 1/8 of each sweep is the baseline
 _TP_SPREAD = 0.10         # a test pulse keeps its size within 10 % over the sweeps
+_MEDIAN_SAMPLES = 2048    # block medians from every k-th sample, k = L // 2048 (speed)
 _ABSURD_AMPERES = 1e-3    # |current| above 1 mA is no patch-clamp signal: the unit is wrong
 
 
@@ -360,24 +361,50 @@ def _plan_steps(rec: Any, dims: _Dims, mode: str, ch: int, primary: int | None,
 
 
 class _Blocks:
-    """Accumulates baseline blocks of L samples: per-block noise values and the Welch sum."""
+    """Accumulates baseline blocks of L samples: per-block noise values and the Welch sum.
 
-    def __init__(self, L: int, fs: float) -> None:
+    Blocks arrive in any linear unit (raw converter counts on the gap-free path); ``scale`` and
+    ``offset`` turn results into SI. ``rails`` (same unit as the blocks) count clipped samples.
+    """
+
+    def __init__(self, L: int, fs: float, scale: float = 1.0, offset: float = 0.0,
+                 rails: tuple[float, float] | None = None) -> None:
         self.L, self.fs = L, fs
-        self.welch = sp.WelchAccumulator(L // 2 + 1)
+        self.scale, self.offset, self.rails = scale, offset, rails
+        self.welch = sp.WelchAccumulator(L, fs)
+        self.clipped = 0
+        self._median_step = max(1, L // _MEDIAN_SAMPLES)
         self.parts: dict[str, list[np.ndarray]] = {k: [] for k in
                                                    ("sd", "sd_band", "pp", "mean", "median", "t")}
 
     def add(self, blocks: np.ndarray, t0: np.ndarray) -> None:
-        X, mean, slope = sp.block_fft(blocks)
-        bn = nz.block_noise(blocks, X, slope, mean, self.fs)
-        self.welch.add(sp.hann_psd(X, self.L, self.fs), bn.sd)
-        for k, v in (("sd", bn.sd), ("sd_band", bn.sd_band), ("pp", bn.pp), ("mean", bn.mean),
-                     ("median", bn.median), ("t", t0)):
+        """Add (n, L) float64 blocks; they are detrended in place."""
+        pp, mx, mn = nz.peak_to_peak(blocks)
+        if self.rails is not None:
+            lo, hi = self.rails
+            for i in np.flatnonzero((mx >= hi) | (mn <= lo)):
+                self.clipped += nz.clipping_count(blocks[i], self.rails)
+        med = np.median(blocks[:, ::self._median_step], axis=1)
+        X, mean, _ = sp.block_fft(blocks, overwrite=True)
+        sd, sd_band = nz.parseval_sd(X, self.L, self.fs)
+        self.welch.add(X, sd)
+        for k, v in (("sd", sd), ("sd_band", sd_band), ("pp", pp), ("mean", mean),
+                     ("median", med), ("t", t0)):
             self.parts[k].append(v)
 
     def arrays(self) -> dict[str, np.ndarray]:
-        return {k: (np.concatenate(v) if v else np.empty(0)) for k, v in self.parts.items()}
+        """Per-block values in SI."""
+        out = {k: (np.concatenate(v) if v else np.empty(0)) for k, v in self.parts.items()}
+        g = abs(self.scale)
+        for k in ("sd", "sd_band", "pp"):
+            out[k] = out[k] * g
+        for k in ("mean", "median"):
+            out[k] = out[k] * self.scale + self.offset
+        return out
+
+    def psd(self, exclude: frozenset[int]) -> tuple[np.ndarray, int]:
+        P, n = self.welch.psd(exclude)
+        return P * self.scale ** 2, n
 
 
 class _TestPulse:
@@ -478,7 +505,7 @@ def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
               mains_hz: float | None, out: dict[str, Measure], notes: list[str]
               ) -> Spectrum | None:
     L = acc.L
-    psd, k_seg = acc.welch.psd(frozenset(int(i) for i in np.flatnonzero(keep_events)))
+    psd, k_seg = acc.psd(frozenset(int(i) for i in np.flatnonzero(keep_events)))
     if not acc.welch.exact:
         notes.append("more event blocks than kept spectra: some events stay in the PSD")
     freqs = np.arange(len(psd)) * fs / L
@@ -539,7 +566,7 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
         tpr.fs = fs
     if rec.gap_free:
         L = max(1, min(int(round(fs * _BLOCK_S)), rec.n_samples))
-        acc = _Blocks(L, fs) if L >= _MIN_BLOCK else None
+        acc = _Blocks(L, fs, factor, 0.0, rails) if L >= _MIN_BLOCK else None
         acc_s = acc
     else:
         # time-domain noise from the pre-step windows (DESIGN); the spectrum from every
@@ -553,21 +580,27 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
         same = L2 == L and all(len(w) == 1 for w in windows)
         acc_s = acc if same else (_Blocks(L2, fs) if L2 >= _MIN_BLOCK else None)
     if rec.gap_free:
-        buf = np.empty(0)
+        # chunks of whole blocks (views, detrended in place); the SI factor goes on the results
+        size = max(L, chunk // max(L, 1) * max(L, 1))
+        left = np.empty(0)
         done = 0
-        for x in rec.chunks(c, None, size=chunk):
+        for x in rec.chunks(c, None, size=size):
             n_total += len(x)
-            clipped += nz.clipping_count(x, rails)
             if acc is None:
+                clipped += nz.clipping_count(x, rails)
                 continue
-            if len(buf):
-                x = np.concatenate((buf, x))
+            if len(left):
+                x = np.concatenate((left, x))
             nb = len(x) // L
             if nb:
                 t0 = (done + np.arange(nb) * L + L / 2) / fs
-                acc.add((x[:nb * L] * factor).reshape(nb, L), t0)
+                left = x[nb * L:].copy()
+                acc.add(x[:nb * L].reshape(nb, L), t0)
                 done += nb * L
-            buf = x[nb * L:]
+            else:
+                left = x
+        if acc is not None:
+            clipped += acc.clipped + nz.clipping_count(left, rails)
     else:
         for k in range(rec.n_sweeps):
             x = rec.sweep(c, k)
@@ -586,7 +619,7 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
                     nb = (b - a) // n_l
                     if nb:
                         t0 = t_k + (a + np.arange(nb) * n_l + n_l / 2) / fs
-                        target.add(xs[a:a + nb * n_l].reshape(nb, n_l), t0)
+                        target.add(xs[a:a + nb * n_l].reshape(nb, n_l).copy(), t0)
     spectrum = None
     if acc is None or not acc.parts["sd"]:
         notes.append("no baseline window long enough for noise measures "

@@ -1,54 +1,47 @@
-"""Time-domain noise measures per baseline window, computed from the window's one rfft
-(``spectrum.block_fft``) plus a few vectorised passes. numpy only, SI in and out.
+"""Noise measures per baseline window: SD and band SD from the window's one rfft
+(``spectrum.block_fft``), time-domain references, clipping and event blocks. numpy only.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
-from qcd.measures.spectrum import _one_sided_weights
-
-__all__ = ["BlockNoise", "block_noise", "rms", "detrended_sd", "lowpass_sd",
+__all__ = ["parseval_sd", "peak_to_peak", "rms", "detrended_sd", "lowpass_sd",
            "clipping_count", "EVENT_FACTOR", "event_blocks"]
 
 EVENT_FACTOR = 3.0    # a block with RMS above 3x the median block RMS holds an event (DESIGN)
 
 
-@dataclass(frozen=True)
-class BlockNoise:
-    """Per-block values (arrays of one entry per block), SI units."""
-    sd: np.ndarray        # SD after removing the least-squares line (noise_rms)
-    sd_band: np.ndarray   # the same after a zero-phase brick-wall low-pass at band_hz (noise_rms_1k)
-    pp: np.ndarray        # peak-to-peak of the detrended block (noise_pp)
-    mean: np.ndarray      # block mean (holding)
-    median: np.ndarray    # block median (baseline_drift)
+def parseval_sd(X: np.ndarray, n: int, fs: float, band_hz: float = 1000.0
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """(SD, SD below band_hz) of each detrended block from its rfft ``X`` (rows).
 
-
-def block_noise(blocks: np.ndarray, X: np.ndarray, slope: np.ndarray, mean: np.ndarray,
-                fs: float, band_hz: float = 1000.0, medians: bool = True) -> BlockNoise:
-    """Noise values of each row of ``blocks`` from its detrended rfft ``X``.
-
-    sd: by Parseval, sum |x_d|^2 = (1/L) sum_k w_k |X_k|^2 with w the one-sided weights, so
-    sd = sqrt(sum_k w_k |X_k|^2) / L (population SD of the residual; Parseval's theorem).
-    sd_band: the same sum over bins f_k <= band_hz: exactly the SD of the signal after an ideal
-    zero-phase (brick-wall) low-pass at band_hz applied to the detrended block, i.e.
-    ``irfft`` with the higher bins set to zero (tested against that time-domain filter).
-    pp: max - min of the block with its line removed (METHODS §3.3).
+    Parseval: sum |x_d|^2 = (1/L) sum_k w_k |X_k|^2 with w the one-sided weights, so
+    sd = sqrt(sum_k w_k |X_k|^2) / L (population SD of the residual of the least-squares line).
+    The band value sums bins f_k <= band_hz only: exactly the SD of the detrended block after an
+    ideal zero-phase (brick-wall) low-pass at band_hz, i.e. ``irfft`` with the higher bins set
+    to zero (tested against that time-domain filter). Used for noise_rms and noise_rms_1k.
     """
-    n = blocks.shape[1]
-    w = _one_sided_weights(n)
-    power = X.real ** 2 + X.imag ** 2
-    power *= w[None, :]
-    freqs = np.arange(X.shape[1]) * fs / n
-    sd = np.sqrt(power.sum(axis=1)) / n
-    nb = int(np.searchsorted(freqs, band_hz * (1 + 1e-12), side="right"))
-    sd_band = np.sqrt(power[:, :nb].sum(axis=1)) / n
-    centred = np.arange(n, dtype=float) - (n - 1) / 2.0
-    resid = blocks - slope[:, None] * centred[None, :]
-    pp = resid.max(axis=1) - resid.min(axis=1)
-    med = np.median(blocks, axis=1) if medians else mean
-    return BlockNoise(sd, sd_band, pp, mean, med)
+    X = np.ascontiguousarray(np.atleast_2d(X))
+    Y = X.view(np.float64)
+    m = X.shape[1]
+    last = (np.abs(X[:, -1]) ** 2) if n % 2 == 0 else 0.0
+    first = np.abs(X[:, 0]) ** 2
+    total = 2 * np.einsum("bj,bj->b", Y, Y) - first - last
+    nb = int(min(m, np.floor(band_hz * n / fs + 1e-9) + 1))
+    part = 2 * np.einsum("bj,bj->b", Y[:, :2 * nb], Y[:, :2 * nb]) - first
+    if nb == m:
+        part = part - last
+    return np.sqrt(np.maximum(total, 0.0)) / n, np.sqrt(np.maximum(part, 0.0)) / n
+
+
+def peak_to_peak(blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(max - min, max, min) of each row (noise_pp; METHODS §3.3). The window is not detrended
+    for this: a 1 s window's trend is far below its noise, and the row maxima also serve the
+    clipping check."""
+    blocks = np.atleast_2d(blocks)
+    mx = blocks.max(axis=1)
+    mn = blocks.min(axis=1)
+    return mx - mn, mx, mn
 
 
 def rms(x: np.ndarray) -> float:

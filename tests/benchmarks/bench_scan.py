@@ -1,0 +1,169 @@
+"""Benchmark: ``qcd scan`` on big gap-free files against a baseline and a floor, in one run.
+
+    .venv/bin/python tests/benchmarks/bench_scan.py            # 30-min 20 kHz file and a 2 GB one
+    .venv/bin/python tests/benchmarks/bench_scan.py --small    # the 30-min file only
+
+Files are written in /tmp as gap-free ABF1 (header from pyabf's writer, patched to gap-free,
+samples appended in chunks) and deleted afterwards. Every variant runs in its own subprocess
+on a warm page cache; wall time and peak resident memory (ru_maxrss of that child) are printed
+with the ratios the targets use:
+
+- baseline: pyabf loads the file, scipy.signal.welch (1 s Hann segments, taken in 100-segment
+  slices so its segment copies fit in memory) and numpy std of 1 s blocks;
+- floor: one numpy.memmap read and one rfft per 1 s block;
+- targets: qcd at least 2x faster than the baseline, within 1.5x of the floor, under 250 MB.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import struct
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+FS = 20_000.0
+HEADER = 2048          # pyabf's ABF1 writer puts the data at block 4
+
+
+def write_gapfree_abf1(path: Path, n_samples: int, fs: float = FS, seed: int = 0) -> None:
+    """A valid gap-free ABF1 file of n_samples int16 samples (pA): white noise plus 50 Hz hum.
+
+    The signal is 60 s of synthetic samples repeated (writing speed, not realism, matters).
+    """
+    import pyabf.abfWriter
+    pyabf.abfWriter.writeABF1(np.zeros((1, 1024)) + 100.0, str(path), fs, "pA")
+    with open(path, "r+b") as f:
+        f.seek(8)
+        f.write(struct.pack("<h", 3))                  # nOperationMode: gap-free
+        f.seek(10)
+        f.write(struct.pack("<i", n_samples))          # lActualAcqLength
+        f.seek(16)
+        f.write(struct.pack("<i", 1))                  # lActualEpisodes
+        f.seek(138)
+        f.write(struct.pack("<i", min(n_samples, 2**31 - 1)))   # lNumSamplesPerEpisode
+        f.seek(922)
+        scale = struct.unpack("<f", f.read(4))[0]
+        f.truncate(HEADER)
+        f.seek(HEADER)
+        rng = np.random.default_rng(seed)
+        t = np.arange(int(60 * fs)) / fs
+        value_scale = 2**15 / 10.0 * scale            # counts per pA, as the writer computes
+        sig = rng.normal(0, 2.0, len(t)) + 1.5 * np.sin(2 * np.pi * 50.02 * t)
+        block = np.clip(np.round(sig * value_scale), -32768, 32767).astype("<i2")
+        left = n_samples
+        while left:
+            n = min(left, len(block))
+            f.write(block[:n].tobytes())
+            left -= n
+
+
+_BASELINE = r"""
+import sys, numpy as np, pyabf, scipy.signal as ss
+abf = pyabf.ABF(sys.argv[1])
+x = abf.data[0]
+fs = abf.dataRate
+L = int(fs)
+acc = None; k = 0
+step = 100 * L
+for s in range(0, len(x) - L + 1, step):
+    f, p = ss.welch(x[s:s + step], fs, window="hann", nperseg=L)
+    acc = p if acc is None else acc + p
+    k += 1
+n = len(x) // L * L
+sd = np.std(x[:n].reshape(-1, L), axis=1)
+print(float(np.median(sd)), float(acc.sum() / k))
+"""
+
+_FLOOR = r"""
+import sys, numpy as np
+path, offset, n, fs = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), float(sys.argv[4])
+L = int(fs)
+chunk = (1 << 20) // L * L
+acc = np.zeros(L // 2 + 1)
+for s in range(0, n - L + 1, chunk):
+    e = min(n, s + chunk) // L * L
+    mm = np.memmap(path, dtype="<i2", mode="r", offset=offset + 2 * s, shape=(e - s,))
+    X = np.fft.rfft(np.asarray(mm, dtype=np.float64).reshape(-1, L), axis=1)
+    acc += (X.real ** 2 + X.imag ** 2).sum(axis=0)
+    del mm
+print(float(acc[1:].sum()))
+"""
+
+
+def run(cmd: list[str]) -> tuple[float, float, str]:
+    """(wall seconds, peak resident MB, stdout) of one child process."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    out, err = proc.communicate()
+    wall = time.perf_counter() - t0
+    # ru_maxrss of this child alone: wait4 is done by communicate, so use the rusage of all
+    # children so far and the fact that each variant runs after a fresh max (see main)
+    if proc.returncode not in (0, 1):
+        raise RuntimeError(f"{cmd[:4]} failed ({proc.returncode}): {err.decode()[-2000:]}")
+    return wall, 0.0, out.decode()
+
+
+def run_measured(cmd: list[str]) -> tuple[float, float, str]:
+    """Run cmd in a child and read its own peak RSS through os.wait4."""
+    t0 = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    out = proc.stdout.read()
+    err = proc.stderr.read()
+    _, status, usage = os.wait4(proc.pid, 0)
+    proc.returncode = os.waitstatus_to_exitcode(status)
+    wall = time.perf_counter() - t0
+    if proc.returncode not in (0, 1):
+        raise RuntimeError(f"{cmd[:4]} failed ({proc.returncode}): {err.decode()[-2000:]}")
+    return wall, usage.ru_maxrss / 1024.0, out.decode()
+
+
+def bench(path: Path, n: int) -> dict[str, tuple[float, float]]:
+    py = sys.executable
+    with open(path, "rb") as f:                         # warm the page cache for every variant
+        while f.read(1 << 24):
+            pass
+    res = {}
+    res["qcd scan"] = run_measured([py, "-m", "qcd", "scan", "--json", str(path)])[:2]
+    res["floor (memmap + rfft)"] = run_measured([py, "-c", _FLOOR, str(path), str(HEADER),
+                                                 str(n), str(FS)])[:2]
+    res["baseline (pyabf + welch + std)"] = run_measured([py, "-c", _BASELINE, str(path)])[:2]
+    return res
+
+
+def report(label: str, size: int, res: dict[str, tuple[float, float]]) -> None:
+    print(f"\n{label}: {size / 1e9:.2f} GB")
+    for k, (wall, mb) in res.items():
+        print(f"  {k:<32} {wall:8.2f} s  {mb:8.1f} MB peak")
+    q = res["qcd scan"][0]
+    print(f"  speed-up over baseline: {res['baseline (pyabf + welch + std)'][0] / q:.2f}x "
+          f"(target >= 2)")
+    print(f"  qcd / floor:            {q / res['floor (memmap + rfft)'][0]:.2f}x (target <= 1.5)")
+    print(f"  qcd peak memory:        {res['qcd scan'][1]:.0f} MB (target < 250)")
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--small", action="store_true", help="only the 30-minute file")
+    args = ap.parse_args()
+    cases = [("30 min gap-free at 20 kHz", int(30 * 60 * FS))]
+    if not args.small:
+        cases.append(("2 GB gap-free at 20 kHz", 1_000_000_000))
+    with tempfile.TemporaryDirectory(prefix="qcd-bench-", dir="/tmp") as tmp:
+        for label, n in cases:
+            path = Path(tmp) / "bench.abf"
+            t0 = time.perf_counter()
+            write_gapfree_abf1(path, n)
+            print(f"wrote {path} ({path.stat().st_size / 1e9:.2f} GB) in "
+                  f"{time.perf_counter() - t0:.1f} s", flush=True)
+            report(label, path.stat().st_size, bench(path, n))
+            path.unlink()
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

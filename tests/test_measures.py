@@ -1,0 +1,319 @@
+"""Noise, spectrum and drift measures against analytic results, METHODS.md check values and
+scipy as a reference library. Values in pA are plain numbers here (the functions are linear and
+unit-free); SI conversion is tested in test_analyze.py."""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import scipy.signal as ss
+import scipy.stats
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from qcd.measures import drift
+from qcd.measures import noise as nz
+from qcd.measures import spectrum as sp
+from references import analog_bessel_noise, johnson_density, sine, white_noise
+
+
+def _psd(x: np.ndarray, fs: float, L: int) -> tuple[np.ndarray, np.ndarray, int]:
+    """Streaming Welch PSD of x in L-sample blocks, fed in uneven pieces."""
+    nb = len(x) // L
+    acc = sp.WelchAccumulator(L, fs)
+    blocks = x[:nb * L].reshape(nb, L)
+    for part in np.array_split(blocks, min(3, nb)):
+        X, _, _ = sp.block_fft(part)
+        acc.add(X, np.ones(len(part)))
+    P, k = acc.psd()
+    return np.arange(L // 2 + 1) * fs / L, P, k
+
+
+def _methods_42_signal(f1: float = 50.0, seed: int = 0, fs: float = 10_000.0, dur: float = 60.0):
+    """METHODS §4.2 worked example: 1.0 pA at f1 + 0.3 pA at 3 f1 + white sigma 0.5 pA."""
+    rng = np.random.default_rng(seed)
+    n = int(fs * dur)
+    return (sine(n, fs, 1.0, f1) + sine(n, fs, 0.3, 3 * f1, 0.7)
+            + rng.normal(0.0, 0.5, n)), fs
+
+
+# --- time-domain definitions --------------------------------------------------------------
+
+def test_sine_rms_is_amplitude_over_root_two():
+    # analytic: RMS of A sin(wt) over whole periods is A/sqrt(2)
+    x = sine(10_000, 10_000.0, 3.0, 50.0)
+    assert nz.rms(x) == pytest.approx(3.0 / math.sqrt(2), rel=1e-9)
+    # the block SD (Parseval on the detrended rfft) sees the same; the removed line takes a
+    # negligible part of a sine over 50 whole periods
+    X, _, _ = sp.block_fft(x[None, :])
+    sd, _ = nz.parseval_sd(X, len(x), 10_000.0)
+    assert sd[0] == pytest.approx(3.0 / math.sqrt(2), rel=1e-3)
+
+
+@pytest.mark.parametrize("n", [1000, 1001, 20_000])
+def test_block_sd_equals_time_domain_detrend_and_brick_wall_lowpass(n):
+    # reference: numpy polyfit detrend, and irfft with bins above 1 kHz zeroed (an ideal
+    # zero-phase low-pass); the one-rfft path must give the same numbers
+    rng = np.random.default_rng(n)
+    fs = 10_000.0
+    x = rng.normal(0, 1, (3, n)) + np.linspace(0, 40, n)[None, :] + 7.0
+    X, mean, slope = sp.block_fft(x)
+    sd, sd1k = nz.parseval_sd(X, n, fs, band_hz=1000.0)
+    for i in range(3):
+        assert sd[i] == pytest.approx(nz.detrended_sd(x[i]), rel=1e-10)
+        assert sd1k[i] == pytest.approx(nz.lowpass_sd(x[i], fs, 1000.0), rel=1e-10)
+        assert mean[i] == pytest.approx(x[i].mean(), rel=1e-12)
+        assert np.std(ss.detrend(x[i])) == pytest.approx(sd[i], rel=1e-10)   # scipy reference
+
+
+def test_peak_to_peak_of_gaussian_noise_matches_expected_range():
+    # METHODS §3.3 (Tippett 1925): E[R]/sigma = 7.703 for N = 1e4, 5-95 % band 7.07-8.45
+    rng = np.random.default_rng(11)
+    x = rng.normal(0, 1, (300, 10_000))
+    pp, _, _ = nz.peak_to_peak(x)
+    assert pp.mean() == pytest.approx(7.703, abs=0.08)
+    inside = np.mean((pp >= 7.07) & (pp <= 8.45))
+    assert 0.84 <= inside <= 0.96
+
+
+def test_clipping_count_and_event_blocks():
+    x = np.array([0.0, 9.99, 10.0, -10.0, 3.0, 12.0])
+    assert nz.clipping_count(x, (-10.0, 10.0)) == 3          # at or beyond the rails
+    assert nz.clipping_count(x[:2], (-10.0, 10.0)) == 0
+    sd = np.array([1.0, 1.1, 0.9, 1.0, 3.5, 1.05])            # 3.5 > 3 x median (DESIGN)
+    assert nz.event_blocks(sd).tolist() == [False] * 4 + [True, False]
+
+
+# --- Welch and Parseval -----------------------------------------------------------------------
+
+def test_streaming_psd_equals_scipy_welch():
+    # reference library: scipy.signal.welch with the same segments (Hann, 1 s, no overlap,
+    # linear detrend per segment)
+    rng = np.random.default_rng(5)
+    fs = 5000.0
+    x = rng.normal(0, 1, 60_000) + np.linspace(0, 10, 60_000) + sine(60_000, fs, 2.0, 123.4)
+    f, P, k = _psd(x, fs, 5000)
+    fw, Pw = ss.welch(x, fs, window="hann", nperseg=5000, noverlap=0, detrend="linear")
+    assert k == 12
+    np.testing.assert_allclose(f, fw)
+    np.testing.assert_allclose(P, Pw, rtol=1e-9, atol=1e-12 * Pw.max())
+
+
+def test_excluded_blocks_leave_the_psd_exactly():
+    rng = np.random.default_rng(6)
+    fs, L = 1000.0, 1000
+    x = rng.normal(0, 1, (10, L))
+    x[4] += 50 * np.sin(np.linspace(0, 30, L))       # an event block
+    acc = sp.WelchAccumulator(L, fs)
+    X, _, _ = sp.block_fft(x)
+    sd, _ = nz.parseval_sd(X, L, fs)
+    acc.add(X, sd)
+    P, k = acc.psd(frozenset({4}))
+    _, Pw = ss.welch(np.delete(x, 4, axis=0).ravel(), fs, window="hann", nperseg=L,
+                     noverlap=0, detrend="linear")
+    assert k == 9 and acc.exact
+    np.testing.assert_allclose(P, Pw, rtol=1e-9, atol=1e-12 * Pw.max())
+
+
+def test_parseval_psd_integral_equals_variance_on_methods_signal():
+    # METHODS §3.4 check on the §4.2 signal: var = 0.7953, sum P df = 0.7958 (theory 0.795)
+    x, fs = _methods_42_signal()
+    f, P, _ = _psd(x, fs, 10_000)
+    var = float(np.var(x))
+    assert var == pytest.approx(0.795, rel=0.01)
+    assert float(P.sum() * (f[1] - f[0])) == pytest.approx(var, rel=0.005)
+
+
+# --- mains hum -------------------------------------------------------------------------------
+
+def test_hum_worked_example_methods_4_2():
+    # METHODS §4.2 table: P1 = 0.500 pA^2 (A = 1.000 pA), P3 = 0.045 pA^2 (A = 0.301 pA)
+    x, fs = _methods_42_signal()
+    f, P, k = _psd(x, fs, 10_000)
+    h = sp.hum(f, P, k_segments=k)
+    assert h is not None and h.nominal_hz == 50.0 and h.detected
+    p = {row[0]: row[2] for row in h.harmonics}
+    assert p[1] == pytest.approx(0.500, rel=0.02)
+    assert p[3] == pytest.approx(0.045, rel=0.03)
+    assert h.fundamental_power == pytest.approx(0.5, rel=0.02)
+    assert h.power == pytest.approx(0.545, rel=0.03)
+    assert math.sqrt(2 * p[1]) == pytest.approx(1.000, rel=0.01)
+
+
+@pytest.mark.parametrize("f0", [50.0, 50.1, 49.9, 50.07, 60.0, 60.1, 59.9, 59.96])
+def test_hum_amplitude_within_5_percent_off_nominal(f0):
+    # amplitude of the fundamental A = sqrt(2 P1) within 5 % with the grid up to 0.1 Hz off
+    # (METHODS §4.2 signal; §4.1: ±200 mHz normal deviation), line found to 0.05 Hz
+    x, fs = _methods_42_signal(f1=f0, seed=int(f0 * 100))
+    f, P, k = _psd(x, fs, 10_000)
+    h = sp.hum(f, P, k_segments=k)
+    assert h is not None
+    assert h.nominal_hz == (50.0 if f0 < 55 else 60.0)
+    assert math.sqrt(2 * h.fundamental_power) == pytest.approx(1.0, rel=0.05)
+    assert abs(h.line_hz - f0) <= 0.05
+
+
+def test_hum_given_mains_frequency_is_measured_without_detection():
+    x, fs = _methods_42_signal(f1=60.0)
+    f, P, k = _psd(x, fs, 10_000)
+    h = sp.hum(f, P, k_segments=k, mains_hz=60.0)
+    assert not h.detected and h.family_db is None
+    assert math.sqrt(2 * h.fundamental_power) == pytest.approx(1.0, rel=0.05)
+
+
+@pytest.mark.parametrize("extra_hz", [None, 37.0, 1234.0])
+def test_no_hum_reported_without_mains(extra_hz):
+    # white noise, optionally with a strong line that belongs to neither mains family
+    rng = np.random.default_rng(21)
+    fs = 10_000.0
+    x = rng.normal(0, 0.5, int(fs * 30))
+    if extra_hz:
+        x += sine(len(x), fs, 1.0, extra_hz)
+    f, P, k = _psd(x, fs, 10_000)
+    assert sp.hum(f, P, k_segments=k) is None
+
+
+def test_mains_family_decision_methods_4_3():
+    # METHODS §4.3: family ratio >= +10 dB -> 50 Hz, <= -10 dB -> 60 Hz (common practice)
+    rng = np.random.default_rng(3)
+    fs, n = 10_000.0, 200_000
+    base = rng.normal(0, 0.5, n)
+    for f1, sign in ((50.0, 1), (60.0, -1)):
+        x = base + sine(n, fs, 1.0, f1) + sine(n, fs, 0.3, 2 * f1) + sine(n, fs, 0.2, 3 * f1)
+        f, P, k = _psd(x, fs, 10_000)
+        ratio, strong = sp.mains_family_db(f, P, k)
+        assert strong
+        assert ratio * sign >= 30.0
+    f, P, k = _psd(base, fs, 10_000)
+    _, strong = sp.mains_family_db(f, P, k)
+    assert not strong
+
+
+# --- thermal noise, bands ----------------------------------------------------------------------
+
+def test_johnson_noise_of_500_megaohm_in_1khz_band():
+    # METHODS §3.1 table (Johnson 1928; Nyquist 1928): 500 MOhm at 295 K, sqrt(S) = 5.708
+    # fA/sqrt(Hz); brick-wall 1 kHz 0.1805 pA, 10 kHz 0.5708 pA
+    S = johnson_density(500e6)
+    assert math.sqrt(S) == pytest.approx(5.708e-15, rel=1e-3)
+    rng = np.random.default_rng(8)
+    fs, L = 20_000.0, 20_000
+    x = white_noise(rng, 40 * L, fs, S)
+    X, _, _ = sp.block_fft(x.reshape(40, L))
+    sd, sd1k = nz.parseval_sd(X, L, fs, 1000.0)
+    assert float(np.median(sd1k)) == pytest.approx(0.1805e-12, rel=0.02)
+    assert float(np.median(sd)) == pytest.approx(0.5708e-12 * math.sqrt(2), rel=0.02)  # 10 kHz
+    f, P, k = _psd(x, fs, L)
+    # band RMS = sqrt(S * bandwidth) (METHODS §3.2 check: 5e-5 pA^2/Hz over 1 kHz = 0.2236 pA)
+    assert sp.band_rms(f, P, 70.0, 1000.0) == pytest.approx(math.sqrt(S * 930.0), rel=0.02)
+    assert sp.band_rms(f, P, 1000.0, 10_000.0) == pytest.approx(math.sqrt(S * 9000), rel=0.02)
+
+
+def test_band_rms_leaves_mains_bins_out():
+    # white 5e-5 pA^2/Hz (METHODS §3.2: 0.2236 pA over 1 kHz) plus strong hum in the band
+    rng = np.random.default_rng(9)
+    fs = 10_000.0
+    x = white_noise(rng, 300_000, fs, 5e-5)
+    hummed = x + sine(len(x), fs, 2.0, 50.0) + sine(len(x), fs, 1.0, 150.0)
+    f, P, k = _psd(hummed, fs, 10_000)
+    assert sp.band_rms(f, P, 0.5, 1000.0, line_hz=50.0) == pytest.approx(0.2236, rel=0.03)
+    assert sp.band_rms(f, P, 0.5, 1000.0) > 1.0            # without removal the hum counts
+
+
+def test_spectral_lines_find_non_mains_peaks():
+    rng = np.random.default_rng(10)
+    fs = 10_000.0
+    x = rng.normal(0, 0.5, 300_000) + sine(300_000, fs, 0.4, 1234.0) + sine(300_000, fs, 1.0, 50.0)
+    f, P, k = _psd(x, fs, 10_000)
+    lines = sp.spectral_lines(f, P, k_segments=k, line_hz=50.0)
+    assert len(lines) >= 1
+    assert lines[0][0] == pytest.approx(1234.0, abs=1.0)
+    assert lines[0][1] == pytest.approx(0.4 / math.sqrt(2), rel=0.1)
+    assert all(abs(fq - 50.0 * round(fq / 50.0)) > 3 for fq, _ in lines)
+
+
+# --- sampling and anti-aliasing ---------------------------------------------------------------
+
+def test_alias_ratio_flat_white_noise_is_a_risk():
+    # METHODS §5: unfiltered white noise R = -0.1 dB; flag R > -6 dB
+    rng = np.random.default_rng(12)
+    f, P, _ = _psd(rng.normal(0, 1, 200_000), 10_000.0, 10_000)
+    r = sp.alias_ratio_db(f, P)
+    assert abs(r) < 0.5 and r > sp.ALIAS_LIMIT_DB
+
+
+@pytest.mark.parametrize("ratio, expected_db", [(10, -36.6), (5, -14.9)])
+def test_alias_ratio_of_bessel_filtered_noise(ratio, expected_db):
+    # METHODS §5 spectral test on synthetic white noise: Bessel-4 at fs = 10 fc -> -36.6 dB,
+    # fs = 5 fc -> -14.9 dB (simulated values; theory -15.7); no alias risk at 10 fc
+    fs = 20_000.0
+    x = analog_bessel_noise(np.random.default_rng(13), 400_000, fs, fs / ratio)
+    f, P, _ = _psd(x, fs, 20_000)
+    r = sp.alias_ratio_db(f, P)
+    assert r == pytest.approx(expected_db, abs=1.5)
+    if ratio == 10:
+        assert r < sp.ALIAS_LIMIT_DB
+
+
+@pytest.mark.parametrize("fc, expected", [(2000.0, 2046.0), (4000.0, 3931.0)])
+def test_corner_of_bessel_filtered_noise(fc, expected):
+    # METHODS §5 corner estimate: 2046 Hz for a 2 kHz and 3931 Hz for a 4 kHz 4-pole Bessel
+    # (the sample rate is not stated there; 20 kHz here), within a few percent
+    fs = 20_000.0
+    x = analog_bessel_noise(np.random.default_rng(int(fc)), 1_200_000, fs, fc)
+    f, P, k = _psd(x, fs, 20_000)
+    assert sp.corner_hz(f, P, k) == pytest.approx(expected, rel=0.03)
+
+
+def test_no_corner_when_flat_to_nyquist():
+    rng = np.random.default_rng(14)
+    f, P, k = _psd(rng.normal(0, 1, 200_000), 10_000.0, 10_000)
+    assert sp.corner_hz(f, P, k) is None
+
+
+# --- drift -----------------------------------------------------------------------------------
+
+def test_theil_sen_methods_6_check():
+    # METHODS §6: y = -50 - 3 t pA, t = 0..10 min, t = 9 replaced by +500 pA:
+    # Theil-Sen -3.00 pA/min, least squares +17.98 (numpy polyfit as the reference)
+    t = np.arange(11.0)
+    y = -50.0 - 3.0 * t
+    y[9] = 500.0
+    assert drift.theil_sen(t, y)[0] == pytest.approx(-3.00, abs=1e-9)
+    assert np.polyfit(t, y, 1)[0] == pytest.approx(17.98, abs=0.01)
+    assert drift.theil_sen(t, y)[0] == pytest.approx(scipy.stats.theilslopes(y, t)[0])
+
+
+def test_baseline_drift_pools_long_series():
+    # per second in, the slope is kept when thousands of windows are pooled
+    rng = np.random.default_rng(15)
+    t = np.arange(5000.0)
+    y = 2.0 + 0.01 * t + rng.normal(0, 0.5, len(t))
+    assert drift.baseline_drift(t, y) == pytest.approx(0.01, rel=0.02)
+    assert drift.baseline_drift(t[:2], y[:2]) is None
+
+
+# --- chunking ----------------------------------------------------------------------------------
+
+@settings(max_examples=25, deadline=None)
+@given(cuts=st.lists(st.integers(min_value=1, max_value=19), min_size=0, max_size=6,
+                     unique=True))
+def test_any_split_into_pieces_gives_the_same_psd_and_block_values(cuts):
+    # the accumulator sums blocks: how the stream is cut into pieces must not matter
+    rng = np.random.default_rng(16)
+    fs, L = 2000.0, 500
+    x = rng.normal(0, 1, (20, L)) + sine(20 * L, fs, 0.5, 60.0).reshape(20, L)
+    one = sp.WelchAccumulator(L, fs)
+    X, _, _ = sp.block_fft(x)
+    sd_all, _ = nz.parseval_sd(X, L, fs)
+    one.add(X, sd_all)
+    many = sp.WelchAccumulator(L, fs)
+    sds = []
+    for part in np.split(x, sorted(cuts)):
+        Xp, _, _ = sp.block_fft(part)
+        sd, _ = nz.parseval_sd(Xp, L, fs)
+        many.add(Xp, sd)
+        sds.append(sd)
+    np.testing.assert_allclose(np.concatenate(sds), sd_all, rtol=1e-12)
+    np.testing.assert_allclose(many.psd()[0], one.psd()[0], rtol=1e-10)
