@@ -178,3 +178,40 @@ def command_trace(level: float, holding: float, fs: float, *, n_pre: int, n_step
     if noise_sd:
         y = y + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, len(y))
     return y
+
+
+# ---------------------------------------------------------------------------------------------
+# Signals for the noise, spectrum and drift measures (tests/test_measures.py)
+# ---------------------------------------------------------------------------------------------
+
+K_BOLTZMANN = 1.380649e-23      # J/K, exact (SI 2019)
+T_ROOM = 295.0                  # K, the temperature of METHODS §3.1's table
+
+
+def johnson_density(r_ohm: float, t_k: float = T_ROOM) -> float:
+    """One-sided current-noise density 4kT/R of a resistor, A^2/Hz (Johnson 1928; Nyquist 1928)."""
+    return 4.0 * K_BOLTZMANN * t_k / r_ohm
+
+
+def white_noise(rng: np.random.Generator, n: int, fs: float, density: float) -> np.ndarray:
+    """White Gaussian noise of one-sided density ``density`` (unit^2/Hz): sd = sqrt(S fs/2)."""
+    return rng.normal(0.0, np.sqrt(density * fs / 2.0), n)
+
+
+def sine(n: int, fs: float, amplitude: float, freq_hz: float, phase: float = 0.0) -> np.ndarray:
+    """amplitude * sin(2 pi f t + phase) sampled at fs; its RMS is amplitude/sqrt(2) (analytic)."""
+    return amplitude * np.sin(2 * np.pi * freq_hz * np.arange(n) / fs + phase)
+
+
+def analog_bessel_noise(rng: np.random.Generator, n: int, fs: float, fc: float, *,
+                        poles: int = 4, oversample: int = 16) -> np.ndarray:
+    """Unit white noise through an analog-like Bessel low-pass, then sampled at fs.
+
+    The filter runs at fs*oversample (scipy's digital Bessel, -3 dB at fc, which matches the
+    analog response far below that rate) and every oversample-th sample is kept, so the noise
+    above fs/2 aliases as it does ahead of a real converter (METHODS §5 spectral test).
+    """
+    from scipy import signal
+    hi = fs * oversample
+    sos = signal.bessel(poles, fc, fs=hi, norm="mag", output="sos")
+    return signal.sosfilt(sos, rng.normal(0.0, 1.0, n * oversample))[::oversample]
