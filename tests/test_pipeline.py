@@ -265,3 +265,45 @@ def test_scan_store_command_runs_the_whole_chain(lab, tmp_path, http_sink, capsy
     assert "alert opened: hum_rms" in out and "1 sent" in out
     (msg,) = http_sink.wait_for(1)
     assert "hum_rms" in msg["title"]
+
+
+def test_backlog_gives_one_digest_instead_of_a_message_per_file(lab, rig, store, rules,
+                                                                http_sink):
+    from qcd.pipeline import flush_digest
+    _, files, times = lab
+    for path, now in zip(files[:32], times[:32]):
+        assert process(path, rig, store, rules, now, batch=True).status == "ok"
+    assert store.outbox_counts()["pending"] == 0               # nothing per file
+    msg = flush_digest(store, rules, times[31] + 10.0, Sender([http_sink.url]))
+    assert msg is not None and msg.kind == "digest"
+    (got,) = http_sink.wait_for(1)
+    assert "digest" in got["title"] and "1 open" in got["title"] and "hum_rms" in got["message"]
+    assert flush_digest(store, rules, times[31] + 20.0) is None  # announced once
+
+
+def test_silence_mutes_the_alert_and_its_end_sends_one_message(lab, rig, store, rules,
+                                                               http_sink):
+    from qcd.pipeline import tick
+    _, files, times = lab
+    sender = Sender([http_sink.url])
+    end = times[31] + 3600.0
+    store.add_silence("rig-e2e", "hum_*", times[0], end, "replacing the headstage", times[0])
+    _run(files[:32], times[:32], rig, store, rules, sender)
+    assert http_sink.received == [] and len(store.open_alerts("rig-e2e")) == 1
+    assert tick(store, rules, end - 1.0, sender) == []
+    (m,) = tick(store, rules, end + 1.0, sender)
+    (got,) = http_sink.wait_for(1)
+    assert "hum_rms" in got["title"] and "held back" in got["message"]
+    assert tick(store, rules, end + 600.0, sender) == []
+
+
+def test_a_bug_while_judging_becomes_an_internal_error_row_and_the_caller_carries_on(
+        lab, rig, store, caplog):
+    from qcd.config import Rules
+    _, files, times = lab
+    broken = Rules(settings=None)          # not a valid Rules: judging fails inside qcd
+    fm = process(files[0], rig, store, broken, times[0])
+    assert fm.status == "error" and fm.error_kind == "internal"
+    assert "internal error" in fm.error and "judging" in caplog.text
+    (row,) = store.files("rig-e2e")
+    assert row["status"] == "error" and row["error_kind"] == "internal"
