@@ -189,8 +189,7 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
 def _num(v: float | None, width: int = 9) -> str:
     if v is None or not math.isfinite(v):
         return f"{'-':>{width}}"
-    a = abs(v)
-    s = f"{v:.3g}" if a >= 0.01 or a == 0 else f"{v:.2e}"
+    s = f"{v:.3g}"
     return f"{s:>{width}}"
 
 

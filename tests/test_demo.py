@@ -109,3 +109,114 @@ def test_plan_scripts_each_fault_once_and_keeps_one_rig_healthy():
     assert len(set(f.relpath for f in plan.files)) == len(plan.files)
     times = [f.recorded_at for f in plan.files]
     assert times == sorted(times)
+
+
+# --------------------------------------------------------------------------- the whole run
+
+@pytest.fixture(scope="module")
+def lab(tmp_path_factory):
+    """A reduced lab (8 days, 3 files per rig per day) through the real watch service."""
+    import io
+    folder = tmp_path_factory.mktemp("lab")
+    out = io.StringIO()
+    result = demo.run_demo(folder, days=8, files_per_day=3, out=out, workers=2,
+                           end=datetime(2026, 11, 20, tzinfo=timezone.utc))
+    from qcd.store import Store
+    store = Store(result.database)
+    yield result, store, out.getvalue()
+    store.close()
+
+
+def _bad(store, file_id, measures):
+    return [f for f in store.findings(file_id) if f["bad"] and f["measure"] in measures]
+
+
+def _files(store, rig):
+    return [f for f in store.files(rig=rig) if not f["superseded"]]
+
+
+@pytest.mark.slow
+def test_every_recording_is_stored_ok_in_acquisition_order(lab):
+    result, store, _ = lab
+    rows = store.files()
+    assert len(rows) == result.n_files == len(result.plan.files)
+    assert all(r["status"] == "ok" for r in rows)
+    planned = {f.relpath: f.recorded_at for f in result.plan.files}
+    for r in rows:                       # the header time qcd reads back is the acquisition time
+        rel = f"{r['rig']}/{Path(r['path']).name}"
+        assert r["recorded_at"] == pytest.approx(planned[rel], abs=1e-3)
+
+
+@pytest.mark.slow
+def test_degrading_ground_is_flagged_within_three_days(lab):
+    result, store, _ = lab
+    rig = {r.name: r for r in result.plan.rigs}["field-1"]
+    start = result.plan.day_start(rig.fault_day)
+    hum = ("hum_rms", "hum_fundamental_rms", "hum_fraction")
+    flagged = [f["recorded_at"] for f in _files(store, "field-1") if _bad(store, f["id"], hum)]
+    assert flagged, "the creeping hum was never flagged"
+    assert start <= flagged[0] < start + 3 * 86400.0
+    assert any(a["measure"] in hum for a in store.open_alerts(rig="field-1"))
+
+
+@pytest.mark.slow
+def test_headstage_failure_is_flagged_on_the_first_or_second_file(lab):
+    result, store, _ = lab
+    rig = {r.name: r for r in result.plan.rigs}["patch-2"]
+    start = result.plan.day_start(rig.fault_day)
+    noise = ("noise_rms", "noise_rms_1k", "band_rms_1k_corner", "band_rms_70_1k")
+    after = [f for f in _files(store, "patch-2") if f["recorded_at"] >= start]
+    assert _bad(store, after[0]["id"], noise) or _bad(store, after[1]["id"], noise)
+    before = [f for f in _files(store, "patch-2") if f["recorded_at"] < start]
+    assert not any(_bad(store, f["id"], noise) for f in before)
+
+
+@pytest.mark.slow
+def test_seal_loss_is_flagged_in_the_file_where_it_happens(lab):
+    result, store, _ = lab
+    spec = next(f for f in result.plan.files if f.rig == "patch-3" and f.faulty)
+    row = next(f for f in _files(store, "patch-3") if f["path"].endswith(spec.relpath))
+    bad = _bad(store, row["id"], ("seal_resistance",))
+    assert bad and min(b["value"] for b in bad) < 1.0          # GOhm: below a gigaseal
+    log = result.alerts_log.read_text(encoding="utf-8")
+    assert "patch-3" in log and "seal_resistance" in log
+
+
+@pytest.mark.slow
+def test_healthy_rig_raises_nothing(lab):
+    result, store, _ = lab
+    for f in _files(store, "patch-1"):
+        assert not [x for x in store.findings(f["id"]) if x["bad"]], f["path"]
+    assert not store.open_alerts(rig="patch-1")
+    assert "patch-1" not in result.alerts_log.read_text(encoding="utf-8")
+
+
+@pytest.mark.slow
+def test_messages_went_through_apprise_to_the_log_and_the_report_matches_the_store(lab):
+    result, store, text = lab
+    assert store.outbox_counts()["sent"] >= 3 and store.outbox_counts()["pending"] == 0
+    log = result.alerts_log.read_text(encoding="utf-8")
+    assert log.count("--- ") == store.outbox_counts()["sent"]
+    latest = store.measure_series("field-1", "hum_rms", channel=0)[-1]
+    line = next(ln for ln in result.report_text.splitlines() if ln.strip().startswith("hum_rms"))
+    assert float(line.split()[2]) == pytest.approx(latest[1], rel=5e-3)   # 3 digits shown
+    assert "HTML report:" in text and result.html.is_file()
+
+
+@pytest.mark.slow
+def test_demo_html_report_is_self_contained(lab):
+    from html.parser import HTMLParser
+    result, _, _ = lab
+    page = result.html.read_text(encoding="utf-8")
+    srcs, refs = [], []
+
+    class P(HTMLParser):
+        def handle_starttag(self, tag, attrs):
+            a = dict(attrs)
+            if tag == "img":
+                srcs.append(a.get("src", ""))
+            elif "src" in a or "href" in a:
+                refs.append(a)
+    P().feed(page)
+    assert len(srcs) >= 8 and all(s.startswith("data:image/png;base64,") for s in srcs)
+    assert not refs and "http://" not in page and "https://" not in page
