@@ -14,8 +14,8 @@ from scipy import signal
 from hypothesis import given, settings, strategies as st
 
 from qcd.measures import testpulse as tp
-from tests import references as ref
-from tests.conftest import abf
+import references as ref
+from conftest import abf
 
 pA, mV, MOhm, GOhm, pF, us, fC = 1e-12, 1e-3, 1e6, 1e9, 1e-12, 1e-6, 1e-15
 
@@ -23,6 +23,12 @@ CELL_A = (10 * MOhm, 500 * MOhm, 33 * pF)      # METHODS §1.1 check cell
 CELL_B = (25 * MOhm, 250 * MOhm, 20 * pF)      # a second, slower-access cell (τ 454.5 µs)
 FILTERS = [(10e3, 50e3), (5e3, 25e3), (2e3, 10e3)]   # 4-pole Bessel fc, fs (METHODS §1.2)
 PHASES = (0.1, 0.5, 1.0)                       # first sample δ/dt after onset
+
+
+def _approx(expected, rel=None, abs=0.0):
+    """pytest.approx without its default 1e-12 absolute tolerance, which would swallow SI
+    values in pA, pF and fC; rel only, unless abs is given."""
+    return pytest.approx(expected, rel=rel, abs=abs)
 
 
 def _cell_sweep(cell, fc, fs, phase, *, dv=-5 * mV, step_s=10e-3, **kw):
@@ -44,17 +50,17 @@ def _errors(w, cell):
 def test_closed_form_matches_methods_check_values():
     # METHODS §1.1 check values [D]: 10 MΩ / 500 MΩ / 33 pF at -5 mV
     c = ref.cell_constants(-5 * mV, *CELL_A)
-    assert c["i0"] == pytest.approx(-500.000 * pA, rel=1e-6)
-    assert c["i_ss"] == pytest.approx(-9.8039 * pA, rel=1e-4)
-    assert c["a"] == pytest.approx(-490.196 * pA, rel=1e-5)
-    assert c["tau"] == pytest.approx(323.529 * us, rel=1e-5)
-    assert c["q"] == pytest.approx(-158.593 * fC, rel=1e-5)
-    assert c["q_closed"] == pytest.approx(c["q"], rel=1e-12)
-    assert c["dvm_inf"] == pytest.approx(-4.902 * mV, rel=1e-3)
+    assert c["i0"] == _approx(-500.000 * pA, rel=1e-6)
+    assert c["i_ss"] == _approx(-9.8039 * pA, rel=1e-4)
+    assert c["a"] == _approx(-490.196 * pA, rel=1e-5)
+    assert c["tau"] == _approx(323.529 * us, rel=1e-5)
+    assert c["q"] == _approx(-158.593 * fC, rel=1e-5)
+    assert c["q_closed"] == _approx(c["q"], rel=1e-12)
+    assert c["dvm_inf"] == _approx(-4.902 * mV, rel=1e-3)
     t = np.array([0.0, 1e-9, 1.0])
     i = ref.cell_step_current(t, -5 * mV, *CELL_A)
-    assert i[0] == 0.0 and i[1] == pytest.approx(-500 * pA, rel=1e-5)
-    assert i[2] == pytest.approx(-9.8039 * pA, rel=1e-4)
+    assert i[0] == 0.0 and i[1] == _approx(-500 * pA, rel=1e-5)
+    assert i[2] == _approx(-9.8039 * pA, rel=1e-4)
 
 
 def test_reference_filter_has_unity_dc_gain_and_methods_group_delay():
@@ -62,12 +68,12 @@ def test_reference_filter_has_unity_dc_gain_and_methods_group_delay():
     fc = 5e3
     z, p, k = signal.bessel(4, 2 * np.pi * fc, analog=True, norm="mag", output="zpk")
     _, h = signal.freqs_zpk(z, p, k, worN=[1e-3, 2 * np.pi * fc])
-    assert abs(h[0]) == pytest.approx(1.0, abs=1e-9)
-    assert 20 * np.log10(abs(h[1])) == pytest.approx(-3.0103, abs=1e-3)
+    assert abs(h[0]) == _approx(1.0, abs=1e-9)
+    assert 20 * np.log10(abs(h[1])) == _approx(-3.0103, abs=1e-3)
     dw = 1e-3 * 2 * np.pi * fc
     _, h2 = signal.freqs_zpk(z, p, k, worN=[dw, 2 * dw])
     delay = -(np.angle(h2[1]) - np.angle(h2[0])) / dw
-    assert delay * fc == pytest.approx(tp.BESSEL4_DELAY, rel=1e-3)
+    assert delay * fc == _approx(tp.BESSEL4_DELAY, rel=1e-3)
 
 
 # --- whole cell behind filters ---------------------------------------------------------------
@@ -83,9 +89,11 @@ def test_whole_cell_is_unbiased_behind_bessel_filter(cell, fc, fs):
         e_ra, e_rm, e_cm = _errors(w, cell)
         assert abs(e_ra) < 0.05 and abs(e_rm) < 0.03 and abs(e_cm) < 0.05, (phase, e_ra, e_rm, e_cm)
         ra, rm, cm = cell
-        assert w.tau == pytest.approx(cm * ra * rm / (ra + rm), rel=0.01)   # METHODS §1.1 τ
-        assert w.holding == pytest.approx(-50 * pA, rel=1e-9)
+        assert w.tau == _approx(cm * ra * rm / (ra + rm), rel=0.01)   # METHODS §1.1 τ
+        assert w.holding == _approx(-50 * pA, rel=1e-9)
         assert w.head == "sampled"
+        # Q = dV·Cm·(Rm/Rt)² (METHODS §1.1 closed form); filters keep Q
+        assert w.charge == _approx(ref.cell_constants(-5 * mV, *cell)["q"], rel=0.015)
 
 
 @pytest.mark.parametrize("cell", [CELL_A, CELL_B], ids=["10M-500M-33p", "25M-250M-20p"])
@@ -124,7 +132,7 @@ def test_naive_peak_estimate_is_biased_as_in_methods_table(fc, fs, table_peak):
     # METHODS §1.2 table [D]: "Ra peak" column for the §1.1 cell behind 4-pole Bessel
     y, step = _cell_sweep(CELL_A, fc, fs, 1.0)
     peak = tp.peak_access_resistance(y, fs, step)
-    assert peak / MOhm == pytest.approx(table_peak, rel=0.03)
+    assert peak / MOhm == _approx(table_peak, rel=0.03)
     w = tp.whole_cell(y, fs, step, filter_hz=fc)
     assert abs(w.access_resistance / CELL_A[0] - 1) < 0.02
     if fc <= 5e3:
@@ -191,8 +199,8 @@ def _resistor(r, dv, *, noise_sd=0.0, rng=None, cp=0.0, fs=20e3):
 def test_seal_one_gigaohm_at_plus_10_mv():
     # METHODS §1.3 [D]: +10 mV on 1 GΩ gives 10.0 pA
     y, step = _resistor(1 * GOhm, 10 * mV, cp=3 * pF)
-    assert np.mean(y[step.stop - 800:step.stop]) - 3 * pA == pytest.approx(10.0 * pA, rel=1e-6)
-    assert tp.seal_resistance(y, 20e3, step) == pytest.approx(1 * GOhm, rel=0.05)
+    assert np.mean(y[step.stop - 800:step.stop]) - 3 * pA == _approx(10.0 * pA, rel=1e-6)
+    assert tp.seal_resistance(y, 20e3, step) == _approx(1 * GOhm, rel=0.05)
     assert tp.whole_cell(y, 20e3, step, filter_hz=5e3) is None
     assert tp.try_whole_cell(y, 20e3, step, filter_hz=5e3).code == "no_transient"
     assert tp.classify(y, 20e3, step, filter_hz=5e3) == "seal"
@@ -208,15 +216,15 @@ def test_ten_gigaohm_seal_resolved_by_averaging_noisy_pulses():
         sweeps.append(y)
     avg = tp.average_steps(sweeps, step)
     assert np.std(avg[:step.start]) < np.std(sweeps[0][:step.start]) / 4   # √40 ≈ 6.3
-    assert tp.seal_resistance(avg, 20e3, step) == pytest.approx(10 * GOhm, rel=0.05)
+    assert tp.seal_resistance(avg, 20e3, step) == _approx(10 * GOhm, rel=0.05)
     assert tp.classify(avg, 20e3, step, filter_hz=5e3) == "seal"
 
 
 def test_open_pipette_in_bath():
     # METHODS §1.3 [D]: a 5 MΩ pipette in the bath gives 1000 pA at 5 mV
     y, step = _resistor(5 * MOhm, 5 * mV, cp=3 * pF)
-    assert np.mean(y[step.stop - 800:step.stop]) - 3 * pA == pytest.approx(1000 * pA, rel=1e-6)
-    assert tp.seal_resistance(y, 20e3, step) == pytest.approx(5 * MOhm, rel=0.05)
+    assert np.mean(y[step.stop - 800:step.stop]) - 3 * pA == _approx(1000 * pA, rel=1e-6)
+    assert tp.seal_resistance(y, 20e3, step) == _approx(5 * MOhm, rel=0.05)
     assert tp.classify(y, 20e3, step, filter_hz=5e3) == "open_pipette"
 
 
@@ -243,13 +251,13 @@ def test_input_resistance_excludes_bridge_jump(step_s):
                                       n_step=n_step, n_post=2000, r_bridge=rb, filter_hz=5e3,
                                       noise_sd=0.05 * mV, rng=np.random.default_rng(2))
         c = tp.input_resistance(v, fs, step, filter_hz=5e3)
-        assert c.input_resistance == pytest.approx(200 * MOhm, rel=0.03)
-        assert c.tau_m == pytest.approx(20e-3, rel=0.03)
-        assert c.membrane_capacitance == pytest.approx(100 * pF, rel=0.05)
-        assert c.bridge_jump == pytest.approx(-50 * pA * rb, abs=0.1 * mV)
-        assert c.baseline == pytest.approx(-65 * mV, abs=0.05 * mV)
+        assert c.input_resistance == _approx(200 * MOhm, rel=0.03)
+        assert c.tau_m == _approx(20e-3, rel=0.03)
+        assert c.membrane_capacitance == _approx(100 * pF, rel=0.05)
+        assert c.bridge_jump == _approx(-50 * pA * rb, abs=0.1 * mV)
+        assert c.baseline == _approx(-65 * mV, abs=0.05 * mV)
     # with the 20 MΩ bridge, the naive dV/dI would read 220 MΩ (10% high)
-    assert c.delta_v_ss / (-50 * pA) == pytest.approx(220 * MOhm, rel=0.03)
+    assert c.delta_v_ss / (-50 * pA) == _approx(220 * MOhm, rel=0.03)
 
 
 def test_input_resistance_none_for_wrong_sign_response():
@@ -262,14 +270,14 @@ def test_input_resistance_none_for_wrong_sign_response():
 def test_find_step_clean_and_noisy_commands():
     fs = 20e3
     clean = ref.command_trace(-80 * mV, -70 * mV, fs, n_pre=156, n_step=4000, n_post=5844)
-    assert tp.find_step(clean, fs) == tp.StepWindow(156, 4156, pytest.approx(-10 * mV))
+    assert tp.find_step(clean, fs) == tp.StepWindow(156, 4156, _approx(-10 * mV, rel=1e-9))
     noisy = ref.command_trace(-75 * mV, -70 * mV, fs, n_pre=300, n_step=1000, n_post=1000,
                               noise_sd=0.2 * mV, filter_hz=5e3, rng=np.random.default_rng(1))
     s = tp.find_step(noisy, fs)
     assert s is not None and abs(s.start - 300) <= 2 and abs(s.stop - 1300) <= 2
-    assert s.amplitude == pytest.approx(-5 * mV, rel=0.02)
+    assert s.amplitude == _approx(-5 * mV, rel=0.02)
     cc = ref.command_trace(-50 * pA, 0.0, fs, n_pre=100, n_step=400, n_post=400)
-    assert tp.find_step(cc, fs).amplitude == pytest.approx(-50 * pA)
+    assert tp.find_step(cc, fs).amplitude == _approx(-50 * pA, rel=1e-9)
 
 
 def test_find_step_rejects_ramps_noise_short_and_unreturned_steps():
@@ -319,7 +327,7 @@ def test_average_with_off_transients_matches_on_only_and_halves_noise_variance()
 def test_access_change_pct():
     # first 3 vs last 3 sweeps (common practice; METHODS §2: reject above 20-25%)
     ra = [10e6, 10.5e6, 9.5e6, 11e6, 12e6, 12.5e6, 12e6, np.nan]
-    assert tp.access_change_pct(ra[:3], ra[-4:]) == pytest.approx(20.0)   # 10 -> 12 MΩ
+    assert tp.access_change_pct(ra[:3], ra[-4:]) == _approx(20.0, rel=1e-12)   # 10 -> 12 MΩ
     with pytest.raises(ValueError):
         tp.access_change_pct([np.nan], [1.0])
 
@@ -338,9 +346,9 @@ def test_whole_cell_invariant_to_step_sign_and_holding_offset(sign, offset):
     w = tp.whole_cell(y, 25e3, step, filter_hz=5e3)
     assert w is not None
     for name in ("access_resistance", "membrane_resistance", "membrane_capacitance", "tau"):
-        assert getattr(w, name) == pytest.approx(getattr(ref_w, name), rel=1e-6)
-    assert w.holding == pytest.approx(offset, abs=1e-15)
-    assert w.charge == pytest.approx(sign * ref_w.charge, rel=1e-6)
+        assert getattr(w, name) == _approx(getattr(ref_w, name), rel=1e-6)
+    assert w.holding == _approx(offset, abs=1e-15)
+    assert w.charge == _approx(sign * ref_w.charge, rel=1e-6)
 
 
 # --- real recordings --------------------------------------------------------------------------
@@ -363,7 +371,7 @@ def test_model_cell_recording_gives_plausible_consistent_values():
     a, fc, sweeps, steps = _read("vc_model_cell_step.abf")
     ep = a.sweepEpochs
     assert steps[0] == tp.StepWindow(ep.p1s[1], ep.p2s[1],
-                                     pytest.approx((ep.levels[1] - ep.levels[0]) * mV))
+                                     _approx((ep.levels[1] - ep.levels[0]) * mV, rel=1e-6))
     res = [tp.whole_cell(y, a.dataRate, s, filter_hz=fc) for y, s in zip(sweeps, steps)]
     assert all(r is not None for r in res)
     ra = np.array([r.access_resistance for r in res])
@@ -377,7 +385,7 @@ def test_model_cell_recording_gives_plausible_consistent_values():
     # a model circuit does not change sweep to sweep
     for v in (ra, rm, cm):
         assert np.std(v) / np.median(v) < 0.03
-    assert tp.access_change_pct(ra[:3], ra[-3:]) == pytest.approx(0.0, abs=5.0)
+    assert tp.access_change_pct(ra[:3], ra[-3:]) == _approx(0.0, abs=5.0)
     assert all(tp.classify(y, a.dataRate, s, filter_hz=fc) == "whole_cell"
                for y, s in zip(sweeps[:3], steps[:3]))
 
