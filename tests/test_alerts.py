@@ -239,3 +239,46 @@ def test_alerts_never_open_a_key_twice_without_a_resolve_between(seq, for_files,
             if m.kind == "firing":
                 sent_open += 1
                 assert opened
+
+
+_MACHINE = ("state", "bad_run", "clear_run", "opened_at", "resolved_at", "flapping")
+
+
+@hsettings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(st.booleans(), st.booleans()), min_size=1, max_size=60),
+       st.floats(0, 3e4))
+def test_silence_changes_messages_never_states(seq, silence_end):
+    # SEMANTICS 1: silences suppress messages only; the state machine keeps running
+    sil = [Sil(1, "rig-*", "*", 0.0, silence_end)]
+    a: dict = {}
+    b: dict = {}
+    for i, (bad, clear) in enumerate(seq):
+        f = F(bad, clear=clear)
+        now = i * 600.0
+        a, ma = advance(a, [f], [], now, SET)
+        b, mb = advance(b, [f], sil, now, SET)
+        if now < silence_end:
+            assert mb == []
+        for key in a:
+            assert {n: getattr(a[key], n) for n in _MACHINE} == \
+                {n: getattr(b[key], n) for n in _MACHINE}
+        a = {k: v.to_dict() for k, v in a.items()}
+        b = {k: v.to_dict() for k, v in b.items()}
+
+
+@hsettings(max_examples=100, deadline=None)
+@given(st.lists(st.tuples(st.booleans(), st.floats(60.0, 12 * H)), min_size=2, max_size=60))
+def test_reminders_only_on_bad_files_and_at_least_repeat_hours_apart(seq):
+    # SEMANTICS 6: remind at most every repeat_h, and only while bad files keep arriving
+    states: dict = {}
+    now, last_sent = 0.0, None
+    for bad, gap in seq:
+        now += gap
+        f = F(bad, for_files=1)
+        states, msgs = advance(states, [f], [], now, SET)
+        states = {k: v.to_dict() for k, v in states.items()}
+        for m in msgs:
+            if m.kind == "reminder":
+                assert bad and last_sent is not None and now - last_sent >= 24 * H
+            if m.kind in ("reminder", "firing"):
+                last_sent = now
