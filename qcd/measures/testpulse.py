@@ -54,7 +54,7 @@ class WholeCell:
     tau (s); holding: pre-step mean current (A); i_ss: steady-state current change from holding
     (A); charge: transient charge Q = ∫(I - I_ss)dt (C); fit_start_s: start of the tail fit
     after onset; head: 'sampled' (charge integrated from the samples, filtered data) or
-    'fitted' (the fitted exponential's integral from onset, sharp onset or fast component).
+    'fitted' (the fitted exponential's integral from onset: sharp onset or pipette charge).
     """
     access_resistance: float
     membrane_resistance: float
@@ -293,13 +293,19 @@ def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
 
     The head of Q (onset to fit start) is taken by rule:
 
-    - 'sampled': trapezoid over the samples from the one before onset, when the onset is
-      smoothed by a filter (first sample at the new level < 80% of the early peak) and no fast
-      component was found. Exact for filtered data; on unfiltered, coarsely sampled data this
-      Riemann sum is biased (METHODS §1.2 caution), hence
+    - 'sampled' (the default): trapezoid over the samples from the one before onset to the
+      fit start, minus I_ss from onset + t_d, plus the fit's analytic tail. Exact for filtered
+      data; on unfiltered, coarsely sampled data this Riemann sum is biased (METHODS §1.2
+      caution), hence
     - 'fitted': the fitted exponential's analytic integral from onset + t_d, with the onset
       half a sample before ``step.start`` (the true sampling phase is unknown: the error is at
-      most a factor exp(±1/(2·fs·τ))), for a sharp onset or after a fast component.
+      most a factor exp(±1/(2·fs·τ)) on Ra and Cm), when the onset is sharp (first sample at
+      the new level ≥ 80% of the early peak: no filter at this rate), or when the sampled
+      charge exceeds the fitted one by more than max(5%, 1.5·(exp(1/(2·fs·τ)) - 1)): extra
+      charge from an uncompensated pipette capacitance hidden in the filtered rise.
+
+    A slow component implying Ra > `MAX_ACCESS_OHM` is not taken for a membrane (seal with
+    pipette-wall capacitance).
     """
     x = np.asarray(current, dtype=float)
     bad = _check_window(x, step)
@@ -351,7 +357,6 @@ def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
     if not fits:
         return Rejected("too_short", "too few samples for the tail fit")
     k_fit, c, a, tau, tau_se = fits[-1]
-    fast = len(fits) > 1
     i_ss = c
     a_at_fit = a * math.exp(-t[k_fit] / tau)
     if not (math.isfinite(tau) and math.isfinite(c) and math.isfinite(a)):
