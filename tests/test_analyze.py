@@ -1,0 +1,279 @@
+"""The one-pass analysis on every real recording (MANIFEST.md), on bad files, on synthetic ABF1
+files written with pyabf's writer, and its independence from the reader's chunk size."""
+from __future__ import annotations
+
+import json
+import math
+import struct
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from badfiles import build as build_bad_files
+from conftest import ABF_FILES, abf, require_data
+from qcd.analyze import MODES, analyze, analyze_path
+from qcd.config import TestPulse
+from qcd.recording import open_recording
+from references import sampled_cell, sine
+
+TEST_PULSE = ("access_resistance", "membrane_resistance", "membrane_capacitance", "tau",
+              "access_change_pct", "seal_resistance", "input_resistance")
+UNITS = {"pA", "nA", "mV", "V", "MOhm", "GOhm", "pF", "us", "ms", "s", "Hz", "pA/min",
+         "mV/min", "%", ""}
+
+# MANIFEST.md: recording mode per file (the channels' units and the paired command)
+EXPECTED_MODE = {
+    "cc_single_sweep_abf1.abf": "current_clamp", "cc_steps.abf": "current_clamp",
+    "cc_steps_abf1.abf": "current_clamp", "cc_user_list_steps.abf": "current_clamp",
+    "gapfree_cc_slow_drift.abf": "current_clamp", "fast_100khz_temperature.abf": "extracellular",
+    "four_channel_no_cell.abf": "voltage_clamp", "four_channel_no_cell_abf1.abf": "voltage_clamp",
+    "vc_cell_step.abf": "voltage_clamp", "vc_model_cell_step.abf": "voltage_clamp",
+    "vc_step_family.abf": "voltage_clamp", "vc_tight_seal_noisy.abf": "voltage_clamp",
+    "vc_units_A_no_protocol.abf": "voltage_clamp", "vc_step_abf1.abf": "voltage_clamp",
+    "vc_holding_change_pressure.abf": "voltage_clamp",
+    "vc_recorded_command_3ch.abf": "voltage_clamp", "vc_step_series_tagged.abf": "voltage_clamp",
+    "vc_abf1_recorded_command_tags.abf": "voltage_clamp", "sine sweep unknown units.abf": "unknown",
+}
+
+_cache: dict[str, object] = {}
+
+
+def measured(name: str):
+    if name not in _cache:
+        _cache[name] = analyze_path(abf(name), digest=False)
+    return _cache[name]
+
+
+def primary(fm):
+    chans = {c.index: c for c in fm.channels}
+    return chans[fm.extra["primary_channel"]]
+
+
+@pytest.mark.parametrize("path", ABF_FILES, ids=[p.name for p in ABF_FILES])
+def test_every_real_file_analyzes_ok(path):
+    require_data()
+    fm = measured(path.name)
+    assert fm.status == "ok", fm.error
+    assert fm.error_kind is None and fm.mode in MODES
+    if path.name in EXPECTED_MODE:
+        assert fm.mode == EXPECTED_MODE[path.name]
+    doc = fm.to_json()
+    json.dumps(doc)                      # JSON-able as it is
+    for ch in doc["channels"]:
+        for name, m in ch["measures"].items():
+            assert m["unit"] in UNITS, (name, m["unit"])
+        if ch["dimension"] in ("A", "V"):
+            assert ch["measures"]["noise_rms"]["value"] > 0
+            assert ch["measures"]["noise_rms"]["unit"] == ("pA" if ch["dimension"] == "A"
+                                                           else "mV")
+    assert doc["channels"] and len(doc["channels"]) == len(open_recording(path).channels)
+
+
+def test_four_channel_no_cell_gives_no_whole_cell_values():
+    # MANIFEST.md: four channels, no cell attached: must not be mistaken for a cell
+    for name in ("four_channel_no_cell.abf", "four_channel_no_cell_abf1.abf"):
+        fm = measured(name)
+        for ch in fm.channels:
+            for m in ("access_resistance", "membrane_resistance", "membrane_capacitance", "tau"):
+                assert m not in ch.measures, (name, ch.index, m)
+
+
+def test_step_family_is_not_a_test_pulse():
+    # MANIFEST.md: a step whose size changes every sweep is not a test pulse
+    ch = primary(measured("vc_step_family.abf"))
+    assert not set(TEST_PULSE) & set(ch.measures)
+    assert any("step family" in n for n in ch.notes)
+
+
+def test_holding_change_is_not_a_test_pulse():
+    # MANIFEST.md: a change of holding level (it never returns) is not a test pulse
+    fm = measured("vc_holding_change_pressure.abf")
+    for ch in fm.channels:
+        assert not set(TEST_PULSE) & set(ch.measures)
+    assert any("no test step" in n for n in primary(fm).notes)
+
+
+def test_model_cell_gives_whole_cell_values():
+    # METHODS §2 typical model-cell values [M, from memory]: whole-cell 10 MOhm + 500 MOhm || 33 pF
+    ms = primary(measured("vc_model_cell_step.abf")).measures
+    assert ms["access_resistance"].unit == "MOhm"
+    assert ms["access_resistance"].value == pytest.approx(10.0, rel=0.2)
+    assert ms["membrane_resistance"].value == pytest.approx(500.0, rel=0.1)
+    assert ms["membrane_capacitance"].unit == "pF"
+    assert ms["membrane_capacitance"].value == pytest.approx(33.0, rel=0.1)
+    # tau = Cm Ra Rm / (Ra + Rm) = 323.5 us for those values (METHODS §1.1 table)
+    assert ms["tau"].unit == "us"
+    assert ms["tau"].value == pytest.approx(323.5, rel=0.2)
+    assert abs(ms["access_change_pct"].value) < 10.0      # a model circuit does not drift
+
+
+def test_current_clamp_steps_give_input_resistance():
+    ms = primary(measured("cc_steps.abf")).measures
+    assert ms["input_resistance"].unit == "MOhm"
+    assert 20.0 < ms["input_resistance"].value < 2000.0   # neurons: tens to hundreds of MOhm (P)
+    assert "access_resistance" not in ms
+
+
+def test_fast_file_shows_strong_60hz():
+    # MANIFEST.md: fast_100khz_temperature.abf has strong 60 Hz
+    ms = measured("fast_100khz_temperature.abf").channels[0].measures
+    assert ms["line_hz"].value == pytest.approx(60.0, abs=0.1)
+    assert ms["hum_rms"].unit == "mV" and ms["hum_rms"].value > 1.0
+    # the fundamental alone is several mV, far above a mains-free floor at 1 Hz resolution
+    assert ms["hum_fundamental_rms"].value > 1.0
+
+
+def test_single_sweep_abf1_has_a_60hz_line_on_the_current_channel():
+    # MANIFEST.md: a small 60 Hz line on the current channel
+    fm = measured("cc_single_sweep_abf1.abf")
+    cur = next(c for c in fm.channels if c.dimension == "A")
+    assert cur.measures["line_hz"].value == pytest.approx(60.0, abs=0.1)
+    assert cur.measures["hum_fraction"].value < 0.5
+
+
+def test_cc_steps_abf1_has_a_weak_50hz_line():
+    # MANIFEST.md: a weak 50 Hz line
+    ms = primary(measured("cc_steps_abf1.abf")).measures
+    assert ms["line_hz"].value == pytest.approx(50.0, abs=0.1)
+    assert ms["hum_fraction"].value < 0.05
+
+
+def test_units_given_as_amperes_at_picoampere_size_are_taken_as_pa():
+    # MANIFEST.md: current stored with unit 'A' at picoampere-sized values
+    fm = measured("vc_units_A_no_protocol.abf")
+    assert any("picoampere" in n for n in fm.notes)
+    ms = fm.channels[0].measures
+    assert ms["noise_rms"].unit == "pA" and 0.01 < ms["noise_rms"].value < 100
+
+
+def test_no_step_gives_a_note_and_no_test_pulse_measures():
+    fm = measured("gapfree_cc_slow_drift.abf")
+    ch = primary(fm)
+    assert not set(TEST_PULSE) & set(ch.measures)
+    assert any("no test step" in n or "gap-free" in n for n in ch.notes)
+    assert "baseline_drift" in ch.measures and ch.measures["baseline_drift"].unit == "mV/min"
+
+
+def test_spectrum_is_compact_and_in_display_units():
+    ch = measured("gapfree_cc_slow_drift.abf").channels[0]
+    sp = ch.spectrum
+    assert sp is not None and sp.unit == "mV"
+    assert 50 <= len(sp.freqs_hz) <= 210 and len(sp.freqs_hz) == len(sp.density)
+    assert all(a < b for a, b in zip(sp.freqs_hz, sp.freqs_hz[1:]))
+    # integral of the compact spectrum approximates the variance (Parseval, METHODS §3.4)
+    f = np.array(sp.freqs_hz)
+    total = float(np.trapezoid(sp.density, f))
+    assert total == pytest.approx(ch.measures["noise_rms"].value ** 2, rel=0.6)
+
+
+# --- bad files ----------------------------------------------------------------------------------
+
+def test_bad_files_give_error_status_with_specific_message(tmp_path):
+    src = abf("vc_model_cell_step.abf")
+    data = src.read_bytes()
+    cases = {
+        "truncated": (tmp_path / "cut.abf", data[:len(data) // 2]),
+        "empty": (tmp_path / "zero.abf", b""),
+        "bad_signature": (tmp_path / "sig.abf", b"QQQQ" + data[4:]),
+    }
+    for kind, (p, blob) in cases.items():
+        p.write_bytes(blob)
+    folder = tmp_path / "x.abf"
+    folder.mkdir()
+    cases["not_a_file"] = (folder, None)
+    for kind, (p, _) in cases.items():
+        fm = analyze_path(p)
+        assert fm.status == "error" and fm.error_kind == kind, (kind, fm.error)
+        assert str(p) in fm.error and "Traceback" not in fm.error
+        assert fm.channels == ()
+
+
+def test_corrupt_file_table_gives_the_expected_kinds(tmp_path):
+    # the shared corrupt-file table (tests/badfiles.py), through the analysis entry point
+    cases = build_bad_files(tmp_path, abf("vc_model_cell_step.abf"), abf("vc_step_abf1.abf"))
+    for name, path, kind, what in cases:
+        if name == "fifo_named_abf":
+            continue                      # opening a FIFO is the reader's own test
+        fm = analyze_path(path)
+        assert fm.status == "error", (name, what)
+        assert fm.error_kind == kind, (name, fm.error_kind, fm.error)
+
+
+# --- synthetic files through the whole path ----------------------------------------------------
+
+def _write_abf1(path: Path, sweeps: np.ndarray, fs: float, unit: str = "pA",
+                gap_free: bool = False) -> None:
+    import pyabf.abfWriter
+    pyabf.abfWriter.writeABF1(np.ascontiguousarray(sweeps, dtype=float), str(path), fs, unit)
+    if gap_free:
+        with open(path, "r+b") as f:
+            f.seek(8)
+            f.write(struct.pack("<h", 3))      # nOperationMode 3: gap-free
+
+
+def test_declared_pulse_gives_whole_cell_values(tmp_path):
+    # no protocol in the file: the declared step (METHODS §1.1 cell: Ra 10 MOhm, Rm 500 MOhm,
+    # Cm 33 pF, dV -5 mV) is the test step; the charge method recovers the circuit
+    fs = 20_000.0
+    rng = np.random.default_rng(1)
+    sweeps = np.array([sampled_cell(-5e-3, 10e6, 500e6, 33e-12, fs, n_pre=400, n_step=2000,
+                                    n_post=1600, filter_hz=5000.0, noise_sd=0.2e-12, rng=rng)
+                       for _ in range(6)]) * 1e12          # pA for the file
+    path = tmp_path / "declared.abf"
+    _write_abf1(path, sweeps, fs)
+    plain = analyze_path(path)
+    assert "access_resistance" not in plain.channels[0].measures
+    fm = analyze_path(path, pulse=TestPulse(-5.0, 400 / fs, 2000 / fs))
+    ch = fm.channels[0]
+    assert fm.status == "ok" and fm.mode == "voltage_clamp"
+    assert any("declared pulse" in n for n in ch.notes)
+    assert ch.measures["access_resistance"].value == pytest.approx(10.0, rel=0.1)
+    assert ch.measures["membrane_resistance"].value == pytest.approx(500.0, rel=0.05)
+    assert ch.measures["membrane_capacitance"].value == pytest.approx(33.0, rel=0.1)
+
+
+def test_gap_free_synthetic_file_measures_match_the_signal(tmp_path):
+    # white noise 2 pA + 1.5 pA at 50.02 Hz, 40 s at 10 kHz, one event burst, written as ABF1
+    fs = 10_000.0
+    rng = np.random.default_rng(2)
+    n = int(40 * fs)
+    x = rng.normal(0, 2.0, n) + sine(n, fs, 1.5, 50.02)
+    x[int(12.2 * fs):int(12.6 * fs)] += 60.0 * np.sin(np.linspace(0, 40, int(0.4 * fs)))
+    path = tmp_path / "gapfree.abf"
+    _write_abf1(path, x[None, :], fs, gap_free=True)
+    fm = analyze_path(path)
+    assert fm.gap_free and fm.status == "ok"
+    ms = fm.channels[0].measures
+    assert ms["event_blocks"].value == 1
+    # noise: sqrt(2^2 + 1.5^2/2) (analytic), converter step 0.3 pA adds q^2/12
+    assert ms["noise_rms"].value == pytest.approx(math.sqrt(4 + 1.125), rel=0.03)
+    assert ms["line_hz"].value == pytest.approx(50.02, abs=0.05)
+    assert ms["hum_rms"].value == pytest.approx(1.5 / math.sqrt(2), rel=0.05)
+    assert ms["clipping_fraction"].value == 0.0
+    assert ms["alias_risk"].value is True                    # white to Nyquist
+    assert ms["pp_over_rms"].value == pytest.approx(7.7, rel=0.15)
+
+
+@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(size=st.integers(min_value=1, max_value=400_000))
+def test_any_chunk_size_gives_the_same_measures(size):
+    rec = open_recording(abf("gapfree_cc_slow_drift.abf"))
+    ref = _reference()
+    fm = analyze(rec, chunk_size=size)
+    for a, b in zip(fm.channels, ref.channels):
+        assert a.measures.keys() == b.measures.keys()
+        for name in a.measures:
+            va, vb = a.measures[name].value, b.measures[name].value
+            if name == "spectral_lines":
+                assert len(va) == len(vb)
+                continue
+            assert va == pytest.approx(vb, rel=1e-9, abs=1e-12), name
+
+
+def _reference():
+    if "_chunk_ref" not in _cache:
+        _cache["_chunk_ref"] = analyze(open_recording(abf("gapfree_cc_slow_drift.abf")))
+    return _cache["_chunk_ref"]
