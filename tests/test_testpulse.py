@@ -407,3 +407,17 @@ def test_tight_seal_recording_reads_as_high_resistance():
     avg = tp.average_steps(sweeps, steps[0])
     assert tp.classify(avg, a.dataRate, steps[0], filter_hz=fc) == "seal"
     assert tp.seal_resistance(avg, a.dataRate, steps[0]) > 1 * GOhm     # a gigaseal
+
+
+def test_find_step_on_recorded_command_channel_matches_epoch_table():
+    # the file's second channel records the command (mV); the epoch table (pyabf) puts the
+    # +20 mV step at samples 750-950; the recorded trace may lag by a sample
+    pyabf = pytest.importorskip("pyabf")
+    a = pyabf.ABF(str(abf("vc_recorded_command_3ch.abf")))
+    ep = a.sweepEpochs
+    for k in (0, a.sweepCount - 1):
+        a.setSweep(k, channel=1)
+        s = tp.find_step(np.asarray(a.sweepY, dtype=float) * mV, a.dataRate)
+        assert s is not None
+        assert abs(s.start - ep.p1s[2]) <= 1 and abs(s.stop - ep.p2s[2]) <= 1
+        assert s.amplitude == _approx((ep.levels[2] - ep.levels[1]) * mV, rel=0.02)
