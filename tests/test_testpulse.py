@@ -218,6 +218,11 @@ def test_ten_gigaohm_seal_resolved_by_averaging_noisy_pulses():
     assert np.std(avg[:step.start]) < np.std(sweeps[0][:step.start]) / 4   # √40 ≈ 6.3
     assert tp.seal_resistance(avg, 20e3, step) == _approx(10 * GOhm, rel=0.05)
     assert tp.classify(avg, 20e3, step, filter_hz=5e3) == "seal"
+    # the standard error shrinks about √40-fold with averaging and covers the true value
+    se1 = tp.seal_resistance_se(sweeps[0], 20e3, step)
+    se40 = tp.seal_resistance_se(avg, 20e3, step)
+    assert 3.0 < se1 / se40 < 15.0
+    assert abs(tp.seal_resistance(avg, 20e3, step) - 10 * GOhm) < 4 * se40
 
 
 def test_open_pipette_in_bath():
@@ -235,6 +240,9 @@ def test_classify_whole_cell_and_no_response():
     flat = rng.normal(0, 1 * pA, 3000)      # open circuit: noise only, no response
     assert tp.classify(flat, 20e3, tp.StepWindow(200, 2200, -5 * mV)) == "none"
     assert tp.classify(y, 25e3, tp.StepWindow(step.start, step.start + 5, -5 * mV)) == "none"
+    assert tp.classify(np.clip(y, -300 * pA, None), 25e3, step, filter_hz=5e3) == "none"
+    assert math.isnan(tp.seal_resistance(-y, 25e3, step))      # response against the step
+    assert math.isnan(tp.seal_resistance_se(-y, 25e3, step))
 
 
 # --- current clamp (METHODS §1.4) -------------------------------------------------------------
@@ -260,9 +268,19 @@ def test_input_resistance_excludes_bridge_jump(step_s):
     assert c.delta_v_ss / (-50 * pA) == _approx(220 * MOhm, rel=0.03)
 
 
-def test_input_resistance_none_for_wrong_sign_response():
+def test_input_resistance_none_for_wrong_sign_or_short_step():
     v = ref.sampled_current_clamp(50 * pA, 200 * MOhm, 20e-3, 20e3, n_pre=400, n_step=2000)
     assert tp.input_resistance(v, 20e3, tp.StepWindow(400, 2400, -50 * pA)) is None
+    assert tp.input_resistance(v, 20e3, tp.StepWindow(400, 410, 50 * pA)) is None
+
+
+def test_input_resistance_without_fittable_charging_keeps_plain_ratio():
+    # τm far below one sample: no charging curve to fit, Rin = ΔV_ss/ΔI (METHODS §1.4)
+    fs = 10e3
+    v = ref.sampled_current_clamp(-50 * pA, 200 * MOhm, 1e-6, fs, n_pre=200, n_step=2000)
+    c = tp.input_resistance(v, fs, tp.StepWindow(200, 2200, -50 * pA))
+    assert c.tau_m is None and c.membrane_capacitance is None and c.bridge_jump is None
+    assert c.input_resistance == _approx(200 * MOhm, rel=1e-6)
 
 
 # --- find_step -------------------------------------------------------------------------------

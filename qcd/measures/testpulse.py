@@ -16,6 +16,7 @@ __all__ = [
     "StepWindow", "WholeCell", "Rejected", "CurrentClamp", "BESSEL4_DELAY", "OPEN_PIPETTE_MAX_OHM",
     "MAX_ACCESS_OHM",
     "find_step", "try_whole_cell", "whole_cell", "peak_access_resistance", "seal_resistance",
+    "seal_resistance_se",
     "input_resistance", "classify", "average_steps", "access_change_pct",
 ]
 
@@ -446,6 +447,23 @@ def seal_resistance(current: np.ndarray, fs: float, step: StepWindow) -> float:
     if di == 0.0 or np.sign(di) != np.sign(step.amplitude):
         return math.nan
     return float(step.amplitude / di)
+
+
+def seal_resistance_se(current: np.ndarray, fs: float, step: StepWindow) -> float:
+    """Standard error (Ω) of `seal_resistance`, by the delta method: R·SE(ΔI)/|ΔI|.
+
+    SE(ΔI) combines the block-mean standard errors (10 blocks) of the steady-state window
+    (last 40% of the step) and of the pre-step baseline, so filtered (correlated) noise is
+    not undercounted. METHODS §1.3: at ≥10 GΩ, average pulses and report the standard error
+    (common practice). NaN when `seal_resistance` is NaN.
+    """
+    x = np.asarray(current, dtype=float)
+    r = seal_resistance(x, fs, step)
+    if not math.isfinite(r):
+        return math.nan
+    m, se = _window_mean_se(_steady_window(x, step, 0.4))
+    pm, pse = _window_mean_se(x[:step.start])
+    return float(abs(r) * math.hypot(se, pse) / abs(m - pm))
 
 
 def classify(current: np.ndarray, fs: float, step: StepWindow, *,
