@@ -126,6 +126,7 @@ class _Item:
     stable_since: float = 0.0
     due: float = 0.0
     gen: int = 0                              # heap entries of older generations are stale
+    aged: bool = False                        # first_seen was taken from the file's mtime
     why: str = ""
 
 
@@ -163,8 +164,11 @@ class Intake:
         if it is None:
             it = _Item(rig, key[1], live, now, due=now)
             if not live and mtime is not None:
-                it.mtime = -1.0
                 it.stable_since = min(now, mtime)     # orders the backlog, oldest first
+                # waiting counts from its mtime: a file cut short long ago is handed over at
+                # once (stored as truncated) instead of waiting give_up_s again
+                it.first_seen = min(now, mtime)
+                it.aged = True
             self._items[key] = it
             self._push(it, now)
             return
@@ -241,6 +245,8 @@ class Intake:
             # a backlog file has not changed since its mtime (clamped: clocks may differ);
             # a live one must be seen unchanged for settle_s by us
             it.stable_since = min(now, mtime) if first and not it.live else now
+            if not first and it.aged:         # changing again: it gets a full give-up time
+                it.first_seen, it.aged = now, False
         if now - it.stable_since < self.settle_s:
             it.why = "still changing"
             self._retry_or_give_up(it, now, gave_up, stable=False,

@@ -378,9 +378,8 @@ class Service:
         try:
             self.start(time.time())
             while not self.stop_event.is_set():
-                busy = self.step(time.time())
-                if not busy:
-                    self.stop_event.wait(self.poll_s)
+                if not self.step(time.time()):
+                    self.wait_idle()
         finally:
             self.close()
         log.info("stopped")
@@ -423,6 +422,13 @@ class Service:
             self._heartbeat(now)
         self.progress.tick(now)
         return busy or bool(self._inline)
+
+    def wait_idle(self) -> None:
+        """Between steps: until a measurement finishes, a stop is asked for, or poll_s passed."""
+        if self._jobs:
+            cf.wait(list(self._jobs), timeout=self.poll_s, return_when=cf.FIRST_COMPLETED)
+        else:
+            self.stop_event.wait(self.poll_s)
 
     def _deliver_due(self, now: float) -> None:
         from qcd import notify
