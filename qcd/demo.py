@@ -300,7 +300,7 @@ def _file_params(rng: np.random.Generator, rig: RigPlan, day: int, index: int) -
         p["noise_sd"] = 12e-6 * jitter(0.06)                         # V, 1 kHz band
         growth = 1.0
         if rig.fault == "ground" and day >= rig.fault_day:
-            growth = min(40.0, 1.45 ** (day - rig.fault_day + 1))    # creeping ground fault
+            growth = min(12.0, 1.4 ** (day - rig.fault_day + 1))     # creeping ground fault
             faulty = True
         p["hum_amps"] = tuple(a * growth * jitter(0.10) for a in (4e-6, 1.2e-6, 1.6e-6))
         p["offset"] = 0.2e-3 * rng.normal()

@@ -144,8 +144,28 @@ def _measure_line(store, rig: str, measure: str, channel: int, now: float) -> Me
                            nr[1] if nr else None, None, None, nr[2] if nr else 0, "no history")
     med, sd, n = nr
     lo, hi = med - NORMAL_SPREADS * sd, med + NORMAL_SPREADS * sd
+    if min(history) >= 0.0:               # a measure that cannot be negative
+        lo = max(lo, 0.0)
     state = "high" if value > hi else "low" if value < lo else "normal"
     return MeasureLine(measure, channel, unit, value, t, med, sd, lo, hi, n, state)
+
+
+def _clauses(hint: str) -> frozenset[str]:
+    body = hint.split(":", 1)[1] if hint.lower().startswith("possible source") else hint
+    return frozenset(c.strip().rstrip(".") for c in body.split(";") if c.strip())
+
+
+def _add_hint(hints: list[str], hint: str) -> None:
+    """Keep one hint per set of suggested checks (the same checks in another order are one)."""
+    new = _clauses(hint)
+    for i, old in enumerate(hints):
+        have = _clauses(old)
+        if new <= have:
+            return
+        if have < new:
+            hints[i] = hint
+            return
+    hints.append(hint)
 
 
 def build_report(store, now: float, since: float, rigs: Iterable[str] | None = None) -> Report:
@@ -168,9 +188,7 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
                 h = fd.get("hint") if isinstance(fd, dict) else getattr(fd, "hint", None)
                 bad = fd.get("bad") if isinstance(fd, dict) else getattr(fd, "bad", True)
                 if h and bad:
-                    h = h.replace(safety_note(), "").strip()
-                    if h not in hints:
-                        hints.append(h)
+                    _add_hint(hints, h.replace(safety_note(), "").strip())
         alerts = tuple(store.open_alerts(rig=rig))
         slim = tuple({k: f.get(k) for k in ("id", "path", "recorded_at", "mtime", "status",
                                             "error_kind", "error", "mode", "flagged")}
@@ -282,7 +300,7 @@ def render_trend_text(rig: str, measure: str, rows: list[tuple]) -> str:
     unit = rows[-1][2]
     vals = [r[1] for r in rows]
     nr = normal_range([r[1] for r in rows if not r[3]])
-    head = [f"{rig} {measure} ({unit}), {len(rows)} file(s)",
+    head = [f"{rig} {measure}{f' ({unit})' if unit else ''}, {len(rows)} file(s)",
             f"  {sparkline(vals)}  min {_num(min(vals)).strip()} max {_num(max(vals)).strip()}"]
     if nr:
         head.append(f"  median {_num(nr[0]).strip()}, robust SD {_num(nr[1]).strip()} "
@@ -380,9 +398,10 @@ def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None
         return None
     ncol = 2
     nrow = math.ceil(len(lines) / ncol)
-    fig, axes = plt.subplots(nrow, ncol, figsize=(11, 2.3 * nrow), dpi=84, squeeze=False)
-    fig.subplots_adjust(left=0.07, right=0.985, top=1 - 0.32 / nrow, bottom=0.55 / (nrow + 1),
-                        hspace=0.55, wspace=0.16)
+    height = 2.25 * nrow + 0.45
+    fig, axes = plt.subplots(nrow, ncol, figsize=(11.4, height), dpi=96, squeeze=False)
+    fig.subplots_adjust(left=0.065, right=0.99, top=1 - 0.3 / height, bottom=0.5 / height,
+                        hspace=0.5, wspace=0.14)
     t0 = now - HISTORY_DAYS * 86400.0
     for ax, m in zip(axes.flat, lines):
         opened = [a.get("opened_at") for a in rig.open_alerts
@@ -446,8 +465,8 @@ def _spectrum_figure(store, rig: RigReport, now: float) -> str | None:
     except TypeError:
         ref = None
     plt = _plt()
-    fig, ax = plt.subplots(figsize=(11, 3.6), dpi=84)
-    fig.subplots_adjust(left=0.07, right=0.985, top=0.91, bottom=0.14)
+    fig, ax = plt.subplots(figsize=(11.4, 3.6), dpi=96)
+    fig.subplots_adjust(left=0.065, right=0.99, top=0.92, bottom=0.13)
     f = np.asarray(spec.freqs_hz, dtype=float)
     d = np.asarray(spec.density, dtype=float)
     sel = (f > 0) & (d > 0)
