@@ -11,7 +11,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage, stats
+from scipy import special
 
 __all__ = ["block_fft", "hann_psd", "WelchAccumulator", "Hum", "hum", "mains_family_db",
            "band_rms", "BANDS", "corner_hz", "alias_ratio_db", "ALIAS_LIMIT_DB",
@@ -175,7 +175,7 @@ class WelchAccumulator:
 def _floor_correction(k_segments: int) -> float:
     """Median of the mean of K chi-square(2) bins over its mean: Gamma(K, 1/K) median."""
     k = max(int(k_segments), 1)
-    return float(stats.gamma.ppf(0.5, k) / k)
+    return float(special.gammaincinv(k, 0.5) / k)
 
 
 @dataclass(frozen=True)
@@ -339,8 +339,19 @@ def band_rms(freqs: np.ndarray, psd: np.ndarray, lo: float, hi: float,
 
 
 def _smooth(psd: np.ndarray, width: int) -> np.ndarray:
+    """Running mean over ``width`` bins (odd), edges padded with the end values."""
     width = max(1, int(width) | 1)
-    return ndimage.uniform_filter1d(psd, size=width, mode="nearest")
+    h = width // 2
+    padded = np.concatenate((np.full(h, psd[0]), psd, np.full(h, psd[-1])))
+    c = np.concatenate(([0.0], np.cumsum(padded)))
+    return (c[width:] - c[:-width]) / width
+
+
+def _running_median(x: np.ndarray, width: int) -> np.ndarray:
+    """Running median over ``width`` bins (odd), edges padded with the end values."""
+    h = width // 2
+    padded = np.concatenate((np.full(h, x[0]), x, np.full(h, x[-1])))
+    return np.median(np.lib.stride_tricks.sliding_window_view(padded, width), axis=1)
 
 
 def alias_ratio_db(freqs: np.ndarray, psd: np.ndarray) -> float | None:
@@ -404,7 +415,7 @@ def spectral_lines(freqs: np.ndarray, psd: np.ndarray, *, k_segments: int = 1,
     if len(psd) < 60:
         return []
     df = float(freqs[1] - freqs[0])
-    local = ndimage.median_filter(psd, size=51, mode="nearest") / _floor_correction(k_segments)
+    local = _running_median(psd, 51) / _floor_correction(k_segments)
     thr = max(3.0, 1.0 + 20.0 / max(k_segments, 1) ** 0.75)
     ok = (freqs >= min_hz) & (freqs <= 0.9 * freqs[-1]) & (local > 0)
     ok &= ~mains_mask(freqs, line_hz, 2000.0)
