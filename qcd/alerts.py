@@ -58,6 +58,7 @@ class AlertState:
     clear_files: int = 3
     repeat_h: float = 24.0
     learning: bool = False
+    headline: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         """Plain dict; ``state`` is 'open' while the flap guard holds the key open."""
@@ -165,8 +166,8 @@ def _mute_reason(s: AlertState, states: Mapping[str, AlertState], silences: Iter
 def _step(s: AlertState, f: Any, now: float, settings: Any) -> list[str]:
     """Advance one key by one file; the raw events ('opened', 'resolved', 'reminder', ...)."""
     for name in ("severity", "value", "unit", "limit_text", "hint", "path", "for_files",
-                 "clear_files", "repeat_h", "learning"):
-        setattr(s, name, getattr(f, name))
+                 "clear_files", "repeat_h", "learning", "headline"):
+        setattr(s, name, getattr(f, name, getattr(s, name)))
     s.updated_at = now
     events: list[str] = []
     change = False
@@ -371,15 +372,19 @@ def _title(rig: str, events: list[_Event]) -> str:
     if len(events) == 1:
         e = events[0]
         s = e.state
-        verb = {"opened": "", "late": "", "reminder": "still ", "resolved": "resolved: ",
-                "unstable": "unstable: "}[e.what]
-        if e.what in ("opened", "late", "reminder"):
-            return f"qcd {rig}: {verb}{_what(s)} {s.limit_text.split(';')[0]}"[:120]
-        return f"qcd {rig}: {verb}{_what(s)}"[:120]
+        what = _what(s)
+        head = s.headline or s.limit_text.split(";")[0]
+        text = {"opened": f"{what} {head}", "late": f"{what} {head}",
+                "reminder": f"still: {what} {head}", "resolved": f"resolved: {what}",
+                "unstable": f"unstable: {what}"}[e.what]
+        return f"qcd {rig}: {text}"[:120]
     names = sorted({_what(e.state) for e in events})
     n_res = sum(e.what == "resolved" for e in events)
-    head = f"{len(events) - n_res} alerts" if n_res < len(events) else f"{n_res} resolved"
-    return f"qcd {rig}: {head} ({', '.join(names)})"[:120]
+    n_rem = sum(e.what == "reminder" for e in events)
+    n_new = len(events) - n_res - n_rem
+    parts = [f"{n} {label}" for n, label in ((n_new, "alerts" if n_new > 1 else "alert"),
+                                             (n_rem, "still bad"), (n_res, "resolved")) if n]
+    return f"qcd {rig}: {', '.join(parts)} ({', '.join(names)})"[:120]
 
 
 def _group(events: list[_Event], now: float) -> list[Message]:

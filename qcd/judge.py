@@ -57,6 +57,7 @@ class Finding:
     repeat_h: float = 24.0
     learning: bool = False
     path: str = ""
+    headline: str = ""           # a few words for a message title: 'below 1 GOhm', '3.1x its normal'
 
     @property
     def key(self) -> str:
@@ -197,7 +198,7 @@ def noise_hints(ch: Any, mode: str, history: History, rules: Rules) -> list[str]
         # strongest non-mains line carrying >= 30 % of the baseline RMS (common practice)
         rms = [float(x[1]) for x in lines.value if isinstance(x, (list, tuple)) and len(x) >= 2]
         if rms and max(rms) >= 0.3 * noise:
-            grown["lines"] = _GROWN_Z
+            grown["lines"] = _GROWN_RATIO
     for name, group in _HINT_MEASURES.items():
         m = ch.measures.get(name)
         value = _number(m.value) if m is not None else None
@@ -213,8 +214,8 @@ def noise_hints(ch: Any, mode: str, history: History, rules: Rules) -> list[str]
         med = float(np.median(past))
         z = robust_z(math.log(value), [math.log(v) for v in past], min_spread=0.05)
         if z > _GROWN_Z and value >= _GROWN_RATIO * med:
-            grown[group] = max(grown.get(group, 0.0), z)
-    return sorted(grown, key=lambda g: -grown[g])
+            grown[group] = max(grown.get(group, 0.0), value / med)
+    return sorted(grown, key=lambda g: -grown[g])[:3]     # biggest growth first
 
 
 # --- the judge ---------------------------------------------------------------------------------
@@ -355,6 +356,7 @@ def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list
     if fm.status != "ok":
         return [Finding(bad=True, value=None, clear=False,
                         limit_text=f"file not measured ({fm.error_kind or 'error'})",
+                        headline=f"a file could not be measured ({fm.error_kind or 'error'})",
                         hint=fm.error or "", **intake)]
     out = [Finding(bad=False, value=None, limit_text="file measured", **intake)]
     mode = fm.mode
@@ -381,7 +383,7 @@ def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list
                     value=float(m.value),
                     unit=m.unit, limit_text=rule.text, hint=hint, clear=clear_ok,
                     for_files=rule.for_files, clear_files=rule.clear_files,
-                    repeat_h=rule.repeat_h, path=path))
+                    repeat_h=rule.repeat_h, path=path, headline=rule.text))
             hist_rules = [r for r in rules.history
                           if r.measure == m.name and _matches(r.modes, mode)]
             if not hist_rules or _number(m.value) is None:
@@ -411,6 +413,9 @@ def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list
                     g = groups or ([_HINT_MEASURES[m.name]] if m.name in _HINT_MEASURES else [])
                     hint = _hint_text(g)
                 text = f"{_normal_range(past, m.unit)}; {stat_text}"
+                med = float(np.median(past))
+                headline = (f"{value / med:.2g}x its normal" if med > 0 and value > 0 else
+                            f"{value - med:+.3g} {m.unit} from its normal")
                 if learning:
                     text += f"; learning ({len(past)} of {st.learning_files} files)"
                 out.append(Finding(
@@ -418,7 +423,7 @@ def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list
                     kind="drift", bad=bad, severity=rule.severity, value=value, unit=m.unit,
                     limit_text=text, hint=hint, clear=clear_ok, for_files=rule.for_files,
                     clear_files=rule.clear_files, repeat_h=rule.repeat_h, learning=learning,
-                    path=path))
+                    path=path, headline=headline))
     if rules.history and seen < st.learning_files:
         out.append(Finding(rig=rig_name, mode=mode, channel=-1, measure="files", rule="learning",
                            kind="rig", bad=False, severity="info", value=float(seen), unit="",
