@@ -30,6 +30,7 @@ SIGNIFICANCE_SIGMAS = 3.0      # a change counts when |change| > 3 standard erro
 MIN_DB = 1.0                   # ... and at least 1 dB (common practice: smaller is not audible
                                # in a QC sense and within Welch bin scatter)
 _SEGMENT_S = 1.0
+MAX_DF_HZ = 2.0                # coarser Welch bins cannot separate mains harmonics from noise
 
 _HINTS = {
     "mains": "mains hum and its harmonics: grounding, ground loops, a mains-powered device "
@@ -128,9 +129,10 @@ def _baseline_segments(path: Path, channel: int) -> tuple[list[np.ndarray], floa
             pieces = [data[i:i + blk] for i in range(0, len(data) - blk + 1, blk)]
         else:
             cmd = rec.commands.get(channel) if rec.commands else None
-            for k in range(rec.n_sweeps):
-                y = rec.sweep(channel, k)
-                stop = len(y)
+            sweeps = [rec.sweep(channel, k) for k in range(rec.n_sweeps)]
+            found = _step_onset(sweeps) if cmd is None else None
+            for k, y in enumerate(sweeps):
+                stop = len(y) if found is None else found
                 if cmd is not None:
                     try:
                         segs = cmd.levels(k)
@@ -145,6 +147,23 @@ def _baseline_segments(path: Path, channel: int) -> tuple[list[np.ndarray], floa
     si = factor if dim else 1.0
     scale = si / FACTORS.get(display, 1.0) if dim else 1.0
     return [p * scale for p in pieces], fs, display, float(fc) if fc else 0.45 * fs
+
+
+def _step_onset(sweeps: list[np.ndarray]) -> int | None:
+    """Without a protocol: where the mean sweep first leaves its opening level (a test step
+    or stimulus), so only the samples before it count as baseline; None when it never does."""
+    n = min(len(y) for y in sweeps)
+    if n < 640:
+        return None
+    mean = np.mean([y[:n] for y in sweeps], axis=0)
+    head = mean[: n // 10]
+    level = float(np.median(head))
+    spread = float(np.std(head)) or 1e-30
+    out = np.nonzero(np.abs(mean[n // 10:] - level) > 8.0 * spread)[0]
+    if not len(out):
+        return None
+    stop = n // 10 + int(out[0])
+    return stop if stop >= 256 else None
 
 
 def _find_mains(freqs: np.ndarray, psd: np.ndarray, mains_hz: float | None) -> float:
@@ -181,7 +200,8 @@ def segment_powers(seg: np.ndarray, fs: float, line_hz: float, top_hz: float,
     w = 3.0 * df
     out: dict[str, float] = {}
     mains_mask = np.zeros_like(f, dtype=bool)
-    for h in range(1, N_HARMONICS + 1):
+    resolved = df <= MAX_DF_HZ        # harmonics 50/60 Hz apart need bins this narrow
+    for h in range(1, N_HARMONICS + 1 if resolved else 1):
         fh = h * line_hz
         if fh + 15 * df >= fs / 2:
             break
@@ -193,15 +213,16 @@ def segment_powers(seg: np.ndarray, fs: float, line_hz: float, top_hz: float,
         floor_power = floor * df * int(sel.sum())
         out[f"hum_h{h}"] = max(float(np.sum(p[sel] - floor) * df), 0.1 * floor_power, 1e-300)
     k = 1
-    while k * line_hz < fs / 2:   # every harmonic's bins leave the bands
+    while resolved and k * line_hz < fs / 2:   # every harmonic's bins leave the bands
         mains_mask |= np.abs(f - k * line_hz) <= w
         k += 1
     for name, lo, hi in BANDS:
         hi = min(hi if hi else top_hz, 0.49 * fs)
-        sel = (f >= lo) & (f < hi) & ~mains_mask
-        if hi > lo and sel.any():
+        sel = (f >= max(lo, df)) & (f < hi) & ~mains_mask
+        if hi > lo and int(sel.sum()) >= 2:        # a band needs at least two bins
             out[name] = float(np.sum(p[sel]) * df)
-    out["hum_total"] = sum(v for key, v in out.items() if key.startswith("hum_h"))
+    if resolved:
+        out["hum_total"] = sum(v for key, v in out.items() if key.startswith("hum_h"))
     return out, f, p
 
 
@@ -293,8 +314,8 @@ def compare_paths(before: Path, after: Path, *, channel: int = 0,
     if b.unit != a.unit:
         raise QcdError(f"{after}: channel {channel} is in {a.unit}, before was in {b.unit}")
     changes = []
-    order = [k for k in b.power if k.startswith("band_")] + ["hum_total"] + \
-            [k for k in b.power if k.startswith("hum_h")]
+    order = [k for k in b.power if k.startswith("band_")] + \
+        [k for k in ("hum_total",) if k in b.power] + [k for k in b.power if k.startswith("hum_h")]
     for k in order:
         if k not in a.power:
             continue
@@ -309,23 +330,33 @@ def compare_paths(before: Path, after: Path, *, channel: int = 0,
             sig = False
         changes.append(Change(k, _label(k, b.line_hz), rb, ra, b.unit, ra - rb, db, se, sig))
     hint, mains = _hint(changes)
+    if "hum_total" not in b.power:
+        hint += (" The baseline windows are too short (under 1/{:g} s) to resolve the mains "
+                 "harmonics, so the bands include them; record a few seconds without test "
+                 "pulses (gap-free) to see the hum.".format(MAX_DF_HZ))
     return Comparison(b, a, channel, tuple(changes), hint, _safety_note() if mains else None)
 
 
 def _hint(changes: list[Change]) -> tuple[str, bool]:
-    sig = [c for c in changes if c.significant and c.name != "hum_total"]
+    sig = [c for c in changes if c.significant and not c.name.startswith("hum_h")]
     if not sig:
         return ("No change exceeds the recordings' own variation: the change made no measurable "
                 "difference to the noise (or the recordings are too short to tell).", False)
-    top = max(sig, key=lambda c: abs(c.change_db))
+    # the clearest change (largest against its own uncertainty) names the source
+    top = max(sig, key=lambda c: abs(c.change_db) / max(c.se_db, 1e-3))
     key = "mains" if top.name.startswith("hum_") else top.name
     what = _HINTS.get(key, top.label)
+    bands = [c for c in sig if c.name.startswith("band_")
+             and (c.change_db > 0) == (top.change_db > 0)]
+    if key != "mains" and len(bands) >= 3:
+        key = "band_rms_1k_corner"
+        what = "broadband noise in every band: " + _HINTS[key]
     verb = "fell" if top.change_db < 0 else "rose"
     if top.change_db < 0:
-        text = (f"The largest change: {top.label} {verb} by {abs(top.change_db):.1f} dB. The "
+        text = (f"The clearest change: {top.label} {verb} by {abs(top.change_db):.1f} dB. The "
                 f"change you made addressed {what}.")
     else:
-        text = (f"The largest change: {top.label} {verb} by {top.change_db:.1f} dB. The change "
+        text = (f"The clearest change: {top.label} {verb} by {top.change_db:.1f} dB. The change "
                 f"you made added {what}; undo it or look there.")
     return text, key == "mains"
 

@@ -566,3 +566,56 @@ def _drain(svc, clock: float, settle_s: float, limit_s: float = 120.0) -> float:
 
 def _date(t: float) -> str:
     return datetime.fromtimestamp(t, tz=timezone.utc).strftime("%Y-%m-%d")
+
+
+# ----------------------------------------------------------------------------- committed sample
+
+SAMPLE_END = datetime(2026, 11, 25, tzinfo=timezone.utc)   # fixed: the sample is reproducible
+
+
+def write_sample_set(folder: Path) -> list[Path]:
+    """The small committed set in demo_data/: one recording per rig and scripted state, and
+    two before/after pairs for ``qcd compare``. Deterministic (fixed dates and seeds)."""
+    folder = Path(folder)
+    plan = plan_lab(21, 3, end=SAMPLE_END)
+    kinds = {r.name: r.kind for r in plan.rigs}
+    rigs = {r.name: r for r in plan.rigs}
+    picks: list[FileSpec] = []
+    for name, rig in rigs.items():
+        files = [f for f in plan.files if f.rig == name]
+        if rig.fault == "seal":
+            picks += [files[0]] + [f for f in files if f.faulty]
+        elif rig.fault_day is None:
+            picks += [files[0], files[-1]]
+        else:
+            picks += [files[0], next(f for f in files if f.faulty), files[-1]]
+    out = []
+    for spec in picks:
+        sweeps, fs, unit, gap_free = synthesize(spec, kinds[spec.rig])
+        path = folder / "lab" / spec.relpath
+        write_abf1(path, sweeps, fs, unit, spec.recorded_at, gap_free=gap_free)
+        out.append(path)
+    # before/after pairs: the same rig minutes apart, one thing changed in between
+    last = plan.files[-1]
+    field = [f for f in plan.files if f.rig == "field-1"][-1]
+    bad = field.params
+    fixed = dict(bad, hum_amps=tuple(a / 10.0 for a in bad["hum_amps"]), seed=bad["seed"] + 1)
+    patch = [f for f in plan.files if f.rig == "patch-2"][-1]
+    swapped = dict(patch.params, noise_sd=patch.params["noise_sd"] / 3.5,
+                   seed=patch.params["seed"] + 1)
+    pairs = (("ground_before.abf", field, bad, 0.0), ("ground_after.abf", field, fixed, 600.0),
+             ("headstage_before.abf", patch, patch.params, 0.0),
+             ("headstage_after.abf", patch, swapped, 900.0))
+    for name, spec, params, later in pairs:
+        s2 = FileSpec(spec.rig, name, last.recorded_at + 3600.0 + later, spec.day, 1, False,
+                      params)
+        sweeps, fs, unit, gap_free = synthesize(s2, kinds[spec.rig])
+        path = folder / "compare" / name
+        write_abf1(path, sweeps, fs, unit, s2.recorded_at, gap_free=gap_free)
+        out.append(path)
+    return out
+
+
+if __name__ == "__main__":   # python -m qcd.demo DIR: write the committed sample set into DIR
+    for p in write_sample_set(Path(sys.argv[1] if len(sys.argv) > 1 else "demo_data")):
+        print(p)

@@ -220,3 +220,27 @@ def test_demo_html_report_is_self_contained(lab):
     P().feed(page)
     assert len(srcs) >= 8 and all(s.startswith("data:image/png;base64,") for s in srcs)
     assert not refs and "http://" not in page and "https://" not in page
+
+
+def test_committed_sample_is_what_qcd_demo_writes(tmp_path):
+    import hashlib
+    root = Path(__file__).resolve().parent.parent / "demo_data"
+    written = demo.write_sample_set(tmp_path)
+    assert written
+    for p in written:
+        rel = p.relative_to(tmp_path)
+        committed = root / rel
+        assert committed.is_file(), f"{rel} missing from demo_data/"
+        assert hashlib.sha256(committed.read_bytes()).hexdigest() == \
+            hashlib.sha256(p.read_bytes()).hexdigest(), f"{rel} differs"
+    assert sum(p.stat().st_size for p in root.rglob("*.abf")) < 5_000_000
+
+
+def test_sample_ground_fix_shows_in_compare():
+    from qcd.compare import compare_paths
+    root = Path(__file__).resolve().parent.parent / "demo_data" / "compare"
+    c = compare_paths(root / "ground_before.abf", root / "ground_after.abf")
+    hum = {x.name: x for x in c.changes}["hum_total"]
+    # hum amplitudes divided by 10 -> -20 dB (20 log10 0.1), per-file scatter aside
+    assert hum.significant and hum.change_db == pytest.approx(-20.0, abs=1.5)
+    assert c.before.line_hz == 50.0 and c.safety_note
