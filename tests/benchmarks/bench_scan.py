@@ -95,19 +95,6 @@ print(float(acc[1:].sum()))
 """
 
 
-def run(cmd: list[str]) -> tuple[float, float, str]:
-    """(wall seconds, peak resident MB, stdout) of one child process."""
-    t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    out, err = proc.communicate()
-    wall = time.perf_counter() - t0
-    # ru_maxrss of this child alone: wait4 is done by communicate, so use the rusage of all
-    # children so far and the fact that each variant runs after a fresh max (see main)
-    if proc.returncode not in (0, 1):
-        raise RuntimeError(f"{cmd[:4]} failed ({proc.returncode}): {err.decode()[-2000:]}")
-    return wall, 0.0, out.decode()
-
-
 def run_measured(cmd: list[str]) -> tuple[float, float, str]:
     """Run cmd in a child and read its own peak RSS through os.wait4."""
     t0 = time.perf_counter()
