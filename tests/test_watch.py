@@ -514,3 +514,158 @@ def test_status_reports_a_stopped_service(tmp_path, store):
     assert not st["alive"] and "stopped" in st["reason"]
     assert Path(st["last_file"][RIG]["path"]).name == "one.abf"
     assert st["outbox"]["pending"] == 0
+
+
+# ---------------------------------------------------------------- `qcd watch` as a process
+
+import signal  # noqa: E402
+import sqlite3  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+
+from sinks import HttpSink  # noqa: E402
+
+# distinct real recordings (the store keeps one row per content, so copies must differ)
+_REAL = ["vc_model_cell_step.abf", "cc_steps.abf", "variable_sweep_length.abf",
+         "odd_sample_rate.abf", "vc_units_A_no_protocol.abf", "gapfree_cc_slow_drift.abf",
+         "abf1_invalid_date.abf", "vc_holding_change_pressure.abf", "cc_user_list_steps.abf",
+         "vc_recorded_command_3ch.abf", "four_channel_no_cell_abf1.abf", "cc_steps_abf1.abf"]
+
+
+def _write_toml(tmp_path: Path, sink_url: str) -> Path:
+    (tmp_path / "rig").mkdir(exist_ok=True)
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "db/qcd.sqlite"\nsettle_seconds = 0.5\ngive_up_hours = 1\n'
+                   f'notify = ["{sink_url}"]\n\n[[rig]]\nname = "{RIG}"\nfolders = ["rig"]\n')
+    (tmp_path / "db").mkdir(exist_ok=True)
+    return cfg
+
+
+class _Watch:
+    """`qcd watch` in a subprocess, its stderr kept in a file for failure messages."""
+
+    def __init__(self, cfg: Path, n: int) -> None:
+        self.err = cfg.parent / f"watch{n}.err"
+        self._f = open(self.err, "wb")
+        self.proc = subprocess.Popen([sys.executable, "-m", "qcd", "watch", "--config",
+                                      str(cfg), "--workers", "1"],
+                                     stdout=subprocess.DEVNULL, stderr=self._f)
+
+    def wait(self, timeout: float) -> int:
+        try:
+            return self.proc.wait(timeout=timeout)
+        finally:
+            self._f.close()
+
+    def kill(self) -> None:
+        if self.proc.poll() is None:
+            self.proc.kill()
+        self.wait(10)
+
+    def log(self) -> str:
+        return self.err.read_text(errors="replace")[-3000:]
+
+
+def _db_rows(db: Path, sql: str) -> list[tuple]:
+    if not db.exists():
+        return []
+    with sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=10) as conn:
+        try:
+            return conn.execute(sql).fetchall()
+        except sqlite3.OperationalError:      # tables not created yet
+            return []
+
+
+def _n_files(db: Path) -> int:
+    return len(_db_rows(db, "SELECT id FROM files WHERE superseded = 0"))
+
+
+def _status(cfg: Path) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "qcd", "status", "--config", str(cfg)],
+                          capture_output=True, text=True, timeout=60)
+
+
+def _arrive(folder: Path, names, corrupt: int = 0) -> None:
+    for name in names:
+        shutil.copy(abf(name), folder / name)
+    for i in range(corrupt):
+        (folder / f"corrupt{i}.abf").write_bytes(f"not a recording {i} ".encode() * 200)
+
+
+@pytest.mark.slow
+def test_kill_9_and_restart_lose_nothing_and_store_nothing_twice(tmp_path):
+    sink = HttpSink().start()
+    watches = []
+    try:
+        cfg = _write_toml(tmp_path, sink.url)
+        folder, db = tmp_path / "rig", tmp_path / "db" / "qcd.sqlite"
+        w = _Watch(cfg, 1)
+        watches.append(w)
+        _arrive(folder, _REAL[:2], corrupt=1)
+        wait_until(lambda: _n_files(db) >= 1, 60.0)
+        _arrive(folder, _REAL[2:6])            # still arriving when it is killed
+        time.sleep(0.3)
+        w.kill()
+        assert w.proc.returncode == -signal.SIGKILL
+        assert 1 <= _n_files(db) < 7           # killed part-way through the arrivals
+        st = _status(cfg)
+        assert st.returncode == 1 and "not running" in st.stdout, st.stdout
+        _arrive(folder, _REAL[6:], corrupt=0)  # written while it is down
+        (folder / "corrupt1.abf").write_bytes(b"\x00garbage" * 300)
+        w = _Watch(cfg, 2)
+        watches.append(w)
+        total = len(_REAL) + 2
+        wait_until(lambda: _n_files(db) == total, 90.0)
+        pending = lambda: _db_rows(db, "SELECT id FROM outbox WHERE status != 'sent'")
+        wait_until(lambda: not pending(), 30.0)
+        st = _status(cfg)
+        assert st.returncode == 0 and "alive" in st.stdout, st.stdout
+        w.proc.send_signal(signal.SIGTERM)
+        assert w.wait(30) == 0, w.log()
+    finally:
+        for w in watches:
+            w.kill()
+        sink.stop()
+    # every file exactly one row, never superseded by a second measurement of the same file
+    rows = _db_rows(db, "SELECT path, status, error_kind FROM files")
+    names = sorted(Path(p).name for p, _, _ in rows)
+    assert names == sorted(_REAL + ["corrupt0.abf", "corrupt1.abf"])
+    kinds = {Path(p).name: k for p, s, k in rows if s == "error"}
+    assert kinds == {"corrupt0.abf": "bad_signature", "corrupt1.abf": "bad_signature"}
+    dup = _db_rows(db, "SELECT file_id, channel, name, COUNT(*) FROM measures "
+                       "GROUP BY file_id, channel, name HAVING COUNT(*) > 1")
+    assert dup == []
+    assert _db_rows(db, "SELECT COUNT(*) FROM measures")[0][0] > 0
+    # every message was delivered, once
+    outbox = _db_rows(db, "SELECT title, status FROM outbox")
+    assert outbox and all(s == "sent" for _, s in outbox)   # the corrupt files alerted at least
+    assert sorted(m["title"] for m in sink.received) == sorted(t for t, _ in outbox)
+
+
+def test_sigterm_stops_cleanly_with_nothing_half_written(tmp_path):
+    sink = HttpSink().start()
+    w = None
+    try:
+        cfg = _write_toml(tmp_path, sink.url)
+        folder, db = tmp_path / "rig", tmp_path / "db" / "qcd.sqlite"
+        w = _Watch(cfg, 1)
+        _arrive(folder, _REAL[:1])
+        wait_until(lambda: _n_files(db) >= 1, 60.0)
+        st = _status(cfg)
+        assert st.returncode == 0 and "alive" in st.stdout and RIG in st.stdout, st.stdout
+        _arrive(folder, _REAL[1:5])
+        time.sleep(0.6)                        # mid-work: files settling and being measured
+        w.proc.send_signal(signal.SIGTERM)
+        assert w.wait(30) == 0, w.log()
+        st = _status(cfg)
+        assert st.returncode == 1 and "stopped cleanly" in st.stdout, st.stdout
+    finally:
+        if w is not None:
+            w.kill()
+        sink.stop()
+    assert _db_rows(db, "PRAGMA integrity_check") == [("ok",)]
+    # a stored ok file has all its channels and measures (one transaction per file)
+    orphans = _db_rows(db, "SELECT f.path FROM files f WHERE f.status = 'ok' AND NOT EXISTS "
+                           "(SELECT 1 FROM measures m WHERE m.file_id = f.id)")
+    assert orphans == []
+    assert (tmp_path / "db" / "qcd.log").is_file()   # the rotating log beside the database
