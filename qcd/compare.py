@@ -406,7 +406,7 @@ def render_compare_html(c: Comparison) -> str:
     ax.set_ylabel(f"power spectral density ({c.before.unit}\u00b2/Hz)")
     ax.set_title(f"baseline spectra, channel {c.channel}; dotted: mains harmonics of {line:g} Hz",
                  fontsize=10)
-    ax.grid(True, which="both", alpha=0.25)
+    ax.grid(True, which="major", alpha=0.3)
     ax.legend()
     fig.tight_layout()
     img = figure_data_uri(fig)

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import base64
 import csv
+import fnmatch
 import html
 import io
 import math
@@ -104,6 +105,7 @@ class RigReport:
     open_alerts: tuple[dict, ...]
     hints: tuple[str, ...]
     safety_note: str | None
+    silences: tuple[dict, ...] = ()      # active silences matching the rig
 
 
 @dataclass(frozen=True)
@@ -190,6 +192,9 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
                 if h and bad:
                     _add_hint(hints, h.replace(safety_note(), "").strip())
         alerts = tuple(store.open_alerts(rig=rig))
+        silences = tuple({"rig_glob": x.rig_glob, "rule_glob": x.rule_glob,
+                          "start_at": x.start_at, "end_at": x.end_at, "reason": x.reason}
+                         for x in store.active_silences(now) if fnmatch.fnmatchcase(rig, x.rig_glob))
         slim = tuple({k: f.get(k) for k in ("id", "path", "recorded_at", "mtime", "status",
                                             "error_kind", "error", "mode", "flagged")}
                      for f in files)
@@ -198,7 +203,7 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
             sum(f.get("status") == "error" for f in files),
             sum(bool(f.get("flagged")) for f in files), slim, tuple(lines),
             tuple(dict(a) for a in alerts), tuple(hints),
-            safety_note() if any(_is_grounding(h) for h in hints) else None))
+            safety_note() if any(_is_grounding(h) for h in hints) else None, silences))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
 
@@ -222,6 +227,13 @@ def _alert_text(a: dict) -> str:
     ch = a.get("channel")
     chs = f" ch{ch}" if ch not in (None, "", -1) else ""
     return f"{' / '.join(parts) or a.get('key', '?')}{chs} since {_when(a.get('opened_at'))}"
+
+
+def _silence_text(x: dict) -> str:
+    until = "its alerts resolve" if x.get("end_at") is None else _when(x["end_at"]) + " UTC"
+    rules = "" if x.get("rule_glob") in (None, "*") else f" (rules {x['rule_glob']})"
+    why = f": {x['reason']}" if x.get("reason") else ""
+    return f"silenced until {until}{rules}{why}"
 
 
 def render_text(r: Report) -> str:
@@ -252,6 +264,8 @@ def render_text(r: Report) -> str:
             out += [_wrap(f"     - {_alert_text(a)}", 100) for a in rig.open_alerts]
         else:
             out.append("   open alerts: none")
+        for x in rig.silences:
+            out.append(_wrap(f"   {_silence_text(x)}", 100))
         for h in rig.hints:
             out.append(_wrap(f"   hint: {h}", 100))
         if rig.safety_note:
@@ -520,6 +534,8 @@ def render_html(r: Report, store) -> str:
         if rig.open_alerts:
             parts.append("<ul class='alerts'>" + "".join(
                 f"<li>{html.escape(_alert_text(a))}</li>" for a in rig.open_alerts) + "</ul>")
+        for x in rig.silences:
+            parts.append(f"<p class='meta'>{html.escape(_silence_text(x))}</p>")
         for h in rig.hints:
             parts.append(f"<p class='hint'>{html.escape(h)}</p>")
         if rig.safety_note:

@@ -175,3 +175,11 @@ def test_cli_report_and_trend(store, tmp_path, capsys):
     rc = main(["report", "--since", "9999d", "--html", str(html_path), "--config", str(cfg)])
     assert rc == 1                                      # an open alert and an error file
     assert html_path.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+
+
+def test_active_silence_is_shown_with_its_reason(store):
+    store.add_silence("rig-*", "*", NOW - 60, NOW + 7200, "replacing the bath ground", NOW - 60)
+    r = build_report(store, NOW, parse_since("18h", NOW))
+    text = render_text(r)
+    assert "silenced until" in text and "replacing the bath ground" in text
+    assert "replacing the bath ground" in render_html(r, store)
