@@ -552,6 +552,10 @@ def _cmd_notify_test(args: argparse.Namespace) -> int:
 
 def _cmd_demo(args: argparse.Namespace) -> int:
     from qcd.demo import run_demo
+    if not 6 <= args.days <= 120:
+        raise ConfigError(None, "--days", f"expected 6 to 120 days, got {args.days}")
+    if args.keep is not None and args.keep.exists() and not args.keep.is_dir():
+        raise ConfigError(None, "--keep", f"{args.keep} exists and is not a folder")
     run_demo(args.keep, days=args.days)
     return EXIT_OK
 
