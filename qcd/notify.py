@@ -50,13 +50,6 @@ class Delivery:
     stuck: int = 0
 
 
-def _status_name(result: Any) -> str:
-    status = getattr(result, "status", None)
-    if status is None:                       # apprise 1.x: True/False/None
-        return {True: "SUCCESS", False: "FAILURE", None: "NOMATCH"}.get(result, "FAILURE")
-    return getattr(status, "name", str(status))
-
-
 class Sender:
     """All configured apprise targets as one: URLs and/or an apprise config file."""
 
@@ -71,7 +64,9 @@ class Sender:
             if not cfg.add(str(config_path)):
                 raise DeliveryError(f"{config_path}: apprise config file cannot be read")
             self._apprise.add(cfg)
-        if len(self._apprise) == 0:
+        self._services = list(self._apprise)       # plugin instances, kept (mail throttle)
+        self._delivered: dict[Any, set[int]] = {}
+        if not self._services:
             where = f" (config file {config_path} has no valid URL)" if config_path else ""
             raise DeliveryError("no notification targets configured" + where)
 
@@ -82,34 +77,49 @@ class Sender:
 
     def targets(self) -> list[str]:
         """The targets, redacted (safe to print)."""
-        return [redact(s.url(privacy=True)) for s in self._apprise]
+        return [redact(s.url(privacy=True)) for s in self._services]
 
     def _clean(self, text: str) -> str:
         return redact_text(text, list(self._urls))
 
-    def send(self, title: str, body: str, kind: str = "firing") -> SendResult:
-        """Send to every target; DeliveryError when no target matched (a configuration error)."""
-        result = self._apprise.notify(body=body, title=title,
-                                      notify_type=_TYPE.get(kind, apprise.NotifyType.INFO))
-        status = _status_name(result)
-        if status == "NOMATCH":
-            raise DeliveryError("no notification target matched (check the configured URLs)")
-        ok = bool(result)
-        detail = ""
-        if not ok:
-            msgs = []
-            logs = getattr(result, "logs", None)
-            for entry in (logs() if callable(logs) else ()):
-                if getattr(entry, "level", "") in ("WARNING", "ERROR", "CRITICAL"):
-                    msgs.append(str(getattr(entry, "message", entry)))
-            detail = self._clean("; ".join(msgs) or f"apprise status {status}")
-        return SendResult(ok, status, detail)
+    def send(self, title: str, body: str, kind: str = "firing", *, key: Any = None
+             ) -> SendResult:
+        """Send to every target; ``ok`` only when all accepted.
+
+        With ``key`` (an outbox row id) targets that already accepted this message are skipped
+        on the next try, so one dead target does not make the others receive it again and
+        again (remembered for the life of this Sender; after a restart all targets are tried).
+        """
+        done = self._delivered.get(key, set()) if key is not None else set()
+        failures = []
+        for i, service in enumerate(self._services):
+            if i in done:
+                continue
+            with apprise.LogCapture(level=logging.WARNING, fmt="%(message)s") as cap:
+                try:
+                    ok = bool(service.notify(body=body, title=title,
+                                             notify_type=_TYPE.get(kind, apprise.NotifyType.INFO)))
+                except Exception:            # a plugin bug is one failed target, not a crash
+                    log.exception("sending to %s", redact(service.url(privacy=True)))
+                    ok = False
+            if ok:
+                done.add(i)
+            else:
+                reason = " ".join(cap.getvalue().split()) or "not accepted"
+                failures.append(f"{redact(service.url(privacy=True))}: {reason}")
+        if key is not None:
+            if failures:
+                self._delivered[key] = done
+            else:
+                self._delivered.pop(key, None)
+        status = "SUCCESS" if not failures else "PARTIAL" if done else "FAILURE"
+        return SendResult(not failures, status, self._clean("; ".join(failures)))
 
     def test(self, title: str = "qcd test message",
              body: str = "This is a test message from qcd: the target is reachable.") -> list[tuple[str, bool]]:
         """Send a test message to each target on its own: [(redacted target, accepted)]."""
         out = []
-        for service in self._apprise:
+        for service in self._services:
             try:
                 ok = bool(service.notify(body=body, title=title,
                                          notify_type=apprise.NotifyType.INFO))
@@ -135,7 +145,7 @@ def deliver_due(store: Any, sender: Any, now: float, *, limit: int = 50) -> Deli
         rid = _field(row, "id")
         try:
             res = sender.send(_field(row, "title") or "", _field(row, "body") or "",
-                              _field(row, "kind") or "firing")
+                              _field(row, "kind") or "firing", key=rid)
             ok, error = res.ok, res.detail
         except DeliveryError as e:
             ok, error = False, str(e)

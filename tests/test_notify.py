@@ -154,3 +154,23 @@ def test_notify_test_command_reports_each_target(tmp_path, http_sink, capsys):
     assert any(f"127.0.0.1:{dead.port}" in ln and "FAILED" in ln for ln in lines)
     (got,) = http_sink.wait_for(1)
     assert got["title"] == "qcd test message"
+
+
+def test_one_dead_target_does_not_make_the_others_receive_it_twice(store, http_sink):
+    dead = HttpSink()                                   # down for a while
+    try:
+        _queue(store, 1)
+        sender = Sender([http_sink.url, dead.url])
+        now = T0
+        for _ in range(4):
+            d = deliver_due(store, sender, now)
+            assert d.sent == 0
+            now += 3600
+        (row,) = store.outbox_rows()
+        assert row["status"] == "pending" and f"127.0.0.1:{dead.port}" in row["last_error"]
+        assert len(http_sink.wait_for(1)) == 1          # the live target got it once
+        dead.start()
+        assert deliver_due(store, sender, now).sent == 1
+        assert len(dead.wait_for(1)) == 1 and len(http_sink.received) == 1
+    finally:
+        dead.stop()
