@@ -1,0 +1,74 @@
+"""The docs follow the code: every command has --help and a README section, and every measure
+name the analysis can produce is in the README's measures table (sqlite-utils' docs test idea)."""
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import pytest
+
+from qcd.cli import build_parser
+
+ROOT = Path(__file__).resolve().parent.parent
+README = (ROOT / "README.md").read_text(encoding="utf-8")
+
+
+def _commands() -> list[str]:
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.__class__.__name__ == "_SubParsersAction")
+    return sorted(sub.choices)
+
+
+def _measure_names() -> set[str]:
+    """Names analyze can store: its literal Measure/_put names, the spectrum band table, and
+    whatever it actually produces on the committed demo sample."""
+    from qcd.analyze import analyze_path
+    from qcd.measures import spectrum
+    src = (ROOT / "qcd" / "analyze.py").read_text(encoding="utf-8")
+    names = set(re.findall(r'_put\(out, "(\w+)"', src))
+    names |= set(re.findall(r'Measure\("(\w+)"', src))
+    names |= set(re.findall(r'\("(\w+)", "(?:Ohm|F|s|A|V|%)"\)', src))
+    for m in re.finditer(r'for name in \(([^)]*)\)', src):
+        names |= set(re.findall(r'"(\w+)"', m.group(1)))
+    names |= set(spectrum.BANDS)
+    for path in sorted((ROOT / "demo_data").rglob("*.abf")):
+        fm = analyze_path(path)
+        for ch in fm.channels:
+            names |= set(ch.measures)
+    return names
+
+
+def _measures_table() -> set[str]:
+    start = README.index("## Measures")
+    section = README[start:README.index("\n## ", start + 5)]
+    return set(re.findall(r"^\| `(\w+)`", section, flags=re.M))
+
+
+@pytest.mark.parametrize("command", _commands())
+def test_every_command_has_help_and_is_in_the_readme(command, capsys):
+    with pytest.raises(SystemExit) as e:
+        build_parser().parse_args([command, "--help"])
+    assert e.value.code == 0
+    out = capsys.readouterr().out
+    assert "Example:" in out
+    assert f"qcd {command}" in README, f"README does not mention 'qcd {command}'"
+
+
+def test_every_measure_is_in_the_readme_measures_table():
+    produced = _measure_names()
+    assert {"noise_rms", "hum_rms", "seal_resistance", "access_resistance"} <= produced
+    missing = sorted(produced - _measures_table())
+    assert not missing, f"measures missing from the README table: {missing}"
+
+
+def test_readme_keeps_the_two_commands_byte_for_byte():
+    assert ("python3 -m venv .venv && .venv/bin/pip install -q -e . && .venv/bin/qcd demo"
+            in README)
+    ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
+    test_cmd = ("python3 -m venv .venv && .venv/bin/pip install -q -e '.[test]' && "
+                ".venv/bin/python -m pytest -q")
+    assert test_cmd in README and test_cmd in ci
+
+
+def test_readme_carries_the_electrical_safety_caution():
+    assert "licensed electrician" in README and "never open mains-powered equipment" in README
