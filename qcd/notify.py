@@ -3,7 +3,9 @@
 Delivery is at least once: a row is marked sent right after apprise reports success, so only a
 crash between the send and that mark can send it again (once) on the next start; a failed send
 stays pending and is retried (30 s doubling to 1 h), and after 24 h it is marked ``stuck``,
-never dropped. Imports apprise, qcd.config (redact), qcd.errors.
+never dropped. Targets are sent to one by one, and within one running Sender a target that
+accepted a message is not sent it again while another target is down.
+Imports apprise, qcd.config (redact), qcd.errors.
 """
 from __future__ import annotations
 
