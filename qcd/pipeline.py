@@ -70,6 +70,20 @@ def _deliver(store: Any, sender: Any, now: float) -> None:
         log.exception("delivering notifications")
 
 
+def _end_resolved_silences(store: Any, now: float) -> None:
+    """End 'until resolved' silences once every alert they muted has resolved."""
+    open_ended = [s for s in store.active_silences(now) if s.end_at is None]
+    if not open_ended:
+        return
+    states = store.alert_states().values()
+    for sil in open_ended:
+        used = any(sil.id in (st.get("spent") or []) for st in states)
+        live = any(sil.id in (st.get("silences") or []) for st in states)
+        if used and not live:
+            store.end_silence(sil.id, now)
+            log.info("silence %s (%s) ended: its alerts resolved", sil.id, sil.reason)
+
+
 def commit(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float, sender: Any = None,
            *, batch: bool = False) -> FileMeasures:
     """Judge a measured file, advance its rig's alerts and store it all in one transaction.
@@ -93,6 +107,8 @@ def commit(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float, sende
         findings, changed, messages = [], [], []
     store.commit_file(name, fm, analysed_at=now, findings=findings, alert_states=changed,
                       messages=messages)
+    if changed:
+        _end_resolved_silences(store, now)
     _deliver(store, sender, now)             # also retries rows still pending
     return fm
 

@@ -307,3 +307,16 @@ def test_a_bug_while_judging_becomes_an_internal_error_row_and_the_caller_carrie
     assert "internal error" in fm.error and "judging" in caplog.text
     (row,) = store.files("rig-e2e")
     assert row["status"] == "error" and row["error_kind"] == "internal"
+
+
+def test_until_resolved_silence_ends_when_its_alert_resolves(lab, rig, store, rules, http_sink):
+    _, files, times = lab
+    sender = Sender([http_sink.url])
+    _run(files[:30], times[:30], rig, store, rules, sender)
+    sid = store.add_silence("rig-e2e", "*", times[29], None, "new ground lead on order",
+                            times[29])
+    _run(files[30:32], times[30:32], rig, store, rules, sender)      # opens, muted
+    assert [s.id for s in store.active_silences(times[31])] == [sid]
+    _run(files[32:36], times[32:36], rig, store, rules, sender)      # resolves
+    assert store.active_silences(times[35] + 1) == []
+    assert http_sink.received == []                 # never announced, so no resolved message
