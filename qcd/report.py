@@ -106,6 +106,7 @@ class RigReport:
     hints: tuple[str, ...]
     safety_note: str | None
     silences: tuple[dict, ...] = ()      # active silences matching the rig
+    resolved_alerts: tuple[dict, ...] = ()   # alerts that resolved within the period
 
 
 @dataclass(frozen=True)
@@ -152,6 +153,16 @@ def _measure_line(store, rig: str, measure: str, channel: int, now: float) -> Me
     return MeasureLine(measure, channel, unit, value, t, med, sd, lo, hi, n, state)
 
 
+def _flag_text(fd: dict) -> str:
+    """'seal_resistance 0.274 GOhm (gigaseal: below 1 GOhm)' for one bad finding."""
+    v = fd.get("value")
+    value = f" {v:.3g} {fd.get('unit') or ''}".rstrip() if isinstance(v, (int, float)) else ""
+    limit = fd.get("limit_text") or ""
+    limit = limit.split(";")[0] if fd.get("kind") != "limit" else limit
+    return f"{fd.get('measure')}{value} ({fd.get('rule')}: {limit})" if limit else \
+        f"{fd.get('measure')}{value} ({fd.get('rule')})"
+
+
 def _clauses(hint: str) -> frozenset[str]:
     body = hint.split(":", 1)[1] if hint.lower().startswith("possible source") else hint
     return frozenset(c.strip().rstrip(".") for c in body.split(";") if c.strip())
@@ -185,25 +196,31 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
                 if ml is not None:
                     lines.append(ml)
         hints: list[str] = []
+        flags: dict[int, list[str]] = {}
         for f in files:
             for fd in store.findings(f["id"]):
-                h = fd.get("hint") if isinstance(fd, dict) else getattr(fd, "hint", None)
-                bad = fd.get("bad") if isinstance(fd, dict) else getattr(fd, "bad", True)
-                if h and bad:
+                if not fd.get("bad"):
+                    continue
+                flags.setdefault(f["id"], []).append(_flag_text(fd))
+                h = fd.get("hint")
+                if h:
                     _add_hint(hints, h.replace(safety_note(), "").strip())
         alerts = tuple(store.open_alerts(rig=rig))
         silences = tuple({"rig_glob": x.rig_glob, "rule_glob": x.rule_glob,
                           "start_at": x.start_at, "end_at": x.end_at, "reason": x.reason}
                          for x in store.active_silences(now) if fnmatch.fnmatchcase(rig, x.rig_glob))
-        slim = tuple({k: f.get(k) for k in ("id", "path", "recorded_at", "mtime", "status",
-                                            "error_kind", "error", "mode", "flagged")}
+        slim = tuple(dict({k: f.get(k) for k in ("id", "path", "recorded_at", "mtime", "status",
+                                                 "error_kind", "error", "mode", "flagged")},
+                          flags=tuple(dict.fromkeys(flags.get(f["id"], ()))))
                      for f in files)
+        resolved = tuple(dict(a) for a in store.recent_alerts(since, rig=rig))
         out.append(RigReport(
             rig, len(files), sum(f.get("status") == "ok" for f in files),
             sum(f.get("status") == "error" for f in files),
             sum(bool(f.get("flagged")) for f in files), slim, tuple(lines),
             tuple(dict(a) for a in alerts), tuple(hints),
-            safety_note() if any(_is_grounding(h) for h in hints) else None, silences))
+            safety_note() if any(_is_grounding(h) for h in hints) else None, silences,
+            resolved))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
 
@@ -259,11 +276,21 @@ def render_text(r: Report) -> str:
             out.append(_wrap(f"   error: {f.get('error') or f.get('error_kind')}", 100))
         if len(errs) > 5:
             out.append(f"   ... and {len(errs) - 5} more errors")
+        flagged = [f for f in rig.files if f.get("flags")]
+        if len(flagged) > 3:
+            out.append(f"   {len(flagged)} flagged files; the last 3:")
+        for f in flagged[-3:]:
+            short = dict.fromkeys(x.split(" (")[0] for x in f["flags"])
+            out.append(_wrap(f"   flagged {_when(_file_time(f))} {_name(f.get('path'))}: "
+                             + ", ".join(short), 100))
         if rig.open_alerts:
             out.append("   open alerts:")
             out += [_wrap(f"     - {_alert_text(a)}", 100) for a in rig.open_alerts]
         else:
             out.append("   open alerts: none")
+        if rig.resolved_alerts:
+            out.append(_wrap("   resolved in the period: " + ", ".join(
+                f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts), 100))
         for x in rig.silences:
             out.append(_wrap(f"   {_silence_text(x)}", 100))
         for h in rig.hints:
@@ -322,6 +349,11 @@ def render_trend_text(rig: str, measure: str, rows: list[tuple]) -> str:
     body = [f"  {_when(r[0])}  {_num(r[1], 11)} {unit:<7}{'flagged' if r[3] else '':<8}"
             f" {_short(r[5])}" for r in rows]
     return "\n".join(head + [""] + body)
+
+
+def _name(path: Any) -> str:
+    from pathlib import PurePath
+    return PurePath(str(path or "")).name
 
 
 def _short(path: Any, width: int = 48) -> str:
@@ -449,7 +481,7 @@ def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None
                 vs.size and np.all(vs > 0) and vs.max() / vs.min() > 20:
             ax.set_yscale("log")
         if fl.any() or m.low is not None or opened:
-            ax.legend(fontsize=7, loc="upper left", framealpha=0.7)
+            ax.legend(fontsize=7, loc="best", framealpha=0.75)
     for ax in list(axes.flat)[len(lines):]:
         ax.axis("off")
     for ax in axes[-1]:
@@ -534,6 +566,9 @@ def render_html(r: Report, store) -> str:
         if rig.open_alerts:
             parts.append("<ul class='alerts'>" + "".join(
                 f"<li>{html.escape(_alert_text(a))}</li>" for a in rig.open_alerts) + "</ul>")
+        if rig.resolved_alerts:
+            parts.append("<p class='meta'>resolved in the period: " + html.escape(", ".join(
+                f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts)) + "</p>")
         for x in rig.silences:
             parts.append(f"<p class='meta'>{html.escape(_silence_text(x))}</p>")
         for h in rig.hints:
@@ -571,7 +606,9 @@ def _files_table(rig: RigReport) -> str:
     for f in rig.files:
         cls = "err" if f.get("status") == "error" else ("flag" if f.get("flagged") else "")
         flag = ("error: " + html.escape(str(f.get("error") or f.get("error_kind") or ""))
-                if f.get("status") == "error" else ("flagged" if f.get("flagged") else "ok"))
+                if f.get("status") == "error" else
+                ("<br>".join(html.escape(x) for x in f.get("flags") or ()) or "flagged")
+                if f.get("flagged") else "ok")
         rows.append(f"<tr class='{cls}'><td>{_when(_file_time(f))}</td>"
                     f"<td>{html.escape(_short(f.get('path'), 70))}</td>"
                     f"<td>{html.escape(str(f.get('mode') or ''))}</td><td>{flag}</td></tr>")
