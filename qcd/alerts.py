@@ -378,7 +378,18 @@ def _title(rig: str, events: list[_Event]) -> str:
                 "reminder": f"still: {what} {head}", "resolved": f"resolved: {what}",
                 "unstable": f"unstable: {what}"}[e.what]
         return f"qcd {rig}: {text}"[:120]
-    names = sorted({_what(e.state) for e in events})
+    by_measure: dict[str, set[int]] = {}
+    for e in events:
+        by_measure.setdefault(e.state.measure, set()).add(e.state.channel)
+    names = []
+    for measure, chans in sorted(by_measure.items()):
+        label = "file intake" if measure == "file" else measure
+        chans.discard(-1)
+        if len(chans) > 1:
+            label += f" ({len(chans)} channels)"
+        elif chans:
+            label += f" channel {min(chans)}"
+        names.append(label)
     n_res = sum(e.what == "resolved" for e in events)
     n_rem = sum(e.what == "reminder" for e in events)
     n_new = len(events) - n_res - n_rem

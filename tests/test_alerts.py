@@ -282,3 +282,11 @@ def test_reminders_only_on_bad_files_and_at_least_repeat_hours_apart(seq):
                 assert bad and last_sent is not None and now - last_sent >= 24 * H
             if m.kind in ("reminder", "firing"):
                 last_sent = now
+
+
+def test_many_channels_give_a_short_title():
+    fs = [F(True, for_files=1, channel=c, kind="limit", rule="alias_risk", measure="alias_risk")
+          for c in range(16)]
+    _, (m,) = advance({}, fs, [], 0.0, SET)
+    assert m.title == "qcd rig-a: 16 alerts (alias_risk (16 channels))"
+    assert m.body.count("OPEN: alias_risk") == 16
