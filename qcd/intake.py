@@ -1,8 +1,8 @@
-"""Intake: which files in a rig folder are finished recordings, ready to measure.
+"""Intake: observers per rig folder, and which files are finished recordings ready to measure.
 
 A file is ready once its size and mtime have not changed for ``settle_s`` and its header fits
 its size. Live files (seen through an event) go ahead of the start-up backlog. Clock (``now``)
-and ``stat`` are parameters. Imports qcd.errors and qcd.recording (lazily) only.
+and ``stat`` are parameters. Event handlers only enqueue. Imports qcd.errors, qcd.recording.
 """
 from __future__ import annotations
 
@@ -11,19 +11,30 @@ import heapq
 import itertools
 import logging
 import os
+import queue
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Iterable
+from typing import Any, Callable, Iterable
+
+from watchdog.events import (DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
+                             FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
+                             FileSystemEventHandler)
+from watchdog.observers import Observer
+from watchdog.observers.polling import PollingObserver
 
 from qcd.errors import RecordingError
 
-__all__ = ["Ready", "GaveUp", "Intake", "is_candidate_name", "header_fits", "held_open"]
+__all__ = ["Ready", "GaveUp", "Intake", "is_candidate_name", "header_fits", "held_open",
+           "is_network_path", "scan_folder"]
 
 log = logging.getLogger("qcd.intake")
 
 # Names acquisition programs, editors and copiers use for files still being written.
 _TEMP_SUFFIXES = (".tmp", ".part", ".crdownload", ".partial", ".swp")
+
+_NETWORK_FS = {"cifs", "smb3", "smbfs", "nfs", "nfs4", "fuse.sshfs", "sshfs", "9p",
+               "fuse.rclone", "afpfs", "davfs", "fuse.davfs2"}
 
 Stat = Callable[[str], os.stat_result]
 HeaderCheck = Callable[[Path, int], "str | None"]
@@ -280,3 +291,148 @@ class Intake:
         if due is None:
             due = now + max(self.settle_s, 0.2)
         self._push(it, max(due, now + 0.05))
+
+
+# ---------------------------------------------------------------- where hints come from
+
+def _mounts(text: str) -> list[tuple[str, str]]:
+    out = []
+    for line in text.splitlines():
+        parts = line.split()
+        if len(parts) >= 3:
+            # /proc/mounts escapes spaces as \040
+            out.append((parts[1].replace("\\040", " "), parts[2]))
+    return out
+
+
+def is_network_path(path: Path, *, mounts_text: str | None = None,
+                    platform: str = sys.platform) -> bool:
+    """True for a folder on SMB/NFS/sshfs (Linux /proc/mounts), a UNC or mapped network drive."""
+    p = os.path.abspath(os.fspath(path))
+    if platform == "win32":
+        if p.startswith(("\\\\", "//")):
+            return True
+        if platform == sys.platform:
+            try:
+                import ctypes
+                drive = os.path.splitdrive(p)[0] + "\\"
+                return ctypes.windll.kernel32.GetDriveTypeW(drive) == 4   # DRIVE_REMOTE
+            except Exception:
+                return False
+        return False
+    if mounts_text is None:
+        try:
+            mounts_text = Path("/proc/mounts").read_text()
+        except OSError:
+            return False
+    best, fstype = "", ""
+    for mnt, fs in _mounts(mounts_text):
+        if (p == mnt or p.startswith(mnt.rstrip("/") + "/")) and len(mnt) >= len(best):
+            best, fstype = mnt, fs
+    return fstype in _NETWORK_FS
+
+
+def scan_folder(root: Path, patterns, *, listdir=os.scandir):
+    """Yield (path, stat) of every candidate recording under root (recursive), skipping junk."""
+    stack = [root]
+    while stack:
+        d = stack.pop()
+        try:
+            with listdir(d) as it:
+                entries = list(it)
+        except OSError as e:
+            log.warning("cannot list %s: %s", d, e.strerror or e)
+            continue
+        for e in entries:
+            try:
+                if e.is_dir(follow_symlinks=False):
+                    if not e.name.startswith("."):
+                        stack.append(Path(e.path))
+                    continue
+                p = Path(e.path)
+                if is_candidate_name(p, patterns, root):
+                    yield p, e.stat()
+            except OSError:
+                continue
+
+
+class _Inbox(FileSystemEventHandler):
+    """Only enqueues (rig, path, closed); deletions as (rig, path, None). Runs on watchdog's thread."""
+
+    def __init__(self, q: "queue.Queue", rig: str, root: Path) -> None:
+        self._q, self._rig, self._root = q, rig, root
+
+    def on_any_event(self, event) -> None:
+        t = type(event)
+        if t in (FileCreatedEvent, FileModifiedEvent):
+            self._q.put((self._rig, os.fsdecode(event.src_path), False))
+        elif t is FileClosedEvent:                      # close after write (Linux)
+            self._q.put((self._rig, os.fsdecode(event.src_path), True))
+        elif t is FileMovedEvent:
+            self._q.put((self._rig, os.fsdecode(event.src_path), None))
+            self._q.put((self._rig, os.fsdecode(event.dest_path), False))
+        elif t is FileDeletedEvent:
+            self._q.put((self._rig, os.fsdecode(event.src_path), None))
+        elif t is DirMovedEvent:
+            self._q.put((self._rig, os.fsdecode(event.dest_path), "dir"))
+        elif t is DirDeletedEvent and os.fsdecode(event.src_path) == os.fspath(self._root):
+            self._q.put((self._rig, os.fspath(self._root), "gone"))
+        # opened / closed_no_write (our own reads), attrib, dir events: nothing to do
+
+
+class _FolderWatch:
+    """One observer for one rig folder; re-created when the folder comes back."""
+
+    def __init__(self, rig: Any, root: Path, q: "queue.Queue", *, poll_interval_s: float) -> None:
+        self.rig, self.root, self._q = rig, root, q
+        self.polling = bool(rig.polling)
+        if not self.polling and is_network_path(root):
+            log.warning("%s is on a network filesystem: watching it by polling", root)
+            self.polling = True
+        self._poll_interval_s = poll_interval_s
+        self.observer = None
+        self.state = "not started"
+
+    def ensure(self) -> bool:
+        """Start or restart the observer as needed; True when it was (re)started now."""
+        present = self.root.is_dir()
+        if self.observer is not None:
+            alive = self.observer.is_alive() and any(e.is_alive() for e in self.observer.emitters)
+            if present and alive:
+                return False
+            log.warning("%s: %s; will watch it again when it is back", self.root,
+                        "folder is gone" if not present else "watcher stopped")
+            self.stop()
+            self.state = "missing" if not present else "restarting"
+        if not present:
+            if self.state != "missing":
+                log.warning("%s: folder not found; waiting for it", self.root)
+            self.state = "missing"
+            return False
+        obs = (PollingObserver(timeout=self._poll_interval_s) if self.polling else Observer())
+        obs.name = f"qcd-observer-{self.rig.name}"
+        try:
+            obs.schedule(_Inbox(self._q, self.rig.name, self.root), os.fspath(self.root),
+                         recursive=True)
+            obs.start()
+        except OSError as e:                 # e.g. inotify watch limit, folder vanished again
+            log.error("%s: cannot watch (%s); retrying", self.root, e.strerror or e)
+            try:
+                obs.stop()
+            except Exception:
+                pass
+            self.state = "error"
+            return False
+        self.observer = obs
+        self.state = "polling" if self.polling else "watching"
+        log.info("%s: %s for rig %s", self.root, self.state, self.rig.name)
+        return True
+
+    def stop(self) -> None:
+        if self.observer is not None:
+            try:
+                self.observer.stop()
+                self.observer.join(timeout=5.0)
+            except Exception:               # a dead emitter must not stop the service
+                log.exception("stopping the observer of %s", self.root)
+            self.observer = None

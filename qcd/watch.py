@@ -1,8 +1,8 @@
-"""The service: observers per rig folder (native or polling), start-up catch-up, one loop step.
+"""The service: start-up catch-up, one loop step, worker processes, heartbeat and status.
 
-Event handlers only enqueue; all work runs on the service thread, the one SQLite writer.
-Measuring runs in worker processes; every result is committed here through the pipeline.
-Imports qcd.intake, qcd.pipeline, qcd.notify, qcd.store, qcd.analyze, qcd.config, qcd.errors.
+Observers (qcd.intake) only enqueue; all work runs on the service thread, the one SQLite
+writer. Measuring runs in worker processes; every result is committed here via the pipeline.
+Imports qcd.intake, qcd.pipeline, qcd.notify, qcd.analyze (in workers); store passed in.
 """
 from __future__ import annotations
 
@@ -21,13 +21,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
-from watchdog.events import (DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
-                             FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
-                             FileSystemEventHandler)
-from watchdog.observers import Observer
-from watchdog.observers.polling import PollingObserver
-
-from qcd.intake import GaveUp, Intake, Ready, is_candidate_name
+from qcd.intake import (GaveUp, Intake, Ready, is_candidate_name, is_network_path, scan_folder,
+                        _FolderWatch)
 
 __all__ = ["Service", "status", "format_status", "setup_logging", "is_network_path",
            "scan_folder", "default_workers", "make_sender", "LOG_NAME"]
@@ -35,158 +30,13 @@ __all__ = ["Service", "status", "format_status", "setup_logging", "is_network_pa
 log = logging.getLogger("qcd.watch")
 
 LOG_NAME = "qcd.log"
-_NETWORK_FS = {"cifs", "smb3", "smbfs", "nfs", "nfs4", "fuse.sshfs", "sshfs", "9p",
-               "fuse.rclone", "afpfs", "davfs", "fuse.davfs2"}
 
 
-# ---------------------------------------------------------------- platform and folders
+# ---------------------------------------------------------------- platform
 
 def default_workers() -> int:
     """Measuring processes for this machine: the number of cores, at most 4."""
     return max(1, min(os.cpu_count() or 1, 4))
-
-
-def _mounts(text: str) -> list[tuple[str, str]]:
-    out = []
-    for line in text.splitlines():
-        parts = line.split()
-        if len(parts) >= 3:
-            # /proc/mounts escapes spaces as \040
-            out.append((parts[1].replace("\\040", " "), parts[2]))
-    return out
-
-
-def is_network_path(path: Path, *, mounts_text: str | None = None,
-                    platform: str = sys.platform) -> bool:
-    """True for a folder on SMB/NFS/sshfs (Linux /proc/mounts), a UNC or mapped network drive."""
-    p = os.path.abspath(os.fspath(path))
-    if platform == "win32":
-        if p.startswith(("\\\\", "//")):
-            return True
-        if platform == sys.platform:
-            try:
-                import ctypes
-                drive = os.path.splitdrive(p)[0] + "\\"
-                return ctypes.windll.kernel32.GetDriveTypeW(drive) == 4   # DRIVE_REMOTE
-            except Exception:
-                return False
-        return False
-    if mounts_text is None:
-        try:
-            mounts_text = Path("/proc/mounts").read_text()
-        except OSError:
-            return False
-    best, fstype = "", ""
-    for mnt, fs in _mounts(mounts_text):
-        if (p == mnt or p.startswith(mnt.rstrip("/") + "/")) and len(mnt) >= len(best):
-            best, fstype = mnt, fs
-    return fstype in _NETWORK_FS
-
-
-def scan_folder(root: Path, patterns, *, listdir=os.scandir):
-    """Yield (path, stat) of every candidate recording under root (recursive), skipping junk."""
-    stack = [root]
-    while stack:
-        d = stack.pop()
-        try:
-            with listdir(d) as it:
-                entries = list(it)
-        except OSError as e:
-            log.warning("cannot list %s: %s", d, e.strerror or e)
-            continue
-        for e in entries:
-            try:
-                if e.is_dir(follow_symlinks=False):
-                    if not e.name.startswith("."):
-                        stack.append(Path(e.path))
-                    continue
-                p = Path(e.path)
-                if is_candidate_name(p, patterns, root):
-                    yield p, e.stat()
-            except OSError:
-                continue
-
-
-class _Inbox(FileSystemEventHandler):
-    """Only enqueues (rig, path, closed); deletions as (rig, path, None). Runs on watchdog's thread."""
-
-    def __init__(self, q: "queue.Queue", rig: str, root: Path) -> None:
-        self._q, self._rig, self._root = q, rig, root
-
-    def on_any_event(self, event) -> None:
-        t = type(event)
-        if t in (FileCreatedEvent, FileModifiedEvent):
-            self._q.put((self._rig, os.fsdecode(event.src_path), False))
-        elif t is FileClosedEvent:                      # close after write (Linux)
-            self._q.put((self._rig, os.fsdecode(event.src_path), True))
-        elif t is FileMovedEvent:
-            self._q.put((self._rig, os.fsdecode(event.src_path), None))
-            self._q.put((self._rig, os.fsdecode(event.dest_path), False))
-        elif t is FileDeletedEvent:
-            self._q.put((self._rig, os.fsdecode(event.src_path), None))
-        elif t is DirMovedEvent:
-            self._q.put((self._rig, os.fsdecode(event.dest_path), "dir"))
-        elif t is DirDeletedEvent and os.fsdecode(event.src_path) == os.fspath(self._root):
-            self._q.put((self._rig, os.fspath(self._root), "gone"))
-        # opened / closed_no_write (our own reads), attrib, dir events: nothing to do
-
-
-class _FolderWatch:
-    """One observer for one rig folder; re-created when the folder comes back."""
-
-    def __init__(self, rig: Any, root: Path, q: "queue.Queue", *, poll_interval_s: float) -> None:
-        self.rig, self.root, self._q = rig, root, q
-        self.polling = bool(rig.polling)
-        if not self.polling and is_network_path(root):
-            log.warning("%s is on a network filesystem: watching it by polling", root)
-            self.polling = True
-        self._poll_interval_s = poll_interval_s
-        self.observer = None
-        self.state = "not started"
-
-    def ensure(self) -> bool:
-        """Start or restart the observer as needed; True when it was (re)started now."""
-        present = self.root.is_dir()
-        if self.observer is not None:
-            alive = self.observer.is_alive() and any(e.is_alive() for e in self.observer.emitters)
-            if present and alive:
-                return False
-            log.warning("%s: %s; will watch it again when it is back", self.root,
-                        "folder is gone" if not present else "watcher stopped")
-            self.stop()
-            self.state = "missing" if not present else "restarting"
-        if not present:
-            if self.state != "missing":
-                log.warning("%s: folder not found; waiting for it", self.root)
-            self.state = "missing"
-            return False
-        obs = (PollingObserver(timeout=self._poll_interval_s) if self.polling else Observer())
-        obs.name = f"qcd-observer-{self.rig.name}"
-        try:
-            obs.schedule(_Inbox(self._q, self.rig.name, self.root), os.fspath(self.root),
-                         recursive=True)
-            obs.start()
-        except OSError as e:                 # e.g. inotify watch limit, folder vanished again
-            log.error("%s: cannot watch (%s); retrying", self.root, e.strerror or e)
-            try:
-                obs.stop()
-            except Exception:
-                pass
-            self.state = "error"
-            return False
-        self.observer = obs
-        self.state = "polling" if self.polling else "watching"
-        log.info("%s: %s for rig %s", self.root, self.state, self.rig.name)
-        return True
-
-    def stop(self) -> None:
-        if self.observer is not None:
-            try:
-                self.observer.stop()
-                self.observer.join(timeout=5.0)
-            except Exception:               # a dead emitter must not stop the service
-                log.exception("stopping the observer of %s", self.root)
-            self.observer = None
 
 
 # ---------------------------------------------------------------- measuring
@@ -222,6 +72,12 @@ def _pipeline_digest(store, rules) -> Callable | None:
     if flush is None:
         return None
     return lambda now: flush(store, rules, now)
+
+
+def _pipeline_tick(store, rules) -> Callable | None:
+    from qcd import pipeline
+    tick = getattr(pipeline, "tick", None)
+    return None if tick is None else (lambda now: tick(store, rules, now))
 
 
 def make_sender(config: Any):
@@ -306,8 +162,12 @@ class Service:
         if commit is None:
             self._commit = _pipeline_commit(store, rules)
             self._digest = digest or _pipeline_digest(store, rules)
+            self._tick = _pipeline_tick(store, rules)
         else:
-            self._commit, self._digest = commit, digest
+            self._commit, self._digest, self._tick = commit, digest, None
+        self.tick_s = 60.0
+        self.wal_limit_bytes = 32 << 20
+        self._last_tick = -1e18
         self._batch_pending = False         # backlog files were committed without messages
         self._seen: dict[tuple[str, Path], tuple[int, float]] = {}
         self._measure_inline = measure
@@ -418,8 +278,15 @@ class Service:
                 (self._deliver or self._deliver_due)(now)
             except Exception:
                 log.exception("delivering notifications")
+        if self._tick is not None and now - self._last_tick >= self.tick_s:
+            self._last_tick = now             # silences that ended with their alert still open
+            try:
+                self._tick(now)
+            except Exception:
+                log.exception("checking ended silences")
         if now - self._last_beat >= self.beat_s:
             self._heartbeat(now)
+            self._checkpoint()
         self.progress.tick(now)
         return busy or bool(self._inline)
 
@@ -630,6 +497,17 @@ class Service:
                 log.exception("writing the catch-up digest")
 
     # -- heartbeat
+
+    def _checkpoint(self) -> None:
+        """Keep the -wal file small (long readers, such as a report, can starve checkpoints)."""
+        wal_bytes = getattr(self.store, "wal_bytes", None)
+        if wal_bytes is None or wal_bytes() < self.wal_limit_bytes:
+            return
+        try:
+            busy, _, _ = self.store.checkpoint()
+            log.info("database checkpoint%s", " (readers busy; will retry)" if busy else "")
+        except Exception:
+            log.exception("database checkpoint")
 
     def _heartbeat(self, now: float, stopped: bool = False) -> None:
         self._last_beat = now
