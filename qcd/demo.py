@@ -380,17 +380,20 @@ def _register_file_schema(echo: Callable[[str], None] | None) -> None:
     def _append(body, title, notify_type, meta, *args, **kwargs):  # noqa: ANN001
         host = meta.get("host") or ""
         path = Path(("/" + host if host else "") + (meta.get("fullpath") or ""))
-        stamp = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M:%S")
+        sim = _SIM_NOW[0]
+        when = datetime.fromtimestamp(sim if sim is not None else time.time(), tz=timezone.utc)
+        stamp = when.strftime("%Y-%m-%d %H:%M") + (" UTC (simulated clock)" if sim else " UTC")
         with open(path, "a", encoding="utf-8") as f:
-            f.write(f"--- {stamp} UTC [{notify_type}] {title}\n{body}\n\n")
+            f.write(f"--- {stamp} [{notify_type}] {title}\n{body}\n\n")
         if _ECHO:
-            _ECHO(f"  message: {title}")
+            _ECHO(f"      message {when.strftime('%m-%d %H:%M')}: {title}")
         return True
 
     _REGISTERED = True
 
 
 _ECHO: Callable[[str], None] | None = None
+_SIM_NOW: list[float | None] = [None]     # the demo's simulated clock, for the log's stamps
 
 
 def demo_config_text(lab: Path) -> str:
@@ -520,7 +523,9 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
             svc.close(clock)
         for _ in range(3):                  # anything still due
             clock += 120.0
+            _SIM_NOW[0] = clock
             notify.deliver_due(store, sender, clock)
+        _SIM_NOW[0] = None
         say("[3/3] the morning report")
         report_at = plan.end + 7.5 * 3600.0
         since = plan.day_start(plan.days - 1)
@@ -552,6 +557,7 @@ def _drain(svc, clock: float, settle_s: float, limit_s: float = 120.0) -> float:
     deadline = time.monotonic() + limit_s
     while time.monotonic() < deadline:
         clock += settle_s + 0.5
+        _SIM_NOW[0] = clock
         busy = svc.step(clock)
         if svc.queue_len() == 0 and not busy:
             idle += 1
