@@ -367,6 +367,20 @@ def _fmt(v: float) -> str:
     return f"{v:.3g}" if abs(v) >= 1e-3 else f"{v:.2e}"
 
 
+_SHOWN = ("noise_rms", "noise_rms_1k", "hum_rms", "line_hz", "holding", "seal_resistance",
+          "access_resistance", "membrane_resistance", "membrane_capacitance")
+
+
+def _shared_measures(c: Comparison) -> list[tuple[str, float, float]]:
+    """qcd's own file measures present on both sides, in a fixed order."""
+    out = []
+    for want in _SHOWN:
+        for key, b in c.before.measures.items():
+            if key.split(" (")[0] == want and key in c.after.measures:
+                out.append((key, b, c.after.measures[key]))
+    return out
+
+
 def render_compare_text(c: Comparison) -> str:
     """A compact table (fits 100 columns)."""
     u = c.before.unit
@@ -382,6 +396,11 @@ def render_compare_text(c: Comparison) -> str:
                      f"{_fmt(ch.change):>11} {ch.change_db:7.1f} {se}  "
                      f"{'yes' if ch.significant else 'no'}")
     import textwrap
+    shared = _shared_measures(c)
+    if shared:
+        lines += ["", f"{'file measures (median over files)':40} {'before':>12} {'after':>12}"]
+        for name, b, a in shared:
+            lines.append(f"{name[:40]:40} {_fmt(b):>12} {_fmt(a):>12}")
     lines += [""] + textwrap.wrap(c.hint, 100)
     if c.safety_note:
         lines += textwrap.wrap(c.safety_note, 100)
@@ -418,6 +437,11 @@ def render_compare_html(c: Comparison) -> str:
         f"<td>{ch.se_db:.2f}</td><td>{'yes' if ch.significant else 'no'}</td></tr>"
         for ch in c.changes)
     safety = (f"<p class='safety'>{html.escape(c.safety_note)}</p>" if c.safety_note else "")
+    shared = _shared_measures(c)
+    measures = ("<table><thead><tr><th>file measure (median over files)</th><th>before</th>"
+                "<th>after</th></tr></thead><tbody>" + "".join(
+                    f"<tr><td>{html.escape(n)}</td><td>{_fmt(b)}</td><td>{_fmt(a)}</td></tr>"
+                    for n, b, a in shared) + "</tbody></table>") if shared else ""
     files = "".join(f"<li>{side}: {html.escape(', '.join(Path(p).name for p in s.paths))}</li>"
                     for side, s in (("before", c.before), ("after", c.after)))
     body = (f"<h1>Before / after comparison</h1><ul class='meta'>{files}</ul>"
@@ -426,5 +450,5 @@ def render_compare_html(c: Comparison) -> str:
             f"<th>after RMS ({c.before.unit})</th><th>change ({c.before.unit})</th>"
             f"<th>change (dB)</th><th>&plusmn; dB</th><th>beyond own variation</th></tr>"
             f"</thead><tbody>{rows}</tbody></table>"
-            f"<p class='hint'>{html.escape(c.hint)}</p>{safety}")
+            f"<p class='hint'>{html.escape(c.hint)}</p>{safety}{measures}")
     return page("qcd: before / after", body)
