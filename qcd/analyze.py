@@ -20,13 +20,24 @@ from qcd.errors import RecordingError
 from qcd.measures import drift
 from qcd.measures import noise as nz
 from qcd.measures import spectrum as sp
-from qcd.measures import testpulse as tp
 from qcd.recording import open_recording
 
 __all__ = ["MODES", "Measure", "Spectrum", "ChannelMeasures", "FileMeasures", "analyze",
            "analyze_path"]
 
 log = logging.getLogger("qcd.analyze")
+
+
+class _LazyTestPulse:
+    """qcd.measures.testpulse, imported on first use (it pulls in scipy.optimize, which a
+    gap-free scan never needs; start-up time counts when scanning thousands of files)."""
+
+    def __getattr__(self, name: str) -> Any:
+        from qcd.measures import testpulse
+        return getattr(testpulse, name)
+
+
+tp = _LazyTestPulse()
 
 # Recording modes, stored as files.mode and used by rules as [mode] tables.
 MODES = ("voltage_clamp", "current_clamp", "extracellular", "unknown")
@@ -127,7 +138,7 @@ _MIN_BLOCK = 16           # fewer baseline samples than this per window: no nois
 _MAX_HUM_DF = 2.0         # 50 and 60 Hz families need bins of at most 2 Hz to stay apart
 _NO_COMMAND_FRACTION = 8  # no command known: the first 1/8 of each sweep is the baseline
 _TP_SPREAD = 0.10         # a test pulse keeps its size within 10 % over the sweeps
-_MEDIAN_SAMPLES = 2048    # block medians from every k-th sample, k = L // 2048 (speed)
+_MEDIAN_SAMPLES = 512     # block medians from every k-th sample, k = L // 512 (speed)
 _ABSURD_AMPERES = 1e-3    # |current| above 1 mA is no patch-clamp signal: the unit is wrong
 
 
@@ -372,6 +383,7 @@ class _Blocks:
         self.L, self.fs = L, fs
         self.scale, self.offset, self.rails = scale, offset, rails
         self.welch = sp.WelchAccumulator(L, fs)
+        self.fft = sp.BlockFFT(L)
         self.clipped = 0
         self._median_step = max(1, L // _MEDIAN_SAMPLES)
         self.parts: dict[str, list[np.ndarray]] = {k: [] for k in
@@ -387,11 +399,11 @@ class _Blocks:
         sub = blocks[:, ::self._median_step]
         h = sub.shape[1] // 2
         if sub.shape[1] % 2:
-            med = np.partition(sub, h, axis=1)[:, h]
+            med = np.partition(sub, h, axis=1)[:, h].copy()    # no view: keep no block
         else:
             part = np.partition(sub, (h - 1, h), axis=1)
             med = 0.5 * (part[:, h - 1] + part[:, h])
-        X, mean, _ = sp.block_fft(blocks, overwrite=True)
+        X, mean, _ = self.fft(blocks)
         sd, sd_band = nz.parseval_sd(X, self.L, self.fs)
         self.welch.add(X, sd)
         for k, v in (("sd", sd), ("sd_band", sd_band), ("pp", pp), ("mean", mean),

@@ -5,7 +5,7 @@ import numpy as np
 
 __all__ = ["theil_sen", "baseline_drift", "MAX_POINTS"]
 
-MAX_POINTS = 1500     # above this, medians are pooled into MAX_POINTS groups first
+MAX_POINTS = 1000     # above this, medians are pooled into MAX_POINTS groups first
 
 
 def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:

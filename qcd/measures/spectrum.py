@@ -11,9 +11,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special
 
-__all__ = ["block_fft", "hann_psd", "WelchAccumulator", "Hum", "hum", "mains_family_db",
+__all__ = ["block_fft", "BlockFFT", "hann_psd", "WelchAccumulator", "Hum", "hum", "mains_family_db",
            "band_rms", "BANDS", "corner_hz", "alias_ratio_db", "ALIAS_LIMIT_DB",
            "spectral_lines", "compact_spectrum"]
 
@@ -61,6 +60,38 @@ def block_fft(blocks: np.ndarray, *, overwrite: bool = False
     mean = X[:, 0].real / n
     X[:, 0] = 0.0
     return X, mean, slope
+
+
+class BlockFFT:
+    """``block_fft`` with reused work buffers, for the streaming path.
+
+    Fresh multi-megabyte arrays per chunk cost page faults that outweigh the arithmetic, so
+    the trend and spectrum buffers are kept between calls. The returned X is overwritten by
+    the next call.
+    """
+
+    def __init__(self, n: int) -> None:
+        self.n = n
+        self.c = _centred(n)
+        self.ss = float(self.c @ self.c)
+        self._trend: np.ndarray | None = None
+        self._X: np.ndarray | None = None
+
+    def __call__(self, blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Detrend (n_blocks, L) float64 ``blocks`` in place; (X, mean, slope) as block_fft."""
+        nb = blocks.shape[0]
+        if self._trend is None or self._trend.shape[0] < nb:
+            self._trend = np.empty((nb, self.n))
+            self._X = np.empty((nb, self.n // 2 + 1), dtype=complex)
+        trend, X = self._trend[:nb], self._X[:nb]
+        slope = (np.einsum("bj,j->b", blocks, self.c) / self.ss if self.ss > 0
+                 else np.zeros(nb))
+        np.multiply.outer(slope, self.c, out=trend)
+        blocks -= trend
+        np.fft.rfft(blocks, axis=1, out=X)
+        mean = X[:, 0].real / self.n
+        X[:, 0] = 0.0
+        return X, mean, slope
 
 
 def _one_sided_weights(n: int) -> np.ndarray:
@@ -173,9 +204,11 @@ class WelchAccumulator:
 
 
 def _floor_correction(k_segments: int) -> float:
-    """Median of the mean of K chi-square(2) bins over its mean: Gamma(K, 1/K) median."""
-    k = max(int(k_segments), 1)
-    return float(special.gammaincinv(k, 0.5) / k)
+    """Median over mean of a K-segment average of chi-square(2) bins: the Gamma(K, 1/K)
+    median, by the asymptotic series K - 1/3 + 8/(405 K) + 184/(25515 K^2) (Choi 1994, cited from memory),
+    within 0.1 % of scipy.special.gammaincinv(K, 0.5) from K = 1 on."""
+    k = float(max(int(k_segments), 1))
+    return (k - 1.0 / 3.0 + 8.0 / (405.0 * k) + 184.0 / (25515.0 * k * k)) / k
 
 
 @dataclass(frozen=True)
