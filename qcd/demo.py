@@ -3,7 +3,8 @@ real pipeline over them (store, judge, alerts, apprise delivery to a local file,
 
 The signal and circuit models here (test-pulse cell, seal, Bessel filter, thermal noise, hum)
 are the ones tests/test_demo.py checks against the analytic references in tests/references.py.
-Imports numpy, scipy, pyabf, apprise and, for the run, qcd.config/pipeline/watch/store/report.
+Imports numpy, scipy, pyabf, apprise and, for the run, qcd.config, qcd.watch (the service),
+qcd.notify, qcd.store and qcd.report.
 """
 from __future__ import annotations
 
@@ -18,14 +19,15 @@ import time
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Callable
 
 import numpy as np
 
 __all__ = ["LAB_NAME", "MAINS_HZ", "BOLTZMANN", "TEMPERATURE_K", "RigPlan", "FileSpec",
            "LabPlan", "plan_lab", "cell_step_current", "seal_step_current", "bessel_lowpass",
            "thermal_noise_rms", "hum_wave", "whole_cell_sweeps", "seal_sweeps", "field_trace",
-           "write_abf1", "build_lab", "run_demo", "DemoResult", "demo_config_text"]
+           "write_abf1", "synthesize", "build_lab", "run_demo", "DemoResult", "demo_config_text",
+           "write_sample_set", "SAMPLE_END"]
 
 LAB_NAME = "retina and slice physiology lab"
 MAINS_HZ = 50.0                 # the invented building's mains frequency
