@@ -174,3 +174,21 @@ def test_one_dead_target_does_not_make_the_others_receive_it_twice(store, http_s
         assert len(dead.wait_for(1)) == 1 and len(http_sink.received) == 1
     finally:
         dead.stop()
+
+
+def test_apprise_config_file_targets_are_used(tmp_path, store, http_sink):
+    # apprise TEXT config: one URL per line, '#' comments (apprise notes, OPERATIONS.md 3)
+    conf = tmp_path / "targets.txt"
+    conf.write_text(f"# lab webhook\n{http_sink.url}\n")
+    sender = Sender(config_path=conf)
+    assert len(sender.targets()) == 1
+    _queue(store, 1)
+    assert deliver_due(store, sender, T0 + 1).sent == 1
+    assert len(http_sink.wait_for(1)) == 1
+
+
+def test_config_file_without_valid_urls_is_a_configuration_error(tmp_path):
+    conf = tmp_path / "targets.txt"
+    conf.write_text("# nothing here yet\n")
+    with pytest.raises(DeliveryError, match="no valid URL"):
+        Sender(config_path=conf)
