@@ -286,6 +286,7 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             print("qcd scan: no *.abf files found", file=sys.stderr)
         return EXIT_FAILED if failed or ob.get("stuck", 0) else EXIT_OK
     import json
+    import multiprocessing
     from concurrent.futures import ProcessPoolExecutor
 
     from qcd.config import parse_pulse
@@ -299,7 +300,10 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         print(f"{'file':<26} {'mode':<4}{'noise_rms':>10} {'rms_1k':>10} {'hum@line_hz':>16} "
               f"{'test pulse':<28}")
     failed = 0
-    pool = ProcessPoolExecutor(max_workers=args.workers) if args.workers > 1 else None
+    # spawn, not fork: the workers start clean whatever threads the parent holds
+    pool = (ProcessPoolExecutor(max_workers=args.workers,
+                                mp_context=multiprocessing.get_context("spawn"))
+            if args.workers > 1 else None)
     try:
         results = pool.map(_scan_one, jobs) if pool else map(_scan_one, jobs)
         for i, fm in enumerate(results, 1):
