@@ -370,8 +370,7 @@ class Service:
             self._inline.append(r)
             return
         if self._pool is None:
-            self._pool = cf.ProcessPoolExecutor(max_workers=self.workers,
-                                                mp_context=_mp_context())
+            self._pool = _new_pool(self.workers)
         rig = self._rigs[r.rig]
         fut = self._pool.submit(_measure, os.fspath(r.path), rig.test_pulse, rig.mains_hz)
         self._jobs[fut] = _Job(r, now)
@@ -420,8 +419,7 @@ class Service:
         if old is not None:
             old.shutdown(wait=False, cancel_futures=True)
         for job in pending:
-            self._pool = self._pool or cf.ProcessPoolExecutor(max_workers=self.workers,
-                                                              mp_context=_mp_context())
+            self._pool = self._pool or _new_pool(self.workers)
             rig = self._rigs[job.ready.rig]
             fut = self._pool.submit(_measure, os.fspath(job.ready.path), rig.test_pulse,
                                     rig.mains_hz)
@@ -526,11 +524,21 @@ class _StatLike:
         self.st_size, self.st_mtime = size, mtime
 
 
-def _mp_context():
-    # fork with observer threads running is unsafe (and warns on 3.12+): forkserver on POSIX
-    if sys.platform.startswith("linux"):
-        return multiprocessing.get_context("forkserver")
-    return multiprocessing.get_context("spawn")
+def _new_pool(workers: int) -> cf.ProcessPoolExecutor:
+    # spawn: fork with observer threads running is unsafe (and warns on 3.12+), and spawned
+    # workers are our own children, which _watch_parent ends when the service is killed
+    return cf.ProcessPoolExecutor(max_workers=workers,
+                                  mp_context=multiprocessing.get_context("spawn"),
+                                  initializer=_watch_parent, initargs=(os.getpid(),))
+
+
+def _watch_parent(pid: int) -> None:
+    """In a worker: exit when the service process is gone (kill -9 leaves no one to stop us)."""
+    def watch() -> None:
+        while _pid_alive(pid):
+            time.sleep(1.0)
+        os._exit(0)
+    threading.Thread(target=watch, name="qcd-parent-watch", daemon=True).start()
 
 
 # ---------------------------------------------------------------- logging and status
