@@ -494,6 +494,46 @@ def test_thousand_small_files_dropped_at_once_are_all_measured(tmp_path, store):
     assert len(store.files(rig=RIG, include_superseded=True)) == 1000
 
 
+def test_periodic_rescan_finds_a_file_the_events_missed(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec, rescan_s=60.0, folder_check_s=1e9)
+    t0 = time.time()
+    svc.start(t0)
+    try:
+        svc._folders[0].stop()                 # events lost (as in a Windows buffer overflow)
+        shutil.copy(abf("vc_model_cell_step.abf"), folder / "missed.abf")
+        for dt in (1.0, 2.0, 30.0):
+            svc.step(t0 + dt)
+        assert rec.committed == []             # no event, no rescan yet
+        for dt in np.arange(60.0, 62.0, 0.1):  # the rescan is due at t0 + 60 s
+            svc.step(t0 + dt)
+    finally:
+        svc.close()
+    assert rec.paths() == ["missed.abf"]
+
+
+def test_catch_up_progress_goes_to_the_log_off_a_terminal(tmp_path, store, caplog):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for i in range(5):
+        _tiny_abf(folder / f"p{i}.abf", 500 + i)
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec)
+    with caplog.at_level("INFO", logger="qcd"):
+        svc.start(time.time())
+        try:
+            wait_until(lambda: len(rec.committed) == 5, 20.0, lambda: svc.step(time.time()))
+        finally:
+            svc.close()
+    text = caplog.text
+    assert "start-up: 5 file(s) to catch up on" in text
+    assert "catching up: 5 of 5 files measured" in text
+
+
 def test_status_reports_a_stopped_service(tmp_path, store):
     folder = tmp_path / "rig"
     folder.mkdir()
@@ -585,6 +625,25 @@ def _status(cfg: Path) -> subprocess.CompletedProcess:
                           capture_output=True, text=True, timeout=60)
 
 
+def _children(pid: int) -> list[int]:
+    """Child process ids (Linux /proc; empty elsewhere)."""
+    out = []
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            out += [int(c) for c in (task / "children").read_text().split()]
+        except OSError:
+            pass
+    return out
+
+
+def _alive(pid: int) -> bool:
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return False
+    return state != "Z"                        # a zombie has exited
+
+
 def _arrive(folder: Path, names, corrupt: int = 0) -> None:
     for name in names:
         shutil.copy(abf(name), folder / name)
@@ -605,8 +664,12 @@ def test_kill_9_and_restart_lose_nothing_and_store_nothing_twice(tmp_path):
         wait_until(lambda: _n_files(db) >= 1, 60.0)
         _arrive(folder, _REAL[2:6])            # still arriving when it is killed
         time.sleep(0.3)
+        children = _children(w.proc.pid)
+        assert children or not sys.platform.startswith("linux")   # the measuring process
         w.kill()
         assert w.proc.returncode == -signal.SIGKILL
+        # its measuring processes do not outlive it (no orphans holding files open)
+        wait_until(lambda: not any(_alive(c) for c in children), 15.0)
         assert 1 <= _n_files(db) < 7           # killed part-way through the arrivals
         st = _status(cfg)
         assert st.returncode == 1 and "not running" in st.stdout, st.stdout
