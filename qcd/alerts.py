@@ -352,7 +352,7 @@ def _describe(e: _Event) -> str:
     s = e.state
     lines = [f"{_HEAD[e.what]}: {_what(s)} on rig {s.rig} ({s.mode}; rule {s.rule}, {s.severity})",
              f"  file: {s.path}",
-             f"  value: {_value(s)}; limit: {s.limit_text}"]
+             f"  value: {_value(s)}; {'' if s.kind == 'drift' else 'limit: '}{s.limit_text}"]
     if e.what == "resolved":
         lines.append(f"  resolved after {s.clear_files} good files; open since {_when(s.opened_at)}")
     elif e.what == "unstable":

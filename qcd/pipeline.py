@@ -4,7 +4,8 @@
 measured elsewhere (the service's workers); ``flush_digest`` ends a backlog with one message;
 ``tick`` announces alerts whose silence ended. Only here are unexpected errors caught: a bad
 file becomes an error row, a bug becomes error_kind 'internal' (logged with its traceback).
-Imports qcd.analyze, qcd.judge, qcd.alerts, qcd.notify, qcd.errors.
+Imports qcd.analyze, qcd.recording (header times for ordering), qcd.judge, qcd.alerts,
+qcd.notify, qcd.errors.
 """
 from __future__ import annotations
 
