@@ -277,6 +277,9 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         for a in res.opened:
             print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "
                   f"mode {a['mode']})")
+        for mode, n in res.learning.items():
+            print(f"learning ({mode}): {n} of {rules.settings.learning_files} files; history "
+                  f"checks send no messages until then")
         if res.digest is not None:
             print(f"digest queued: {res.digest.title}")
         ob = res.outbox

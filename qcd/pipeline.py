@@ -180,6 +180,7 @@ class ScanResult:
     opened: list[dict] = field(default_factory=list)      # alert rows that opened in this scan
     digest: Any = None                                      # the digest Message, if any
     outbox: dict[str, int] = field(default_factory=dict)
+    learning: dict[str, int] = field(default_factory=dict)  # mode -> good files, still learning
 
 
 def scan(paths: Iterable[Any], rig: Any, store: Any, rules: Any, *, clock: Callable[[], float],
@@ -207,4 +208,8 @@ def scan(paths: Iterable[Any], rig: Any, store: Any, rules: Any, *, clock: Calla
         _deliver(store, sender, clock())
     out.opened = [a for a in store.open_alerts(name) if a["key"] not in was_open]
     out.outbox = store.outbox_counts()
+    for mode in sorted({fm.mode for fm in out.files if fm.status == "ok"}):
+        n = store.good_file_count(name, mode)
+        if n < rules.settings.learning_files:
+            out.learning[mode] = n
     return out

@@ -320,3 +320,16 @@ def test_until_resolved_silence_ends_when_its_alert_resolves(lab, rig, store, ru
     _run(files[32:36], times[32:36], rig, store, rules, sender)      # resolves
     assert store.active_silences(times[35] + 1) == []
     assert http_sink.received == []                 # never announced, so no resolved message
+
+
+def test_scan_store_says_a_new_rig_is_learning(lab, tmp_path, capsys):
+    _, files, _ = lab
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "q.sqlite"\n[[rig]]\nname = "rig-new"\nfolders = ["{tmp_path}"]\n'
+                   f'mains_hz = 50\n')
+    code = main(["scan", "--store", "--rig", "rig-new", "--config", str(cfg),
+                 *map(str, files[:4])])
+    out = capsys.readouterr().out
+    assert code == 0, out
+    assert "learning (voltage_clamp): 4 of 10 files" in out
+    assert "(no notification targets)" in out
