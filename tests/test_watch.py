@@ -534,6 +534,31 @@ def test_catch_up_progress_goes_to_the_log_off_a_terminal(tmp_path, store, caplo
     assert "catching up: 5 of 5 files measured" in text
 
 
+def test_backlog_gives_one_digest_not_a_message_per_file(tmp_path, store):
+    if not _analyze_ready():
+        pytest.skip("the pipeline is not in this build yet")
+    from qcd.config import load_rules
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for i in range(6):                         # six unreadable files waiting at start-up
+        (folder / f"bad{i}.abf").write_bytes(f"not a recording {i} ".encode() * 100)
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    svc = Service(cfg, store, load_rules(), workers=0, poll_s=0.02, progress_tty=False)
+    svc.start(time.time())
+    try:
+        wait_until(lambda: len(store.files(rig=RIG)) == 6, 20.0, lambda: svc.step(time.time()))
+        wait_until(lambda: store.outbox_rows(), 5.0, lambda: svc.step(time.time()))
+        (folder / "bad_live.abf").write_bytes(b"also not a recording " * 100)
+        wait_until(lambda: len(store.files(rig=RIG)) == 7, 20.0, lambda: svc.step(time.time()))
+        for _ in range(10):
+            svc.step(time.time())
+    finally:
+        svc.close()
+    kinds = [r["kind"] for r in store.outbox_rows()]
+    assert kinds.count("digest") == 1, kinds   # the six backlog files: one message
+    assert len(kinds) <= 2, kinds              # plus at most one for the live file
+
+
 def test_status_reports_a_stopped_service(tmp_path, store):
     folder = tmp_path / "rig"
     folder.mkdir()
