@@ -290,3 +290,25 @@ def test_many_channels_give_a_short_title():
     _, (m,) = advance({}, fs, [], 0.0, SET)
     assert m.title == "qcd rig-a: 16 alerts (alias_risk (16 channels))"
     assert m.body.count("OPEN: alias_risk") == 16
+
+
+@hsettings(max_examples=60, deadline=None)
+@given(st.lists(st.lists(st.booleans(), min_size=3, max_size=3), min_size=1, max_size=40))
+def test_backlog_flush_announces_each_open_key_once(rows):
+    # SEMANTICS 5: a backlog produces one digest; nothing is announced twice
+    states: dict = {}
+    for i, bads in enumerate(rows):
+        fs = [F(b, measure=f"m{j}", rule=f"m{j}_x", for_files=1) for j, b in enumerate(bads)]
+        states, msgs = advance(states, fs, [], i * 60.0, SET, batch=True)
+        assert msgs == []
+        states = {k: v.to_dict() for k, v in states.items()}
+    out, digest = flush_digest(states, [], 1e6, SET)
+    open_keys = {k for k, s in out.items() if s.state == "open"}
+    if open_keys:
+        assert digest is not None
+        assert digest.body.count("OPEN") + digest.body.count("UNSTABLE") == len(open_keys)
+        assert all(out[k].announced for k in open_keys)
+    else:
+        assert digest is None
+    _, again = flush_digest({k: v.to_dict() for k, v in out.items()}, [], 1e6 + 1, SET)
+    assert again is None
