@@ -244,3 +244,21 @@ def test_sample_ground_fix_shows_in_compare():
     # hum amplitudes divided by 10 -> -20 dB (20 log10 0.1), per-file scatter aside
     assert hum.significant and hum.change_db == pytest.approx(-20.0, abs=1.5)
     assert c.before.line_hz == 50.0 and c.safety_note
+
+
+@pytest.mark.slow
+def test_report_hints_name_the_scripted_sources(lab):
+    from qcd.report import build_report
+    result, store, _ = lab
+    r = build_report(store, result.plan.end, result.plan.day_start(0))
+    rigs = {x.rig: x for x in r.rigs}
+    assert any("grounding" in h for h in rigs["field-1"].hints)
+    assert rigs["field-1"].safety_note and "electrician" in rigs["field-1"].safety_note
+    assert any("headstage" in h for h in rigs["patch-2"].hints)
+    assert not rigs["patch-1"].hints and rigs["patch-1"].n_flagged == 0
+
+
+def test_demo_command_rejects_too_few_days(capsys):
+    from qcd.cli import main
+    assert main(["demo", "--days", "3"]) == 2
+    assert "6 to 120" in capsys.readouterr().err
