@@ -237,8 +237,17 @@ class Service:
                 signal.signal(signal.SIGBREAK, _stop)
         try:
             self.start(time.time())
+            failures = 0
             while not self.stop_event.is_set():
-                if not self.step(time.time()):
+                try:
+                    busy = self.step(time.time())
+                    failures = 0
+                except Exception:             # e.g. the database locked for too long: back off
+                    failures += 1
+                    log.exception("service step failed (%d in a row); retrying", failures)
+                    self.stop_event.wait(min(60.0, self.poll_s * 2 ** failures))
+                    continue
+                if not busy:
                     self.wait_idle()
         finally:
             self.close()
