@@ -30,6 +30,7 @@ SIGNIFICANCE_SIGMAS = 3.0      # a change counts when |change| > 3 standard erro
 MIN_DB = 1.0                   # ... and at least 1 dB (common practice: smaller is not audible
                                # in a QC sense and within Welch bin scatter)
 _SEGMENT_S = 1.0
+MAX_SEGMENTS = 600             # at most 10 min of a gap-free file
 MAX_DF_HZ = 2.0                # coarser Welch bins cannot separate mains harmonics from noise
 
 _HINTS = {
@@ -122,11 +123,20 @@ def _baseline_segments(path: Path, channel: int) -> tuple[list[np.ndarray], floa
         fs = float(rec.fs)
         pieces: list[np.ndarray] = []
         if rec.gap_free or rec.n_sweeps == 1:
-            data = np.concatenate(list(rec.chunks(channel)))
+            # 1 s blocks, read chunk by chunk and at most MAX_SEGMENTS of them, so a long
+            # recording never sits in memory whole
             blk = int(_SEGMENT_S * fs)
-            if len(data) < 4 * blk:
-                blk = max(len(data) // 4, 64)
-            pieces = [data[i:i + blk] for i in range(0, len(data) - blk + 1, blk)]
+            total = int(rec.sweep_lengths[0]) if rec.sweep_lengths else 0
+            if 0 < total < 4 * blk:
+                blk = max(total // 4, 64)
+            buf = np.empty(0)
+            for chunk in rec.chunks(channel):
+                buf = np.concatenate([buf, chunk])
+                while len(buf) >= blk and len(pieces) < MAX_SEGMENTS:
+                    pieces.append(buf[:blk].copy())
+                    buf = buf[blk:]
+                if len(pieces) >= MAX_SEGMENTS:
+                    break
         else:
             cmd = rec.commands.get(channel) if rec.commands else None
             sweeps = [rec.sweep(channel, k) for k in range(rec.n_sweeps)]

@@ -112,3 +112,21 @@ def test_missing_file_is_a_clear_error(tmp_path, capsys):
     from qcd.cli import main
     assert main(["compare", str(tmp_path / "nope.abf"), str(tmp_path / "x.abf")]) == 2
     assert "no such file" in capsys.readouterr().err
+
+
+def test_real_recording_against_itself_changes_nothing():
+    # identity: the same real gap-free recording on both sides must give 0 dB everywhere
+    from conftest import abf
+    path = abf("gapfree_cc_slow_drift.abf")
+    c = compare_paths(path, path)
+    assert c.changes and all(x.change_db == 0.0 and not x.significant for x in c.changes)
+    assert c.before.unit == "mV"
+
+
+def test_real_episodic_file_compares_without_its_test_step():
+    from conftest import abf
+    path = abf("vc_model_cell_step.abf")
+    c = compare_paths(path, path)
+    # a -ve test step of tens of pA would dominate the bands if it were taken as baseline;
+    # the model cell's pre-step baseline noise is a few pA at most
+    assert all(x.before < 10.0 for x in c.changes if x.name.startswith("band_"))
