@@ -642,7 +642,7 @@ def _ago(now: float, t: float | None) -> str:
 def format_status(st: dict, now: float) -> str:
     """Plain text for the terminal."""
     lines = [f"service: {st['reason']}"]
-    if st.get("heartbeat"):
+    if st.get("alive"):
         intake = st.get("intake") or {}
         lines.append(f"queue: {st.get('queue_len', 0)} file(s) (settling live "
                      f"{intake.get('live', 0)}, backlog {intake.get('backlog', 0)}, measuring "
@@ -664,8 +664,10 @@ def format_status(st: dict, now: float) -> str:
     lines.append(f"open alerts: {len(alerts)}")
     for a in alerts[:20]:
         a = a if isinstance(a, dict) else getattr(a, "__dict__", {})
-        lines.append(f"  {a.get('rig')} {a.get('measure') or ''} {a.get('rule') or ''} "
-                     f"(channel {a.get('channel')}) since {_ago(now, a.get('opened_at'))}")
+        ch = a.get("channel")
+        where = f" (channel {ch})" if isinstance(ch, int) and ch >= 0 else ""
+        lines.append(f"  {a.get('rig')}: {a.get('measure') or ''} {a.get('rule') or ''}{where}, "
+                     f"{a.get('state')} since {_ago(now, a.get('opened_at'))}")
     ob = st["outbox"]
     lines.append(f"messages: {ob.get('pending', 0)} pending, {ob.get('stuck', 0)} stuck, "
                  f"{ob.get('sent', 0)} sent")
