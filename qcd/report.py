@@ -437,7 +437,7 @@ _PLOTTED = ("noise_rms", "noise_rms_1k", "hum_rms", "band_rms_1k_corner", "holdi
 
 
 def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None:
-    from matplotlib.dates import DateFormatter
+    from matplotlib.dates import AutoDateLocator, DateFormatter
     plt = _plt()
     lines = [m for m in rig.measures if m.measure in _PLOTTED][:6]
     if not lines:
@@ -449,10 +449,11 @@ def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None
     fig.subplots_adjust(left=0.065, right=0.99, top=1 - 0.3 / height, bottom=0.5 / height,
                         hspace=0.5, wspace=0.14)
     t0 = now - HISTORY_DAYS * 86400.0
+    marked = list(rig.open_alerts) + list(store.recent_alerts(t0, rig=rig.rig))
     for ax, m in zip(axes.flat, lines):
-        opened = [a.get("opened_at") for a in rig.open_alerts
-                  if a.get("opened_at") and a.get("measure") == m.measure
-                  and a.get("channel") in (None, m.channel)]
+        opened = sorted({a.get("opened_at") for a in marked
+                         if a.get("opened_at") and a.get("measure") == m.measure
+                         and a.get("channel") in (None, m.channel)})
         rows = _series(store, rig.rig, m.measure, m.channel, t0)
         ts = [datetime.fromtimestamp(r[0], tz=timezone.utc) for r in rows]
         vs = np.array([r[1] for r in rows], dtype=float)
@@ -475,6 +476,7 @@ def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None
         ax.set_title(f"{name} ({m.measure}, ch {m.channel})", fontsize=9.5, loc="left")
         ax.set_ylabel(m.unit or "value", fontsize=9)
         ax.tick_params(labelsize=8)
+        ax.xaxis.set_major_locator(AutoDateLocator(minticks=3, maxticks=7))
         ax.xaxis.set_major_formatter(DateFormatter("%m-%d"))
         ax.grid(True, alpha=0.25)
         if m.measure in ("hum_rms", "seal_resistance", "membrane_resistance") and \
