@@ -268,8 +268,7 @@ class Service:
                 if fw.ensure():               # started again after it was gone: look inside
                     self._scan_root(fw, now, live=True)
         if now - self._last_rescan >= self.rescan_s:
-            self._last_rescan = now
-            n = self._scan_all(now, live=True)
+            n = self.rescan(now)
             if n:
                 log.info("rescan found %d file(s) the events missed", n)
         busy = False
@@ -298,6 +297,11 @@ class Service:
             self._checkpoint()
         self.progress.tick(now)
         return busy or bool(self._inline)
+
+    def rescan(self, now: float) -> int:
+        """Look through every rig folder now (as the periodic rescan does); files queued."""
+        self._last_rescan = now
+        return self._scan_all(now, live=True)
 
     def wait_idle(self) -> None:
         """Between steps: until a measurement finishes, a stop is asked for, or poll_s passed."""
