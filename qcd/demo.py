@@ -478,7 +478,8 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
         if not d.startswith("."):
             (folder / d).mkdir()
     plan = plan_lab(days, files_per_day, end=end)
-    n_workers = default_workers() if workers is None else max(1, workers)
+    # workers=0: measure on the service thread, one file at a time, in arrival order
+    n_workers = default_workers() if workers is None else max(0, workers)
     say(f"qcd demo: a {LAB_NAME} (invented), 4 rigs, {days} days, "
         f"{len(plan.files)} recordings")
     for r in plan.rigs:
@@ -492,7 +493,7 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
         if n == total or time.monotonic() - last[0] > 3.0:
             last[0] = time.monotonic()
             say(f"      {n}/{total} files written")
-    build_lab(staging, plan, progress, workers=n_workers)
+    build_lab(staging, plan, progress, workers=max(1, n_workers))
     (folder / "qcd.toml").write_text(demo_config_text(folder), encoding="utf-8")
     (folder / "alerts.log").touch()
     config = load_config(folder / "qcd.toml")
