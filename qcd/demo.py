@@ -37,14 +37,14 @@ TEMPERATURE_K = 295.0
 # Acquisition settings of the invented rigs (common practice: fs = 5-10 x the Bessel corner).
 _PATCH_FS = 10_000.0
 _PATCH_FC = 2_000.0
-_FIELD_FS = 5_000.0
-_FIELD_FC = 1_000.0
+_FIELD_FS = 20_000.0
+_FIELD_FC = 2_000.0
 _SWEEP_S = 0.30                 # one episodic sweep
 _STEP_START_S = 0.10            # declared test step: starts 100 ms into each sweep ...
 _STEP_LEN_S = 0.10              # ... and lasts 100 ms
 _WHOLE_CELL_STEP_V = -5e-3      # -5 mV test step (voltage clamp)
 _SEAL_STEP_V = 10e-3            # +10 mV seal test (cell-attached)
-_FIELD_DURATION_S = 6.0
+_FIELD_DURATION_S = 4.0
 
 
 # ----------------------------------------------------------------------------- models
@@ -299,7 +299,7 @@ def _file_params(rng: np.random.Generator, rig: RigPlan, day: int, index: int) -
             faulty = True
         p["seals"] = tuple(seals)
     else:  # field
-        p["noise_sd"] = 12e-6 * jitter(0.06)                         # V, 1 kHz band
+        p["noise_sd"] = 12e-6 * jitter(0.06)                         # V, 2 kHz band
         growth = 1.0
         if rig.fault == "ground" and day >= rig.fault_day:
             growth = min(12.0, 1.4 ** (day - rig.fault_day + 1))     # creeping ground fault
