@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Iterable
 
-from watchdog.events import (DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
+from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
                              FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
                              FileSystemEventHandler)
 from watchdog.observers import Observer
@@ -375,6 +375,8 @@ class _Inbox(FileSystemEventHandler):
             self._q.put((self._rig, os.fsdecode(event.src_path), None))
         elif t is DirMovedEvent:
             self._q.put((self._rig, os.fsdecode(event.dest_path), "dir"))
+        elif t is DirCreatedEvent:           # files may land before its watch is added
+            self._q.put((self._rig, os.fsdecode(event.src_path), "dir"))
         elif t is DirDeletedEvent and os.fsdecode(event.src_path) == os.fspath(self._root):
             self._q.put((self._rig, os.fspath(self._root), "gone"))
         # opened / closed_no_write (our own reads), attrib, dir events: nothing to do

@@ -333,7 +333,10 @@ class Service:
                 self.intake.discard(rig_name, p)
             elif closed == "gone":
                 self._last_folder_check = -1e18      # check the folders on this step
-            elif closed == "dir":                    # a folder moved in: look inside it
+            elif closed == "dir":                    # a folder moved in or made: look inside
+                root = self._root_of(rig, p)
+                if root is None or not is_candidate_name(p / "x", ("x",), root):
+                    continue                         # a hidden folder
                 for fp, st in scan_folder(p, rig.patterns):
                     if self._needs_measuring(rig_name, fp, st):
                         self.intake.offer(rig_name, fp, now, live=True)

@@ -362,6 +362,35 @@ def test_folder_removed_and_recreated_is_watched_again(tmp_path, store):
     assert sorted(rec.paths()) == ["one.abf", "three.abf", "two.abf"]
 
 
+def test_files_in_a_new_subfolder_are_measured_and_hidden_folders_ignored(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _config(tmp_path, [folder], settle_s=0.3)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec)
+    svc.start(time.time())
+    try:
+        step = lambda: svc.step(time.time())
+        (folder / ".trash").mkdir()
+        shutil.copy(abf("cc_steps.abf"), folder / ".trash" / "deleted.abf")
+        (folder / "day2").mkdir()
+        shutil.copy(abf("vc_model_cell_step.abf"), folder / "day2" / "a.abf")
+        # a whole tree moved in at once (made elsewhere: nested mkdir under a live inotify
+        # watch can make watchdog 7.1 warn from its own thread)
+        staged = tmp_path / "staging" / "2026-12-02" / "cell1"
+        staged.mkdir(parents=True)
+        shutil.copy(abf("cc_steps.abf"), staged / "b.abf")
+        os.rename(tmp_path / "staging" / "2026-12-02", folder / "2026-12-02")
+        wait_until(lambda: len(rec.committed) >= 2, 10.0, step)
+        end = time.monotonic() + 1.0
+        while time.monotonic() < end:
+            step()
+            time.sleep(0.02)
+    finally:
+        svc.close()
+    assert sorted(rec.paths()) == ["a.abf", "b.abf"]
+
+
 def test_catch_up_queues_new_and_changed_files_and_skips_stored_ones(tmp_path, store):
     folder = tmp_path / "rig"
     folder.mkdir()
