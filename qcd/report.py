@@ -532,6 +532,8 @@ def _spectrum_figure(store, rig: RigReport, now: float) -> str | None:
                 break
             ax.axvline(h * line, color="#c98a00", lw=0.7, ls=":", alpha=0.8,
                        label=f"mains harmonics ({line:g} Hz)" if h == 1 else None)
+    if sel.any():                         # keep the filter roll-off from squashing the rest
+        ax.set_ylim(bottom=max(float(np.min(d[sel])), float(np.median(d[sel])) * 1e-4) / 2)
     ax.set_xlabel("frequency (Hz)")
     ax.set_ylabel(f"PSD ({spec.unit}\u00b2/Hz)")
     ax.grid(True, which="major", alpha=0.3)
