@@ -326,7 +326,9 @@ def sparkline(values: list[float], width: int = 60) -> str:
         return ""
     if v.size > width:
         idx = np.linspace(0, v.size, width + 1).astype(int)
-        v = np.array([v[a:b].max() for a, b in zip(idx[:-1], idx[1:])])
+        med = float(np.median(v))         # per bucket the value farthest from the median,
+        v = np.array([seg[np.argmax(np.abs(seg - med))]          # so a spike or dip shows
+                      for seg in (v[a:b] for a, b in zip(idx[:-1], idx[1:]))])
     lo, hi = float(v.min()), float(v.max())
     if hi <= lo:
         return _SPARKS[3] * v.size

@@ -183,3 +183,11 @@ def test_active_silence_is_shown_with_its_reason(store):
     text = render_text(r)
     assert "silenced until" in text and "replacing the bath ground" in text
     assert "replacing the bath ground" in render_html(r, store)
+
+
+def test_sparkline_keeps_a_single_dip_when_it_downsamples():
+    v = [10.0] * 200
+    v[57], v[150] = 0.1, 20.0
+    line = sparkline(v, width=60)
+    assert len(line) == 60
+    assert line.count("\u2581") == 1 and line.count("\u2588") == 1   # lowest and highest bar
