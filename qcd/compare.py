@@ -111,7 +111,9 @@ def _files(path: Path) -> list[Path]:
 
 
 def _baseline_segments(path: Path, channel: int) -> tuple[list[np.ndarray], float, str, float]:
-    """Baseline pieces of one file in SI: 1 s blocks (gap-free) or each sweep's pre-step part."""
+    """(baseline pieces in the display unit, fs, display unit, top of the last band in Hz):
+    1 s blocks of a gap-free file, or each sweep's part before its first command change (or,
+    without a protocol, before the step seen in the mean sweep)."""
     from qcd.recording import open_recording
     with open_recording(path) as rec:
         if channel >= len(rec.channels):
