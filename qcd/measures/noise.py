@@ -39,8 +39,8 @@ def peak_to_peak(blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray
     for this: a 1 s window's trend is far below its noise, and the row maxima also serve the
     clipping check."""
     blocks = np.atleast_2d(blocks)
-    mx = blocks.max(axis=1)
-    mn = blocks.min(axis=1)
+    mx = blocks.max(axis=1).astype(float)      # integer samples: no overflow in max - min
+    mn = blocks.min(axis=1).astype(float)
     return mx - mn, mx, mn
 
 

@@ -78,12 +78,21 @@ class BlockFFT:
         self._X: np.ndarray | None = None
 
     def __call__(self, blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Detrend (n_blocks, L) float64 ``blocks`` in place; (X, mean, slope) as block_fft."""
+        """(X, mean, slope) as block_fft for (n_blocks, L) ``blocks``.
+
+        float64 blocks are detrended in place; other dtypes (raw int16 converter counts) are
+        converted into a reused buffer first.
+        """
         nb = blocks.shape[0]
         if self._trend is None or self._trend.shape[0] < nb:
             self._trend = np.empty((nb, self.n))
+            self._work = np.empty((nb, self.n))
             self._X = np.empty((nb, self.n // 2 + 1), dtype=complex)
         trend, X = self._trend[:nb], self._X[:nb]
+        if blocks.dtype != np.float64 or not blocks.flags.writeable:
+            work = self._work[:nb]
+            work[...] = blocks
+            blocks = work
         slope = (np.einsum("bj,j->b", blocks, self.c) / self.ss if self.ss > 0
                  else np.zeros(nb))
         np.multiply.outer(slope, self.c, out=trend)
