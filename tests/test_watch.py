@@ -301,7 +301,7 @@ def test_file_written_in_pieces_is_measured_once_after_it_settled(tmp_path, stor
         wait_until(lambda: rec.committed, 10.0, step)
         assert time.monotonic() - closed_at >= 0.5   # it waited for the file to settle
         # keep the loop going: no second measurement of the same file
-        end = time.monotonic() + 2.0
+        end = time.monotonic() + 1.0
         while time.monotonic() < end:
             step()
             time.sleep(0.02)
@@ -786,3 +786,21 @@ def test_sigterm_stops_cleanly_with_nothing_half_written(tmp_path):
                            "(SELECT 1 FROM measures m WHERE m.file_id = f.id)")
     assert orphans == []
     assert (tmp_path / "db" / "qcd.log").is_file()   # the rotating log beside the database
+
+
+def test_status_judges_liveness_by_heartbeat_age_and_pid(store):
+    import socket
+    now = 1_000_000.0
+    here = socket.gethostname()
+    store.beat(os.getpid(), here, now - 60, now - 2.0, 3, {"beat_s": 5.0})
+    st = status(store, now)
+    assert st["alive"] and st["queue_len"] == 3
+    st = status(store, now + 20.0)             # 22 s > 3 x 5 s without a beat
+    assert not st["alive"] and "not responding" in st["reason"]
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait(10)                              # a pid that no longer exists
+    store.beat(dead.pid, here, now - 60, now - 1.0, 0, {"beat_s": 5.0})
+    st = status(store, now)
+    assert not st["alive"] and "is gone" in st["reason"]
+    store.beat(dead.pid, "another-host", now - 60, now - 1.0, 0, {"beat_s": 5.0})
+    assert status(store, now)["alive"]         # another machine's pid cannot be checked
