@@ -418,11 +418,20 @@ class _FolderWatch:
                          recursive=True)
             obs.start()
         except OSError as e:                 # e.g. inotify watch limit, folder vanished again
-            log.error("%s: cannot watch (%s); retrying", self.root, e.strerror or e)
             try:
                 obs.stop()
             except Exception:
                 pass
+            if not self.polling and self.root.is_dir():
+                # inotify limits (fs.inotify.max_user_watches / max_user_instances) or a
+                # filesystem without native events: polling still works
+                log.warning("%s: native events unavailable (%s); watching it by polling "
+                            "(raise fs.inotify.max_user_watches to avoid this)", self.root,
+                            e.strerror or e)
+                self.polling = True
+                return self.ensure()
+            if self.state != "error":
+                log.error("%s: cannot watch (%s); retrying", self.root, e.strerror or e)
             self.state = "error"
             return False
         self.observer = obs
