@@ -163,8 +163,9 @@ class WelchAccumulator:
         self.e0 = 0.0
         self.eN = 0.0
         self.count = 0
-        self.keep = max(16, keep_bytes // (16 * max(m, 1)))
-        self._heap: list[tuple[float, int, np.ndarray]] = []
+        self.keep = int(min(4096, max(16, keep_bytes // (16 * max(m, 1)))))
+        self._heap: list[tuple[float, int, int]] = []      # (rms, block index, slot)
+        self._rows: np.ndarray | None = None               # kept spectra, one slot each
         self.exact = True
 
     def add(self, X: np.ndarray, rms: np.ndarray) -> None:
@@ -181,12 +182,20 @@ class WelchAccumulator:
         e0, eN = _hann_edges(X, self.n)
         self.e0 += float(e0.sum())
         self.eN += float(eN.sum())
+        if self._rows is None:
+            self._rows = np.empty((self.keep, self.m), dtype=complex)
+        heap = self._heap
         for i in range(X.shape[0]):
             r = float(rms[i])
-            if len(self._heap) < self.keep:
-                heapq.heappush(self._heap, (r, self.count + i, X[i].copy()))
-            elif r > self._heap[0][0]:
-                heapq.heapreplace(self._heap, (r, self.count + i, X[i].copy()))
+            if len(heap) < self.keep:
+                slot = len(heap)
+                heapq.heappush(heap, (r, self.count + i, slot))
+            elif r > heap[0][0]:
+                slot = heap[0][2]
+                heapq.heapreplace(heap, (r, self.count + i, slot))
+            else:
+                continue
+            self._rows[slot] = X[i]
         self.count += X.shape[0]
 
     def _total(self) -> np.ndarray:
@@ -201,7 +210,7 @@ class WelchAccumulator:
         """(mean periodogram without the excluded blocks, number of blocks averaged)."""
         total = self._total()
         n = self.count
-        kept = {idx: row for _, idx, row in self._heap}
+        kept = {idx: self._rows[slot] for _, idx, slot in self._heap}
         self.exact = all(i in kept for i in exclude)
         for i in exclude:
             if i in kept:
