@@ -550,6 +550,9 @@ def _new_pool(workers: int) -> cf.ProcessPoolExecutor:
 
 def _watch_parent(pid: int) -> None:
     """In a worker: exit when the service process is gone (kill -9 leaves no one to stop us)."""
+    # Ctrl-C reaches the whole process group: the service decides, workers carry on quietly
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
     def watch() -> None:
         while _pid_alive(pid):
             time.sleep(1.0)
