@@ -563,6 +563,23 @@ def test_catch_up_progress_goes_to_the_log_off_a_terminal(tmp_path, store, caplo
     assert "catching up: 5 of 5 files measured" in text
 
 
+def test_catch_up_draws_a_progress_bar_on_a_terminal(tmp_path, store, capsys):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for i in range(3):
+        _tiny_abf(folder / f"t{i}.abf", 700 + i)
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec, progress_tty=True)
+    svc.start(time.time())
+    try:
+        wait_until(lambda: len(rec.committed) == 3, 20.0, lambda: svc.step(time.time()))
+    finally:
+        svc.close()
+    err = capsys.readouterr().err
+    assert "\rcatching up [" in err and "3/3 files" in err and err.endswith("\n")
+
+
 def test_backlog_gives_one_digest_not_a_message_per_file(tmp_path, store):
     if not _analyze_ready():
         pytest.skip("the pipeline is not in this build yet")
