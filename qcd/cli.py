@@ -320,6 +320,11 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             if progress and i < len(files):
                 print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
                       file=sys.stderr, flush=True)
+    except BrokenPipeError:
+        # the reader of stdout went away (``| head``): stop quietly, as command-line tools do
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_FAILED if failed else EXIT_OK
     finally:
         if pool:
             pool.shutdown(cancel_futures=True)
