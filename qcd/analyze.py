@@ -394,7 +394,7 @@ class _Blocks:
 
     def add(self, blocks: np.ndarray, t0: np.ndarray) -> None:
         """Add (n, L) blocks: float64 (detrended in place) or raw integer counts."""
-        pp, mx, mn = nz.peak_to_peak(blocks)
+        _, mx, mn = nz.peak_to_peak(blocks)
         if self.rails is not None:
             lo, hi = self.rails
             for i in np.flatnonzero((mx >= hi) | (mn <= lo)):
@@ -410,11 +410,12 @@ class _Blocks:
         g = max(1, (1 << 21) // (8 * self.L))
         for a in range(0, blocks.shape[0], g):
             X, mean, _ = self.fft(blocks[a:a + g])
+            pp, _, _ = nz.peak_to_peak(self.fft.detrended)     # still in cache
             sd, sd_band = nz.parseval_sd(X, self.L, self.fs)
             self.welch.add(X, sd)
-            for k, v in (("sd", sd), ("sd_band", sd_band), ("mean", mean)):
+            for k, v in (("sd", sd), ("sd_band", sd_band), ("mean", mean), ("pp", pp)):
                 self.parts[k].append(v)
-        for k, v in (("pp", pp), ("median", med), ("t", t0)):
+        for k, v in (("median", med), ("t", t0)):
             self.parts[k].append(v)
 
     def arrays(self) -> dict[str, np.ndarray]:

@@ -257,6 +257,21 @@ def test_gap_free_synthetic_file_measures_match_the_signal(tmp_path):
     assert ms["pp_over_rms"].value == pytest.approx(7.7, rel=0.15)
 
 
+def test_drift_does_not_count_in_noise_pp(tmp_path):
+    # white noise on a steep ramp (50 sigma per second): noise_pp is taken of the detrended
+    # window, so pp/rms stays at the Gaussian range of N = 1e4 samples, E[R]/sigma = 7.703
+    # (METHODS §3.3), and the drift shows in baseline_drift instead
+    fs = 10_000.0
+    n = int(20 * fs)
+    x = np.random.default_rng(4).normal(0, 1.0, n) + 50.0 * np.arange(n) / fs
+    path = tmp_path / "ramp.abf"
+    _write_abf1(path, x[None, :], fs, gap_free=True)
+    ms = analyze_path(path).channels[0].measures
+    assert ms["pp_over_rms"].value == pytest.approx(7.703, rel=0.1)
+    assert ms["baseline_drift"].unit == "pA/min"
+    assert ms["baseline_drift"].value == pytest.approx(50.0 * 60, rel=0.01)
+
+
 @settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(size=st.integers(min_value=1, max_value=400_000))
 def test_any_chunk_size_gives_the_same_measures(size):

@@ -35,9 +35,8 @@ def parseval_sd(X: np.ndarray, n: int, fs: float, band_hz: float = 1000.0
 
 
 def peak_to_peak(blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(max - min, max, min) of each row (noise_pp; METHODS §3.3). The window is not detrended
-    for this: a 1 s window's trend is far below its noise, and the row maxima also serve the
-    clipping check."""
+    """(max - min, max, min) of each row (METHODS §3.3). noise_pp takes it of the detrended
+    window (the residual of the least-squares line, as noise_rms), so drift does not count."""
     blocks = np.atleast_2d(blocks)
     mx = blocks.max(axis=1).astype(float)      # integer samples: no overflow in max - min
     mn = blocks.min(axis=1).astype(float)

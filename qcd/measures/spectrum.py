@@ -76,6 +76,7 @@ class BlockFFT:
         self.ss = float(self.c @ self.c)
         self._trend: np.ndarray | None = None
         self._X: np.ndarray | None = None
+        self.detrended: np.ndarray | None = None
 
     def __call__(self, blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(X, mean, slope) as block_fft for (n_blocks, L) ``blocks``.
@@ -97,6 +98,7 @@ class BlockFFT:
                  else np.zeros(nb))
         np.multiply.outer(slope, self.c, out=trend)
         blocks -= trend
+        self.detrended = blocks            # the residual rows, until the next call
         np.fft.rfft(blocks, axis=1, out=X)
         mean = X[:, 0].real / self.n
         X[:, 0] = 0.0
