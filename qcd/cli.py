@@ -403,10 +403,15 @@ def _cmd_report(args: argparse.Namespace) -> int:
         report = build_report(store, now, since, args.rig)
         if args.html:
             args.html.write_text(render_html(report, store), encoding="utf-8")
-    if args.json:
-        print(json.dumps(report.to_json(), indent=1, default=str))
-    else:
-        print(render_text(report))
+    try:
+        if args.json:
+            print(json.dumps(report.to_json(), indent=1, default=str))
+        else:
+            print(render_text(report))
+        sys.stdout.flush()
+    except BrokenPipeError:               # ``| head``: stop quietly
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
     if args.html:
         print(f"HTML report written to {args.html}", file=sys.stderr if args.json else sys.stdout)
     bad = any(r.open_alerts or r.n_error for r in report.rigs) or report.outbox.get("stuck")
@@ -426,10 +431,15 @@ def _cmd_trend(args: argparse.Namespace) -> int:
                               f"(known: {', '.join(store.rigs()) or 'none'})")
         rows = trend_rows(store, args.rig, args.measure, channel=args.channel, days=args.days,
                           now=time.time())
-    if args.csv:
-        sys.stdout.write(render_trend_csv(rows))
-    else:
-        print(render_trend_text(args.rig, args.measure, rows))
+    try:
+        if args.csv:
+            sys.stdout.write(render_trend_csv(rows))
+        else:
+            print(render_trend_text(args.rig, args.measure, rows))
+        sys.stdout.flush()
+    except BrokenPipeError:               # ``| head``: stop quietly
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
     return EXIT_OK if rows else EXIT_FAILED
 
 
