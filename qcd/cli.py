@@ -210,7 +210,7 @@ def _scan_value(ms: dict, name: str, digits: int = 3) -> str:
     return f"{m.value:.{digits}g} {m.unit}".strip()
 
 
-def _scan_row(fm: object, width: int = 26) -> str:
+def _scan_row(fm: object, width: int = 22) -> str:
     """One line of the scan table (fits 100 columns)."""
     name = Path(fm.path).name
     name = name if len(name) <= width else name[:width - 1] + "~"
@@ -236,7 +236,7 @@ def _scan_row(fm: object, width: int = 26) -> str:
         tp = "-"
     return (f"{name:<{width}} {_SCAN_MODES.get(fm.mode, '?'):<4}"
             f"{_scan_value(ms, 'noise_rms'):>10} {_scan_value(ms, 'noise_rms_1k'):>10} "
-            f"{hum:>16} {tp:<28}")[:100]
+            f"{hum:>15} {tp:<28} ok")[:100]
 
 
 def _cmd_scan(args: argparse.Namespace) -> int:
@@ -300,8 +300,8 @@ def _cmd_scan(args: argparse.Namespace) -> int:
     jobs = [(f, pulse, args.mains) for f in files]
     progress = sys.stderr.isatty() and len(files) > 1
     if not args.json:
-        print(f"{'file':<26} {'mode':<4}{'noise_rms':>10} {'rms_1k':>10} {'hum@line_hz':>16} "
-              f"{'test pulse':<28}")
+        print(f"{'file':<22} {'mode':<4}{'noise_rms':>10} {'rms_1k':>10} {'hum@line_hz':>15} "
+              f"{'test pulse':<28} status")
     failed = 0
     # spawn, not fork: the workers start clean whatever threads the parent holds
     pool = (ProcessPoolExecutor(max_workers=args.workers,
