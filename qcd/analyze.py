@@ -388,6 +388,7 @@ class _Blocks:
         self.welch = sp.WelchAccumulator(L, fs)
         self.fft = sp.BlockFFT(L)
         self.clipped = 0
+        self.nonfinite = 0                # blocks left out for NaN/inf samples
         self._median_step = max(1, L // _MEDIAN_SAMPLES)
         self.parts: dict[str, list[np.ndarray]] = {k: [] for k in
                                                    ("sd", "sd_band", "pp", "mean", "median", "t")}
@@ -399,6 +400,12 @@ class _Blocks:
             lo, hi = self.rails
             for i in np.flatnonzero((mx >= hi) | (mn <= lo)):
                 self.clipped += nz.clipping_count(blocks[i], self.rails)
+        finite = np.isfinite(mx) & np.isfinite(mn)      # float files may hold NaN/inf samples
+        if not finite.all():
+            self.nonfinite += int((~finite).sum())
+            blocks, t0 = blocks[finite], t0[finite]
+            if not len(blocks):
+                return
         sub = blocks[:, ::self._median_step]
         h = sub.shape[1] // 2
         if sub.shape[1] % 2:
@@ -655,6 +662,10 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
                         t0 = t_k + (a + np.arange(nb) * n_l + n_l / 2) / fs
                         target.add(xs[a:a + nb * n_l].reshape(nb, n_l).copy(), t0)
     spectrum = None
+    for a_ in {id(acc): acc, id(acc_s): acc_s}.values():
+        if a_ is not None and a_.nonfinite:
+            notes.append(f"{a_.nonfinite} baseline windows hold NaN or infinite samples and "
+                         f"were left out")
     if acc is None or not acc.parts["sd"]:
         notes.append("no baseline window long enough for noise measures "
                      f"(need {_MIN_BLOCK} samples at the holding level)")

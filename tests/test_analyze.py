@@ -257,6 +257,23 @@ def test_gap_free_synthetic_file_measures_match_the_signal(tmp_path):
     assert ms["pp_over_rms"].value == pytest.approx(7.7, rel=0.15)
 
 
+def test_nan_samples_leave_their_windows_out_with_a_note(tmp_path):
+    # a float-sample ABF2 (odd_sample_rate.abf) with NaN/inf written into its first sweep;
+    # the data section starts at block (uint32 at byte 236 of the ABF2 header) * 512
+    src = abf("odd_sample_rate.abf")
+    blob = bytearray(src.read_bytes())
+    start = struct.unpack_from("<I", blob, 236)[0] * 512
+    bad = np.array([np.nan, np.inf, -np.inf] * 10, dtype="<f4").tobytes()
+    blob[start + 400:start + 400 + len(bad)] = bad
+    path = tmp_path / "nan.abf"
+    path.write_bytes(bytes(blob))
+    ref = analyze_path(src).channels[0].measures
+    ch = analyze_path(path).channels[0]
+    assert any("NaN" in n for n in ch.notes)
+    assert math.isfinite(ch.measures["noise_rms"].value)
+    assert ch.measures["noise_rms"].value == pytest.approx(ref["noise_rms"].value, rel=0.2)
+
+
 def test_drift_does_not_count_in_noise_pp(tmp_path):
     # white noise on a steep ramp (50 sigma per second): noise_pp is taken of the detrended
     # window, so pp/rms stays at the Gaussian range of N = 1e4 samples, E[R]/sigma = 7.703
