@@ -383,11 +383,15 @@ class Store:
 
     def history(self, rig: str, mode: str, channel: int, measure: str, *, limit: int = 30,
                 days: float = 30.0, before: float) -> list[tuple[float, float]]:
-        """[(recorded_at, value)] of ok, unflagged, current files in [before - days, before),
-        newest first, at most ``limit``."""
+        """[(recorded_at, value)] of ok, current files in [before - days, before) whose value of
+        this measure was not flagged, newest first, at most ``limit``.
+
+        The flag is per measure: a file whose hum was flagged still gives its seal resistance
+        to the baseline, so a lasting condition on one measure cannot keep a rig learning.
+        """
         rows = self._one_all(
             "SELECT f.recorded_at, m.value FROM files f JOIN measures m ON m.file_id = f.id "
-            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.flagged = 0 "
+            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
             "AND f.superseded = 0 AND f.recorded_at < ? AND f.recorded_at >= ? "
             "AND m.channel = ? AND m.name = ? AND m.flagged = 0 AND m.value IS NOT NULL "
             "ORDER BY f.recorded_at DESC, f.id DESC LIMIT ?",
@@ -400,13 +404,16 @@ class Store:
 
     def reference_spectrum(self, rig: str, mode: str, channel: int, *, limit: int = 30,
                            days: float = 30.0, before: float) -> Spectrum | None:
-        """Per-frequency median of the last ``limit`` unflagged spectra (same frequency grid
-        and unit as the newest of them), or None when there is none."""
+        """Per-frequency median of the last ``limit`` spectra whose noise, hum and band
+        measures were not flagged (same frequency grid and unit as the newest of them), or None
+        when there is none."""
         rows = self._one_all(
             "SELECT s.unit, s.freqs, s.density FROM files f JOIN spectra s ON s.file_id = f.id "
-            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.flagged = 0 "
+            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
             "AND f.superseded = 0 AND f.recorded_at < ? AND f.recorded_at >= ? "
-            "AND s.channel = ? ORDER BY f.recorded_at DESC, f.id DESC LIMIT ?",
+            "AND s.channel = ? AND NOT EXISTS (SELECT 1 FROM measures m WHERE "
+            "m.file_id = f.id AND m.channel = s.channel AND m.flagged = 1 AND "
+            "(m.name LIKE 'noise%' OR m.name LIKE 'hum%' OR m.name LIKE 'band%')) ORDER BY f.recorded_at DESC, f.id DESC LIMIT ?",
             (rig, mode, before, before - days * 86400.0, channel, int(limit)))
         if not rows:
             return None
@@ -418,9 +425,9 @@ class Store:
                         unit=unit)
 
     def good_file_count(self, rig: str, mode: str) -> int:
-        """Files of the rig/mode that can enter the baseline: ok, unflagged, current."""
+        """Files of the rig/mode that can give values to the baseline: ok and current."""
         return int(self._one("SELECT count(*) FROM files WHERE rig = ? AND mode = ? AND "
-                             "status = 'ok' AND flagged = 0 AND superseded = 0",
+                             "status = 'ok' AND superseded = 0",
                              (rig, mode))[0])
 
     # --- one processed file ---------------------------------------------------------------------

@@ -205,11 +205,15 @@ def test_history_excludes_flagged_superseded_error_and_out_of_window_rows(store)
     put(1, 1.0, T0 - 1 * DAY)
     put(2, 2.0, T0 - 2 * DAY)
     put(3, 3.0, T0 - 3 * DAY)
-    # flagged by a bad finding on another measure: the whole file stays out of the baseline
+    # flagged by a bad finding on another measure: its noise value still enters the baseline
     fid4 = store.commit_file("rig-a", fmeasures(path="/d/f4.abf", sha="4" * 64, noise=40.0,
                                                 at=T0 - 1.5 * DAY), analysed_at=T0,
                              findings=[F(0, "hum_rms", "hum_max", True),
                                        F(0, "noise_rms", "noise_max", False)])
+    # flagged on this very measure: stays out
+    store.commit_file("rig-a", fmeasures(path="/d/f11.abf", sha="11" * 32, noise=110.0,
+                                         at=T0 - 1.2 * DAY), analysed_at=T0,
+                      findings=[F(0, "noise_rms", "noise_max", True)])
     put(5, 50.0, T0 - 0.5 * DAY, status="error")                    # error row
     put(6, 60.0, T0 - 40 * DAY)                                     # outside 30 days
     put(7, 70.0, T0 + 1.0)                                          # not before `before`
@@ -220,22 +224,23 @@ def test_history_excludes_flagged_superseded_error_and_out_of_window_rows(store)
     store.commit_file("rig-a", fmeasures(path="/d/f10.abf", sha="10" * 32, noise=10.0,
                                          at=T0 - 2.5 * DAY), analysed_at=T0)  # supersedes
     hist = store.history("rig-a", "voltage_clamp", 0, "noise_rms", before=T0)
-    assert hist == [(T0 - DAY, 1.0), (T0 - 2 * DAY, 2.0), (T0 - 2.5 * DAY, 10.0),
-                    (T0 - 3 * DAY, 3.0)]
+    assert hist == [(T0 - DAY, 1.0), (T0 - 1.5 * DAY, 40.0), (T0 - 2 * DAY, 2.0),
+                    (T0 - 2.5 * DAY, 10.0), (T0 - 3 * DAY, 3.0)]
     assert store.history("rig-a", "voltage_clamp", 0, "noise_rms", before=T0, limit=2) == \
         hist[:2]
     assert store.history("rig-a", "voltage_clamp", 0, "noise_rms", before=T0, days=2.0) == \
-        hist[:2]
+        hist[:3]
     assert store.history("rig-a", "voltage_clamp", 1, "noise_rms", before=T0)[0] == \
         (T0 - DAY, 0.02)
     assert store.history("rig-a", "voltage_clamp", 0, "spectral_lines", before=T0) == []
     assert store.flagged_measures(fid4) == {(0, "hum_rms")}
     assert store.files("rig-a", since=T0 - 1.6 * DAY, until=T0 - 1.4 * DAY)[0]["flagged"]
-    assert store.good_file_count("rig-a", "voltage_clamp") == 6   # f1 f2 f3 f6 f7 f10'
+    # ok and current, flagged or not: f1 f2 f3 f4 f6 f7 f10' f11
+    assert store.good_file_count("rig-a", "voltage_clamp") == 8
     assert old not in [r["id"] for r in store.files("rig-a")]
     series = store.measure_series("rig-a", "noise_rms", channel=0, since=T0 - 3.5 * DAY)
-    assert [v for _, v, *_ in series] == [3.0, 10.0, 2.0, 40.0, 1.0, 80.0, 70.0]
-    assert [fl for _, _, _, fl, *_ in series] == [False] * 7      # only hum_rms was named
+    assert [v for _, v, *_ in series] == [3.0, 10.0, 2.0, 40.0, 110.0, 1.0, 80.0, 70.0]
+    assert [fl for _, _, _, fl, *_ in series] == [False] * 4 + [True] + [False] * 3
     assert store.rigs() == ["rig-a", "rig-b"]
 
 
