@@ -451,7 +451,9 @@ def corner_hz(freqs: np.ndarray, psd: np.ndarray, k_segments: int = 1) -> float 
         return float(freqs[0])
     y0, y1 = 10 * np.log10(max(sm[i - 1], 1e-300)), 10 * np.log10(max(sm[i], 1e-300))
     yt = 10 * math.log10(target)
-    frac = 0.0 if y0 == y1 else (y0 - yt) / (y0 - y1)
+    # The bin before the first crossing can itself lie below the target when the crossing
+    # is at the start of the search (0.10 f_N): never extrapolate outside the bin pair.
+    frac = 0.0 if y0 == y1 else min(max((y0 - yt) / (y0 - y1), 0.0), 1.0)
     return float(freqs[i - 1] + frac * (freqs[i] - freqs[i - 1]))
 
 
