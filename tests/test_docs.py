@@ -72,3 +72,13 @@ def test_readme_keeps_the_two_commands_byte_for_byte():
 
 def test_readme_carries_the_electrical_safety_caution():
     assert "licensed electrician" in README and "never open mains-powered equipment" in README
+
+
+def test_readme_config_example_loads(tmp_path):
+    from qcd.config import load_config
+    block = README.split("```toml\n", 1)[1].split("```", 1)[0]
+    path = tmp_path / "qcd.toml"
+    path.write_text(block, encoding="utf-8")
+    cfg = load_config(path)
+    assert [r.name for r in cfg.rigs] == ["patch-1"]
+    assert cfg.rigs[0].test_pulse is not None and cfg.rigs[0].mains_hz == 50
