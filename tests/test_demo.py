@@ -21,9 +21,9 @@ def test_cell_model_equals_the_closed_form_reference():
     assert np.allclose(demo.cell_step_current(t, *args), ref.cell_step_current(t, *args),
                        rtol=1e-12, atol=0)
     # METHODS §1.1 check values: I0 = -500 pA, I_ss = -9.8039 pA
-    assert demo.cell_step_current(np.array([1e-12]), *args)[0] == pytest.approx(-500e-12, rel=1e-6)
+    assert demo.cell_step_current(np.array([1e-12]), *args)[0] == pytest.approx(-500e-12, rel=1e-6, abs=0)
     assert demo.cell_step_current(np.array([1.0]), *args)[0] == pytest.approx(-9.8039e-12,
-                                                                           rel=1e-4)
+                                                                           rel=1e-4, abs=0)
 
 
 def test_filtered_whole_cell_sweep_agrees_with_the_analog_bessel_reference():
@@ -40,14 +40,14 @@ def test_filtered_whole_cell_sweep_agrees_with_the_analog_bessel_reference():
     peak = float(np.max(np.abs(r)))
     assert np.max(np.abs(mine - r)) < 1e-4 * peak      # 40x first-order hold vs lsim
     # steady state: dV / (Ra + Rm) (Ohm's law)
-    assert sw[on + n_step - 10] == pytest.approx(demo._WHOLE_CELL_STEP_V / (ra + rm), rel=1e-3)
+    assert sw[on + n_step - 10] == pytest.approx(demo._WHOLE_CELL_STEP_V / (ra + rm), rel=1e-3, abs=0)
 
 
 def test_seal_model_is_ohms_law():
     # METHODS §1.3: +10 mV across 1 GOhm gives 10.0 pA
-    assert demo.seal_step_current(np.array([1e-3]), 10e-3, 1e9)[0] == pytest.approx(10e-12)
+    assert demo.seal_step_current(np.array([1e-3]), 10e-3, 1e9)[0] == pytest.approx(10e-12, rel=1e-9, abs=0)
     r = ref.sampled_resistor(10e-3, 1e9, 20000.0, n_pre=10, n_step=400, filter_hz=2000.0)
-    assert r[300] == pytest.approx(10e-12, rel=1e-3)
+    assert r[300] == pytest.approx(10e-12, rel=1e-3, abs=0)
 
 
 def test_thermal_noise_matches_the_johnson_nyquist_table():

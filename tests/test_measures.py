@@ -196,18 +196,19 @@ def test_johnson_noise_of_500_megaohm_in_1khz_band():
     # METHODS §3.1 table (Johnson 1928; Nyquist 1928): 500 MOhm at 295 K, sqrt(S) = 5.708
     # fA/sqrt(Hz); brick-wall 1 kHz 0.1805 pA, 10 kHz 0.5708 pA
     S = johnson_density(500e6)
-    assert math.sqrt(S) == pytest.approx(5.708e-15, rel=1e-3)
+    assert math.sqrt(S) == pytest.approx(5.708e-15, rel=1e-3, abs=0)
     rng = np.random.default_rng(8)
     fs, L = 20_000.0, 20_000
     x = white_noise(rng, 40 * L, fs, S)
     X, _, _ = sp.block_fft(x.reshape(40, L))
     sd, sd1k = nz.parseval_sd(X, L, fs, 1000.0)
-    assert float(np.median(sd1k)) == pytest.approx(0.1805e-12, rel=0.02)
-    assert float(np.median(sd)) == pytest.approx(0.5708e-12 * math.sqrt(2), rel=0.02)  # 10 kHz
+    assert float(np.median(sd1k)) == pytest.approx(0.1805e-12, rel=0.02, abs=0)
+    # fs 20 kHz: the whole band is 0-10 kHz, so the table's 10 kHz value
+    assert float(np.median(sd)) == pytest.approx(0.5708e-12, rel=0.02, abs=0)
     f, P, k = _psd(x, fs, L)
     # band RMS = sqrt(S * bandwidth) (METHODS §3.2 check: 5e-5 pA^2/Hz over 1 kHz = 0.2236 pA)
-    assert sp.band_rms(f, P, 70.0, 1000.0) == pytest.approx(math.sqrt(S * 930.0), rel=0.02)
-    assert sp.band_rms(f, P, 1000.0, 10_000.0) == pytest.approx(math.sqrt(S * 9000), rel=0.02)
+    assert sp.band_rms(f, P, 70.0, 1000.0) == pytest.approx(math.sqrt(S * 930.0), rel=0.02, abs=0)
+    assert sp.band_rms(f, P, 1000.0, 10_000.0) == pytest.approx(math.sqrt(S * 9000), rel=0.02, abs=0)
 
 
 def test_band_rms_leaves_mains_bins_out():
