@@ -614,3 +614,16 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"qcd {args.command}: interrupted", file=sys.stderr)
         return 130
+    except BrokenPipeError:               # ``qcd ... | head``: the reader left; stop quietly
+        _quiet_stdout()
+        return EXIT_OK
+
+
+def _quiet_stdout() -> None:
+    """Point stdout at devnull so the interpreter's final flush cannot raise again."""
+    import os
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):
+        pass
