@@ -304,7 +304,9 @@ def flush_digest(states: Mapping[str, Any], silences: Iterable[Any], now: float,
                  ) -> tuple[dict[str, AlertState], Message | None]:
     """After a backlog: ONE message listing what opened and what resolved, or None."""
     out = _load(states)
-    events = _late(out, list(silences), set(), now)
+    # Opened during the backlog itself, not held back by a silence: say so plainly.
+    events = [_Event("backlog", e.state, e.seq) if e.what == "late" else e
+              for e in _late(out, list(silences), set(), now)]
     for s in sorted(out.values(), key=lambda x: x.key):
         if s.pending_resolved:
             s.pending_resolved = False
@@ -327,10 +329,10 @@ def flush_digest(states: Mapping[str, Any], silences: Iterable[Any], now: float,
 
 # --- message text ---------------------------------------------------------------------------------
 
-_HEAD = {"opened": "OPEN", "late": "OPEN (held back until now)", "reminder": "STILL BAD",
-         "resolved": "RESOLVED", "unstable": "UNSTABLE"}
-_KIND = {"opened": "firing", "late": "firing", "reminder": "reminder", "resolved": "resolved",
-         "unstable": "unstable"}
+_HEAD = {"opened": "OPEN", "late": "OPEN (held back until now)", "backlog": "OPEN",
+         "reminder": "STILL BAD", "resolved": "RESOLVED", "unstable": "UNSTABLE"}
+_KIND = {"opened": "firing", "late": "firing", "backlog": "firing", "reminder": "reminder",
+         "resolved": "resolved", "unstable": "unstable"}
 
 
 def _when(t: float | None) -> str:
@@ -363,6 +365,9 @@ def _describe(e: _Event) -> str:
     elif e.what == "late":
         lines.append(f"  open since {_when(s.opened_at)} (messages were held back: silence, "
                      f"learning phase or a rig-level alert)")
+    elif e.what == "backlog":
+        lines.append(f"  open since {_when(s.opened_at)} (found while catching up on files "
+                     f"recorded earlier)")
     if s.hint and e.what != "resolved":
         lines.append(f"  {s.hint}")
     return "\n".join(lines)
@@ -375,6 +380,7 @@ def _title(rig: str, events: list[_Event]) -> str:
         what = _what(s)
         head = s.headline or s.limit_text.split(";")[0]
         text = {"opened": f"{what} {head}", "late": f"{what} {head}",
+                "backlog": f"{what} {head}",
                 "reminder": f"still: {what} {head}", "resolved": f"resolved: {what}",
                 "unstable": f"unstable: {what}"}[e.what]
         return f"qcd {rig}: {text}"[:120]
