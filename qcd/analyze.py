@@ -389,6 +389,7 @@ class _Blocks:
         self.fft = sp.BlockFFT(L)
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
+        self.humfit: sp.HumFit | None = None   # short windows with a declared mains_hz
         self._median_step = max(1, L // _MEDIAN_SAMPLES)
         self.parts: dict[str, list[np.ndarray]] = {k: [] for k in
                                                    ("sd", "sd_band", "pp", "mean", "median", "t")}
@@ -417,6 +418,8 @@ class _Blocks:
         g = max(1, (1 << 21) // (8 * self.L))
         for a in range(0, blocks.shape[0], g):
             X, mean, _ = self.fft(blocks[a:a + g])
+            if self.humfit is not None:
+                self.humfit.add(self.fft.detrended)
             pp, _, _ = nz.peak_to_peak(self.fft.detrended)     # still in cache
             sd, sd_band = nz.parseval_sd(X, self.L, self.fs)
             self.welch.add(X, sd)
@@ -556,9 +559,19 @@ def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
             _put(out, "hum_fundamental_rms", math.sqrt(h.fundamental_power), dim)
             if var > 0:
                 out["hum_fraction"] = Measure("hum_fraction", h.power / var, "")
+    elif acc.humfit is not None and acc.humfit.count:
+        p = acc.humfit.powers() * acc.scale ** 2
+        _put(out, "hum_rms", math.sqrt(float(p.sum())), dim)
+        _put(out, "hum_fundamental_rms", math.sqrt(float(p[0])), dim)
+        if var > 0:
+            out["hum_fraction"] = Measure("hum_fraction", float(p.sum()) / var, "")
+        notes.append(f"hum fitted at the declared mains {acc.humfit.line_hz:g} Hz by least "
+                     f"squares in {acc.humfit.count} windows of {L / fs * 1e3:.4g} ms (too "
+                     f"short for the PSD to resolve the line; line_hz not measured)")
     else:
+        more = "" if mains_hz else "; declare the rig's mains_hz (or --mains) to fit it"
         notes.append(f"hum not measured: baseline windows of {L / fs * 1e3:.4g} ms give "
-                     f"{df:.3g} Hz bins (needs <= {_MAX_HUM_DF:g} Hz)")
+                     f"{df:.3g} Hz bins (needs <= {_MAX_HUM_DF:g} Hz){more}")
     corner = sp.corner_hz(freqs, psd, k_seg) if len(psd) > 40 else None
     if corner is not None:
         out["corner_hz"] = Measure("corner_hz", corner, "Hz")
@@ -617,6 +630,9 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
         acc = _Blocks(L, fs) if L >= _MIN_BLOCK else None
         same = L2 == L and all(len(w) == 1 for w in windows)
         acc_s = acc if same else (_Blocks(L2, fs) if L2 >= _MIN_BLOCK else None)
+        if (acc_s is not None and mains_hz and fs / acc_s.L > _MAX_HUM_DF
+                and sp.HumFit.fits(acc_s.L, fs, mains_hz)):
+            acc_s.humfit = sp.HumFit(acc_s.L, fs, mains_hz)
     if rec.gap_free:
         # raw converter counts in chunks of whole blocks; gain, offset and the SI factor are
         # applied to the results (every measure is linear in the samples or offset-free)
