@@ -467,6 +467,8 @@ class Service:
         self._backlog_done(r)
         if getattr(fm, "status", "ok") == "ok":
             self.counts["measured"] += 1
+            if not batch:                     # the backlog logs progress lines instead
+                log.info("%s: measured and stored (rig %s)", r.path, r.rig)
         else:
             self.counts["errors"] += 1
             log.warning("%s", getattr(fm, "error", None) or f"{r.path}: error")
