@@ -133,7 +133,8 @@ def _silence_for(s: AlertState, silences: Iterable[Any], now: float) -> Any:
 
 
 def _inhibited(s: AlertState, states: Mapping[str, AlertState], rig_bad: set[str]) -> bool:
-    """Rig-level trouble mutes a rig's measure alerts; a hard limit mutes drift on its measure."""
+    """Rig-level trouble mutes a rig's measure alerts; a hard limit mutes drift on its measure;
+    an announced history alert mutes a second history rule on the same measure."""
     if s.kind == "rig":
         return False
     if s.rig in rig_bad:
@@ -143,8 +144,12 @@ def _inhibited(s: AlertState, states: Mapping[str, AlertState], rig_bad: set[str
             continue
         if o.kind == "rig":
             return True
-        if s.kind == "drift" and o.kind == "limit" and (o.mode, o.channel, o.measure) == \
-                (s.mode, s.channel, s.measure):
+        same = (o.mode, o.channel, o.measure) == (s.mode, s.channel, s.measure)
+        if s.kind == "drift" and o.kind == "limit" and same:
+            return True
+        # two history rules on one measure (a slow EWMA drift, then a z jump): the one that
+        # spoke first speaks for both, so one change at the rig gives one alert message
+        if s.kind == "drift" and o.kind == "drift" and same and o.announced and not s.announced:
             return True
     return False
 

@@ -170,6 +170,28 @@ def test_hard_limit_alert_mutes_drift_on_same_measure():
     assert "rule access_high" in m.body and "access_rise" not in m.body
 
 
+def test_second_history_rule_on_an_announced_measure_stays_quiet_until_the_first_resolves():
+    # one change at the rig, seen first by the slow EWMA rule and a file later by the z rule:
+    # one alert message, not two (inhibition, OPERATIONS §1 semantics 7)
+    ewma = F(True, rule="noise_drift", measure="noise_rms", for_files=1)
+    jump = F(True, rule="noise_jump", measure="noise_rms", for_files=1)
+    states, msgs = advance({}, [ewma], [], 0.0, SET)
+    assert len(msgs) == 1 and "noise_drift" in msgs[0].body
+    states = {k: v.to_dict() for k, v in states.items()}
+    states, msgs = advance(states, [ewma, jump], [], 600.0, SET)
+    assert msgs == []                                    # the jump opened, but quietly
+    assert AlertState.from_dict(states[jump.key].to_dict()).state == "open"
+    states = {k: v.to_dict() for k, v in states.items()}
+    # the drift rule clears; the jump is still bad: now it is announced
+    calm = replace(ewma, bad=False)
+    bodies = ""
+    for i in range(3):
+        states, msgs = advance(states, [calm, jump], [], 1200.0 + 600.0 * i, SET)
+        states = {k: v.to_dict() for k, v in states.items()}
+        bodies += "".join(m.body for m in msgs)
+    assert "RESOLVED: noise_rms" in bodies and "rule noise_jump" in bodies
+
+
 def test_learning_phase_suppresses_drift_messages_but_state_runs():
     states, msgs, _ = run([True, True, True], learning=True)
     assert msgs == []
