@@ -5,6 +5,7 @@ Waits are bounded (wait-until-condition with a timeout); network only on 127.0.0
 """
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import shutil
@@ -15,6 +16,8 @@ import numpy as np
 import pytest
 
 from conftest import abf
+from qcd import pipeline
+from qcd.analyze import analyze_path
 from qcd.config import Config, RigConfig
 from qcd.intake import GaveUp, Intake, Ready, header_fits, is_candidate_name
 from qcd.store import Store
@@ -64,62 +67,24 @@ def _config(tmp_path: Path, folders, *, settle_s=0.5, give_up_h=1.0, polling=Fal
                   rigs=(RigConfig(RIG, tuple(folders), patterns=patterns, polling=polling),))
 
 
-def _analyze_ready() -> bool:
-    """True once the measures stage and pipeline.commit exist (then the tests use them)."""
-    try:
-        from qcd import pipeline
-        from qcd.analyze import analyze_path
-        if not hasattr(pipeline, "commit"):
-            return False
-        analyze_path(abf("variable_sweep_length.abf"))
-        return True
-    except (ImportError, NotImplementedError):
-        return False
-
-
 class Recorder:
-    """Counts what the service commits; commits through the real pipeline when it exists."""
+    """Counts what the service commits; measures and commits through the real pipeline."""
 
     def __init__(self, store: Store) -> None:
+        from qcd.config import load_rules
         self.store = store
         self.committed: list = []
-        self.real = _analyze_ready()
-        if self.real:
-            from qcd.config import load_rules
-            self.rules = load_rules()
+        self.rules = load_rules()
 
     def measure(self, path: str, rig):
-        if self.real:
-            from qcd.analyze import analyze_path
-            return analyze_path(path, pulse=rig.test_pulse, mains_hz=rig.mains_hz)
-        return reader_measures(path)
+        return analyze_path(path, pulse=rig.test_pulse, mains_hz=rig.mains_hz)
 
     def commit(self, fm, rig, now):
         self.committed.append(fm)
-        if self.real:
-            from qcd import pipeline
-            return pipeline.commit(fm, rig, self.store, self.rules, now)
-        self.store.commit_file(rig.name, fm, analysed_at=now)
+        return pipeline.commit(fm, rig, self.store, self.rules, now)
 
     def paths(self):
         return [Path(fm.path).name for fm in self.committed]
-
-
-def reader_measures(path: str):
-    """FileMeasures from the reader alone (header facts and content hash)."""
-    from qcd.analyze import FileMeasures
-    from qcd.errors import RecordingError
-    from qcd.recording import open_recording
-    st = os.stat(path)
-    sha = hashlib.sha256(Path(path).read_bytes()).hexdigest()
-    try:
-        with open_recording(path) as rec:
-            return FileMeasures(path=path, status="ok", format=rec.format, fs_hz=rec.fs,
-                                n_sweeps=rec.n_sweeps, size=st.st_size, mtime=st.st_mtime,
-                                sha256=sha)
-    except RecordingError as e:
-        return FileMeasures(path=path, status="error", error=str(e), error_kind=e.kind,
-                            size=st.st_size, mtime=st.st_mtime, sha256=sha)
 
 
 @pytest.fixture
@@ -127,6 +92,18 @@ def store(tmp_path):
     s = Store(tmp_path / "qcd.sqlite")
     yield s
     s.close()
+
+
+@contextlib.contextmanager
+def _running(cfg, store, **kw):
+    """A started service (measuring on its own thread) with its Recorder and loop step."""
+    rec = Recorder(store)
+    svc = _service(cfg, store, rec, **kw)
+    svc.start(time.time())
+    try:
+        yield svc, rec, lambda: svc.step(time.time())
+    finally:
+        svc.close()
 
 
 def _service(cfg, store, rec: Recorder, **kw) -> Service:
@@ -288,11 +265,7 @@ def test_file_written_in_pieces_is_measured_once_after_it_settled(tmp_path, stor
     folder = tmp_path / "rig"
     folder.mkdir()
     cfg = _config(tmp_path, [folder], settle_s=1.0, polling=polling)
-    rec = Recorder(store)
-    svc = _service(cfg, store, rec, poll_interval_s=0.2)
-    svc.start(time.time())
-    try:
-        step = lambda: svc.step(time.time())
+    with _running(cfg, store, poll_interval_s=0.2) as (svc, rec, step):
         src = abf("vc_cell_step.abf").read_bytes()
         target = folder / "cell01.abf"
         _write_slowly(target, src, 5, 0.5, step)
@@ -305,8 +278,6 @@ def test_file_written_in_pieces_is_measured_once_after_it_settled(tmp_path, stor
         while time.monotonic() < end:
             step()
             time.sleep(0.02)
-    finally:
-        svc.close()
     assert rec.paths() == ["cell01.abf"]
     rows = store.files(rig=RIG, include_superseded=True)
     assert len(rows) == 1 and rows[0]["status"] == "ok"
@@ -321,17 +292,11 @@ def test_corrupt_file_is_stored_as_error_and_next_file_is_measured(tmp_path, sto
     folder = tmp_path / "rig"
     folder.mkdir()
     cfg = _config(tmp_path, [folder], settle_s=0.3)
-    rec = Recorder(store)
-    svc = _service(cfg, store, rec)
-    svc.start(time.time())
-    try:
-        step = lambda: svc.step(time.time())
+    with _running(cfg, store) as (svc, rec, step):
         (folder / "broken.abf").write_bytes(b"this is not a recording" * 100)
         wait_until(lambda: len(rec.committed) == 1, 10.0, step)
         shutil.copy(abf("vc_model_cell_step.abf"), folder / "good.abf")
         wait_until(lambda: len(rec.committed) == 2, 10.0, step)
-    finally:
-        svc.close()
     by_name = {Path(r["path"]).name: r for r in store.files(rig=RIG)}
     assert by_name["broken.abf"]["status"] == "error"
     assert by_name["broken.abf"]["error_kind"] == "bad_signature"
@@ -343,11 +308,7 @@ def test_folder_removed_and_recreated_is_watched_again(tmp_path, store):
     folder = tmp_path / "usb" / "rig"
     folder.mkdir(parents=True)
     cfg = _config(tmp_path, [folder], settle_s=0.3)
-    rec = Recorder(store)
-    svc = _service(cfg, store, rec)
-    svc.start(time.time())
-    try:
-        step = lambda: svc.step(time.time())
+    with _running(cfg, store) as (svc, rec, step):
         shutil.copy(abf("vc_model_cell_step.abf"), folder / "one.abf")
         wait_until(lambda: len(rec.committed) == 1, 10.0, step)
         shutil.rmtree(tmp_path / "usb")        # unplugged
@@ -357,8 +318,6 @@ def test_folder_removed_and_recreated_is_watched_again(tmp_path, store):
         wait_until(lambda: len(rec.committed) == 2, 15.0, step)
         shutil.copy(abf("cc_steps.abf"), folder / "three.abf")
         wait_until(lambda: len(rec.committed) == 3, 10.0, step)
-    finally:
-        svc.close()
     assert sorted(rec.paths()) == ["one.abf", "three.abf", "two.abf"]
 
 
@@ -366,11 +325,7 @@ def test_files_in_a_new_subfolder_are_measured_and_hidden_folders_ignored(tmp_pa
     folder = tmp_path / "rig"
     folder.mkdir()
     cfg = _config(tmp_path, [folder], settle_s=0.3)
-    rec = Recorder(store)
-    svc = _service(cfg, store, rec)
-    svc.start(time.time())
-    try:
-        step = lambda: svc.step(time.time())
+    with _running(cfg, store) as (svc, rec, step):
         (folder / ".trash").mkdir()
         shutil.copy(abf("cc_steps.abf"), folder / ".trash" / "deleted.abf")
         (folder / "day2").mkdir()
@@ -386,8 +341,6 @@ def test_files_in_a_new_subfolder_are_measured_and_hidden_folders_ignored(tmp_pa
         while time.monotonic() < end:
             step()
             time.sleep(0.02)
-    finally:
-        svc.close()
     assert sorted(rec.paths()) == ["a.abf", "b.abf"]
 
 
@@ -436,18 +389,12 @@ def test_new_file_goes_ahead_of_a_backlog(tmp_path, store):
         _tiny_abf(folder / f"old{i:03d}.abf", i)
         os.utime(folder / f"old{i:03d}.abf", (1000.0 + i, 1000.0 + i))
     cfg = _config(tmp_path, [folder], settle_s=0.3)
-    rec = Recorder(store)
-    svc = _service(cfg, store, rec)
-    svc.start(time.time())
-    try:
-        step = lambda: svc.step(time.time())
+    with _running(cfg, store) as (svc, rec, step):
         wait_until(lambda: len(rec.committed) >= 2, 10.0, step)
         _tiny_abf(folder / "new.abf", 999)
         wait_until(lambda: "new.abf" in rec.paths(), 10.0, step)
         position = rec.paths().index("new.abf")
         wait_until(lambda: len(rec.committed) == 41, 30.0, step)
-    finally:
-        svc.close()
     # with one file measured per step, the new file passes the rest of the backlog
     assert position < 20, rec.paths()
 
@@ -482,8 +429,6 @@ def test_never_settled_file_is_stored_as_error(tmp_path, store):
 
 
 def test_measuring_in_worker_processes(tmp_path, store):
-    if not _analyze_ready():
-        pytest.skip("the measures stage (analyze_path) is not in this build yet")
     folder = tmp_path / "rig"
     folder.mkdir()
     for i in range(4):
@@ -581,8 +526,6 @@ def test_catch_up_draws_a_progress_bar_on_a_terminal(tmp_path, store, capsys):
 
 
 def test_backlog_gives_one_digest_not_a_message_per_file(tmp_path, store):
-    if not _analyze_ready():
-        pytest.skip("the pipeline is not in this build yet")
     from qcd.config import load_rules
     folder = tmp_path / "rig"
     folder.mkdir()
