@@ -91,6 +91,19 @@ def _fine_grid(fs: float, oversample: int, n_pre: int, n_total: int,
     return k * dt, (k - n_step * oversample) * dt
 
 
+def _finish(t, t_off, y, *, dv, cp, tau_cp, fs, oversample, n_pre, n_total, phase, filter_hz,
+            poles, holding, noise_sd, rng):
+    """Add the pipette-capacitance transient, filter and sample, add holding and noise."""
+    if cp:
+        def _cp(tt):
+            return np.where(tt > 0, cp * dv / tau_cp * np.exp(-np.clip(tt, 0, None) / tau_cp), 0.0)
+        y = y + _cp(t) - _cp(t_off)
+    out = _sample(t, y, fs, oversample, n_pre, n_total, phase, filter_hz, poles) + holding
+    if noise_sd:
+        out = out + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, n_total)
+    return out
+
+
 def sampled_cell(dv: float, ra: float, rm: float, cm: float, fs: float, *, n_pre: int,
                  n_step: int, n_post: int = 0, filter_hz: float | None = None, poles: int = 4,
                  phase: float = 0.5, holding: float = 0.0, noise_sd: float = 0.0,
@@ -106,14 +119,9 @@ def sampled_cell(dv: float, ra: float, rm: float, cm: float, fs: float, *, n_pre
     n_total = n_pre + n_step + n_post
     t, t_off = _fine_grid(fs, oversample, n_pre, n_total, n_step)
     y = cell_step_current(t, dv, ra, rm, cm) - cell_step_current(t_off, dv, ra, rm, cm)
-    if cp:
-        def _cp(tt):
-            return np.where(tt > 0, cp * dv / tau_cp * np.exp(-np.clip(tt, 0, None) / tau_cp), 0.0)
-        y = y + _cp(t) - _cp(t_off)
-    out = _sample(t, y, fs, oversample, n_pre, n_total, phase, filter_hz, poles) + holding
-    if noise_sd:
-        out = out + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, n_total)
-    return out
+    return _finish(t, t_off, y, dv=dv, cp=cp, tau_cp=tau_cp, fs=fs, oversample=oversample,
+                   n_pre=n_pre, n_total=n_total, phase=phase, filter_hz=filter_hz, poles=poles,
+                   holding=holding, noise_sd=noise_sd, rng=rng)
 
 
 def sampled_resistor(dv: float, r: float, fs: float, *, n_pre: int, n_step: int,
@@ -128,14 +136,9 @@ def sampled_resistor(dv: float, r: float, fs: float, *, n_pre: int, n_step: int,
     n_total = n_pre + n_step + n_post
     t, t_off = _fine_grid(fs, oversample, n_pre, n_total, n_step)
     y = np.where((t > 0) & (t_off <= 0), dv / r, 0.0)
-    if cp:
-        def _cp(tt):
-            return np.where(tt > 0, cp * dv / tau_cp * np.exp(-np.clip(tt, 0, None) / tau_cp), 0.0)
-        y = y + _cp(t) - _cp(t_off)
-    out = _sample(t, y, fs, oversample, n_pre, n_total, phase, filter_hz, poles) + holding
-    if noise_sd:
-        out = out + (rng or np.random.default_rng(0)).normal(0.0, noise_sd, n_total)
-    return out
+    return _finish(t, t_off, y, dv=dv, cp=cp, tau_cp=tau_cp, fs=fs, oversample=oversample,
+                   n_pre=n_pre, n_total=n_total, phase=phase, filter_hz=filter_hz, poles=poles,
+                   holding=holding, noise_sd=noise_sd, rng=rng)
 
 
 def sampled_current_clamp(di: float, rin: float, tau_m: float, fs: float, *, n_pre: int,
