@@ -53,31 +53,14 @@ def _error_measures(path: Path, kind: str, reason: str, size: int = -1, mtime: f
                         size=size if size >= 0 else None, mtime=mtime if mtime >= 0 else None)
 
 
-def _pipeline_commit(store, rules) -> Callable:
-    """The one writer's commit: pipeline.commit(fm, rig, store, rules, now[, batch=])."""
-    import inspect
+def _pipeline_steps(store, rules) -> tuple[Callable, Callable, Callable]:
+    """The one writer's commit, the backlog digest and the periodic tick, bound to the store."""
     from qcd import pipeline
-    takes_batch = "batch" in inspect.signature(pipeline.commit).parameters
 
     def commit(fm, rig, now, batch=False):
-        if takes_batch:
-            return pipeline.commit(fm, rig, store, rules, now, batch=batch)
-        return pipeline.commit(fm, rig, store, rules, now)
-    return commit
-
-
-def _pipeline_digest(store, rules) -> Callable | None:
-    from qcd import pipeline
-    flush = getattr(pipeline, "flush_digest", None)
-    if flush is None:
-        return None
-    return lambda now: flush(store, rules, now)
-
-
-def _pipeline_tick(store, rules) -> Callable | None:
-    from qcd import pipeline
-    tick = getattr(pipeline, "tick", None)
-    return None if tick is None else (lambda now: tick(store, rules, now))
+        return pipeline.commit(fm, rig, store, rules, now, batch=batch)
+    return (commit, lambda now: pipeline.flush_digest(store, rules, now),
+            lambda now: pipeline.tick(store, rules, now))
 
 
 def make_sender(config: Any):
@@ -160,9 +143,8 @@ class Service:
                                       poll_interval_s=poll_interval_s)
                          for r in config.rigs for f in r.folders]
         if commit is None:
-            self._commit = _pipeline_commit(store, rules)
-            self._digest = digest or _pipeline_digest(store, rules)
-            self._tick = _pipeline_tick(store, rules)
+            self._commit, pipeline_digest, self._tick = _pipeline_steps(store, rules)
+            self._digest = digest or pipeline_digest
         else:
             self._commit, self._digest, self._tick = commit, digest, None
         self.tick_s = 60.0
