@@ -166,11 +166,6 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _not_yet(name: str) -> int:
-    print(f"qcd {name}: not available in this build", file=sys.stderr)
-    return EXIT_USAGE
-
-
 def _scan_files(paths: list[Path]) -> list[Path]:
     """Files named and *.abf files under folders (recursive, sorted), in argument order.
 
