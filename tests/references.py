@@ -11,6 +11,7 @@ Imports numpy and scipy only (never qcd), so the references stay independent of 
 from __future__ import annotations
 
 import functools
+from typing import Any
 
 import numpy as np
 from scipy import signal
@@ -119,6 +120,100 @@ def sampled_cell(dv: float, ra: float, rm: float, cm: float, fs: float, *, n_pre
     n_total = n_pre + n_step + n_post
     t, t_off = _fine_grid(fs, oversample, n_pre, n_total, n_step)
     y = cell_step_current(t, dv, ra, rm, cm) - cell_step_current(t_off, dv, ra, rm, cm)
+    return _finish(t, t_off, y, dv=dv, cp=cp, tau_cp=tau_cp, fs=fs, oversample=oversample,
+                   n_pre=n_pre, n_total=n_total, phase=phase, filter_hz=filter_hz, poles=poles,
+                   holding=holding, noise_sd=noise_sd, rng=rng)
+
+
+def _two_compartment_system(ra: float, cs: float, rs: float, rc: float, cd: float,
+                            rd: float) -> tuple[np.ndarray, np.ndarray]:
+    """State matrix and input vector of Ra -> soma (Cs ∥ Rs) -Rc- dendrite (Cd ∥ Rd).
+
+    Kirchhoff's current law at the two nodes (state x = (Vs, Vd), input the command V):
+    Cs·dVs/dt = (V - Vs)/Ra - Vs/Rs - (Vs - Vd)/Rc;  Cd·dVd/dt = (Vs - Vd)/Rc - Vd/Rd.
+    """
+    a = np.array([[-(1 / ra + 1 / rs + 1 / rc) / cs, 1 / (rc * cs)],
+                  [1 / (rc * cd), -(1 / rc + 1 / rd) / cd]])
+    b = np.array([1 / (ra * cs), 0.0])
+    return a, b
+
+
+def two_compartment_constants(dv: float, ra: float, cs: float, rs: float, rc: float,
+                              cd: float, rd: float) -> dict[str, Any]:
+    """Exact step response of the two-compartment cell (METHODS §1.5 [D]) by eigen-decomposition.
+
+    After a step dv at t = 0 (both capacitors at their old voltage), the state is
+    x(t) = x_ss - V·exp(Λt)·V⁻¹·x_ss with A = VΛV⁻¹ (the matrix exponential of the linear ODE),
+    and the clamp current I = (dv - Vs)/Ra = I_ss + A₁e^(-t/τ₁) + A₂e^(-t/τ₂), τ₁ < τ₂.
+    Returns taus (s), amps (A), i_ss (A), i0 = I(0⁺) = dv/Ra, q = ∫(I - I_ss)dt = Σ A_i·τ_i (C).
+    """
+    a, b = _two_compartment_system(ra, cs, rs, rc, cd, rd)
+    lam, vec = np.linalg.eig(a)
+    lam, vec = lam.real, vec.real                   # symmetric-izable: real eigenvalues
+    x_ss = -np.linalg.solve(a, b * dv)
+    # Vs(t) = Vs_ss - Σ_i vec[0, i]·c_i·exp(λ_i t), c = V⁻¹ x_ss
+    c = np.linalg.solve(vec, x_ss)
+    order = np.argsort(lam)                         # fastest (most negative λ) first
+    taus = np.array([-1.0 / lam[i] for i in order])
+    amps = np.array([vec[0, i] * c[i] / ra for i in order])
+    i_ss = (dv - x_ss[0]) / ra
+    return {"taus": taus, "amps": amps, "i_ss": float(i_ss), "i0": float(i_ss + amps.sum()),
+            "q": float(np.sum(amps * taus)), "vs_ss": float(x_ss[0]), "vd_ss": float(x_ss[1])}
+
+
+def two_compartment_current(t: np.ndarray, dv: float, ra: float, cs: float, rs: float,
+                            rc: float, cd: float, rd: float) -> np.ndarray:
+    """Exact clamp current (A) of the two-compartment cell after a step dv at t = 0 (0 before).
+
+    Evaluated as the matrix exponential of the circuit's ODE (scipy.linalg.expm) at each time,
+    independently of the eigen-decomposition in `two_compartment_constants`.
+    """
+    from scipy.linalg import expm
+    a, b = _two_compartment_system(ra, cs, rs, rc, cd, rd)
+    x_ss = -np.linalg.solve(a, b * dv)
+    t = np.asarray(t, dtype=float)
+    out = np.zeros_like(t)
+    pos = t > 0
+    if np.any(pos):
+        tp_ = t[pos]
+        # expm on a uniform grid: exp(A·k·h) = exp(A·h)^k, exact up to rounding
+        h = float(np.min(np.diff(tp_))) if len(tp_) > 1 else float(tp_[0])
+        k = np.rint(tp_ / h).astype(int)
+        if np.allclose(k * h, tp_, rtol=0, atol=1e-3 * h):
+            e1, ek = expm(a * h), expm(a * h * k[0])
+            vs = np.empty(len(tp_))
+            for j in range(len(tp_)):
+                if j:
+                    ek = np.linalg.matrix_power(e1, k[j] - k[j - 1]) @ ek
+                vs[j] = x_ss[0] - (ek @ x_ss)[0]
+        else:
+            vs = np.array([x_ss[0] - (expm(a * tj) @ x_ss)[0] for tj in tp_])
+        out[pos] = (dv - vs) / ra
+    return out
+
+
+def sampled_two_compartment(dv: float, cell: tuple[float, ...], fs: float, *, n_pre: int,
+                            n_step: int, n_post: int = 0, filter_hz: float | None = None,
+                            poles: int = 4, phase: float = 0.5, holding: float = 0.0,
+                            noise_sd: float = 0.0, cp: float = 0.0, tau_cp: float = 20e-6,
+                            oversample: int = 40,
+                            rng: np.random.Generator | None = None) -> np.ndarray:
+    """A sampled voltage-clamp sweep (A) of the two-compartment cell ``cell`` =
+    (Ra, Cs, Rs, Rc, Cd, Rd) for a rectangular step of n_step samples (METHODS §1.5).
+
+    On and off transients by superposition of the exact response; filter, sampling phase,
+    pipette capacitance, holding and noise as in `sampled_cell`.
+    """
+    n_total = n_pre + n_step + n_post
+    t, t_off = _fine_grid(fs, oversample, n_pre, n_total, n_step)
+    k = two_compartment_constants(dv, *cell)
+
+    def _i(tt):
+        tc = np.clip(tt, 0.0, None)
+        s = k["i_ss"] + sum(a * np.exp(-tc / tau) for a, tau in zip(k["amps"], k["taus"]))
+        return np.where(tt > 0.0, s, 0.0)
+
+    y = _i(t) - _i(t_off)
     return _finish(t, t_off, y, dv=dv, cp=cp, tau_cp=tau_cp, fs=fs, oversample=oversample,
                    n_pre=n_pre, n_total=n_total, phase=phase, filter_hz=filter_hz, poles=poles,
                    holding=holding, noise_sd=noise_sd, rng=rng)
