@@ -8,6 +8,7 @@ Imports qcd.recording, qcd.measures, qcd.units, qcd.config (TestPulse), qcd.erro
 """
 from __future__ import annotations
 
+import collections
 import hashlib
 import logging
 import math
@@ -172,24 +173,42 @@ class _Dims:
             float(np.median(np.abs(first))) > _ABSURD_AMPERES
 
 
-def _mode(rec: Any, dims: _Dims) -> tuple[str, int | None]:
-    """(mode, primary channel): from paired command/input units, else from the input units."""
+def _mode(rec: Any, dims: _Dims, notes: list[str], *, declared: str | None = None,
+          pulse: Any = None) -> tuple[str, int | None]:
+    """(mode, primary channel): from paired command/input units; else the rig's declared
+    mode; else from the input units, where a declared test step on a voltage input means
+    current clamp (a current step drives it) and on a current input voltage clamp."""
     for k in sorted(rec.commands):
         cmd = rec.commands[k]
         if not cmd.enabled or k >= len(rec.channels):
             continue
         cdim, _ = units.channel_quantity(cmd.unit)
-        if dims.dim[k] == "A" and cdim == "V":
-            return "voltage_clamp", k
-        if dims.dim[k] == "V" and cdim == "A":
-            return "current_clamp", k
+        found = {("A", "V"): "voltage_clamp", ("V", "A"): "current_clamp"}.get((dims.dim[k],
+                                                                             cdim))
+        if found is not None:
+            if declared and declared != found:
+                notes.append(f"the rig declares {declared}, but the header pairs input channel "
+                             f"{k} with a command in {cmd.unit}: measured as {found}")
+            return found, k
     d = dims.dim
+    if declared:
+        want = "A" if declared == "voltage_clamp" else "V"
+        if want in d:
+            return declared, d.index(want)
+        notes.append(f"the rig declares {declared}, but no input channel is in "
+                     f"{'amperes' if want == 'A' else 'volts'}")
     if not d:
         return "unknown", None
     if d[0] == "A":
         return "voltage_clamp", 0
     if d[0] == "V":
-        return ("current_clamp", 0) if "A" in d else ("extracellular", 0)
+        if "A" in d:
+            return "current_clamp", 0
+        if pulse is not None:
+            notes.append("a declared test step on a voltage input without a command channel: "
+                         "measured as current clamp (the step is a current in pA)")
+            return "current_clamp", 0
+        return "extracellular", 0
     for want, mode in (("A", "voltage_clamp"), ("V", "extracellular")):
         if want in d:
             return mode, d.index(want)
@@ -310,6 +329,16 @@ class _StepPlan:
         return any(s is not None for s in self.steps)
 
 
+# A voltage step still at its level when the sweep ends is a test step up to this size (test
+# pulses are a few mV, common practice); a larger lasting change is a new holding level.
+_OPEN_STEP_MAX_V = 20e-3
+
+
+def _open_max(want_dim: str) -> float | None:
+    """Largest step that may last to the end of a sweep and still be a test step (SI)."""
+    return _OPEN_STEP_MAX_V if want_dim == "V" else None
+
+
 def _protocol_steps(rec: Any, ch: int, want_dim: str) -> list[Any] | None:
     cmd = rec.commands.get(ch)
     if cmd is None or not cmd.enabled:
@@ -317,13 +346,15 @@ def _protocol_steps(rec: Any, ch: int, want_dim: str) -> list[Any] | None:
     cdim, factor = units.channel_quantity(cmd.unit)
     if cdim != want_dim:
         return None
-    return [tp.find_step(cmd.waveform(k) * factor, rec.fs) for k in range(rec.n_sweeps)]
+    return [tp.find_step(cmd.waveform(k) * factor, rec.fs, open_max=_open_max(want_dim))
+            for k in range(rec.n_sweeps)]
 
 
 def _recorded_steps(rec: Any, dims: _Dims, primary: int, want_dim: str) -> tuple[list, int] | None:
     for c in range(len(rec.channels)):
         if c != primary and dims.dim[c] == want_dim:
-            steps = [tp.find_step(rec.sweep(c, k) * dims.factor[c], rec.fs)
+            steps = [tp.find_step(rec.sweep(c, k) * dims.factor[c], rec.fs,
+                                  open_max=_open_max(want_dim))
                      for k in range(rec.n_sweeps)]
             if any(s is not None for s in steps):
                 return steps, c
@@ -444,30 +475,43 @@ class _Blocks:
 
 
 class _TestPulse:
-    """Per-sweep test-pulse results of one channel and a running average of its sweeps."""
+    """Per-sweep step responses of one channel (bounded in memory) and a running sum of its
+    sweeps; the whole-cell model is chosen on their average once every sweep is in."""
 
-    def __init__(self, mode: str, plan: _StepPlan, ch: Any, factor: float) -> None:
-        self.mode, self.plan, self.ch = mode, plan, ch
+    def __init__(self, mode: str, plan: _StepPlan, ch: Any, factor: float, fs: float,
+                 n_sweeps: int) -> None:
+        self.mode, self.plan, self.ch, self.fs = mode, plan, ch, fs
         self.rails = None if ch.rails is None else (ch.rails[0] * factor, ch.rails[1] * factor)
-        self.results: list[Any] = []
+        self.results: list[Any] = []            # current clamp: (sweep, CurrentClamp | None)
+        self.responses: list[tuple[int, Any]] = []    # (sweep, StepResponse)
+        self.rejected: list[tuple[int, Any]] = []     # (sweep, Rejected)
         self.sum: np.ndarray | None = None
         self.n_sum = 0
         self.avg_step = None
         self.same_length = True
+        # fit every k-th sweep (and the first and last three): at most _TP_MAX_FITS fits and
+        # _TP_KEEP_SAMPLES samples kept, as the median needs no more and long files stay fast
+        lengths = [s.stop - s.start for s in plan.steps if s is not None] or [1]
+        self.stride = max(1, math.ceil(sum(lengths) / _TP_KEEP_SAMPLES),
+                          math.ceil(len(lengths) / _TP_MAX_FITS))
+        self.n_sweeps = n_sweeps
 
     def add(self, k: int, x: np.ndarray) -> None:
         step = self.plan.steps[k]
         if step is None:
             return
         fs = self.fs
-        if self.mode == "voltage_clamp":
-            self.results.append((k, tp.try_whole_cell(x, fs, step, filter_hz=self.ch.filter_hz,
-                                                      rails=self.rails)))
-        else:
+        if self.mode != "voltage_clamp":
             if step.amplitude < 0:
                 self.results.append((k, tp.input_resistance(x, fs, step,
                                                             filter_hz=self.ch.filter_hz)))
             return
+        r = tp.step_response(x, fs, step, rails=self.rails)
+        if isinstance(r, tp.Rejected):
+            self.rejected.append((k, r))
+        elif k % self.stride == 0 or k < _TP_CHANGE_SWEEPS or \
+                k >= self.n_sweeps - _TP_CHANGE_SWEEPS:
+            self.responses.append((k, r))
         if self.avg_step is None:
             self.avg_step = step
         if (self.sum is not None and len(x) != len(self.sum)) or step != self.avg_step:
@@ -476,7 +520,10 @@ class _TestPulse:
         self.sum = x.copy() if self.sum is None else self.sum + x
         self.n_sum += 1
 
-    fs = 0.0
+
+_TP_KEEP_SAMPLES = 4_000_000   # step samples kept for the per-sweep fits (32 MB)
+_TP_MAX_FITS = 36              # sweeps fitted one by one (the rest count in the average)
+_TP_CHANGE_SWEEPS = 3          # access_change_pct: the first 3 sweeps against the last 3
 
 
 def _put(out: dict[str, Measure], name: str, value_si: float | None, dim: str) -> None:
@@ -487,8 +534,27 @@ def _put(out: dict[str, Measure], name: str, value_si: float | None, dim: str) -
     out[name] = Measure(name, float(value), unit)
 
 
+def _corner(t: _TestPulse, fs: float, out: dict[str, Measure], notes: list[str]
+            ) -> float | None:
+    """The low-pass corner the transient is seen through: the header's where it was set (the
+    amplifier's telegraph, or a header value below Nyquist), else the corner measured from
+    the noise spectrum, else None with a note."""
+    ch = t.ch
+    fc = ch.filter_hz
+    if fc and (ch.filter_source == "telegraph" or fc < fs / 2):
+        return float(fc)
+    if "corner_hz" in out:
+        fc = float(out["corner_hz"].value)
+        notes.append(f"test step: filter corner not set in the header; the {fc:.4g} Hz corner "
+                     f"of the noise spectrum is used")
+        return fc
+    notes.append("test step: filter corner unknown (not in the header, not found in the noise "
+                 "spectrum): the transient is fitted as unfiltered")
+    return None
+
+
 def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> None:
-    if t.mode == "current_clamp":
+    if t.mode != "voltage_clamp":
         vals = [r.input_resistance for _, r in t.results if r is not None]
         if vals:
             _put(out, "input_resistance", float(np.median(vals)), "Ohm")
@@ -497,44 +563,109 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
         else:
             notes.append("input_resistance: no hyperpolarising current step in the sweeps")
         return
-    cells = [(k, r) for k, r in t.results if isinstance(r, tp.WholeCell)]
-    if cells and len(cells) * 2 >= len(t.results):
-        for name in ("access_resistance", "membrane_resistance", "membrane_capacitance", "tau"):
-            dim = {"access_resistance": "Ohm", "membrane_resistance": "Ohm",
-                   "membrane_capacitance": "F", "tau": "s"}[name]
-            _put(out, name, float(np.median([getattr(r, name) for _, r in cells])), dim)
-        ra = [r.access_resistance for _, r in cells]
-        if len(ra) >= 2:
-            g = max(1, min(3, len(ra) // 3))
-            try:
-                _put(out, "access_change_pct", tp.access_change_pct(ra[:g], ra[-g:]), "%")
-            except ValueError as e:
-                notes.append(f"access_change_pct: {e}")
+    if any(s is not None and s.to_end for s in t.plan.steps):
+        notes.append("the test step lasts to the end of the sweep: steady state from its last "
+                     "part, access from the onset transient; the off-transient was not seen")
+    fc = _corner(t, t.fs, out, notes)
+    cells: list[tuple[int, Any]] = []
+    rejected = list(t.rejected)
+    model = avg_cell = None
+    if t.responses:
+        # the component model is chosen once, on the average of the sweeps with the most
+        # common step, and each sweep is fitted with it (same components, its own values)
+        key = collections.Counter((len(r.y), r.amplitude) for _, r in t.responses)
+        common = key.most_common(1)[0][0]
+        group = [r for _, r in t.responses if (len(r.y), r.amplitude) == common]
+        avg = tp.average_response(group)
+        sel = tp.transient_model(avg, filter_hz=fc)
+        model = sel.fit
+        avg_cell = tp.whole_cell_of(avg, filter_hz=fc, model=model)
+        for k, r in t.responses:
+            w = tp.whole_cell_of(r, filter_hz=fc, model=model if (len(r.y), r.amplitude) ==
+                                 common else None)
+            (cells if isinstance(w, tp.WholeCell) else rejected).append((k, w))
+    n_seen = len(cells) + len(rejected)
+    if cells and len(cells) * 2 >= n_seen:
+        cells.sort(key=lambda c: c[0])
+        for name, dim in (("access_resistance", "Ohm"), ("membrane_resistance", "Ohm"),
+                          ("membrane_capacitance", "F"), ("tau", "s")):
+            _put(out, name, float(np.median([getattr(w, name) for _, w in cells])), dim)
+        _whole_cell_notes(cells, model, fc, notes)
+        _access_change(cells, out, notes)
         return
+    if isinstance(avg_cell, tp.WholeCell):
+        for name, dim in (("access_resistance", "Ohm"), ("membrane_resistance", "Ohm"),
+                          ("membrane_capacitance", "F"), ("tau", "s")):
+            _put(out, name, getattr(avg_cell, name), dim)
+        notes.append(f"whole-cell values from the average of {avg_cell and len(t.responses)} "
+                     f"sweeps (single sweeps: {_reason(rejected)})")
+        _whole_cell_notes([(0, avg_cell)], model, fc, notes)
+        return
+    reason = _reason(rejected) or (f"{avg_cell.reason}" if avg_cell is not None else "")
     if t.sum is None or not t.same_length:
-        reasons = sorted({r.reason for _, r in t.results if isinstance(r, tp.Rejected)})
         notes.append("no whole-cell transient in the test step" +
-                     (f" ({reasons[0]})" if reasons else ""))
+                     (f" ({reason})" if reason else ""))
         return
     avg = t.sum / t.n_sum
-    kind = tp.classify(avg, t.fs, t.avg_step, filter_hz=t.ch.filter_hz, rails=t.rails)
+    kind = tp.classify(avg, t.fs, t.avg_step, filter_hz=fc, rails=t.rails)
     if kind == "whole_cell":
-        r = tp.try_whole_cell(avg, t.fs, t.avg_step, filter_hz=t.ch.filter_hz, rails=t.rails)
-        if isinstance(r, tp.WholeCell):
-            for name, dim in (("access_resistance", "Ohm"), ("membrane_resistance", "Ohm"),
-                              ("membrane_capacitance", "F"), ("tau", "s")):
-                _put(out, name, getattr(r, name), dim)
-            notes.append(f"whole-cell values from the average of {t.n_sum} sweeps")
+        notes.append("no whole-cell values: " + (reason or "the transient did not fit"))
     elif kind == "seal":
-        _put(out, "seal_resistance", tp.seal_resistance(avg, t.fs, t.avg_step), "Ohm")
-        notes.append(f"no membrane transient: seal resistance from the average of {t.n_sum} "
-                     f"sweeps")
+        r = tp.seal_resistance(avg, t.fs, t.avg_step)
+        se = tp.seal_resistance_se(avg, t.fs, t.avg_step)
+        if r > tp.SEAL_MAX_OHM:
+            notes.append(f"no seal value: the step's steady current (dV/dI {r / 1e9:.3g} GOhm) "
+                         f"is beyond {tp.SEAL_MAX_OHM / 1e9:g} GOhm, where a step cannot tell an "
+                         f"excellent seal from an open input with no cell or pipette")
+        else:
+            _put(out, "seal_resistance", r, "Ohm")
+            notes.append(f"no membrane transient: seal resistance from the average of "
+                         f"{t.n_sum} sweeps (+- {se / 1e9:.2g} GOhm)")
     elif kind == "open_pipette":
         r = tp.seal_resistance(avg, t.fs, t.avg_step)
         notes.append(f"the step response is an open pipette ({r / 1e6:.3g} MOhm): no seal, no "
                      f"cell")
     else:
-        notes.append("the test step gives no resolvable current response (no cell, no seal)")
+        notes.append("no response above noise: the test step gives no resolvable current "
+                     "(no cell, no seal)")
+
+
+def _reason(rejected: list[tuple[int, Any]]) -> str:
+    """The commonest reason among rejected sweeps, with its count."""
+    if not rejected:
+        return ""
+    c = collections.Counter(r.reason for _, r in rejected)
+    reason, k = c.most_common(1)[0]
+    return f"{k} of {len(rejected)} sweeps: {reason}"
+
+
+def _whole_cell_notes(cells: list[tuple[int, Any]], model: Any, fc: float | None,
+                      notes: list[str]) -> None:
+    w = cells[len(cells) // 2][1]
+    comps = ", ".join(f"{tau * 1e6:.0f} us" for tau, _ in w.components)
+    how = ("one exponential, charge method" if w.method == "charge" else
+           f"{len(w.components)} components through the "
+           f"{'%g Hz filter' % fc if fc else 'unfiltered samples'}")
+    notes.append(f"whole-cell transient: {how} (tau {comps}); access <= dV/peak "
+                 f"{w.peak_bound / 1e6:.3g} MOhm")
+
+
+def _access_change(cells: list[tuple[int, Any]], out: dict[str, Measure],
+                   notes: list[str]) -> None:
+    if len(cells) < 2:
+        return
+    g = max(1, min(_TP_CHANGE_SWEEPS, len(cells) // 2))
+    ra = [w.access_resistance for _, w in cells]
+    se = [w.access_se for _, w in cells]
+    try:
+        pct, pct_se = tp.access_change(ra[:g], ra[-g:], se[:g], se[-g:])
+    except ValueError as e:
+        notes.append(f"access_change_pct: {e}")
+        return
+    _put(out, "access_change_pct", pct, "%")
+    sweeps = f"first {g} vs last {g} sweeps" if g > 1 else "first vs last sweep"
+    notes.append(f"access_change_pct {pct:+.1f} % +- {pct_se:.1f} % ({sweeps}, from per-sweep "
+                 f"access and its standard error)")
 
 
 def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
@@ -608,8 +739,7 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
     rails = ch.rails
     tpr = None
     if plan is not None and plan.ok:
-        tpr = _TestPulse(mode, plan, ch, factor)
-        tpr.fs = fs
+        tpr = _TestPulse(mode, plan, ch, factor, fs, rec.n_sweeps)
     if rec.gap_free:
         L = max(1, min(int(round(fs * _BLOCK_S)), rec.n_samples))
         gain, offset = ch.gain, ch.offset
@@ -724,17 +854,19 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
 
 
 def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
-            chunk_size: int = 1 << 20) -> FileMeasures:
+            mode: str | None = None, chunk_size: int = 1 << 20) -> FileMeasures:
     """Measure an open Recording (one pass over its samples).
 
     ``pulse`` (qcd.config.TestPulse) is used when neither the protocol nor a recorded command
-    shows a test step; ``mains_hz`` (50/60) skips the 50-vs-60 detection; ``chunk_size`` is
-    the reader's chunk length for gap-free files (results do not depend on it).
+    shows a test step; ``mains_hz`` (50/60) skips the 50-vs-60 detection; ``mode`` (one of
+    qcd.config.DECLARED_MODES) is the rig's recording mode for headers that cannot tell;
+    ``chunk_size`` is the reader's chunk length for gap-free files (results do not depend on
+    it).
     """
     rec = recording
     notes: list[str] = list(rec.notes)
     dims = _Dims(rec, notes)
-    mode, primary = _mode(rec, dims)
+    mode, primary = _mode(rec, dims, notes, declared=mode, pulse=pulse)
     want = {"voltage_clamp": "A", "current_clamp": "V"}.get(mode)
     plans: dict[int, _StepPlan] = {}
     if want is not None:
@@ -769,7 +901,8 @@ def _file_facts(p: Path, digest: bool) -> dict[str, Any]:
 
 
 def analyze_path(path: Any, *, pulse: Any = None, mains_hz: float | None = None,
-                 digest: bool = True, chunk_size: int = 1 << 20) -> FileMeasures:
+                 mode: str | None = None, digest: bool = True,
+                 chunk_size: int = 1 << 20) -> FileMeasures:
     """Open, measure and close one file. Never raises for a bad file: status 'error' instead.
 
     ``digest`` computes the file's sha256 (for the store's duplicate check); ``qcd scan``
@@ -779,7 +912,8 @@ def analyze_path(path: Any, *, pulse: Any = None, mains_hz: float | None = None,
     facts = _file_facts(p, digest)
     try:
         with open_recording(p) as rec:
-            fm = analyze(rec, pulse=pulse, mains_hz=mains_hz, chunk_size=chunk_size)
+            fm = analyze(rec, pulse=pulse, mains_hz=mains_hz, mode=mode,
+                         chunk_size=chunk_size)
     except RecordingError as e:
         return FileMeasures(path=str(p), status="error", error=str(e), error_kind=e.kind,
                             **facts)

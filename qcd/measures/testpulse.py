@@ -1,23 +1,28 @@
 """Test-pulse measures: step detection, whole-cell Ra/Rm/Cm/tau, seal, current-clamp input resistance.
 
 Pure functions on numpy arrays in SI units (A, V, Ω, F, s); formulas and checks in METHODS.md §1.
-Imports numpy and scipy only.
+The multi-exponential fit through the amplifier's filter lives in qcd.measures.transient.
+Imports numpy, scipy and qcd.measures.transient only.
 """
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Sequence
 
 import numpy as np
 from scipy import optimize
 
+from qcd.measures import transient as tr
+
 __all__ = [
-    "StepWindow", "WholeCell", "Rejected", "CurrentClamp", "BESSEL4_DELAY", "OPEN_PIPETTE_MAX_OHM",
-    "MAX_ACCESS_OHM",
-    "find_step", "try_whole_cell", "whole_cell", "peak_access_resistance", "seal_resistance",
+    "StepWindow", "WholeCell", "Rejected", "CurrentClamp", "StepResponse", "BESSEL4_DELAY",
+    "OPEN_PIPETTE_MAX_OHM", "MAX_ACCESS_OHM", "MAX_ACCESS_REL_SE", "SEAL_MAX_OHM",
+    "PIPETTE_MAX_F",
+    "find_step", "step_response", "average_response", "resolvable_tau", "transient_model",
+    "try_whole_cell", "whole_cell_of", "whole_cell", "peak_access_resistance", "seal_resistance",
     "seal_resistance_se",
-    "input_resistance", "classify", "average_steps", "access_change_pct",
+    "input_resistance", "classify", "average_steps", "access_change_pct", "access_change",
 ]
 
 # DC group delay of a 4-pole Bessel low-pass, times its -3 dB corner (METHODS §1.2 [D]).
@@ -29,6 +34,20 @@ OPEN_PIPETTE_MAX_OHM = 50e6
 # seal): whole-cell access is ~1.5-3x a 2-8 MΩ pipette (METHODS §2, common practice), and even
 # a resealing cell stays well below this.
 MAX_ACCESS_OHM = 100e6
+# Above this a step's steady current cannot tell an excellent seal from an open input (no
+# pipette, no cell): 10 GΩ is where METHODS §1.3 has ΔI reach the noise (-0.50 pA at -5 mV)
+# and the usual "excellent" seal (METHODS §2, ≥10 GΩ preferred); a higher dV/dI is no
+# measurement of a seal.
+SEAL_MAX_OHM = 10e9
+# Charge faster than the data resolve is taken for uncompensated pipette capacitance (METHODS
+# §1.2 caution) up to this much per volt of step: pipette, holder and headstage input
+# together stay below about 10 pF before compensation (common practice, from memory). More
+# fast charge is a membrane component (a soma behind a slow filter) whose amplitude, and
+# access with it, the samples do not determine.
+PIPETTE_MAX_F = 10e-12
+# An access estimate whose standard error exceeds this fraction of it is not given: the
+# fastest component is not told apart from the filter (or the pipette charge).
+MAX_ACCESS_REL_SE = 0.2
 
 _MIN_STEP_SAMPLES = 20
 _MIN_PRE_SAMPLES = 3
@@ -39,12 +58,14 @@ _MIN_FIT_SAMPLES = 10
 class StepWindow:
     """One rectangular test step within a sweep, in samples.
 
-    start: first sample at the new level; stop: first sample back at holding;
-    amplitude: step size in SI (V in voltage clamp, A in current clamp).
+    start: first sample at the new level; stop: first sample back at holding (the trace's
+    length when ``to_end``); amplitude: step size in SI (V in voltage clamp, A in current
+    clamp); to_end: the step lasts to the end of the trace (its return was not recorded).
     """
     start: int
     stop: int
     amplitude: float
+    to_end: bool = False
 
 
 @dataclass(frozen=True)
@@ -55,7 +76,11 @@ class WholeCell:
     tau (s); holding: pre-step mean current (A); i_ss: steady-state current change from holding
     (A); charge: transient charge Q = ∫(I - I_ss)dt (C); fit_start_s: start of the tail fit
     after onset; head: 'sampled' (charge integrated from the samples, filtered data) or
-    'fitted' (the fitted exponential's integral from onset: sharp onset or pipette charge).
+    'fitted' (the fitted exponential's integral from onset: sharp onset or pipette charge) or
+    'components' (two or three components fitted through the filter). access_se: standard
+    error of the access resistance (Ω); peak_bound: dV / peak transient (Ω), the upper bound
+    access passed; components: (τ s, onset amplitude A) per component, fastest first; method:
+    'charge' (one component) or 'components'.
     """
     access_resistance: float
     membrane_resistance: float
@@ -67,12 +92,17 @@ class WholeCell:
     charge: float
     fit_start_s: float
     head: str
+    access_se: float = math.nan
+    peak_bound: float = math.nan
+    components: tuple[tuple[float, float], ...] = ()
+    method: str = "charge"
 
 
 @dataclass(frozen=True)
 class Rejected:
     """Why a sweep gave no whole-cell estimate: a stable code and one sentence."""
-    code: str      # 'bad_step' | 'too_short' | 'not_finite' | 'clipped' | 'no_transient' | 'bad_fit'
+    code: str      # 'bad_step' | 'too_short' | 'not_finite' | 'clipped' | 'no_transient' |
+    #               'bad_fit' | 'not_separable' | 'above_bound'
     reason: str
 
 
@@ -103,6 +133,24 @@ def _noise_sd(x: np.ndarray) -> float:
         return 0.0
     d = np.diff(x)
     return float(1.4826 * np.median(np.abs(d - np.median(d))) / math.sqrt(2.0))
+
+
+def _noise_correlation(x: np.ndarray, max_lag: int = 20) -> float:
+    """Correlation factor of a baseline's noise, 1 + 2·Σ_k (1 - k/K)·ρ_k (Bartlett-weighted
+    sample autocorrelation up to lag K): the factor by which correlated (filtered) noise
+    inflates the variance of averages over it, 1 for white noise (common practice)."""
+    x = np.asarray(x, dtype=float)
+    n = len(x)
+    if n < 16:
+        return 1.0
+    d = x - np.mean(x)
+    v = float(d @ d) / n
+    if v <= 0:
+        return 1.0
+    k_max = min(max_lag, n // 4)
+    rho = np.array([float(d[:-k] @ d[k:]) / (n * v) for k in range(1, k_max + 1)])
+    w = 1.0 - np.arange(1, k_max + 1) / (k_max + 1)
+    return float(max(1.0, 1.0 + 2.0 * np.sum(w * rho)))
 
 
 def _window_mean_se(x: np.ndarray, blocks: int = 10) -> tuple[float, float]:
@@ -187,7 +235,8 @@ def _fit_exp(t: np.ndarray, y: np.ndarray, tau0: float, tau_lo: float, tau_hi: f
 # step detection
 # ---------------------------------------------------------------------------------------------
 
-def find_step(command: np.ndarray, fs: float, *, min_length_s: float = 1e-3) -> StepWindow | None:
+def find_step(command: np.ndarray, fs: float, *, min_length_s: float = 1e-3,
+              open_max: float | None = None) -> StepWindow | None:
     """The first clean rectangular step away from the holding level in a command trace.
 
     Parameters
@@ -195,12 +244,16 @@ def find_step(command: np.ndarray, fs: float, *, min_length_s: float = 1e-3) -> 
     command : recorded or reconstructed command (V in voltage clamp, A in current clamp).
     fs : sample rate (Hz).
     min_length_s : shortest step accepted (s).
+    open_max : largest |amplitude| (SI) of a step that is still at its level when the trace
+        ends (a test step whose return was not recorded); None: such a level change is not a
+        pulse. A larger change is a new holding level.
 
     Returns
     -------
     StepWindow with ``start`` the first sample past half-way to the new level, ``stop`` the first
-    sample back past half-way, and ``amplitude`` = median(level) - holding; None when the trace
-    holds no such step (flat, noise only, ramps, a level change that never returns).
+    sample back past half-way (the trace's end, with ``to_end``), and ``amplitude`` =
+    median(level) - holding; None when the trace holds no such step (flat, noise only, ramps, a
+    level change that never returns, unless within ``open_max``).
 
     Notes
     -----
@@ -235,9 +288,10 @@ def find_step(command: np.ndarray, fs: float, *, min_length_s: float = 1e-3) -> 
         on = (x - half) * np.sign(amp) > 0
         start = first + int(np.argmax(on[first:]))
         back = np.nonzero(~on[start:])[0]
-        if len(back) == 0:
+        to_end = len(back) == 0
+        if to_end and open_max is None:
             return None                      # a level change that never returns: not a pulse
-        stop = start + int(back[0])
+        stop = n if to_end else start + int(back[0])
         length = stop - start
         ok = length >= min_len
         if ok:
@@ -245,7 +299,8 @@ def find_step(command: np.ndarray, fs: float, *, min_length_s: float = 1e-3) -> 
             amp = level - hold
             tol = max(5.0 * sd, 0.02 * abs(amp), 1e-12 * scale)
             edge = max(3, int(0.02 * length))
-            inner = x[start + edge:stop - edge] if length > 2 * edge else x[start:stop]
+            tail = 0 if to_end else edge
+            inner = x[start + edge:stop - tail] if length > 2 * edge else x[start:stop]
             ok = (len(inner) > 0 and np.all(np.abs(inner - level) <= tol)
                   and np.abs(x[start:stop] - level).mean() <= tol)
             # it must settle back at holding after the step
@@ -255,8 +310,12 @@ def find_step(command: np.ndarray, fs: float, *, min_length_s: float = 1e-3) -> 
             pre = x[max(0, first - min_len):first]
             if ok and len(pre):
                 ok = bool(np.all(np.abs(pre - hold) <= max(tol, thresh)))
+            if ok and to_end:
+                ok = abs(amp) <= open_max
         if ok:
-            return StepWindow(int(start), int(stop), float(amp))
+            return StepWindow(int(start), int(stop), float(amp), to_end)
+        if to_end:
+            return None
         i = max(stop, first + 1)
     return None
 
@@ -265,9 +324,101 @@ def find_step(command: np.ndarray, fs: float, *, min_length_s: float = 1e-3) -> 
 # voltage clamp
 # ---------------------------------------------------------------------------------------------
 
+@dataclass(frozen=True)
+class StepResponse:
+    """One voltage step's current relative to the pre-step holding mean, checked (SI units).
+
+    y: current - holding from `transient.LEAD` samples before the step's first sample to its
+    end; amplitude: dV (V); holding: pre-step mean (A); noise: robust white-noise SD of the
+    baseline (A); fs (Hz); sweeps: how many sweeps were averaged into it; noise_corr: the
+    baseline noise's correlation factor (`_noise_correlation`).
+    """
+    y: np.ndarray
+    fs: float
+    amplitude: float
+    holding: float
+    noise: float
+    sweeps: int = 1
+    noise_corr: float = 1.0
+
+
+def step_response(current: np.ndarray, fs: float, step: StepWindow, *,
+                  rails: tuple[float, float] | None = None) -> StepResponse | Rejected:
+    """The step's current relative to holding, or why the sweep cannot be used.
+
+    Rejected codes: 'bad_step', 'too_short' (fewer than 3 pre-step samples or 20 step
+    samples), 'not_finite', 'clipped' (a sample at a converter rail, or a flat top of >= 3
+    equal extreme samples).
+    """
+    x = np.asarray(current, dtype=float)
+    bad = _check_window(x, step)
+    if bad is not None:
+        return bad
+    pre = x[:step.start]
+    holding = float(np.mean(pre))
+    noise = _noise_sd(pre) if len(pre) >= 8 else _noise_sd(x[step.start:step.stop])
+    y = x[step.start - tr.LEAD:step.stop] - holding
+    n = step.stop - step.start
+    tail_ref = float(np.mean(y[-max(n // 5, 1):]))
+    if _clipped(y[tr.LEAD:], noise, tail_ref, rails, x[:step.stop]):
+        return Rejected("clipped", "the transient is clipped (flat top or converter rail)")
+    return StepResponse(y, float(fs), float(step.amplitude), holding, noise, 1,
+                        _noise_correlation(pre))
+
+
+def average_response(responses: Sequence[StepResponse]) -> StepResponse:
+    """Mean of equal steps (same length, amplitude and rate): noise falls by √N (METHODS §1.3)."""
+    if not responses:
+        raise ValueError("average_response needs at least one response")
+    lengths = {len(r.y) for r in responses}
+    if len(lengths) != 1:
+        raise ValueError(f"responses differ in length: {sorted(lengths)}")
+    k = sum(r.sweeps for r in responses)
+    y = np.sum([r.y * r.sweeps for r in responses], axis=0) / k
+    r0 = responses[0]
+    return StepResponse(y, r0.fs, r0.amplitude, float(np.mean([r.holding for r in responses])),
+                        r0.noise / math.sqrt(k), k,
+                        float(np.median([r.noise_corr for r in responses])))
+
+
+def resolvable_tau(fs: float, filter_hz: float | None) -> float:
+    """Shortest component time constant (s) told apart from the filter and the pipette charge.
+
+    One sample interval, and behind a low-pass its time constant 1/(2π·fc): a faster
+    component reaches the samples only as its charge, the same shape as an uncompensated
+    pipette-capacitance spike (METHODS §1.2), so its onset amplitude, and Ra with it, is not
+    determined.
+    """
+    lo = 1.0 / fs
+    if filter_hz:
+        lo = max(lo, 1.0 / (2 * math.pi * filter_hz))
+    return lo
+
+
+def _lowpass(filter_hz: float | None) -> tr.LowPass | None:
+    return tr.LowPass.bessel(filter_hz) if filter_hz else None
+
+
+def transient_model(resp: StepResponse, *, filter_hz: float | None = None) -> tr.Selection:
+    """Choose 1-3 exponential components for a step response (best on an average of sweeps).
+
+    The sum of exponentials convolved with the 4-pole Bessel low-pass at ``filter_hz``
+    (unfiltered when None) is fitted from the onset; a further component is taken only when
+    it passes an F-test and is physical (`transient.select_components`). Pass the chosen
+    ``Selection.fit`` as ``model`` to `whole_cell_of` for each sweep.
+    """
+    s = float(np.sign(resp.amplitude))
+    peak = float(np.max(resp.y * s))
+    return tr.select_components(resp.y, resp.fs, _lowpass(filter_hz), s,
+                                tau_lo=resolvable_tau(resp.fs, filter_hz),
+                                noise_floor=max(resp.noise, 1e-4 * abs(peak)),
+                                noise_corr=resp.noise_corr)
+
+
 def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
                    filter_hz: float | None = None,
-                   rails: tuple[float, float] | None = None) -> WholeCell | Rejected:
+                   rails: tuple[float, float] | None = None,
+                   model: tr.ExpFit | None = None) -> WholeCell | Rejected:
     """Whole-cell estimates from one voltage-clamp step, or why there are none.
 
     Parameters
@@ -277,14 +428,187 @@ def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
     step : the test step (amplitude dV in V).
     filter_hz : -3 dB corner of the amplifier's low-pass (4-pole Bessel assumed), or None.
     rails : converter limits in A; any sample at a rail rejects the sweep as clipped.
+    model : the component model chosen on the average of the file's sweeps
+        (`transient_model`); None chooses one for this sweep alone.
 
     Returns
     -------
-    WholeCell, or Rejected(code, reason) when the sweep shows no membrane transient (the caller
-    then uses `seal_resistance`), is too short, clipped or not finite.
+    WholeCell, or Rejected(code, reason); see `whole_cell_of`.
+    """
+    r = step_response(current, fs, step, rails=rails)
+    if isinstance(r, Rejected):
+        return r
+    return whole_cell_of(r, filter_hz=filter_hz, model=model)
+
+
+def whole_cell_of(resp: StepResponse, *, filter_hz: float | None = None,
+                  model: tr.ExpFit | None = None) -> WholeCell | Rejected:
+    """Whole-cell access, membrane resistance, capacitance and τ of one step response.
+
+    Parameters
+    ----------
+    resp : from `step_response` (one sweep) or `average_response`.
+    filter_hz : -3 dB corner of the amplifier's low-pass (4-pole Bessel assumed), or None.
+    model : components chosen on an average (`transient_model`); None chooses here.
+
+    Returns
+    -------
+    WholeCell, or Rejected(code, reason): 'too_short', 'no_transient' (no membrane transient:
+    the caller then uses `seal_resistance`), 'bad_fit' (the fit does not converge or is not a
+    passive cell), 'not_separable' (the fastest component is not told apart from the filter),
+    'above_bound' (the estimate exceeds dV / peak transient).
 
     Notes
     -----
+    Any passive cell (one compartment, or soma plus dendrites) answers a step dV with
+    I(t) = I_ss + Σ A_i·exp(-t/τ_i); at the onset every capacitor still holds its old voltage,
+    so I(0⁺) = dV/Ra exactly and **Ra = dV/(I_ss + Σ A_i)** for any number of compartments
+    (METHODS §1.5 [D]). The sum, convolved with the known low-pass, is fitted from the onset
+    with 1 to 3 components (`transient.select_components`: F-test, components of the step's
+    sign, time constants above `resolvable_tau`); each A_i is the amplitude at the onset, i.e.
+    the fitted tail divided by H(-1/τ_i) (METHODS §1.2). Rt = dV/I_ss (steady state), Rm = Rt - Ra.
+
+    **Capacitance** is Cm = (Q/dV)·(Rt/Rm)² from the total transient charge
+    Q = ∫(I - I_ss)dt = Σ A_i·τ_i (METHODS §1.1 charge estimator): exact for one compartment;
+    with dendrites it is the whole cell's capacitance weighted by how far each part's voltage
+    follows the step (Taylor 2012), so it lies between the soma's and the whole cell's
+    capacitance. It is taken because the charge is what the filter and the sampling phase
+    leave intact (unity DC gain) and because the fast component alone (the soma) depends on
+    how well the components separate. ``tau`` is the charge-weighted time constant Q/ΣA_i
+    (the single τ of one compartment), so Ra = dV/(I_ss + Q/τ) holds in both cases.
+
+    With one component the estimate is the one-exponential charge method (`_one_exponential`,
+    METHODS §1.1-1.2), which also handles an uncompensated pipette capacitance and
+    unfiltered, coarsely sampled data. Every estimate must pass physical sanity: access at
+    most dV / (peak transient - 2 noise SD) after the holding baseline and the pipette spike
+    (a unity-gain low-pass only lowers the peak, METHODS §1.5), its standard error at most
+    20 % (else the fastest component is not separable from the filter), Ra and Rm positive,
+    Cm positive and finite, Ra at most `MAX_ACCESS_OHM`.
+    """
+    fs = resp.fs
+    dv = resp.amplitude
+    s = float(np.sign(dv))
+    y = resp.y[tr.LEAD:]
+    n = len(y)
+    dt = 1.0 / fs
+    noise = resp.noise
+    tail_ref = float(np.mean(y[-max(n // 5, 1):]))
+    t_d = BESSEL4_DELAY / filter_hz if filter_hz else 0.0
+    early = y[:max(3, min(n, int(math.ceil(4 * t_d * fs)) + 3))] * s
+    k_peak = int(np.argmax(early))
+    k0 = max(k_peak, int(math.ceil(3 * t_d * fs)))
+    if n - k0 < _MIN_FIT_SAMPLES:
+        return Rejected("too_short", f"{n - k0} samples after the transient peak, need"
+                                     f" {_MIN_FIT_SAMPLES}")
+    amp_peak = early[k_peak] - tail_ref * s
+    if amp_peak <= max(4.0 * noise, 0.05 * abs(tail_ref)):
+        return Rejected("no_transient", "no membrane transient above the noise")
+    sharp = bool(early[0] >= 0.8 * early[k_peak])
+    lp = _lowpass(filter_hz)
+    tau_lo = resolvable_tau(fs, filter_hz)
+    refused: tuple[str, ...] = ()
+    fast_fit = None
+    if model is None:
+        sel = transient_model(resp, filter_hz=filter_hz)
+        fit, refused, fast_fit = sel.fit, sel.refused, sel.fast_fit
+        if sel.fast_charge * s > PIPETTE_MAX_F * abs(dv):
+            corner = f"the {filter_hz:g} Hz filter" if filter_hz else "the sampling"
+            return Rejected("not_separable",
+                            f"a fast component ({sel.fast_charge / dv * 1e12:.3g} pF of "
+                            f"charge, faster than {corner} resolves, "
+                            f"{resolvable_tau(fs, filter_hz) * 1e6:.3g} us) is too large for "
+                            f"pipette capacitance: access is not determined")
+    else:
+        fit = tr.fit_components(resp.y, fs, lp, model.n, taus0=model.taus, onset0=model.onset,
+                                tau_lo=tau_lo, noise_corr=resp.noise_corr)
+        why = "the fit failed" if fit is None else tr.refusal(fit, s, tau_lo, n * dt / 2)
+        if why is not None:
+            if model.n > 1:
+                return Rejected("bad_fit", f"{model.n}-component fit of this sweep: {why}")
+            fit = None
+        fast_fit = fit
+    if fit is not None and fit.n > 1:
+        w = _from_components(resp, fit)
+        if isinstance(w, Rejected):
+            return w
+    else:
+        w = _one_exponential(resp, filter_hz, k0, sharp)
+        if isinstance(w, Rejected):
+            return w
+        if fit is not None and fit.onset_current * s > 0:
+            rel = fit.onset_current_se / abs(fit.onset_current)
+            w = replace(w, access_se=w.access_resistance * rel)
+    return _sanity(w, resp, fast_fit, lp, filter_hz, refused)
+
+
+def _from_components(resp: StepResponse, fit: tr.ExpFit) -> WholeCell | Rejected:
+    """Ra, Rm, Cm, τ from a fit of two or three components (see `whole_cell_of`)."""
+    dv = resp.amplitude
+    i0 = fit.onset_current
+    if not (i0 * dv > 0 and fit.i_ss * dv > 0):
+        return Rejected("bad_fit", "onset or steady-state current has the opposite sign of "
+                                   "the step")
+    ra = dv / i0
+    rt = dv / fit.i_ss
+    rm = rt - ra
+    q = fit.charge
+    amps = float(np.sum(fit.amps))
+    tau = q / amps if amps else math.nan
+    cm = (q / dv) * (rt / rm) ** 2 if rm else math.nan
+    return WholeCell(access_resistance=float(ra), membrane_resistance=float(rm),
+                     membrane_capacitance=float(cm), tau=float(tau), total_resistance=float(rt),
+                     holding=resp.holding, i_ss=float(fit.i_ss), charge=float(q),
+                     fit_start_s=0.0, head="components",
+                     access_se=float(abs(ra) * fit.onset_current_se / abs(i0)),
+                     components=tuple(zip(fit.taus, fit.amps)), method="components")
+
+
+def _sanity(w: WholeCell, resp: StepResponse, fast_fit: tr.ExpFit | None,
+            lp: tr.LowPass | None, filter_hz: float | None,
+            refused: tuple[str, ...]) -> WholeCell | Rejected:
+    """Physical bounds on an estimate (see `whole_cell_of`), with the bound stored."""
+    dv = resp.amplitude
+    s = float(np.sign(dv))
+    ra, rm, cm = w.access_resistance, w.membrane_resistance, w.membrane_capacitance
+    if not (ra > 0 and rm > 0):
+        return Rejected("bad_fit", f"implausible resistances Ra {ra:.3g}, Rm {rm:.3g} ohm")
+    if not (math.isfinite(cm) and cm > 0):
+        return Rejected("bad_fit", f"capacitance {cm:.3g} F is not positive and finite")
+    y = resp.y[tr.LEAD:] * s
+    if fast_fit is not None and (fast_fit.q_p * s > 0 or fast_fit.taus[0] <=
+                                 1.01 * resolvable_tau(resp.fs, filter_hz)):
+        # the pipette charge (and what else is faster than the data resolve) as fitted: the
+        # membrane's peak is what remains
+        y = y - tr.fast_part(fast_fit, resp.fs, lp, len(resp.y),
+                             resolvable_tau(resp.fs, filter_hz))[tr.LEAD:] * s
+    elif lp is None or fast_fit is None or not fast_fit.q_p:
+        # no filter to carry it: a pipette spike faster than a sample is below e^-3 of its
+        # size three samples after the onset
+        y = y[3:]
+    peak = float(np.max(y)) - 2.0 * resp.noise
+    bound = abs(dv) / peak if peak > 0 else math.inf
+    w = replace(w, peak_bound=float(bound))
+    corner = f"the {filter_hz:g} Hz filter" if filter_hz else "the sampling"
+    if w.access_se > MAX_ACCESS_REL_SE * ra:
+        return Rejected("not_separable", f"the fastest component is not separable from "
+                                         f"{corner} (access {ra / 1e6:.3g} +- "
+                                         f"{w.access_se / 1e6:.2g} MOhm)")
+    if ra > bound:
+        more = f"; larger models: {'; '.join(refused)}" if refused else ""
+        return Rejected("above_bound", f"access {ra / 1e6:.3g} MOhm is above dV / peak "
+                                       f"transient {bound / 1e6:.3g} MOhm: the fastest "
+                                       f"component is not resolved behind {corner}{more}")
+    if ra > MAX_ACCESS_OHM:
+        return Rejected("no_transient", f"slow component implies access {ra / 1e6:.0f} MOhm,"
+                                        " beyond whole-cell values: a seal with pipette"
+                                        " capacitance")
+    return w
+
+
+def _one_exponential(resp: StepResponse, filter_hz: float | None, k0: int,
+                     sharp: bool) -> WholeCell | Rejected:
+    """The one-compartment charge method: tail fit, transient charge, Ra = dV/(I_ss + Q/τ).
+
     Circuit Ra + (Rm ∥ Cm) (METHODS §1.1; time-domain method, Lindau & Neher 1988). The tail
     I_ss + A·exp(-t/τ) is fitted from max(3·t_d, peak), t_d = 0.3364/fc (METHODS §1.2); the fit
     start moves on by τ/2 while τ is still changing (a fast pipette-capacitance component).
@@ -299,43 +623,23 @@ def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
       data; on unfiltered, coarsely sampled data this Riemann sum is biased (METHODS §1.2
       caution), hence
     - 'fitted': the fitted exponential's analytic integral from onset + t_d, with the onset
-      half a sample before ``step.start`` (the true sampling phase is unknown: the error is at
-      most a factor exp(±1/(2·fs·τ)) on Ra and Cm), when the onset is sharp (first sample at
-      the new level ≥ 80% of the early peak: no filter at this rate), or when the sampled
-      charge exceeds the fitted one by more than max(5%, 1.5·(exp(1/(2·fs·τ)) - 1)): extra
-      charge from an uncompensated pipette capacitance hidden in the filtered rise.
-
-    A slow component implying Ra > `MAX_ACCESS_OHM` is not taken for a membrane (seal with
-    pipette-wall capacitance).
+      half a sample before the step's first sample (the true sampling phase is unknown: the
+      error is at most a factor exp(±1/(2·fs·τ)) on Ra and Cm), when the onset is sharp
+      (first sample at the new level ≥ 80% of the early peak: no filter at this rate), or when
+      the sampled charge exceeds the fitted one by more than max(5%, 1.5·(exp(1/(2·fs·τ)) - 1)):
+      extra charge from an uncompensated pipette capacitance hidden in the filtered rise.
     """
-    x = np.asarray(current, dtype=float)
-    bad = _check_window(x, step)
-    if bad is not None:
-        return bad
-    dv = float(step.amplitude)
+    fs = resp.fs
+    dv = resp.amplitude
     s = np.sign(dv)
-    pre = x[:step.start]
-    holding = float(np.mean(pre))
-    noise = _noise_sd(pre) if len(pre) >= 8 else _noise_sd(x[step.start:step.stop])
-    y = x[step.start:step.stop] - holding
+    y = resp.y[tr.LEAD:]
     n = len(y)
     dt = 1.0 / fs
+    noise = resp.noise
     tail_ref = float(np.mean(y[-max(n // 5, 1):]))
-    if _clipped(y, noise, tail_ref, rails, x[:step.stop]):
-        return Rejected("clipped", "the transient is clipped (flat top or converter rail)")
     t_d = BESSEL4_DELAY / filter_hz if filter_hz else 0.0
     # sample k of the step is at (k + 0.5)·dt after onset (mid-interval sampling phase)
     t = (np.arange(n) + 0.5) * dt
-    early = y[:max(3, min(n, int(math.ceil(4 * t_d * fs)) + 3))] * s
-    k_peak = int(np.argmax(early))
-    sharp = early[0] >= 0.8 * early[k_peak]
-    k0 = max(k_peak, int(math.ceil(3 * t_d * fs)))
-    if n - k0 < _MIN_FIT_SAMPLES:
-        return Rejected("too_short", f"{n - k0} samples after the transient peak, need"
-                                     f" {_MIN_FIT_SAMPLES}")
-    amp_peak = early[k_peak] - tail_ref * s
-    if amp_peak <= max(4.0 * noise, 0.05 * abs(tail_ref)):
-        return Rejected("no_transient", "no membrane transient above the noise")
     # first guess of τ: time for the excess over steady state to fall by 1/e
     excess = (y[k0:] - tail_ref) * s
     below = np.nonzero(excess <= excess[0] / math.e)[0]
@@ -374,14 +678,14 @@ def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
     q_fitted = a * tau * math.exp(-t_d / tau)
     # sampled head: ∫ of the filtered current from before onset, minus I_ss from onset + t_d
     # (the filter delays the steady-state part by its DC group delay, METHODS §1.2)
-    ys = np.concatenate(([x[step.start - 1] - holding], y[:k_fit + 1]))
+    ys = resp.y[tr.LEAD - 1:tr.LEAD + k_fit + 1]
     q_sampled = (float(np.sum((ys[1:] + ys[:-1]) * 0.5) * dt) - i_ss * (t[k_fit] - t_d)
                  + a_at_fit * tau)
     # Sampled charge beyond the fitted one by more than the sampling-phase uncertainty is a
     # fast component (uncompensated pipette capacitance adds Cp·dV, METHODS §1.2 caution).
     phase_tol = max(0.05, 1.5 * math.expm1(0.5 * dt / tau))
-    excess = (q_sampled - q_fitted) / q_fitted if q_fitted * s > 0 else 0.0
-    if sharp or excess > phase_tol:
+    extra = (q_sampled - q_fitted) / q_fitted if q_fitted * s > 0 else 0.0
+    if sharp or extra > phase_tol:
         head, q = "fitted", q_fitted
     else:
         head, q = "sampled", q_sampled
@@ -392,15 +696,12 @@ def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
     rm = rt - ra
     if not (ra > 0 and rm > 0):
         return Rejected("bad_fit", f"implausible resistances Ra {ra:.3g}, Rm {rm:.3g} ohm")
-    if ra > MAX_ACCESS_OHM:
-        return Rejected("no_transient", f"slow component implies access {ra / 1e6:.0f} MOhm,"
-                                        " beyond whole-cell values: a seal with pipette"
-                                        " capacitance")
     cm = (q / dv) * (rt / rm) ** 2
     return WholeCell(access_resistance=float(ra), membrane_resistance=float(rm),
                      membrane_capacitance=float(cm), tau=float(tau), total_resistance=float(rt),
-                     holding=holding, i_ss=float(i_ss), charge=float(q),
-                     fit_start_s=float(t[k_fit]), head=head)
+                     holding=resp.holding, i_ss=float(i_ss), charge=float(q),
+                     fit_start_s=float(t[k_fit]), head=head,
+                     components=((float(tau), float(q / tau)),))
 
 
 def whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
@@ -408,7 +709,7 @@ def whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
                rails: tuple[float, float] | None = None) -> WholeCell | None:
     """Whole-cell estimates (Ra, Rm, Cm, τ, Rt, holding, I_ss, Q) or None; see `try_whole_cell`.
 
-    Units SI (Ω, F, s, A, C). Source: METHODS §1.1–1.2 charge method with fitted τ.
+    Units SI (Ω, F, s, A, C). Source: METHODS §1.1, §1.2 and §1.5.
     Use `try_whole_cell` for the reason when this returns None.
     """
     r = try_whole_cell(current, fs, step, filter_hz=filter_hz, rails=rails)
@@ -618,3 +919,54 @@ def access_change_pct(first_values: Sequence[float], last_values: Sequence[float
     if not m0 > 0:
         raise ValueError(f"first access resistance median {m0!r} is not positive")
     return 100.0 * (float(np.median(b)) - m0) / m0
+
+
+def _group_centre(values: np.ndarray, errors: np.ndarray) -> tuple[float, float]:
+    """Centre of a group of sweeps and its standard error.
+
+    With every standard error known, the median weighted by 1/se² (an uncertain sweep counts
+    less, a single outlier cannot move it); else the plain median. Its error is the larger
+    of what the stated errors give (1.2533·(Σ 1/se²)^-1/2, the median's efficiency for
+    normal values) and what the group's scatter gives (common practice).
+    """
+    k = len(values)
+    ok = np.isfinite(errors) & (errors > 0)
+    if ok.all():
+        w = 1.0 / errors ** 2
+        order = np.argsort(values)
+        cum = np.cumsum(w[order])
+        m = float(values[order][int(np.searchsorted(cum, 0.5 * cum[-1]))])
+        se_own = 1.2533 / math.sqrt(float(np.sum(w)))
+    else:
+        m = float(np.median(values))
+        se_own = math.nan
+    se_scatter = 1.2533 * float(np.std(values, ddof=1)) / math.sqrt(k) if k > 1 else math.nan
+    both = [v for v in (se_own, se_scatter) if math.isfinite(v)]
+    return m, (max(both) if both else math.nan)
+
+
+def access_change(first_values: Sequence[float], last_values: Sequence[float],
+                  first_se: Sequence[float] | None = None,
+                  last_se: Sequence[float] | None = None) -> tuple[float, float]:
+    """Change of access from the first sweeps to the last (%), with its standard error (%).
+
+    Each group's value is its median weighted by the sweeps' own standard errors
+    (`_group_centre`: robust to one bad sweep); the ratio's error by the delta method. NaNs
+    are ignored. METHODS §2: reject a cell when Ra changes by more than 20-25% (common
+    practice). Raises ValueError as `access_change_pct` does.
+    """
+    a = np.asarray(first_values, dtype=float)
+    b = np.asarray(last_values, dtype=float)
+    ea = np.full(len(a), np.nan) if first_se is None else np.asarray(first_se, dtype=float)
+    eb = np.full(len(b), np.nan) if last_se is None else np.asarray(last_se, dtype=float)
+    ka, kb = np.isfinite(a), np.isfinite(b)
+    a, ea, b, eb = a[ka], ea[ka], b[kb], eb[kb]
+    if len(a) == 0 or len(b) == 0:
+        raise ValueError("access_change_pct needs finite values in both groups")
+    m0, s0 = _group_centre(a, ea)
+    m1, s1 = _group_centre(b, eb)
+    if not m0 > 0:
+        raise ValueError(f"first access resistance median {m0!r} is not positive")
+    pct = 100.0 * (m1 - m0) / m0
+    se = 100.0 * (m1 / m0) * math.hypot(s0 / m0, s1 / m1) if m1 > 0 else math.nan
+    return pct, se
