@@ -58,6 +58,9 @@ def build_parser() -> argparse.ArgumentParser:
                         "or pA (current clamp), START and LENGTH in ms from the sweep start")
     p.add_argument("--mains", type=float, choices=(50.0, 60.0), metavar="HZ",
                    help="mains frequency of the building (50 or 60); default: found from data")
+    p.add_argument("--mode", choices=("voltage_clamp", "current_clamp", "extracellular"),
+                   help="recording mode when the headers cannot tell (no command channel); "
+                        "default: from the headers")
     p.add_argument("--workers", type=int, default=1, metavar="N",
                    help="measure N files in parallel processes (default 1)")
     p.add_argument("--store", action="store_true",
@@ -190,8 +193,8 @@ def _scan_files(paths: list[Path]) -> list[Path]:
 def _scan_one(job: tuple) -> object:
     """Measure one file (runs in a worker process with --workers)."""
     from qcd.analyze import analyze_path
-    path, pulse, mains_hz = job
-    return analyze_path(path, pulse=pulse, mains_hz=mains_hz, digest=False)
+    path, pulse, mains_hz, mode = job
+    return analyze_path(path, pulse=pulse, mains_hz=mains_hz, mode=mode, digest=False)
 
 
 _SCAN_MODES = {"voltage_clamp": "VC", "current_clamp": "CC", "extracellular": "EXT",
@@ -249,12 +252,13 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         if rig is None:
             known = ", ".join(r.name for r in cfg.rigs) or "none"
             raise ConfigError(cfg.path, "rig", f"no rig named {args.rig!r} (rigs: {known})")
-        if args.pulse or args.mains:
+        if args.pulse or args.mains or args.mode:
             from dataclasses import replace as _replace
 
             from qcd.config import parse_pulse
             rig = _replace(rig, test_pulse=parse_pulse(args.pulse) if args.pulse else
-                           rig.test_pulse, mains_hz=args.mains or rig.mains_hz)
+                           rig.test_pulse, mains_hz=args.mains or rig.mains_hz,
+                           mode=args.mode or rig.mode)
         rules = load_rules(cfg.rules)
         sender = None
         if cfg.notify or cfg.notify_config is not None:
@@ -292,7 +296,7 @@ def _cmd_scan(args: argparse.Namespace) -> int:
     if args.workers < 1:
         raise ConfigError(None, "workers", f"needs at least 1, got {args.workers}")
     files = _scan_files(list(args.paths))
-    jobs = [(f, pulse, args.mains) for f in files]
+    jobs = [(f, pulse, args.mains, args.mode) for f in files]
     progress = sys.stderr.isatty() and len(files) > 1
     if not args.json:
         print(f"{'file':<22} {'mode':<4}{'noise_rms':>10} {'rms_1k':>10} {'hum@line_hz':>15} "

@@ -22,6 +22,7 @@ else:  # pragma: no cover - Python 3.10
     import tomli as _toml
 
 __all__ = ["TestPulse", "RigConfig", "Config", "load_config", "parse_pulse", "find_config",
+           "DECLARED_MODES",
            "read_toml", "redact", "redact_text", "default_rules_path", "starter_config",
            "CONFIG_NAME", "parse_duration"]
 
@@ -53,6 +54,7 @@ class RigConfig:
     polling: bool = False
     test_pulse: TestPulse | None = None
     mains_hz: float | None = None        # 50 or 60 when the lab knows it; else found from data
+    mode: str | None = None              # DECLARED_MODES, for headers that cannot tell
 
 
 @dataclass(frozen=True)
@@ -149,7 +151,9 @@ def find_config(explicit: Path | str | None = None, *, cwd: Path | None = None,
 
 _TOP_KEYS = ("database", "rules", "notify", "notify_config", "settle_seconds", "give_up_hours",
              "rig")
-_RIG_KEYS = ("name", "folders", "patterns", "polling", "test_pulse", "mains_hz")
+_RIG_KEYS = ("name", "folders", "patterns", "polling", "test_pulse", "mains_hz", "mode")
+# Recording modes a rig may declare (qcd.analyze.MODES without 'unknown').
+DECLARED_MODES = ("voltage_clamp", "current_clamp", "extracellular")
 _PULSE_KEYS = ("amplitude", "start_ms", "length_ms")
 _RIG_NAME = re.compile(r"[A-Za-z0-9_.-]+\Z")
 
@@ -279,8 +283,12 @@ def _rig(path: Path, base: Path, index: int, table: object) -> RigConfig:
         if isinstance(mains, bool) or mains not in (50, 60):
             raise r.fail("mains_hz", f"expected 50 or 60, got {mains!r}")
         mains = float(mains)
+    mode = table.get("mode")
+    if mode is not None and mode not in DECLARED_MODES:
+        raise r.fail("mode", f"expected one of {', '.join(DECLARED_MODES)}, got {mode!r}")
     return RigConfig(name=name, folders=tuple(_resolve(base, f) for f in folders),
-                     patterns=patterns, polling=polling, test_pulse=pulse, mains_hz=mains)
+                     patterns=patterns, polling=polling, test_pulse=pulse, mains_hz=mains,
+                     mode=mode)
 
 
 def load_config(path: Path | str) -> Config:
@@ -457,6 +465,9 @@ polling = false
 # test_pulse = "-5,10,20"
 # Mains frequency of the building, 50 or 60. Leave it out to find it from the data.
 # mains_hz = 50
+# Recording mode when the file headers cannot tell (no command channel): "voltage_clamp",
+# "current_clamp" or "extracellular". Leave it out to take it from the headers.
+# mode = "current_clamp"
 '''
 
 

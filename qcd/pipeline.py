@@ -119,7 +119,8 @@ def process(path: Any, rig: Any, store: Any, rules: Any, now: float, *, sender: 
     """Measure one file (rig's test pulse and mains frequency) and ``commit`` it."""
     try:
         fm = analyze_path(path, pulse=getattr(rig, "test_pulse", None),
-                          mains_hz=getattr(rig, "mains_hz", None))
+                          mains_hz=getattr(rig, "mains_hz", None),
+                          mode=getattr(rig, "mode", None))
     except RecordingError as e:              # analyze_path should return these; be safe
         fm = _error(path, e.kind, str(e))
     except Exception as e:

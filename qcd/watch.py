@@ -41,10 +41,10 @@ def default_workers() -> int:
 
 # ---------------------------------------------------------------- measuring
 
-def _measure(path: str, pulse: Any, mains_hz: float | None):
+def _measure(path: str, pulse: Any, mains_hz: float | None, mode: str | None = None):
     """Runs in a worker process: one file -> FileMeasures (never raises for a bad file)."""
     from qcd.analyze import analyze_path
-    return analyze_path(path, pulse=pulse, mains_hz=mains_hz)
+    return analyze_path(path, pulse=pulse, mains_hz=mains_hz, mode=mode)
 
 
 def _error_measures(path: Path, kind: str, reason: str, size: int = -1, mtime: float = -1.0):
@@ -370,7 +370,8 @@ class Service:
         if self._pool is None:
             self._pool = _new_pool(self.workers)
         rig = self._rigs[r.rig]
-        fut = self._pool.submit(_measure, os.fspath(r.path), rig.test_pulse, rig.mains_hz)
+        fut = self._pool.submit(_measure, os.fspath(r.path), rig.test_pulse, rig.mains_hz,
+                                rig.mode)
         self._jobs[fut] = _Job(r, now)
 
     def _collect(self, now: float) -> bool:
@@ -378,7 +379,7 @@ class Service:
             r = self._inline.pop(0)
             rig = self._rigs[r.rig]
             measure = self._measure_inline or (lambda p, rg: _measure(p, rg.test_pulse,
-                                                                      rg.mains_hz))
+                                                                      rg.mains_hz, rg.mode))
             self._finish(r, measure(os.fspath(r.path), rig), now)
             return True
         done = [f for f in self._jobs if f.done()]
@@ -420,7 +421,7 @@ class Service:
             self._pool = self._pool or _new_pool(self.workers)
             rig = self._rigs[job.ready.rig]
             fut = self._pool.submit(_measure, os.fspath(job.ready.path), rig.test_pulse,
-                                    rig.mains_hz)
+                                    rig.mains_hz, rig.mode)
             self._jobs[fut] = _Job(job.ready, now, job.crashes)
 
     def _finish(self, r: Ready, fm: Any, now: float) -> None:
