@@ -183,8 +183,8 @@ def _mode(rec: Any, dims: _Dims, notes: list[str], *, declared: str | None = Non
         if not cmd.enabled or k >= len(rec.channels):
             continue
         cdim, _ = units.channel_quantity(cmd.unit)
-        found = {("A", "V"): "voltage_clamp", ("V", "A"): "current_clamp"}.get((dims.dim[k],
-                                                                             cdim))
+        # current input with a voltage command: voltage clamp; the other way: current clamp
+        found = {"AV": "voltage_clamp", "VA": "current_clamp"}.get(dims.dim[k] + cdim)
         if found is not None:
             if declared and declared != found:
                 notes.append(f"the rig declares {declared}, but the header pairs input channel "
@@ -569,7 +569,7 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
     fc = _corner(t, t.fs, out, notes)
     cells: list[tuple[int, Any]] = []
     rejected = list(t.rejected)
-    model = avg_cell = None
+    model = avg_cell = groups = None
     if t.responses:
         # the component model is chosen once, on the average of the sweeps with the most
         # common step, and each sweep is fitted with it (same components, its own values)
@@ -577,6 +577,10 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
         common = key.most_common(1)[0][0]
         group = [r for _, r in t.responses if (len(r.y), r.amplitude) == common]
         avg = tp.average_response(group)
+        same = sorted((k, r) for k, r in t.responses if (len(r.y), r.amplitude) == common)
+        g = min(_TP_CHANGE_SWEEPS, len(same) // 2)
+        if g:
+            groups = ([r for _, r in same[:g]], [r for _, r in same[-g:]])
         sel = tp.transient_model(avg, filter_hz=fc)
         model = sel.fit
         avg_cell = tp.whole_cell_of(avg, filter_hz=fc, model=model)
@@ -584,22 +588,29 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
             w = tp.whole_cell_of(r, filter_hz=fc, model=model if (len(r.y), r.amplitude) ==
                                  common else None)
             (cells if isinstance(w, tp.WholeCell) else rejected).append((k, w))
+    if isinstance(avg_cell, tp.Rejected) and avg_cell.code in ("not_separable", "above_bound"):
+        # what the average of the sweeps cannot resolve, no single sweep can either
+        notes.append(f"no whole-cell values: {avg_cell.reason}")
+        return
     n_seen = len(cells) + len(rejected)
     if cells and len(cells) * 2 >= n_seen:
         cells.sort(key=lambda c: c[0])
         for name, dim in (("access_resistance", "Ohm"), ("membrane_resistance", "Ohm"),
                           ("membrane_capacitance", "F"), ("tau", "s")):
             _put(out, name, float(np.median([getattr(w, name) for _, w in cells])), dim)
-        _whole_cell_notes(cells, model, fc, notes)
-        _access_change(cells, out, notes)
+        _whole_cell_notes(cells, fc, notes)
+        if rejected:
+            notes.append(f"whole-cell values from {len(cells)} of {n_seen} sweeps "
+                         f"({_reason(rejected)})")
+        _access_change(cells, groups, fc, model, out, notes)
         return
     if isinstance(avg_cell, tp.WholeCell):
         for name, dim in (("access_resistance", "Ohm"), ("membrane_resistance", "Ohm"),
                           ("membrane_capacitance", "F"), ("tau", "s")):
             _put(out, name, getattr(avg_cell, name), dim)
-        notes.append(f"whole-cell values from the average of {avg_cell and len(t.responses)} "
-                     f"sweeps (single sweeps: {_reason(rejected)})")
-        _whole_cell_notes([(0, avg_cell)], model, fc, notes)
+        notes.append(f"whole-cell values from the average of {avg.sweeps} sweeps (single "
+                     f"sweeps: {_reason(rejected)})")
+        _whole_cell_notes([(0, avg_cell)], fc, notes)
         return
     reason = _reason(rejected) or (f"{avg_cell.reason}" if avg_cell is not None else "")
     if t.sum is None or not t.same_length:
@@ -613,7 +624,11 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
     elif kind == "seal":
         r = tp.seal_resistance(avg, t.fs, t.avg_step)
         se = tp.seal_resistance_se(avg, t.fs, t.avg_step)
-        if r > tp.SEAL_MAX_OHM:
+        resp = tp.step_response(avg, t.fs, t.avg_step, rails=t.rails)
+        why = None if isinstance(resp, tp.Rejected) else tp.builds_up(resp, filter_hz=fc)
+        if why is not None:
+            notes.append(f"no seal value: {why}")
+        elif r > tp.SEAL_MAX_OHM:
             notes.append(f"no seal value: the step's steady current (dV/dI {r / 1e9:.3g} GOhm) "
                          f"is beyond {tp.SEAL_MAX_OHM / 1e9:g} GOhm, where a step cannot tell an "
                          f"excellent seal from an open input with no cell or pipette")
@@ -631,15 +646,17 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
 
 
 def _reason(rejected: list[tuple[int, Any]]) -> str:
-    """The commonest reason among rejected sweeps, with its count."""
+    """How many sweeps gave no whole-cell value and the commonest reason."""
     if not rejected:
         return ""
     c = collections.Counter(r.reason for _, r in rejected)
     reason, k = c.most_common(1)[0]
-    return f"{k} of {len(rejected)} sweeps: {reason}"
+    n = len(rejected)
+    return (f"{n} sweep{'s' if n > 1 else ''} gave no value"
+            + (f", {k} of them because {reason}" if n > 1 else f": {reason}"))
 
 
-def _whole_cell_notes(cells: list[tuple[int, Any]], model: Any, fc: float | None,
+def _whole_cell_notes(cells: list[tuple[int, Any]], fc: float | None,
                       notes: list[str]) -> None:
     w = cells[len(cells) // 2][1]
     comps = ", ".join(f"{tau * 1e6:.0f} us" for tau, _ in w.components)
@@ -650,22 +667,36 @@ def _whole_cell_notes(cells: list[tuple[int, Any]], model: Any, fc: float | None
                  f"{w.peak_bound / 1e6:.3g} MOhm")
 
 
-def _access_change(cells: list[tuple[int, Any]], out: dict[str, Measure],
+def _access_change(cells: list[tuple[int, Any]], groups: tuple[list[Any], list[Any]] | None,
+                   fc: float | None, model: Any, out: dict[str, Measure],
                    notes: list[str]) -> None:
+    """access_change_pct: the first sweeps' access against the last sweeps', each group's
+    access fitted on the group's average (noise lower by √g than one sweep's) with the
+    file's component model, else combined from the per-sweep values by their errors."""
     if len(cells) < 2:
         return
     g = max(1, min(_TP_CHANGE_SWEEPS, len(cells) // 2))
-    ra = [w.access_resistance for _, w in cells]
-    se = [w.access_se for _, w in cells]
+    first = last = None
+    if groups is not None and groups[0] and groups[1]:
+        first = tp.whole_cell_of(tp.average_response(groups[0]), filter_hz=fc, model=model)
+        last = tp.whole_cell_of(tp.average_response(groups[1]), filter_hz=fc, model=model)
     try:
-        pct, pct_se = tp.access_change(ra[:g], ra[-g:], se[:g], se[-g:])
+        if isinstance(first, tp.WholeCell) and isinstance(last, tp.WholeCell):
+            g = len(groups[0])
+            pct, pct_se = tp.access_change([first.access_resistance], [last.access_resistance],
+                                           [first.access_se], [last.access_se])
+            how = "fitted on each group's average"
+        else:
+            ra = [w.access_resistance for _, w in cells]
+            se = [w.access_se for _, w in cells]
+            pct, pct_se = tp.access_change(ra[:g], ra[-g:], se[:g], se[-g:])
+            how = "from per-sweep access and its standard error"
     except ValueError as e:
         notes.append(f"access_change_pct: {e}")
         return
     _put(out, "access_change_pct", pct, "%")
     sweeps = f"first {g} vs last {g} sweeps" if g > 1 else "first vs last sweep"
-    notes.append(f"access_change_pct {pct:+.1f} % +- {pct_se:.1f} % ({sweeps}, from per-sweep "
-                 f"access and its standard error)")
+    notes.append(f"access_change_pct {pct:+.1f} % +- {pct_se:.1f} % ({sweeps}, {how})")
 
 
 def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,

@@ -22,7 +22,8 @@ __all__ = [
     "find_step", "step_response", "average_response", "resolvable_tau", "transient_model",
     "try_whole_cell", "whole_cell_of", "whole_cell", "peak_access_resistance", "seal_resistance",
     "seal_resistance_se",
-    "input_resistance", "classify", "average_steps", "access_change_pct", "access_change",
+    "input_resistance", "classify", "builds_up", "average_steps", "access_change_pct",
+    "access_change",
 ]
 
 # DC group delay of a 4-pole Bessel low-pass, times its -3 dB corner (METHODS §1.2 [D]).
@@ -34,11 +35,11 @@ OPEN_PIPETTE_MAX_OHM = 50e6
 # seal): whole-cell access is ~1.5-3x a 2-8 MΩ pipette (METHODS §2, common practice), and even
 # a resealing cell stays well below this.
 MAX_ACCESS_OHM = 100e6
-# Above this a step's steady current cannot tell an excellent seal from an open input (no
-# pipette, no cell): 10 GΩ is where METHODS §1.3 has ΔI reach the noise (-0.50 pA at -5 mV)
-# and the usual "excellent" seal (METHODS §2, ≥10 GΩ preferred); a higher dV/dI is no
-# measurement of a seal.
-SEAL_MAX_OHM = 10e9
+# No seal value above this: a 10 mV step drives 0.2 pA through 50 GΩ, the size of the
+# leakage and command crosstalk an amplifier input shows with nothing attached (common
+# practice, from memory), so a larger dV/dI says nothing about a seal; 10 GΩ is already an
+# excellent seal (METHODS §2) and METHODS §1.3 has ΔI reach the noise there.
+SEAL_MAX_OHM = 50e9
 # Charge faster than the data resolve is taken for uncompensated pipette capacitance (METHODS
 # §1.2 caution) up to this much per volt of step: pipette, holder and headstage input
 # together stay below about 10 pF before compensation (common practice, from memory). More
@@ -574,6 +575,10 @@ def _sanity(w: WholeCell, resp: StepResponse, fast_fit: tr.ExpFit | None,
         return Rejected("bad_fit", f"implausible resistances Ra {ra:.3g}, Rm {rm:.3g} ohm")
     if not (math.isfinite(cm) and cm > 0):
         return Rejected("bad_fit", f"capacitance {cm:.3g} F is not positive and finite")
+    if ra > MAX_ACCESS_OHM:
+        return Rejected("no_transient", f"slow component implies access {ra / 1e6:.0f} MOhm,"
+                                        " beyond whole-cell values: a seal with pipette"
+                                        " capacitance")
     y = resp.y[tr.LEAD:] * s
     if fast_fit is not None and (fast_fit.q_p * s > 0 or fast_fit.taus[0] <=
                                  1.01 * resolvable_tau(resp.fs, filter_hz)):
@@ -598,10 +603,6 @@ def _sanity(w: WholeCell, resp: StepResponse, fast_fit: tr.ExpFit | None,
         return Rejected("above_bound", f"access {ra / 1e6:.3g} MOhm is above dV / peak "
                                        f"transient {bound / 1e6:.3g} MOhm: the fastest "
                                        f"component is not resolved behind {corner}{more}")
-    if ra > MAX_ACCESS_OHM:
-        return Rejected("no_transient", f"slow component implies access {ra / 1e6:.0f} MOhm,"
-                                        " beyond whole-cell values: a seal with pipette"
-                                        " capacitance")
     return w
 
 
@@ -748,6 +749,31 @@ def seal_resistance(current: np.ndarray, fs: float, step: StepWindow) -> float:
     if di == 0.0 or np.sign(di) != np.sign(step.amplitude):
         return math.nan
     return float(step.amplitude / di)
+
+
+def builds_up(resp: StepResponse, *, filter_hz: float | None = None) -> str | None:
+    """Why a step's current is not the passive response of a seal, or None when it may be.
+
+    A seal with its pipette is a passive RC network: after a voltage step its current jumps
+    (within the filter's rise) and then only decays towards the steady state, every
+    component of the step's sign (Foster form of an RC driving-point admittance). A current
+    that instead builds up to its steady state over a time constant longer than the
+    filter's (one fitted component through the filter of the opposite sign, at least 20 % of
+    the steady current and 3 standard errors) is no seal: command crosstalk or an amplifier
+    input with nothing attached.
+    """
+    s = float(np.sign(resp.amplitude))
+    fit = tr.fit_components(resp.y, resp.fs, _lowpass(filter_hz), 1,
+                            tau_lo=resolvable_tau(resp.fs, filter_hz),
+                            noise_corr=resp.noise_corr)
+    if fit is None or not fit.amps_se:
+        return None
+    a, se = fit.amps[0] * s, fit.amps_se[0]
+    if a < 0 and -a > max(3 * se, 0.2 * abs(fit.i_ss)):
+        return (f"the current builds up to its steady state over {fit.taus[0] * 1e3:.2g} ms "
+                f"instead of jumping at the step: not a passive response (no seal; an input "
+                f"with nothing attached, or command crosstalk)")
+    return None
 
 
 def seal_resistance_se(current: np.ndarray, fs: float, step: StepWindow) -> float:
@@ -922,27 +948,24 @@ def access_change_pct(first_values: Sequence[float], last_values: Sequence[float
 
 
 def _group_centre(values: np.ndarray, errors: np.ndarray) -> tuple[float, float]:
-    """Centre of a group of sweeps and its standard error.
+    """Centre of a group of sweeps' values and its standard error.
 
-    With every standard error known, the median weighted by 1/se² (an uncertain sweep counts
-    less, a single outlier cannot move it); else the plain median. Its error is the larger
-    of what the stated errors give (1.2533·(Σ 1/se²)^-1/2, the median's efficiency for
-    normal values) and what the group's scatter gives (common practice).
+    With every standard error known, the inverse-variance weighted mean, its error
+    (Σ 1/se²)^-1/2 scaled up by the Birge ratio √(χ²/(k-1)) when the values scatter more
+    than their errors say; else the plain mean and SD/√k (common practice).
     """
     k = len(values)
     ok = np.isfinite(errors) & (errors > 0)
     if ok.all():
         w = 1.0 / errors ** 2
-        order = np.argsort(values)
-        cum = np.cumsum(w[order])
-        m = float(values[order][int(np.searchsorted(cum, 0.5 * cum[-1]))])
-        se_own = 1.2533 / math.sqrt(float(np.sum(w)))
-    else:
-        m = float(np.median(values))
-        se_own = math.nan
-    se_scatter = 1.2533 * float(np.std(values, ddof=1)) / math.sqrt(k) if k > 1 else math.nan
-    both = [v for v in (se_own, se_scatter) if math.isfinite(v)]
-    return m, (max(both) if both else math.nan)
+        m = float(np.sum(w * values) / np.sum(w))
+        se = 1.0 / math.sqrt(float(np.sum(w)))
+        if k > 1:
+            chi2 = float(np.sum(w * (values - m) ** 2))
+            se *= max(1.0, math.sqrt(chi2 / (k - 1)))
+        return m, se
+    m = float(np.mean(values))
+    return m, (float(np.std(values, ddof=1)) / math.sqrt(k) if k > 1 else math.nan)
 
 
 def access_change(first_values: Sequence[float], last_values: Sequence[float],
@@ -950,9 +973,8 @@ def access_change(first_values: Sequence[float], last_values: Sequence[float],
                   last_se: Sequence[float] | None = None) -> tuple[float, float]:
     """Change of access from the first sweeps to the last (%), with its standard error (%).
 
-    Each group's value is its median weighted by the sweeps' own standard errors
-    (`_group_centre`: robust to one bad sweep); the ratio's error by the delta method. NaNs
-    are ignored. METHODS §2: reject a cell when Ra changes by more than 20-25% (common
+    Each group's value is the mean weighted by the sweeps' own standard errors
+    (`_group_centre`); the ratio's error by the delta method. NaNs are ignored. METHODS §2: reject a cell when Ra changes by more than 20-25% (common
     practice). Raises ValueError as `access_change_pct` does.
     """
     a = np.asarray(first_values, dtype=float)

@@ -72,7 +72,8 @@ class ExpFit:
     taus (s, fastest first) and amps (onset amplitudes, sign of the data); i_ss the steady
     state; q_p the charge of a component faster than the filter (pipette capacitance), 0.0 when
     not fitted; onset in samples relative to the first sample at the new level; access_se the
-    standard error of I_ss + ΣA_i; sse and n_points of the (block-weighted) residual.
+    standard error of I_ss + ΣA_i; sse and n_points of the (block-weighted) residual;
+    amps_se the amplitudes' standard errors.
     """
     n: int
     taus: tuple[float, ...]
@@ -88,6 +89,7 @@ class ExpFit:
     charge: float                 # Σ A_i·τ_i (pipette charge excluded)
     charge_se: float
     converged: bool
+    amps_se: tuple[float, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -255,7 +257,9 @@ def _fit(pb: _Problem, taus0, onset0: float, *, free_onset: bool, q_p: bool,
                   onset_current=float((coef[0] + coef[1:n + 1].sum()) * s),
                   onset_current_se=math.sqrt(max(var_i0, 0.0)) * s,
                   charge=float(np.sum(amps * taus)), charge_se=math.sqrt(max(var_q, 0.0)) * s,
-                  converged=bool(res.success))
+                  converged=bool(res.success),
+                  amps_se=tuple(math.sqrt(max(float(cov[1 + i, 1 + i]), 0.0)) * s
+                                for i in order))
 
 
 def fast_part(fit: ExpFit, fs: float, lowpass: LowPass | None, n: int,
