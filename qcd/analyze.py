@@ -522,8 +522,9 @@ class _TestPulse:
 
 
 _TP_KEEP_SAMPLES = 4_000_000   # step samples kept for the per-sweep fits (32 MB)
-_TP_MAX_FITS = 36              # sweeps fitted one by one (the rest count in the average)
+_TP_MAX_FITS = 24              # sweeps fitted one by one (the rest count in the average)
 _TP_CHANGE_SWEEPS = 3          # access_change_pct: the first 3 sweeps against the last 3
+_AVERAGE_DECIDES = ("no_transient", "not_separable", "above_bound", "too_short")
 
 
 def _put(out: dict[str, Measure], name: str, value_si: float | None, dim: str) -> None:
@@ -584,10 +585,13 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
         sel = tp.transient_model(avg, filter_hz=fc)
         model = sel.fit
         avg_cell = tp.whole_cell_of(avg, filter_hz=fc, model=model)
-        for k, r in t.responses:
-            w = tp.whole_cell_of(r, filter_hz=fc, model=model if (len(r.y), r.amplitude) ==
-                                 common else None)
-            (cells if isinstance(w, tp.WholeCell) else rejected).append((k, w))
+        # a transient the average of the sweeps does not show (or cannot resolve), no single
+        # sweep shows either: no per-sweep fits then
+        if not (isinstance(avg_cell, tp.Rejected) and avg_cell.code in _AVERAGE_DECIDES):
+            for k, r in t.responses:
+                w = tp.whole_cell_of(r, filter_hz=fc, model=model if (len(r.y), r.amplitude)
+                                     == common else None)
+                (cells if isinstance(w, tp.WholeCell) else rejected).append((k, w))
     if isinstance(avg_cell, tp.Rejected) and avg_cell.code in ("not_separable", "above_bound"):
         # what the average of the sweeps cannot resolve, no single sweep can either
         notes.append(f"no whole-cell values: {avg_cell.reason}")
@@ -612,7 +616,7 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
                      f"sweeps: {_reason(rejected)})")
         _whole_cell_notes([(0, avg_cell)], fc, notes)
         return
-    reason = _reason(rejected) or (f"{avg_cell.reason}" if avg_cell is not None else "")
+    reason = _reason(rejected) or (avg_cell.reason if avg_cell is not None else "")
     if t.sum is None or not t.same_length:
         notes.append("no whole-cell transient in the test step" +
                      (f" ({reason})" if reason else ""))
