@@ -666,7 +666,7 @@ def _whole_cell_notes(cells: list[tuple[int, Any]], fc: float | None,
     comps = ", ".join(f"{tau * 1e6:.0f} us" for tau, _ in w.components)
     how = ("one exponential, charge method" if w.method == "charge" else
            f"{len(w.components)} components through the "
-           f"{'%g Hz filter' % fc if fc else 'unfiltered samples'}")
+           f"{'%.4g Hz filter' % fc if fc else 'unfiltered samples'}")
     notes.append(f"whole-cell transient: {how} (tau {comps}); access <= dV/peak "
                  f"{w.peak_bound / 1e6:.3g} MOhm")
 

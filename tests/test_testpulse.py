@@ -868,3 +868,49 @@ def test_rig_mode_from_config_and_scan_option(tmp_path, capsys):
     assert doc["mode"] == "current_clamp"
     rin = doc["channels"][0]["measures"]["input_resistance"]["value"]
     assert rin == _approx(200.0, rel=0.03)
+
+
+def test_filter_corner_from_the_noise_spectrum_when_the_header_has_none(tmp_path):
+    # pyabf's writer records no filter: the transient is fitted through the corner measured
+    # from the noise spectrum (METHODS §5 corner estimate), and the note says so. Two-
+    # compartment cell (METHODS §1.5) behind a 2 kHz 4-pole Bessel at 20 kHz, with noise
+    # filtered the same way (tests/references.py analog_bessel_noise), declared -5 mV step.
+    import pyabf.abfWriter
+    from qcd.analyze import analyze_path
+    from qcd.config import TestPulse
+    fs, fc, n_pre, n_step = 20e3, 2e3, 2000, 800
+    rng = np.random.default_rng(5)
+    sweeps = []
+    for _ in range(8):
+        y = ref.sampled_two_compartment(-5 * mV, CELL_2C, fs, n_pre=n_pre, n_step=n_step,
+                                        n_post=2000, filter_hz=fc, holding=-20 * pA)
+        sweeps.append((y + 1.5 * pA * ref.analog_bessel_noise(rng, len(y), fs, fc)) / pA)
+    path = tmp_path / "no_filter_in_header.abf"
+    pyabf.abfWriter.writeABF1(np.ascontiguousarray(sweeps), str(path), fs, "pA")
+    fm = analyze_path(path, digest=False, pulse=TestPulse(-5.0, n_pre / fs, n_step / fs))
+    ch = fm.channels[0]
+    assert ch.measures["corner_hz"].value == _approx(fc, rel=0.15)
+    assert any("corner of the noise spectrum is used" in n for n in ch.notes)
+    assert ch.measures["access_resistance"].value == _approx(CELL_2C[0] / MOhm, rel=0.20)
+    assert abs(ch.measures["access_change_pct"].value) < 5.0      # the cell does not change
+
+
+def test_sweep_that_does_not_fit_the_files_model_gives_no_value_and_the_reason():
+    # a sweep whose current keeps growing during the step (a current activated by the
+    # hyperpolarisation, -10 pA with τ 3 ms during a -5 mV step on the METHODS §1.1 cell),
+    # held to the file's two-component model: a component of the opposite sign is no passive
+    # cell (Foster form), so the sweep gives no value and says why
+    fs, fc = 25e3, 5e3
+    two = [_two_compartment_sweep(CELL_2C, fc, fs, 0.5, rng=np.random.default_rng(k))
+           for k in range(3)]
+    model = tp.transient_model(tp.average_response([tp.step_response(y, fs, s)
+                                                    for y, s in two]), filter_hz=fc).fit
+    assert model.n == 2
+    y, step = _cell_sweep(CELL_A, fc, fs, 0.5, step_s=40e-3, noise_sd=1 * pA,
+                          rng=np.random.default_rng(6))
+    t = (np.arange(len(y)) - step.start) / fs
+    inside = (t >= 0) & (t < (step.stop - step.start) / fs)
+    y = y + np.where(inside, -10 * pA * (1 - np.exp(-np.clip(t, 0, None) / 3e-3)), 0.0)
+    r = tp.whole_cell_of(tp.step_response(y, fs, step), filter_hz=fc, model=model)
+    assert isinstance(r, tp.Rejected) and r.code == "bad_fit"
+    assert "2-component fit" in r.reason and "opposite sign" in r.reason

@@ -513,7 +513,7 @@ def whole_cell_of(resp: StepResponse, *, filter_hz: float | None = None,
         sel = transient_model(resp, filter_hz=filter_hz)
         fit, refused, fast_fit = sel.fit, sel.refused, sel.fast_fit
         if sel.fast_charge * s > PIPETTE_MAX_F * abs(dv):
-            corner = f"the {filter_hz:g} Hz filter" if filter_hz else "the sampling"
+            corner = f"the {filter_hz:.4g} Hz filter" if filter_hz else "the sampling"
             return Rejected("not_separable",
                             f"a fast component ({sel.fast_charge / dv * 1e12:.3g} pF of "
                             f"charge, faster than {corner} resolves, "
@@ -593,7 +593,7 @@ def _sanity(w: WholeCell, resp: StepResponse, fast_fit: tr.ExpFit | None,
     peak = float(np.max(y)) - 2.0 * resp.noise
     bound = abs(dv) / peak if peak > 0 else math.inf
     w = replace(w, peak_bound=float(bound))
-    corner = f"the {filter_hz:g} Hz filter" if filter_hz else "the sampling"
+    corner = f"the {filter_hz:.4g} Hz filter" if filter_hz else "the sampling"
     if w.access_se > MAX_ACCESS_REL_SE * ra:
         return Rejected("not_separable", f"the fastest component is not separable from "
                                          f"{corner} (access {ra / 1e6:.3g} +- "
