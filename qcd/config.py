@@ -26,6 +26,8 @@ __all__ = ["TestPulse", "RigConfig", "Config", "load_config", "parse_pulse", "fi
            "CONFIG_NAME", "parse_duration"]
 
 CONFIG_NAME = "qcd.toml"
+# Every suffix qcd reads (qcd.recording.SUFFIXES; a test keeps the two equal).
+PATTERNS = ("*.abf", "*.nwb", "*.nix", "*.wcp", "*.edr", "*.smr", "*.rhd", "*.rhs")
 
 
 @dataclass(frozen=True)
@@ -49,7 +51,7 @@ class TestPulse:
 class RigConfig:
     name: str
     folders: tuple[Path, ...]
-    patterns: tuple[str, ...] = ("*.abf",)
+    patterns: tuple[str, ...] = PATTERNS
     polling: bool = False
     test_pulse: TestPulse | None = None
     mains_hz: float | None = None        # 50 or 60 when the lab knows it; else found from data
@@ -267,7 +269,7 @@ def _rig(path: Path, base: Path, index: int, table: object) -> RigConfig:
     folders = r.strings(table, "folders")
     if not folders:
         raise r.fail("folders", "expected at least one folder")
-    patterns = r.strings(table, "patterns") if "patterns" in table else ("*.abf",)
+    patterns = r.strings(table, "patterns") if "patterns" in table else PATTERNS
     if not patterns:
         raise r.fail("patterns", "expected at least one pattern, e.g. [\"*.abf\"]")
     polling = table.get("polling", False)
@@ -447,8 +449,8 @@ give_up_hours = 6
 name = "rig-1"
 # Folders the acquisition program writes to (searched recursively). At least one.
 folders = ["data/rig-1"]
-# File name patterns to measure.
-patterns = ["*.abf"]
+# File name patterns to measure; leave out for every format qcd reads.
+patterns = ["*.abf", "*.nwb"]
 # true for network shares (SMB/NFS), where the operating system sends no file events.
 polling = false
 # Declared test step when the protocol has none: "AMP,START_MS,LENGTH_MS" (AMP in mV for

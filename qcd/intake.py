@@ -64,8 +64,11 @@ def header_fits(path: Path, size: int) -> str | None:
     """
     if size == 0:
         return "empty so far"
-    from qcd.recording import open_recording
+    from qcd.recording import not_finished, open_recording
     try:
+        why = not_finished(path, size)        # HDF5: superblock end-of-file address vs size
+        if why is not None:
+            return why
         with open_recording(path):
             return None
     except RecordingError as e:
