@@ -18,11 +18,10 @@ from typing import Any
 import numpy as np
 
 from qcd.errors import RecordingError
+from qcd.hdf5 import EXTRA_HINT
 from qcd.recording import Channel, Header, Recording
 
-__all__ = ["open_neo", "why_not_read", "EXTRA_HINT"]
-
-EXTRA_HINT = "pip install 'qcd-ephys[formats]'"
+__all__ = ["open_neo", "why_not_read"]
 _MAX_SEGMENTS = 1_000_000
 _MAX_CHANNELS = 4096
 

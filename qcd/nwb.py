@@ -3,12 +3,10 @@
 Intracellular: PatchClampSeries (voltage and current clamp) per electrode and sweep, their
 stimulus series as the command. Extracellular: ElectricalSeries columns as channels. Samples are
 read as HDF5 hyperslabs of one chunk; the file is opened per read and never locked, so the
-writer is never blocked. Also the HDF5 settle check (superblock end-of-file address).
-Imports h5py (optional extra), qcd.recording and qcd.errors.
+writer is never blocked. Imports h5py (optional extra), qcd.hdf5, qcd.recording, qcd.errors.
 """
 from __future__ import annotations
 
-import struct
 from collections import defaultdict
 from dataclasses import dataclass
 from datetime import datetime
@@ -18,11 +16,11 @@ from typing import Any
 import numpy as np
 
 from qcd.errors import RecordingError
-from qcd.recording import (HDF5_SIGNATURE, Channel, Header, Recording, SampledCommand)
+from qcd.hdf5 import EXTRA_HINT, check_end, h5py_module
+from qcd.recording import Channel, Header, Recording, SampledCommand
 
-__all__ = ["open_nwb", "hdf5_unfinished", "superblock_end", "check_end", "EXTRA_HINT"]
+__all__ = ["open_nwb"]
 
-EXTRA_HINT = "pip install 'qcd-ephys[formats]'"
 _MAX_SERIES = 100_000            # response series (sweeps x electrodes) in one file
 _MAX_CHANNELS = 4096             # columns of the extracellular series taken together
 _MAX_CHUNK_BYTES = 64 << 20      # one HDF5 chunk is decompressed whole: cap it
@@ -39,92 +37,7 @@ def _err(path: Path, kind: str, detail: str) -> RecordingError:
 
 
 def _h5py(path: Path):
-    try:
-        import h5py
-    except ImportError as e:
-        raise _err(path, "unsupported", f"reading NWB files needs h5py, from the optional "
-                   f"formats extra: {EXTRA_HINT}") from e
-    return h5py
-
-
-# ------------------------------------------------------------------------------ superblock
-
-def superblock_end(path: Path, size: int) -> tuple[int, int]:
-    """(where the HDF5 signature is, the superblock's end-of-file address); RecordingError if none.
-
-    The signature sits at byte 0 or after a user block of 512 * 2**k bytes; the end-of-file
-    address follows the base address (HDF5 file format specification, superblock v0-v3).
-    """
-    try:
-        with open(path, "rb") as fh:
-            pos = 0
-            while pos == 0 or pos < min(size, 1 << 24):
-                fh.seek(pos)
-                head = fh.read(96)
-                if head[:8] == HDF5_SIGNATURE:
-                    break
-                pos = 512 if pos == 0 else pos * 2
-            else:
-                raise _err(path, "bad_signature", "no HDF5 signature at byte 0 or after a user "
-                           "block; it is not an NWB (HDF5) file (renamed, or another format)")
-    except OSError as e:
-        raise _err(path, "unreadable", f"reading the HDF5 superblock failed "
-                   f"({e.strerror or e})") from e
-    if len(head) < 24:
-        raise _err(path, "truncated", f"the file has {size} bytes and ends inside the HDF5 "
-                   f"superblock; it was cut short or is still being written")
-    version = head[8]
-    if version in (0, 1):
-        width, at = head[13], (24 if version == 0 else 28)
-    elif version in (2, 3):
-        width, at = head[9], 12
-    else:
-        raise _err(path, "bad_header", f"the HDF5 superblock version is {version} (expected "
-                   f"0..3); the file is corrupt")
-    if width not in (2, 4, 8):
-        raise _err(path, "bad_header", f"the HDF5 superblock gives {width}-byte addresses "
-                   f"(expected 2, 4 or 8); the file is corrupt")
-    if len(head) < at + 3 * width:
-        raise _err(path, "truncated", "the file ends inside the HDF5 superblock; it was cut "
-                   "short or is still being written")
-    fmt = {2: "<H", 4: "<I", 8: "<Q"}[width]
-    base = struct.unpack_from(fmt, head, at)[0]
-    end = struct.unpack_from(fmt, head, at + 2 * width)[0]
-    if base and base + end == size:      # an address relative to a user block's end
-        end = size
-    return pos, end
-
-
-def check_end(path: Path, size: int) -> list[str]:
-    _, end = superblock_end(path, size)
-    if end > size:
-        raise _err(path, "truncated", f"the HDF5 superblock says the file ends at byte {end}, "
-                   f"the file has {size}; it is still being written or was cut short")
-    if end < size:
-        return [f"the file has {size - end} bytes after the HDF5 end-of-file address {end}"]
-    return []
-
-
-def hdf5_unfinished(path: Path, size: int) -> str | None:
-    """Why an HDF5 file of ``size`` bytes is not finished yet, else None.
-
-    Finished: the superblock's end-of-file address equals the size and the HDF5 library opens
-    the file. A file that is plainly corrupt counts as finished (its error is stored).
-    """
-    try:
-        _, end = superblock_end(path, size)
-    except RecordingError as e:
-        return e.detail if e.kind == "truncated" else None
-    if end != size:
-        return f"the HDF5 superblock says {end} bytes, the file has {size}; still being written"
-    try:
-        h5py = _h5py(path)
-        with h5py.File(path, "r", locking=False):
-            return None
-    except RecordingError:
-        return None
-    except OSError as e:
-        return f"the HDF5 library cannot open it yet ({str(e)[:120]})"
+    return h5py_module(path)
 
 
 # ------------------------------------------------------------------------------- layout

@@ -3,8 +3,8 @@
 A format module fills a Header and hands over a Source that reads raw samples of a span;
 this module slices spans into bounded chunks and scales each chunk to the channel's unit.
 open_recording() routes a file to its reader by signature (magic bytes), then by suffix.
-Imports qcd.abf and qcd.errors; the NWB and neo readers (qcd.nwb, qcd.neoread) are imported
-only when a file of theirs is opened.
+Imports qcd.abf, qcd.hdf5 and qcd.errors; the NWB and neo readers (qcd.nwb, qcd.neoread) are
+imported only when a file of theirs is opened.
 """
 from __future__ import annotations
 
@@ -19,13 +19,13 @@ import numpy as np
 from qcd import abf as _abf
 from qcd.abf import Epoch, Segment
 from qcd.errors import RecordingError
+from qcd.hdf5 import HDF5_SIGNATURE, check_end, hdf5_unfinished
 
 __all__ = ["Recording", "Channel", "Command", "SampledCommand", "Segment", "Epoch", "Header",
            "Source", "Reader", "READERS", "SUFFIXES", "open_recording", "reader_for",
            "not_finished", "HDF5_SIGNATURE"]
 
 _DEFAULT_CHUNK = 1 << 20
-HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 
 
 @dataclass(frozen=True)
@@ -416,8 +416,7 @@ def open_recording(path: str | Path) -> Recording:
     reader = reader_for(p, head)
     notes: list[str] = []
     if head.startswith(HDF5_SIGNATURE) and reader.name != "NWB":
-        from qcd.nwb import check_end         # a cut HDF5 file is 'truncated' for every reader
-        notes = check_end(p, size)
+        notes = check_end(p, size)            # a cut HDF5 file is 'truncated' for every reader
     rec = reader.open(p)
     rec.notes.extend(notes)
     if p.suffix.lower() not in reader.suffixes:
@@ -434,5 +433,4 @@ def not_finished(path: Path, size: int) -> str | None:
     """
     if not _head(path).startswith(HDF5_SIGNATURE):
         return None
-    from qcd.nwb import hdf5_unfinished
     return hdf5_unfinished(path, size)

@@ -141,11 +141,12 @@ def build(folder: Path, abf2_source: Path, abf1_source: Path) -> list[tuple[str,
     nix = folder / "nix_cut.nix"
     nix.write_bytes(good[:len(good) // 3])
     cases.append(("nix_cut_short", nix, "truncated", "an HDF5 file named .nix cut short"))
-    for suffix in (".wcp", ".edr", ".rhd"):
-        put(f"neo_cannot_parse_{suffix[1:]}", rng.randbytes(20_000), "bad_header",
-            f"random bytes named {suffix}: python-neo's reader fails on them", suffix)
-    put("neo_finds_no_signal_smr", rng.randbytes(20_000), "unsupported",
-        "random bytes named .smr: python-neo's reader parses them but finds no signal", ".smr")
+    put("neo_cannot_parse_wcp", rng.randbytes(20_000), "bad_header",
+        "random bytes named .wcp: python-neo's reader fails on them", ".wcp")
+    put("neo_cannot_parse_edr", rng.randbytes(20_000), "bad_header",
+        "random bytes named .edr: python-neo's reader fails on them", ".edr")
+    put("neo_cannot_parse_rhd", rng.randbytes(20_000), "bad_header",
+        "random bytes named .rhd: python-neo's reader fails on them", ".rhd")
     put("neo_needs_companion", rng.randbytes(4096), "unsupported",
         "a .ns5 file: python-neo reads that format only with its companion files", ".ns5")
 
