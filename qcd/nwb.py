@@ -188,15 +188,19 @@ def _table_entries(path: Path, f: Any, notes: list[str]) -> list[tuple] | None:
     ic = f.get("general/intracellular_ephys/intracellular_recordings")
     if ic is None or "responses" not in ic or "response" not in ic["responses"]:
         return None
+    for column in ("responses/response", "stimuli/stimulus"):   # sizes before any read
+        if column in ic and len(ic[column]) > _MAX_SERIES:
+            raise _err(path, "bad_header", f"the intracellular recordings table has "
+                       f"{len(ic[column])} rows (at most {_MAX_SERIES})")
     resp = ic["responses/response"][()]
     stim = ic["stimuli/stimulus"][()] if "stimuli" in ic and "stimulus" in ic["stimuli"] \
         else None
-    if len(resp) > _MAX_SERIES:
-        raise _err(path, "bad_header", f"the intracellular recordings table has {len(resp)} "
-                   f"rows (at most {_MAX_SERIES})")
     sweep_of_row: dict[int, int] = {}
     sim = f.get("general/intracellular_ephys/simultaneous_recordings")
     if sim is not None and "recordings" in sim and "recordings_index" in sim:
+        if max(len(sim["recordings"]), len(sim["recordings_index"])) > _MAX_SERIES:
+            raise _err(path, "bad_header", f"the simultaneous recordings table has more "
+                       f"than {_MAX_SERIES} rows")
         rows = sim["recordings"][()]
         ends = sim["recordings_index"][()]
         a = 0
