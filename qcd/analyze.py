@@ -11,8 +11,7 @@ from __future__ import annotations
 import hashlib
 import logging
 import math
-from dataclasses import dataclass, field, replace
-from datetime import datetime
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -24,9 +23,9 @@ from qcd.measures import drift
 from qcd.measures import noise as nz
 from qcd.measures import spectrum as sp
 from qcd.recording import open_recording
+from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum, display_unit
 
-__all__ = ["MODES", "Measure", "Spectrum", "ChannelMeasures", "FileMeasures", "analyze",
-           "analyze_path"]
+__all__ = ["analyze", "analyze_path"]
 
 log = logging.getLogger("qcd.analyze")
 
@@ -41,98 +40,6 @@ class _LazyTestPulse:
 
 
 tp = _LazyTestPulse()
-
-# Recording modes, stored as files.mode and used by rules as [mode] tables.
-MODES = ("voltage_clamp", "current_clamp", "extracellular", "unknown")
-
-
-@dataclass(frozen=True)
-class Measure:
-    """One number with its display unit (qcd.units.display_unit); bools and counts have ''."""
-    name: str
-    value: float | int | bool
-    unit: str
-
-
-@dataclass(frozen=True)
-class Spectrum:
-    """Compact PSD of a channel's baseline: ~200 log-spaced points, density in unit**2/Hz.
-
-    ``unit`` is the channel's display unit (pA or mV), so density is pA**2/Hz or mV**2/Hz.
-    """
-    freqs_hz: tuple[float, ...]
-    density: tuple[float, ...]
-    unit: str
-
-
-@dataclass(frozen=True)
-class ChannelMeasures:
-    index: int                       # input channel index in the file (0-based)
-    name: str
-    unit: str                        # the channel's own unit string, cleaned ('pA', '?')
-    dimension: str                   # 'A', 'V' or '' (qcd.units.channel_quantity)
-    measures: dict[str, Measure]     # by measure name; a measure that cannot be computed is absent
-    notes: tuple[str, ...] = ()      # why a measure is absent, fallbacks taken
-    spectrum: Spectrum | None = None
-
-
-@dataclass(frozen=True)
-class FileMeasures:
-    path: str
-    status: str                      # 'ok' | 'error'
-    error: str | None = None         # one sentence naming the file and the reason
-    error_kind: str | None = None    # qcd.errors.RECORDING_ERROR_KINDS
-    mode: str = "unknown"            # MODES
-    format: str = ""                 # 'ABF1' | 'ABF2'
-    fs_hz: float | None = None
-    duration_s: float | None = None
-    n_sweeps: int | None = None
-    gap_free: bool | None = None
-    recorded_at: datetime | None = None   # from the header (UTC-naive as the file gives it)
-    size: int | None = None
-    mtime: float | None = None
-    sha256: str | None = None
-    channels: tuple[ChannelMeasures, ...] = ()
-    notes: tuple[str, ...] = ()      # file-level oddities and fallbacks
-    extra: dict[str, Any] = field(default_factory=dict)   # per-sweep series etc., JSON-able
-
-    def to_json(self) -> dict[str, Any]:
-        """The ``qcd scan --json`` object (one per file, one per line).
-
-        ``{"path", "status", "error", "error_kind", "mode", "format", "fs_hz", "duration_s",
-        "n_sweeps", "gap_free", "recorded_at", "notes", "channels": [{"index", "name", "unit",
-        "measures": {NAME: {"value", "unit"}}, "notes"}]}``. ``spectral_lines`` has as value a
-        list of ``{"freq_hz", "rms"}`` objects (rms in the measure's unit), loudest first.
-        """
-        chans = []
-        for c in self.channels:
-            ms: dict[str, Any] = {}
-            for name, m in c.measures.items():
-                if name == "spectral_lines":
-                    value: Any = [{"freq_hz": _num(f), "rms": _num(r)} for f, r in m.value]
-                else:
-                    value = _num(m.value)
-                ms[name] = {"value": value, "unit": m.unit}
-            chans.append({"index": c.index, "name": c.name, "unit": c.unit,
-                          "dimension": c.dimension, "measures": ms, "notes": list(c.notes)})
-        return {
-            "path": self.path, "status": self.status, "error": self.error,
-            "error_kind": self.error_kind, "mode": self.mode, "format": self.format,
-            "fs_hz": self.fs_hz, "duration_s": self.duration_s, "n_sweeps": self.n_sweeps,
-            "gap_free": self.gap_free,
-            "recorded_at": self.recorded_at.isoformat() if self.recorded_at else None,
-            "notes": list(self.notes), "channels": chans,
-        }
-
-
-def _num(v: Any) -> Any:
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    v = float(v)
-    return v if math.isfinite(v) else None
-
 
 # ------------------------------------------------------------------------------ the analysis
 
@@ -231,7 +138,7 @@ def _recorded_span(y: np.ndarray) -> tuple[int, int | None] | None:
     if len(y) < 8:
         return None
     d = np.diff(y)
-    sd = 1.4826 * float(np.median(np.abs(d - np.median(d)))) / math.sqrt(2.0)
+    sd = nz.MAD_SCALE * float(np.median(np.abs(d - np.median(d)))) / math.sqrt(2.0)
     hold = float(np.median(y[:max(3, min(len(y) // 20, 50))]))
     scale = float(np.max(np.abs(y))) or 1.0
     away = np.abs(y - hold) > max(6.0 * sd, 1e-6 * scale)
@@ -482,7 +389,7 @@ class _TestPulse:
 def _put(out: dict[str, Measure], name: str, value_si: float | None, dim: str) -> None:
     if value_si is None or not np.isfinite(value_si):
         return
-    unit = units.display_unit(name, dim) if dim in units.DISPLAY else ""
+    unit = display_unit(name, dim) if dim in units.DISPLAY else ""
     value = units.from_si(value_si, unit) if dim not in ("", "%") else float(value_si)
     out[name] = Measure(name, float(value), unit)
 
@@ -588,7 +495,7 @@ def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
             continue
         _put(out, name, sp.band_rms(freqs, psd, lo, min(top, fs / 2), line), dim)
     lines = sp.spectral_lines(freqs, psd, k_segments=k_seg, line_hz=line or mains_hz)
-    unit = units.display_unit("noise_rms", dim) if dim else ""
+    unit = display_unit("noise_rms", dim) if dim else ""
     f = 1.0 / units.FACTORS[unit] if dim else 1.0
     out["spectral_lines"] = Measure("spectral_lines",
                                     tuple((round(fq, 3), r * f) for fq, r in lines), unit)

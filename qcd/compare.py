@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 
 from qcd.errors import QcdError, RecordingError
+from qcd.results import SAFETY_NOTE
 from qcd.units import FACTORS, channel_quantity
 
 __all__ = ["BANDS", "Change", "Side", "Comparison", "compare_paths", "segment_powers",
@@ -43,16 +44,6 @@ _HINTS = {
                       "manipulators)",
     "band_rms_0p5_10": "slow fluctuation: perfusion, reference electrode, temperature",
 }
-
-
-def _safety_note() -> str:
-    try:
-        from qcd.judge import SAFETY_NOTE
-        return SAFETY_NOTE
-    except Exception:  # judge not importable: the same caution, stated here
-        return ("Electrical safety: follow your institution's electrical-safety rules and local "
-                "codes; never open mains-powered equipment; leave building wiring and earth to "
-                "a qualified, licensed electrician.")
 
 
 @dataclass(frozen=True)
@@ -346,7 +337,7 @@ def compare_paths(before: Path, after: Path, *, channel: int = 0,
         hint += (" The baseline windows are too short (under 1/{:g} s) to resolve the mains "
                  "harmonics, so the bands include them; record a few seconds without test "
                  "pulses (gap-free) to see the hum.".format(MAX_DF_HZ))
-    return Comparison(b, a, channel, tuple(changes), hint, _safety_note() if mains else None)
+    return Comparison(b, a, channel, tuple(changes), hint, SAFETY_NOTE if mains else None)
 
 
 def _hint(changes: list[Change]) -> tuple[str, bool]:

@@ -16,9 +16,10 @@ from pathlib import Path
 from typing import Any, Callable, Iterable
 
 from qcd import alerts
-from qcd.analyze import FileMeasures, analyze_path
+from qcd.analyze import analyze_path
 from qcd.errors import RecordingError, StoreError
-from qcd.judge import file_time, judge
+from qcd.judge import judge
+from qcd.results import FileMeasures, file_time
 
 __all__ = ["process", "commit", "flush_digest", "tick", "judge_file", "scan", "ScanResult",
            "recording_order", "DIGEST_FILES"]
@@ -35,19 +36,15 @@ def _error(path: Any, kind: str, reason: str, fm: FileMeasures | None = None) ->
     return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind)
 
 
-def _rig_name(rig: Any) -> str:
-    return rig if isinstance(rig, str) else rig.name
-
-
 def judge_file(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float) -> list:
     """The judge with the rig's history bound to the store (files recorded before this one)."""
     st = rules.settings
-    name, before = _rig_name(rig), file_time(fm, now)
+    name, before = rig.name, file_time(fm.recorded_at, fm.mtime, now)
 
     def history(mode: str, channel: int, measure: str) -> list[tuple[float, float]]:
         return store.history(name, mode, channel, measure, limit=st.history_files,
                              days=st.history_days, before=before)
-    return judge(fm, rig, history, rules, now)
+    return judge(fm, name, history, rules, now)
 
 
 def _changed(before: dict[str, dict], after: dict[str, Any]) -> list[dict]:
@@ -92,7 +89,7 @@ def commit(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float, sende
     Never raises for a bad file; a StoreError (the database itself failing) propagates.
     With ``batch`` no message is queued per file (see ``flush_digest``).
     """
-    name = _rig_name(rig)
+    name = rig.name
     try:
         findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)
@@ -160,7 +157,7 @@ def _recording_time(path: Path) -> tuple[float, str]:
     try:
         with open_recording(path) as rec:
             if rec.recorded_at is not None:
-                return file_time(rec, 0.0), os.fspath(path)
+                return file_time(rec.recorded_at), os.fspath(path)
     except Exception:                        # a bad file is measured (and reported) later
         pass
     try:
@@ -193,7 +190,7 @@ def scan(paths: Iterable[Any], rig: Any, store: Any, rules: Any, *, clock: Calla
     """
     files = recording_order(paths)
     batch = len(files) > DIGEST_FILES if batch is None else batch
-    name = _rig_name(rig)
+    name = rig.name
     was_open = {a["key"] for a in store.open_alerts(name)}
     out = ScanResult()
     for path in files:

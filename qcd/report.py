@@ -20,29 +20,18 @@ from typing import Any, Iterable
 import numpy as np
 
 from qcd.errors import ConfigError
+from qcd.measures.noise import MAD_SCALE
+from qcd.results import MEASURES, SAFETY_NOTE, file_time, shown
 
 __all__ = ["KEY_MEASURES", "MeasureLine", "RigReport", "Report", "parse_since", "normal_range",
            "build_report", "render_text", "render_html", "trend_rows", "render_trend_text",
-           "render_trend_csv", "sparkline", "figure_data_uri", "page", "safety_note"]
+           "render_trend_csv", "sparkline", "figure_data_uri", "page"]
 
 # The measures the morning report shows, in this order, when a rig has them.
-KEY_MEASURES = ("noise_rms", "noise_rms_1k", "hum_rms", "band_rms_1k_corner", "holding",
-                "baseline_drift", "seal_resistance", "access_resistance",
-                "membrane_resistance", "membrane_capacitance", "clipping_fraction")
+KEY_MEASURES = shown("report")
 NORMAL_SPREADS = 3.0        # normal range = median +- 3 robust SD (1.4826 MAD)
 HISTORY_DAYS = 30.0
 _SPARKS = "\u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588"
-
-
-def safety_note() -> str:
-    """The electrical-safety caution that goes beside every grounding hint."""
-    try:
-        from qcd.judge import SAFETY_NOTE
-        return SAFETY_NOTE
-    except Exception:  # judge not importable yet: the same caution, stated here
-        return ("Electrical safety: follow your institution's electrical-safety rules and local "
-                "codes; never open mains-powered equipment; leave building wiring and earth to "
-                "a qualified, licensed electrician.")
 
 
 def _is_grounding(hint: str) -> bool:
@@ -75,7 +64,7 @@ def normal_range(values: Iterable[float]) -> tuple[float, float, int] | None:
     if v.size == 0:
         return None
     med = float(np.median(v))
-    return med, 1.4826 * float(np.median(np.abs(v - med))), int(v.size)
+    return med, MAD_SCALE * float(np.median(np.abs(v - med))), int(v.size)
 
 
 @dataclass(frozen=True)
@@ -121,8 +110,7 @@ class Report:
 
 
 def _file_time(f: dict) -> float:
-    t = f.get("recorded_at")
-    return float(t if t is not None else (f.get("mtime") or 0.0))
+    return file_time(f.get("recorded_at"), f.get("mtime"), 0.0)
 
 
 def _series(store, rig: str, measure: str, channel: int | None, since: float | None):
@@ -204,7 +192,7 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
                 flags.setdefault(f["id"], []).append(_flag_text(fd))
                 h = fd.get("hint")
                 if h:
-                    _add_hint(hints, h.replace(safety_note(), "").strip())
+                    _add_hint(hints, h.replace(SAFETY_NOTE, "").strip())
         alerts = tuple(store.open_alerts(rig=rig))
         silences = tuple({"rig_glob": x.rig_glob, "rule_glob": x.rule_glob,
                           "start_at": x.start_at, "end_at": x.end_at, "reason": x.reason}
@@ -219,7 +207,7 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
             sum(f.get("status") == "error" for f in files),
             sum(bool(f.get("flagged")) for f in files), slim, tuple(lines),
             tuple(dict(a) for a in alerts), tuple(hints),
-            safety_note() if any(_is_grounding(h) for h in hints) else None, silences,
+            SAFETY_NOTE if any(_is_grounding(h) for h in hints) else None, silences,
             resolved))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
@@ -423,19 +411,8 @@ def _plt():
     return plt
 
 
-_LABELS = {"noise_rms": "baseline RMS noise", "noise_rms_1k": "RMS noise, 1 kHz band",
-           "hum_rms": "mains hum RMS", "band_rms_1k_corner": "noise 1 kHz to corner",
-           "holding": "holding level", "baseline_drift": "baseline drift",
-           "seal_resistance": "seal resistance", "access_resistance": "access resistance",
-           "membrane_resistance": "membrane resistance",
-           "membrane_capacitance": "membrane capacitance",
-           "clipping_fraction": "clipped samples"}
-
-
 # Trend plots per rig (the table lists every key measure).
-_PLOTTED = ("noise_rms", "noise_rms_1k", "hum_rms", "band_rms_1k_corner", "holding",
-            "seal_resistance", "access_resistance", "membrane_resistance",
-            "membrane_capacitance")
+_PLOTTED = shown("plot")
 
 
 def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None:
@@ -474,7 +451,7 @@ def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None
         ax.axvspan(datetime.fromtimestamp(since, tz=timezone.utc),
                    datetime.fromtimestamp(now, tz=timezone.utc), color="#999999", alpha=0.08,
                    lw=0)
-        name = _LABELS.get(m.measure, m.measure)
+        name = MEASURES[m.measure].label
         ax.set_title(f"{name} ({m.measure}, ch {m.channel})", fontsize=9.5, loc="left")
         ax.set_ylabel(m.unit or "value", fontsize=9)
         ax.tick_params(labelsize=8)

@@ -48,7 +48,7 @@ def _measure(path: str, pulse: Any, mains_hz: float | None):
 
 
 def _error_measures(path: Path, kind: str, reason: str, size: int = -1, mtime: float = -1.0):
-    from qcd.analyze import FileMeasures
+    from qcd.results import FileMeasures
     return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind,
                         size=size if size >= 0 else None, mtime=mtime if mtime >= 0 else None)
 

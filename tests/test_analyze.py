@@ -14,7 +14,8 @@ from hypothesis import strategies as st
 
 from badfiles import build as build_bad_files
 from conftest import ABF_FILES, abf, require_data
-from qcd.analyze import MODES, analyze, analyze_path
+from qcd.analyze import analyze, analyze_path
+from qcd.results import MODES
 from qcd.config import TestPulse
 from qcd.recording import open_recording
 from references import sampled_cell, sine

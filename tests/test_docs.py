@@ -1,5 +1,6 @@
 """The docs follow the code: every command has --help and a README section, and every measure
-name the analysis can produce is in the README's measures table (sqlite-utils' docs test idea)."""
+name of the registry (the names analysis can produce) is in the README's measures table
+(sqlite-utils' docs test idea)."""
 from __future__ import annotations
 
 import re
@@ -20,22 +21,18 @@ def _commands() -> list[str]:
 
 
 def _measure_names() -> set[str]:
-    """Names analyze can store: its literal Measure/_put names, the spectrum band table, and
-    whatever it actually produces on the committed demo sample."""
+    """Names qcd can store: the registry (qcd.results.MEASURES), checked against what analyze
+    actually produces on the committed demo sample."""
     from qcd.analyze import analyze_path
-    from qcd.measures import spectrum
-    src = (ROOT / "qcd" / "analyze.py").read_text(encoding="utf-8")
-    names = set(re.findall(r'_put\(out, "(\w+)"', src))
-    names |= set(re.findall(r'Measure\("(\w+)"', src))
-    names |= set(re.findall(r'\("(\w+)", "(?:Ohm|F|s|A|V|%)"\)', src))
-    for m in re.finditer(r'for name in \(([^)]*)\)', src):
-        names |= set(re.findall(r'"(\w+)"', m.group(1)))
-    names |= set(spectrum.BANDS)
+    from qcd.results import MEASURES
+    produced = set()
     for path in sorted((ROOT / "demo_data").rglob("*.abf")):
         fm = analyze_path(path)
         for ch in fm.channels:
-            names |= set(ch.measures)
-    return names
+            produced |= set(ch.measures)
+    unregistered = sorted(produced - set(MEASURES))
+    assert not unregistered, f"analyze produces names missing from the registry: {unregistered}"
+    return set(MEASURES)
 
 
 def _measures_table() -> set[str]:

@@ -16,7 +16,8 @@ from html.parser import HTMLParser
 import numpy as np
 import pytest
 
-from qcd.analyze import ChannelMeasures, FileMeasures, Measure, Spectrum
+from qcd.judge import Finding
+from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum
 from qcd.report import (build_report, normal_range, parse_since, render_html, render_text,
                         render_trend_csv, render_trend_text, sparkline, trend_rows)
 from qcd.store import Store
@@ -52,12 +53,10 @@ def store(tmp_path):
     hint = "mains hum rose against the reference: check the grounding of the rig"
     fid = s.commit_file(
         "rig-a", _fm(10, NOW - 3600.0, 18.0, 3.0), analysed_at=NOW,
-        findings=[{"channel": 0, "measure": "access_resistance", "rule": "access_high",
-                   "kind": "limit", "bad": True, "severity": "warning", "value": 18.0,
-                   "unit": "MOhm", "limit_text": "> 15 MOhm", "hint": None},
-                  {"channel": 0, "measure": "hum_rms", "rule": "hum_drift", "kind": "drift",
-                   "bad": True, "severity": "warning", "value": 3.0, "unit": "pA",
-                   "limit_text": "z > 4", "hint": hint}],
+        findings=[Finding("rig-a", "voltage_clamp", 0, "access_resistance", "access_high",
+                          "limit", True, "warning", 18.0, "MOhm", "> 15 MOhm"),
+                  Finding("rig-a", "voltage_clamp", 0, "hum_rms", "hum_drift", "drift", True,
+                          "warning", 3.0, "pA", "z > 4", hint)],
         alert_states=[{"key": "rig-a|voltage_clamp|0|hum_rms|hum_drift", "rig": "rig-a",
                        "mode": "voltage_clamp", "channel": 0, "measure": "hum_rms",
                        "rule": "hum_drift", "state": "open", "opened_at": NOW - 3600.0,

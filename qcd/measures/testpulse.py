@@ -12,6 +12,8 @@ from typing import Sequence
 import numpy as np
 from scipy import optimize
 
+from qcd.measures.noise import MAD_SCALE
+
 __all__ = [
     "StepWindow", "WholeCell", "Rejected", "CurrentClamp", "BESSEL4_DELAY", "OPEN_PIPETTE_MAX_OHM",
     "MAX_ACCESS_OHM",
@@ -102,7 +104,7 @@ def _noise_sd(x: np.ndarray) -> float:
     if len(x) < 3:
         return 0.0
     d = np.diff(x)
-    return float(1.4826 * np.median(np.abs(d - np.median(d))) / math.sqrt(2.0))
+    return float(MAD_SCALE * np.median(np.abs(d - np.median(d))) / math.sqrt(2.0))
 
 
 def _window_mean_se(x: np.ndarray, blocks: int = 10) -> tuple[float, float]:
