@@ -16,7 +16,7 @@ from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 if TYPE_CHECKING:
-    from qcd.config import RuleSettings
+    from qcd.ruleset import RuleSettings
     from qcd.judge import Finding
 
 __all__ = ["AlertState", "Message", "Silence", "advance", "flush_digest", "tick", "PRIORITY"]
@@ -227,8 +227,8 @@ def _load(states: Mapping[str, AlertState | dict]) -> dict[str, AlertState]:
 
 
 def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding],
-            silences: Iterable[Silence], now: float, settings: RuleSettings, *, batch: bool = False
-            ) -> tuple[dict[str, AlertState], list[Message]]:
+            silences: Iterable[Silence], now: float, settings: RuleSettings, *,
+            batch: bool = False) -> tuple[dict[str, AlertState], list[Message]]:
     """One file's findings -> (all states, messages: at most one per rig).
 
     ``states`` maps key -> AlertState or its dict. With ``batch`` no message is made: openings
@@ -312,7 +312,8 @@ def tick(states: Mapping[str, AlertState | dict], silences: Iterable[Silence], n
 
 
 def flush_digest(states: Mapping[str, AlertState | dict], silences: Iterable[Silence],
-                 now: float, settings: RuleSettings) -> tuple[dict[str, AlertState], Message | None]:
+                 now: float, settings: RuleSettings
+                 ) -> tuple[dict[str, AlertState], Message | None]:
     """After a backlog: ONE message listing what opened and what resolved, or None."""
     out = _load(states)
     # Opened during the backlog itself, not held back by a silence: say so plainly.

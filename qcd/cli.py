@@ -239,8 +239,9 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         # measure -> store -> judge -> alerts -> delivery, as the service does (qcd.pipeline)
         import time
 
-        from qcd.config import find_config, load_config, load_rules
+        from qcd.config import find_config, load_config
         from qcd.pipeline import scan
+        from qcd.ruleset import load_rules
         from qcd.store import Store
         if not args.rig:
             raise ConfigError(None, "rig", "scan --store needs --rig NAME (a rig of the config)")
@@ -332,7 +333,8 @@ def _cmd_scan(args: argparse.Namespace) -> int:
 
 def _cmd_watch(args: argparse.Namespace) -> int:
     from qcd import watch
-    from qcd.config import find_config, load_config, load_rules
+    from qcd.config import find_config, load_config
+    from qcd.ruleset import load_rules
     from qcd.store import Store
     cfg = load_config(find_config(args.config))
     if not cfg.rigs:

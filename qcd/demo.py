@@ -459,7 +459,8 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
     folders in the evening, the service measures, judges and alerts, and its messages go
     through apprise to alerts.log. Ends with the morning report (text and HTML)."""
     from qcd import notify
-    from qcd.config import load_config, load_rules
+    from qcd.config import load_config
+    from qcd.ruleset import load_rules
     from qcd.report import build_report, render_html, render_text
     from qcd.store import Store
     from qcd.watch import Service, default_workers, make_sender

@@ -1,6 +1,6 @@
 """FileMeasures + the rig's history + Rules -> Findings, with noise-source hints (pure).
 
-Also the drift statistics on their own: ``robust_z``, ``ewma``, ``cusum``. Imports qcd.config
+Also the drift statistics on their own: ``robust_z``, ``ewma``, ``cusum``. Imports qcd.ruleset
 (rule dataclasses), qcd.results (measure registry, hints), qcd.units, qcd.measures.noise (the
 MAD scale) and numpy; never reads TOML, never touches the store.
 """
@@ -13,9 +13,9 @@ from typing import Any, Callable, Iterable, Sequence
 
 import numpy as np
 
-from qcd.config import HistoryRule, LimitRule, Rules
 from qcd.measures.noise import MAD_SCALE
 from qcd.results import HINTS, MEASURES, SAFETY_NOTE, ChannelMeasures, FileMeasures, Measure
+from qcd.ruleset import HistoryRule, LimitRule, Rules
 from qcd.units import DIMENSION, FACTORS
 
 __all__ = ["Finding", "Chart", "CusumChart", "judge", "robust_z", "baseline", "ewma",

@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 from scipy.stats import median_abs_deviation
 
-from qcd.config import load_rules
 from qcd.errors import ConfigError
 from qcd.judge import baseline, cusum, ewma, ewma_limits, judge, robust_z
 from qcd.results import SAFETY_NOTE, ChannelMeasures, FileMeasures, Measure
+from qcd.ruleset import load_rules
 
 # --- NIST/SEMATECH e-Handbook 6.3.2.4 "EWMA Control Charts", worked example -------------------
 EWMA_X = [52.0, 47.0, 53.0, 49.3, 50.1, 47.0, 51.0, 50.1, 51.2, 50.5,

@@ -72,7 +72,7 @@ class Recorder:
     """Counts what the service commits; measures and commits through the real pipeline."""
 
     def __init__(self, store: Store) -> None:
-        from qcd.config import load_rules
+        from qcd.ruleset import load_rules
         self.store = store
         self.committed: list = []
         self.rules = load_rules()
@@ -527,7 +527,7 @@ def test_catch_up_draws_a_progress_bar_on_a_terminal(tmp_path, store, capsys):
 
 
 def test_backlog_gives_one_digest_not_a_message_per_file(tmp_path, store):
-    from qcd.config import load_rules
+    from qcd.ruleset import load_rules
     folder = tmp_path / "rig"
     folder.mkdir()
     for i in range(6):                         # six unreadable files waiting at start-up
