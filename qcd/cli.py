@@ -167,20 +167,15 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _scan_files(paths: list[Path]) -> list[Path]:
-    """Files named and *.abf files under folders (recursive, sorted), in argument order.
-
-    ConfigError (exit 2) for a path that does not exist."""
+    """Files named and the recordings under folders (``intake.recordings_in``), in argument
+    order. ConfigError (exit 2) for a path that does not exist."""
+    from qcd.intake import recordings_in
     out: list[Path] = []
     seen: set[Path] = set()
     for p in paths:
-        if p.is_dir():
-            found = sorted(q for q in p.rglob("*") if q.suffix.lower() == ".abf"
-                           and not q.is_dir())
-        elif p.exists():
-            found = [p]
-        else:
+        if not p.exists():
             raise ConfigError(None, "", f"no such file or folder: {p}")
-        for q in found:
+        for q in recordings_in(p):
             if q not in seen:
                 seen.add(q)
                 out.append(q)
@@ -316,11 +311,6 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             if progress and i < len(files):
                 print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
                       file=sys.stderr, flush=True)
-    except BrokenPipeError:
-        # the reader of stdout went away (``| head``): stop quietly, as command-line tools do
-        import os
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
-        return EXIT_FAILED if failed else EXIT_OK
     finally:
         if pool:
             pool.shutdown(cancel_futures=True)
@@ -400,15 +390,11 @@ def _cmd_report(args: argparse.Namespace) -> int:
         report = build_report(store, now, since, args.rig)
         if args.html:
             args.html.write_text(render_html(report, store), encoding="utf-8")
-    try:
-        if args.json:
-            print(json.dumps(report.to_json(), indent=1, default=str))
-        else:
-            print(render_text(report))
-        sys.stdout.flush()
-    except BrokenPipeError:               # ``| head``: stop quietly
-        import os
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    if args.json:
+        print(json.dumps(report.to_json(), indent=1, default=str))
+    else:
+        print(render_text(report))
+    sys.stdout.flush()
     if args.html:
         print(f"HTML report written to {args.html}", file=sys.stderr if args.json else sys.stdout)
     bad = any(r.open_alerts or r.n_error for r in report.rigs) or report.outbox.get("stuck")
@@ -428,15 +414,10 @@ def _cmd_trend(args: argparse.Namespace) -> int:
                               f"(known: {', '.join(store.rigs()) or 'none'})")
         rows = trend_rows(store, args.rig, args.measure, channel=args.channel, days=args.days,
                           now=time.time())
-    try:
-        if args.csv:
-            sys.stdout.write(render_trend_csv(rows))
-        else:
-            print(render_trend_text(args.rig, args.measure, rows))
-        sys.stdout.flush()
-    except BrokenPipeError:               # ``| head``: stop quietly
-        import os
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    if args.csv:
+        sys.stdout.write(render_trend_csv(rows))
+    else:
+        print(render_trend_text(args.rig, args.measure, rows))
     return EXIT_OK if rows else EXIT_FAILED
 
 
@@ -611,7 +592,7 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"qcd {args.command}: interrupted", file=sys.stderr)
         return 130
-    except BrokenPipeError:               # ``qcd ... | head``: the reader left; stop quietly
+    except BrokenPipeError:   # ``qcd ... | head``: the reader left; stop quietly, as tools do
         _quiet_stdout()
         return EXIT_OK
 

@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 
 from qcd.errors import QcdError, RecordingError
+from qcd.intake import recordings_in
 from qcd.results import SAFETY_NOTE
 from qcd.units import FACTORS, channel_quantity
 
@@ -93,12 +94,10 @@ class Comparison:
 
 
 def _files(path: Path) -> list[Path]:
-    if path.is_dir():
-        found = sorted(p for p in path.rglob("*") if p.suffix.lower() == ".abf" and p.is_file())
-        if not found:
-            raise RecordingError(path, "not_a_file", "folder holds no .abf recordings")
-        return found
-    return [path]
+    found = recordings_in(path)
+    if not found:
+        raise RecordingError(path, "not_a_file", "folder holds no recordings qcd reads")
+    return found
 
 
 def _baseline_segments(path: Path, channel: int) -> tuple[list[np.ndarray], float, str, float]:

@@ -19,6 +19,7 @@ from typing import Any, Iterable
 
 import numpy as np
 
+from qcd.config import parse_duration
 from qcd.errors import ConfigError
 from qcd.measures.noise import MAD_SCALE
 from qcd.results import MEASURES, SAFETY_NOTE, file_time, shown
@@ -39,12 +40,13 @@ def _is_grounding(hint: str) -> bool:
 
 
 def parse_since(text: str, now: float) -> float:
-    """'18h', '3d', '90m', '2w' or an ISO date/time (UTC when no zone) -> Unix seconds."""
+    """'18h', '3d', '90m', '2w' (``parse_duration``) or an ISO date/time (UTC when no zone)
+    -> Unix seconds."""
     t = str(text).strip()
-    m = re.fullmatch(r"(\d+(?:\.\d+)?)\s*([smhdw])", t)
-    if m:
-        mult = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 604800}[m.group(2)]
-        return now - float(m.group(1)) * mult
+    try:
+        return now - parse_duration(t, "--since")
+    except ConfigError:
+        pass
     try:
         dt = datetime.fromisoformat(t)
     except ValueError:

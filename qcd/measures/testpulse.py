@@ -1,7 +1,7 @@
 """Test-pulse measures: step detection, whole-cell Ra/Rm/Cm/tau, seal, current-clamp input resistance.
 
-Pure functions on numpy arrays in SI units (A, V, Ω, F, s); formulas and checks in METHODS.md §1.
-Imports numpy and scipy only.
+Pure functions on numpy arrays in SI units (A, V, Ω, F, s); formulas and checks in
+docs/methods.md §1. Imports numpy, scipy and qcd.measures.noise (the MAD scale).
 """
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ from qcd.measures.noise import MAD_SCALE
 __all__ = [
     "StepWindow", "WholeCell", "Rejected", "CurrentClamp", "BESSEL4_DELAY", "OPEN_PIPETTE_MAX_OHM",
     "MAX_ACCESS_OHM",
-    "find_step", "try_whole_cell", "whole_cell", "peak_access_resistance", "seal_resistance",
+    "find_step", "try_whole_cell", "peak_access_resistance", "seal_resistance",
     "seal_resistance_se",
     "input_resistance", "classify", "average_steps", "access_change_pct",
 ]
@@ -403,18 +403,6 @@ def try_whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
                      membrane_capacitance=float(cm), tau=float(tau), total_resistance=float(rt),
                      holding=holding, i_ss=float(i_ss), charge=float(q),
                      fit_start_s=float(t[k_fit]), head=head)
-
-
-def whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
-               filter_hz: float | None = None,
-               rails: tuple[float, float] | None = None) -> WholeCell | None:
-    """Whole-cell estimates (Ra, Rm, Cm, τ, Rt, holding, I_ss, Q) or None; see `try_whole_cell`.
-
-    Units SI (Ω, F, s, A, C). Source: METHODS §1.1–1.2 charge method with fitted τ.
-    Use `try_whole_cell` for the reason when this returns None.
-    """
-    r = try_whole_cell(current, fs, step, filter_hz=filter_hz, rails=rails)
-    return r if isinstance(r, WholeCell) else None
 
 
 def peak_access_resistance(current: np.ndarray, fs: float, step: StepWindow) -> float:
