@@ -389,7 +389,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
                                   f"(known: {', '.join(known) or 'none'})")
         report = build_report(store, now, since, args.rig)
         if args.html:
-            args.html.write_text(render_html(report, store), encoding="utf-8")
+            args.html.write_text(render_html(report), encoding="utf-8")
     if args.json:
         print(json.dumps(report.to_json(), indent=1, default=str))
     else:
@@ -440,56 +440,20 @@ def _cmd_compare(args: argparse.Namespace) -> int:
 
 
 def _cmd_alerts(args: argparse.Namespace) -> int:
-    import fnmatch
     import time
 
-    from qcd.config import find_config, load_config, redact_text
+    from qcd.config import find_config, load_config
+    from qcd.report import build_alerts, render_alerts
     from qcd.store import Store
-
     cfg = load_config(find_config(args.config))
     if not cfg.database.exists():
         print(f"qcd alerts: no database yet at {cfg.database} (start 'qcd watch' first)",
               file=sys.stderr)
         return EXIT_FAILED
-    now = time.time()
-
-    def when(t: float | None) -> str:
-        if t is None:
-            return "-"
-        from datetime import datetime
-        return datetime.fromtimestamp(t).astimezone().strftime("%Y-%m-%d %H:%M %Z")
-
-    def table(title: str, head: tuple[str, ...], rows: list[tuple]) -> None:
-        print(f"{title}: {len(rows) or 'none'}")
-        if not rows:
-            return
-        cells = [tuple(head)] + [tuple("-" if c is None else str(c) for c in r) for r in rows]
-        widths = [max(len(r[i]) for r in cells) for i in range(len(head))]
-        for r in cells:
-            print("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())
-
     with Store(cfg.database) as store:
-        open_ = store.open_alerts(args.rig)
-        resolved = store.recent_alerts(now - args.days * 86400.0, args.rig)
-        silences = [s for s in store.active_silences(now)
-                    if args.rig is None or fnmatch.fnmatchcase(args.rig, s.rig_glob)]
-        counts = store.outbox_counts()
-        stuck = [r for r in store.stuck_rows() if args.rig is None or r["rig"] == args.rig]
-    table("open alerts", ("rig", "channel", "measure", "rule", "state", "opened", "announced"),
-          [(a["rig"], a["channel"], a["measure"], a["rule"], a["state"], when(a["opened_at"]),
-            "yes" if a["announced"] else "no") for a in open_])
-    table(f"resolved in the last {args.days:g} days", ("rig", "channel", "measure", "rule",
-                                                       "opened", "resolved"),
-          [(a["rig"], a["channel"], a["measure"], a["rule"], when(a["opened_at"]),
-            when(a["resolved_at"])) for a in resolved])
-    table("active silences", ("id", "rig", "rules", "from", "until", "reason"),
-          [(s.id, s.rig_glob, s.rule_glob, when(s.start_at),
-            "resolved" if s.end_at is None else when(s.end_at), s.reason) for s in silences])
-    print(f"outbox: {counts['pending']} pending, {counts['sent']} sent, {counts['stuck']} stuck")
-    table("undeliverable messages", ("id", "rig", "title", "attempts", "created", "last error"),
-          [(r["id"], r["rig"], r["title"], r["attempts"], when(r["created_at"]),
-            redact_text(r["last_error"] or "", cfg.notify)) for r in stuck])
-    return EXIT_FAILED if open_ or stuck else EXIT_OK
+        alerts = build_alerts(store, time.time(), days=args.days, rig=args.rig)
+    print(render_alerts(alerts, secrets=cfg.notify))
+    return EXIT_FAILED if alerts.open or alerts.stuck else EXIT_OK
 
 
 def _cmd_silence(args: argparse.Namespace) -> int:

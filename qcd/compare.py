@@ -412,7 +412,7 @@ def render_compare_text(c: Comparison) -> str:
 
 def render_compare_html(c: Comparison) -> str:
     """One self-contained HTML page: the two spectra overlaid, and the table."""
-    from qcd.report import figure_data_uri, page
+    from qcd.html import figure_data_uri, page
     import matplotlib.pyplot as plt
     fig, ax = plt.subplots(figsize=(9, 4.2), dpi=110)
     for side, name, color in ((c.before, "before", "#4a6fa5"), (c.after, "after", "#c8553d")):

@@ -383,7 +383,7 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
         html_path = None
         if write_html:
             html_path = folder / "report.html"
-            html_path.write_text(render_html(report, store), encoding="utf-8")
+            html_path.write_text(render_html(report), encoding="utf-8")
     shutil.rmtree(staging, ignore_errors=True)
     seconds = time.monotonic() - t_start
     say("")

@@ -73,7 +73,8 @@ class MeasureInfo:
     'signal/s' its rate; else an SI dimension of qcd.units ('Ohm', 'F', 's', 'Hz', '%') or ''
     for plain numbers, counts and flags. ``display_unit`` overrides the dimension's usual unit.
     ``noise``: a noise measure (a bad value gets a noise-source hint). ``show``: where it is
-    shown ('report' table, 'plot' trend plot, 'compare' file-measures table).
+    shown ('report' table, 'plot' trend plot, 'compare' file-measures table). ``log_axis``:
+    values may span decades (plotted on a log axis when they do).
     """
     dimension: str
     label: str
@@ -81,6 +82,7 @@ class MeasureInfo:
     hint_group: str | None = None
     noise: bool = False
     show: tuple[str, ...] = ()
+    log_axis: bool = False
 
 
 _SIG = "signal"
@@ -94,7 +96,7 @@ MEASURES: dict[str, MeasureInfo] = {
     "event_blocks": MeasureInfo("", "blocks left out for events"),
     "line_hz": MeasureInfo("Hz", "mains frequency", show=("compare",)),
     "hum_rms": MeasureInfo(_SIG, "mains hum RMS", hint_group="mains", noise=True,
-                           show=("report", "plot", "compare")),
+                           show=("report", "plot", "compare"), log_axis=True),
     "hum_fundamental_rms": MeasureInfo(_SIG, "mains fundamental RMS", hint_group="mains",
                                        noise=True),
     "hum_fraction": MeasureInfo("", "hum share of the baseline variance", hint_group="mains",
@@ -112,11 +114,11 @@ MEASURES: dict[str, MeasureInfo] = {
     "baseline_drift": MeasureInfo("signal/s", "baseline drift", hint_group="low", noise=True,
                                   show=("report",)),
     "seal_resistance": MeasureInfo("Ohm", "seal resistance", display_unit="GOhm",
-                                   show=("report", "plot", "compare")),
+                                   show=("report", "plot", "compare"), log_axis=True),
     "access_resistance": MeasureInfo("Ohm", "access resistance",
                                      show=("report", "plot", "compare")),
     "membrane_resistance": MeasureInfo("Ohm", "membrane resistance",
-                                       show=("report", "plot", "compare")),
+                                       show=("report", "plot", "compare"), log_axis=True),
     "membrane_capacitance": MeasureInfo("F", "membrane capacitance",
                                         show=("report", "plot", "compare")),
     "tau": MeasureInfo("s", "test-pulse time constant", display_unit="us"),

@@ -126,7 +126,7 @@ class _Collect(HTMLParser):
 
 
 def test_html_report_is_one_self_contained_file(store):
-    page = render_html(build_report(store, NOW, parse_since("18h", NOW)), store)
+    page = render_html(build_report(store, NOW, parse_since("18h", NOW)))
     p = _Collect()
     p.feed(page)
     p.close()
@@ -181,7 +181,7 @@ def test_active_silence_is_shown_with_its_reason(store):
     r = build_report(store, NOW, parse_since("18h", NOW))
     text = render_text(r)
     assert "silenced until" in text and "replacing the bath ground" in text
-    assert "replacing the bath ground" in render_html(r, store)
+    assert "replacing the bath ground" in render_html(r)
 
 
 def test_sparkline_keeps_a_single_dip_when_it_downsamples():
