@@ -11,7 +11,7 @@ from __future__ import annotations
 import hashlib
 import logging
 import math
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -25,7 +25,7 @@ from qcd.measures import spectrum as sp
 from qcd.recording import open_recording
 from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum, display_unit
 
-__all__ = ["analyze", "analyze_path"]
+__all__ = ["analyze", "analyze_path", "Baseline", "baseline_blocks"]
 
 log = logging.getLogger("qcd.analyze")
 
@@ -630,16 +630,9 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
                            dim, out, tuple(notes), spectrum)
 
 
-def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
-            chunk_size: int = 1 << 20) -> FileMeasures:
-    """Measure an open Recording (one pass over its samples).
-
-    ``pulse`` (qcd.config.TestPulse) is used when neither the protocol nor a recorded command
-    shows a test step; ``mains_hz`` (50/60) skips the 50-vs-60 detection; ``chunk_size`` is
-    the reader's chunk length for gap-free files (results do not depend on it).
-    """
-    rec = recording
-    notes: list[str] = list(rec.notes)
+def _plan(rec: Any, pulse: Any, notes: list[str]
+          ) -> tuple[_Dims, str, int | None, dict[int, _StepPlan], list[list[tuple[int, int]]]]:
+    """(dimensions, mode, primary channel, test-step plans, baseline windows per sweep)."""
     dims = _Dims(rec, notes)
     mode, primary = _mode(rec, dims)
     want = {"voltage_clamp": "A", "current_clamp": "V"}.get(mode)
@@ -650,6 +643,20 @@ def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
                 plans[c] = _plan_steps(rec, dims, mode, c, primary, pulse)
     windows = [] if rec.gap_free else _baseline_windows(rec, dims, mode, primary,
                                                         list(plans.values()), notes)
+    return dims, mode, primary, plans, windows
+
+
+def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
+            chunk_size: int = 1 << 20) -> FileMeasures:
+    """Measure an open Recording (one pass over its samples).
+
+    ``pulse`` (qcd.config.TestPulse) is used when neither the protocol nor a recorded command
+    shows a test step; ``mains_hz`` (50/60) skips the 50-vs-60 detection; ``chunk_size`` is
+    the reader's chunk length for gap-free files (results do not depend on it).
+    """
+    rec = recording
+    notes: list[str] = list(rec.notes)
+    dims, mode, primary, plans, windows = _plan(rec, pulse, notes)
     channels = tuple(_channel(rec, c, dims, mode, plans.get(c), windows, mains_hz, chunk_size)
                      for c in range(len(rec.channels)))
     return FileMeasures(
@@ -699,3 +706,63 @@ def analyze_path(path: Any, *, pulse: Any = None, mains_hz: float | None = None,
                             error=f"{p}: internal error while measuring "
                                   f"({type(e).__name__}: {e})", **facts)
     return replace(fm, **facts)
+
+
+@dataclass(frozen=True)
+class Baseline:
+    """One channel's baseline as blocks of equal length: the stretches analyze takes its
+    spectrum from (gap-free: 1 s blocks; episodic: the windows at the holding level), blocks
+    that hold events left out."""
+    fs: float
+    dimension: str                   # 'A', 'V' or '' (qcd.units.channel_quantity)
+    unit: str                        # the blocks' unit: the display unit, else the channel's
+    blocks: np.ndarray               # (n, L)
+    events: int                      # blocks left out because they hold events
+    notes: tuple[str, ...] = ()
+
+
+def baseline_blocks(rec: Any, channel: int, *, pulse: Any = None,
+                    max_blocks: int | None = None) -> Baseline:
+    """The baseline blocks of one channel of an open Recording, in its display unit.
+
+    The windows and block length are analyze's own (``pulse`` as for ``analyze``); at most
+    ``max_blocks`` blocks are read from a gap-free file, so a long file is not read whole.
+    """
+    notes: list[str] = []
+    dims, _, _, _, windows = _plan(rec, pulse, notes)
+    dim, factor = dims.dim[channel], dims.factor[channel]
+    unit = units.DISPLAY[dim] if dim else (rec.channels[channel].unit.replace("\x00", "").strip())
+    scale = factor / units.FACTORS[unit] if dim else 1.0
+    fs = rec.fs
+    rows: list[np.ndarray] = []
+    if rec.gap_free:
+        L = max(1, min(int(round(fs * _BLOCK_S)), rec.n_samples))
+        left = np.empty(0)
+        for x in rec.chunks(channel, None, size=max(L, (1 << 20) // L * L)):
+            x = np.concatenate((left, x)) if len(left) else x
+            nb = len(x) // L
+            if max_blocks is not None:
+                nb = min(nb, max_blocks - sum(len(r) for r in rows))
+            rows.append(x[:nb * L].reshape(nb, L))
+            left = x[nb * L:]
+            if max_blocks is not None and sum(len(r) for r in rows) >= max_blocks:
+                break
+    else:
+        L = min(int(round(fs * _BLOCK_S)), max((b - a for w in windows for a, b in w), default=0))
+        for k, wins in enumerate(windows):
+            x = rec.sweep(channel, k) if L >= _MIN_BLOCK else np.empty(0)
+            for a, b in wins:
+                nb = (b - a) // L if L >= _MIN_BLOCK else 0
+                if nb:
+                    rows.append(x[a:a + nb * L].reshape(nb, L))
+    blocks = np.concatenate(rows) * scale if rows else np.empty((0, max(L, 0)))
+    blocks = blocks[np.isfinite(blocks).all(axis=1)]
+    events = 0
+    if len(blocks):
+        X, _, _ = sp.block_fft(blocks)
+        sd, _ = nz.parseval_sd(X, blocks.shape[1], fs)
+        keep = ~nz.event_blocks(sd)
+        events = int((~keep).sum())
+        blocks = blocks[keep]
+    return Baseline(float(fs), dim, unit, blocks, events, tuple(notes))
+

@@ -241,7 +241,7 @@ def test_sample_ground_fix_shows_in_compare():
     from qcd.compare import compare_paths
     root = Path(__file__).resolve().parent.parent / "demo_data" / "compare"
     c = compare_paths(root / "ground_before.abf", root / "ground_after.abf")
-    hum = {x.name: x for x in c.changes}["hum_total"]
+    hum = {x.name: x for x in c.changes}["hum_rms"]
     # hum amplitudes divided by 10 -> -20 dB (20 log10 0.1), per-file scatter aside
     assert hum.significant and hum.change_db == pytest.approx(-20.0, abs=1.5)
     assert c.before.line_hz == 50.0 and c.safety_note
