@@ -1,10 +1,11 @@
-"""Recording -> FileMeasures: baseline windows, test-step source, one pass over the data, notes.
+"""Recording -> FileMeasures (qcd.results): baseline windows, test-step source, one pass, notes.
 
-The dataclasses here are what every later stage (store, judge, report, scan --json) consumes.
 Windows: gap-free files in 1 s blocks (events: block RMS > 3x median, left out and counted);
 episodic files before the first command change (the spectrum also after the return to
 holding). Test step from the protocol, else a recorded command, else the declared pulse.
-Imports qcd.recording, qcd.measures, qcd.units, qcd.config (TestPulse), qcd.errors.
+``baseline_blocks`` gives one channel's baseline blocks as the spectrum takes them (compare).
+Imports qcd.recording, qcd.measures, qcd.results, qcd.units, qcd.errors.
+Over 500 lines: windows, blocks and test pulse share one pass; a split follows the measure work.
 """
 from __future__ import annotations
 

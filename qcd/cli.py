@@ -3,6 +3,7 @@
 Exit codes: 0 all good, 1 some file failed (or an alert/delivery problem was found), 2 usage or
 config error. A QcdError prints as one line; a traceback only with --debug.
 Each command's body is a ``_cmd_<name>(args) -> int`` below; library code lives in its module.
+Over 500 lines: the whole command surface (every option and its help) is one parser here.
 """
 from __future__ import annotations
 

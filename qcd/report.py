@@ -1,10 +1,11 @@
 """The morning report, trends and the alerts list from the store: plain data, then terminal
 text, JSON and one self-contained HTML page (qcd.html).
 
-``build_report`` and ``build_alerts`` are the only functions that read the store (its read
-queries only); everything rendered, JSON included, comes from the data they return.
+``build_report``, ``trend_rows`` and ``build_alerts`` are the only functions that read the
+store (its read queries only); everything rendered, JSON included, comes from what they return.
 Imports qcd.results, qcd.html, qcd.config (durations, redaction), qcd.errors,
-qcd.measures.noise (the MAD scale) and numpy; the Store it is given.
+qcd.measures.noise (the MAD scale) and numpy; the Store it is given. Over 500 lines: the three
+listings people read (report, trend, alerts) share their data and formatting.
 """
 from __future__ import annotations
 
@@ -68,7 +69,7 @@ def parse_since(text: str, now: float) -> float:
 def normal_range(values: Iterable[float]) -> tuple[float, float, int] | None:
     """(median, robust SD = 1.4826 MAD, n) of a history; None when empty.
 
-    Robust z as in Iglewicz & Hoaglin 1993 / Rousseeuw & Croux 1993 (METHODS.md section 7).
+    Robust z as in Iglewicz & Hoaglin 1993 / Rousseeuw & Croux 1993 (docs/methods.md §7).
     """
     v = np.asarray([x for x in values if x is not None and math.isfinite(x)], dtype=float)
     if v.size == 0:

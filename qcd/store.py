@@ -3,7 +3,8 @@
 One writer process (the service); short writes from a second process (``qcd silence``) are
 safe because every write transaction starts with BEGIN IMMEDIATE. Times are Unix seconds.
 Imports sqlite-utils, numpy, qcd.errors, qcd.results (what a measured file is) and
-qcd.alerts (Message, Silence); never qcd.analyze.
+qcd.alerts (Message, Silence); never qcd.analyze. Over 500 lines: one Store class holds every
+query, so that no other module holds SQL.
 """
 from __future__ import annotations
 

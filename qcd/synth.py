@@ -38,7 +38,7 @@ def cell_step_current(t_s: np.ndarray, dv: float, ra: float, rm: float, cm: floa
 
     I(t) = dv/Rt + (dv/Ra - dv/Rt) exp(-t/tau), Rt = Ra + Rm, tau = Cm Ra Rm / Rt; zero up to
     and at t = 0 (a sample on the boundary sees the old level). Source: the time-domain test-pulse method (Lindau & Neher 1988); closed form
-    derived in METHODS.md section 1.1.
+    derived in docs/methods.md §1.1.
     """
     t = np.asarray(t_s, dtype=float)
     rt = ra + rm

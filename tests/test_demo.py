@@ -1,6 +1,6 @@
-"""The demo lab: its models agree with the analytic references (tests/references.py, METHODS.md),
-its files are real ABF1 that pyabf and qcd's reader read back, and the real pipeline finds its
-scripted faults (and nothing on the healthy rig)."""
+"""The demo lab: its models agree with the analytic references (tests/references.py,
+docs/methods.md), its files are real ABF1 that pyabf and qcd's reader read back, and the real
+pipeline finds its scripted faults (and nothing on the healthy rig)."""
 from __future__ import annotations
 
 import math
@@ -17,10 +17,10 @@ from qcd import demo, synth
 
 def test_cell_model_equals_the_closed_form_reference():
     t = np.linspace(-1e-4, 5e-3, 500)
-    args = (-5e-3, 10e6, 500e6, 33e-12)       # METHODS §1.1 check cell
+    args = (-5e-3, 10e6, 500e6, 33e-12)       # docs/methods.md §1.1 check cell
     assert np.allclose(synth.cell_step_current(t, *args), ref.cell_step_current(t, *args),
                        rtol=1e-12, atol=0)
-    # METHODS §1.1 check values: I0 = -500 pA, I_ss = -9.8039 pA
+    # docs/methods.md §1.1 check values: I0 = -500 pA, I_ss = -9.8039 pA
     assert synth.cell_step_current(np.array([1e-12]), *args)[0] == pytest.approx(-500e-12, rel=1e-6, abs=0)
     assert synth.cell_step_current(np.array([1.0]), *args)[0] == pytest.approx(-9.8039e-12,
                                                                            rel=1e-4, abs=0)
@@ -44,14 +44,15 @@ def test_filtered_whole_cell_sweep_agrees_with_the_analog_bessel_reference():
 
 
 def test_seal_model_is_ohms_law():
-    # METHODS §1.3: +10 mV across 1 GOhm gives 10.0 pA
+    # docs/methods.md §1.3: +10 mV across 1 GOhm gives 10.0 pA
     assert synth.seal_step_current(np.array([1e-3]), 10e-3, 1e9)[0] == pytest.approx(10e-12, rel=1e-9, abs=0)
     r = ref.sampled_resistor(10e-3, 1e9, 20000.0, n_pre=10, n_step=400, filter_hz=2000.0)
     assert r[300] == pytest.approx(10e-12, rel=1e-3, abs=0)
 
 
 def test_thermal_noise_matches_the_johnson_nyquist_table():
-    # METHODS §3.1 table [D], 295 K: 500 MOhm -> 0.1805 pA at 1 kHz, 10 GOhm -> 0.1276 pA at 10 kHz
+    # docs/methods.md §3.1 table [D], 295 K: 500 MOhm -> 0.1805 pA at 1 kHz,
+    # 10 GOhm -> 0.1276 pA at 10 kHz
     assert synth.thermal_noise_rms(500e6, 1e3) == pytest.approx(0.1805e-12, abs=1e-16)
     assert synth.thermal_noise_rms(10e9, 1e4) == pytest.approx(0.1276e-12, abs=1e-16)
 

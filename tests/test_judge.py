@@ -73,7 +73,7 @@ RA_HISTORY = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]
 
 
 def test_robust_z_matches_methods_check_values():
-    # METHODS 7 check: median 9.5, MAD 0.5 (scaled 0.7413), new 18 MOhm -> z = 11.47
+    # docs/methods.md §7 check: median 9.5, MAD 0.5 (scaled 0.7413), new 18 MOhm -> z = 11.47
     med, scale = baseline(RA_HISTORY)
     assert med == 9.5
     assert scale == pytest.approx(0.7413, abs=1e-4)

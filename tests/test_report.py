@@ -1,7 +1,7 @@
 """The morning report and trend read the store and show exactly its numbers.
 
 The store is filled through Store.commit_file with FileMeasures whose values are the access-
-resistance history of METHODS.md section 7 (median 9.5 MOhm, MAD 0.5 MOhm, robust SD 0.7413;
+resistance history of docs/methods.md §7 (median 9.5 MOhm, MAD 0.5 MOhm, robust SD 0.7413;
 Iglewicz & Hoaglin 1993, robust z), plus one outlier.
 """
 from __future__ import annotations
@@ -23,7 +23,7 @@ from qcd.report import (build_report, normal_range, parse_since, render_html, re
 from qcd.store import Store
 
 NOW = datetime(2026, 11, 20, 8, 0, tzinfo=timezone.utc).timestamp()
-RA = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]   # METHODS.md §7 check values
+RA = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]   # docs/methods.md §7 check values
 
 
 def _fm(i: int, t: float, ra: float, hum: float, status: str = "ok") -> FileMeasures:
@@ -71,7 +71,7 @@ def store(tmp_path):
 def test_normal_range_matches_the_published_robust_z_example():
     med, sd, n = normal_range(RA)
     assert med == 9.5 and n == 10
-    assert sd == pytest.approx(0.7413, abs=1e-4)       # 1.4826 x MAD 0.5 (METHODS §7)
+    assert sd == pytest.approx(0.7413, abs=1e-4)       # 1.4826 x MAD 0.5 (docs/methods.md §7)
     assert (18.0 - med) / sd == pytest.approx(11.47, abs=0.01)
 
 
