@@ -11,9 +11,13 @@ import argparse
 import logging
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from qcd import __version__
 from qcd.errors import ConfigError, QcdError
+
+if TYPE_CHECKING:
+    from qcd.results import FileMeasures, Measure
 
 __all__ = ["main", "build_parser"]
 
@@ -183,7 +187,7 @@ def _scan_files(paths: list[Path]) -> list[Path]:
     return out
 
 
-def _scan_one(job: tuple) -> object:
+def _scan_one(job: tuple) -> FileMeasures:
     """Measure one file (runs in a worker process with --workers)."""
     from qcd.analyze import analyze_path
     path, pulse, mains_hz = job
@@ -194,14 +198,14 @@ _SCAN_MODES = {"voltage_clamp": "VC", "current_clamp": "CC", "extracellular": "E
                "unknown": "?"}
 
 
-def _scan_value(ms: dict, name: str, digits: int = 3) -> str:
+def _scan_value(ms: dict[str, Measure], name: str, digits: int = 3) -> str:
     m = ms.get(name)
     if m is None:
         return "-"
     return f"{m.value:.{digits}g} {m.unit}".strip()
 
 
-def _scan_row(fm: object, width: int = 22) -> str:
+def _scan_row(fm: FileMeasures, width: int = 22) -> str:
     """One line of the scan table (fits 100 columns)."""
     name = Path(fm.path).name
     name = name if len(name) <= width else name[:width - 1] + "~"
