@@ -79,3 +79,31 @@ def test_readme_config_example_loads(tmp_path):
     cfg = load_config(path)
     assert [r.name for r in cfg.rigs] == ["patch-1"]
     assert cfg.rigs[0].test_pulse is not None and cfg.rigs[0].mains_hz == 50
+
+
+def test_the_registry_describes_the_units_analyze_gives():
+    # every produced measure carries the unit its registry entry says (qcd.results.MEASURES):
+    # the channel's display unit for 'signal', per minute for 'signal/s', '' for plain numbers
+    from qcd.analyze import analyze_path
+    from qcd.results import HINTS, MEASURES, display_unit
+    from qcd.units import DISPLAY, FACTORS
+    for name, m in MEASURES.items():
+        assert m.hint_group is None or m.hint_group in HINTS, name
+        assert not m.display_unit or m.display_unit in FACTORS, name
+    from conftest import abf
+    real = [abf(n) for n in ("vc_step_abf1.abf", "vc_tight_seal_noisy.abf", "cc_steps_abf1.abf")]
+    seen = set()
+    for path in sorted((ROOT / "demo_data").rglob("*.abf")) + real:
+        for ch in analyze_path(path).channels:
+            for name, got in ch.measures.items():
+                dim = MEASURES[name].dimension
+                if dim == "signal":
+                    want = DISPLAY[ch.dimension]
+                elif dim == "signal/s":
+                    want = DISPLAY[ch.dimension + "/s"]
+                else:
+                    want = display_unit(name, dim)
+                assert got.unit == want, (path.name, name, got.unit, want)
+                seen.add(name)
+    assert {"noise_rms", "baseline_drift", "hum_rms", "access_resistance", "tau",
+            "seal_resistance", "input_resistance"} <= seen, sorted(seen)
