@@ -14,7 +14,10 @@ def __getattr__(name: str):  # lazy, so `import qcd` stays cheap for the CLI and
     if name == "open_recording":
         from qcd.recording import open_recording
         return open_recording
-    if name in ("analyze_path", "FileMeasures"):
-        import qcd.analyze as _a
-        return getattr(_a, name)
+    if name == "analyze_path":
+        from qcd.analyze import analyze_path
+        return analyze_path
+    if name == "FileMeasures":
+        from qcd.results import FileMeasures
+        return FileMeasures
     raise AttributeError(name)

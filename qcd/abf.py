@@ -2,7 +2,8 @@
 
 The raw header bytes are checked first (signature, counts, section extents, size), so garbage
 can never make pyabf hang or allocate hugely; pyabf's own exceptions are wrapped in
-RecordingError. Imports qcd.errors only.
+RecordingError. Imports qcd.errors only. Over 500 lines: the two header versions' byte
+checks belong with the one layout they fill.
 """
 from __future__ import annotations
 

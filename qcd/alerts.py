@@ -6,16 +6,20 @@ unstable keys, reminders repeat at most every repeat_h while bad files arrive. S
 inhibition and the learning phase hold messages back; the state machine always runs. One
 file's events become ONE message; a backlog (``batch=True`` + ``flush_digest``) becomes one
 digest. Every event has a number (``seq``) so an outbox row is unique on (key, transition).
-Imports only the standard library.
+Imports only the standard library (qcd.judge's Finding and the rule settings as types).
 """
 from __future__ import annotations
 
 import fnmatch
 from dataclasses import asdict, dataclass, field, fields
 from datetime import datetime, timezone
-from typing import Any, Iterable, Mapping
+from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
-__all__ = ["AlertState", "Message", "advance", "flush_digest", "tick", "PRIORITY"]
+if TYPE_CHECKING:
+    from qcd.ruleset import RuleSettings
+    from qcd.judge import Finding
+
+__all__ = ["AlertState", "Message", "Silence", "advance", "flush_digest", "tick", "PRIORITY"]
 
 # Outbox priorities: firing above reminders above resolved (resolved are lower priority).
 PRIORITY = {"firing": 2, "unstable": 2, "digest": 2, "reminder": 1, "resolved": 0}
@@ -70,11 +74,8 @@ class AlertState:
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> "AlertState":
-        """Inverse of to_dict; extra keys (store columns, state_json) are ignored or unpacked."""
+        """Inverse of to_dict; extra keys are ignored."""
         data = dict(d)
-        if isinstance(data.get("state_json"), str):
-            import json
-            data = {**data, **json.loads(data["state_json"])}
         if "machine" in data:
             data["state"] = data["machine"]
         names = {f.name for f in fields(cls)}
@@ -86,7 +87,7 @@ class AlertState:
         return cls(**kw)
 
     @classmethod
-    def new(cls, f: Any) -> "AlertState":
+    def new(cls, f: Finding) -> "AlertState":
         return cls(key=f.key, rig=f.rig, mode=f.mode, channel=f.channel, measure=f.measure,
                    rule=f.rule, kind=f.kind)
 
@@ -104,29 +105,34 @@ class Message:
 
 
 @dataclass(frozen=True)
+class Silence:
+    """Messages of matching rigs/rules held back from start_at until end_at (a stored row)."""
+    id: int
+    rig_glob: str
+    rule_glob: str
+    start_at: float
+    end_at: float | None          # None: until the silenced alerts resolve
+    reason: str
+
+
+@dataclass(frozen=True)
 class _Event:
     what: str                 # opened | reminder | resolved | unstable | stable | late
     state: AlertState
     seq: int
 
 
-def _get(obj: Any, name: str, default: Any = None) -> Any:
-    if isinstance(obj, Mapping):
-        return obj.get(name, default)
-    return getattr(obj, name, default)
-
-
-def _silence_for(s: AlertState, silences: Iterable[Any], now: float) -> Any:
+def _silence_for(s: AlertState, silences: Iterable[Silence], now: float) -> Silence | None:
     """The first silence that mutes this key now (until-resolved ones once per episode)."""
     for sil in silences:
-        start, end = _get(sil, "start_at") or 0.0, _get(sil, "end_at")
+        start, end = sil.start_at, sil.end_at
         if now < start or (end is not None and now >= end):
             continue
-        if not fnmatch.fnmatchcase(s.rig, _get(sil, "rig_glob") or "*"):
+        if not fnmatch.fnmatchcase(s.rig, sil.rig_glob):
             continue
-        if not fnmatch.fnmatchcase(s.rule, _get(sil, "rule_glob") or "*"):
+        if not fnmatch.fnmatchcase(s.rule, sil.rule_glob):
             continue
-        if end is None and _get(sil, "id") in s.spent:
+        if end is None and sil.id in s.spent:
             continue
         return sil
     return None
@@ -154,25 +160,25 @@ def _inhibited(s: AlertState, states: Mapping[str, AlertState], rig_bad: set[str
     return False
 
 
-def _mute_reason(s: AlertState, states: Mapping[str, AlertState], silences: Iterable[Any],
+def _mute_reason(s: AlertState, states: Mapping[str, AlertState], silences: Iterable[Silence],
                  rig_bad: set[str], now: float) -> str:
     if s.learning and s.kind == "drift":
         return "learning"
     sil = _silence_for(s, silences, now)
     if sil is not None:
-        if _get(sil, "end_at") is None and _get(sil, "id") not in s.silences:
-            s.silences.append(_get(sil, "id"))
+        if sil.end_at is None and sil.id not in s.silences:
+            s.silences.append(sil.id)
         return "silence"
     if _inhibited(s, states, rig_bad):
         return "inhibited"
     return ""
 
 
-def _step(s: AlertState, f: Any, now: float, settings: Any) -> list[str]:
+def _step(s: AlertState, f: Finding, now: float, settings: RuleSettings) -> list[str]:
     """Advance one key by one file; the raw events ('opened', 'resolved', 'reminder', ...)."""
     for name in ("severity", "value", "unit", "limit_text", "hint", "path", "for_files",
                  "clear_files", "repeat_h", "learning", "headline"):
-        setattr(s, name, getattr(f, name, getattr(s, name)))
+        setattr(s, name, getattr(f, name))
     s.updated_at = now
     events: list[str] = []
     change = False
@@ -201,7 +207,7 @@ def _step(s: AlertState, f: Any, now: float, settings: Any) -> list[str]:
                 s.state, s.resolved_at, s.clear_run = "ok", now, 0
                 change = True
                 events.append("resolved")
-    window = int(getattr(settings, "flap_window", 21))
+    window = settings.flap_window
     s.changes = (s.changes + [1 if change else 0])[-window:]
     if s.flapping:
         s.stable_files = 0 if change else s.stable_files + 1
@@ -209,20 +215,20 @@ def _step(s: AlertState, f: Any, now: float, settings: Any) -> list[str]:
             s.flapping, s.changes, s.stable_files = False, [], 0
             return ["stable"]
         return []
-    if sum(s.changes) >= int(getattr(settings, "flap_changes", 6)):
+    if sum(s.changes) >= settings.flap_changes:
         s.flapping, s.stable_files = True, 0
         return ["unstable"]
     return events
 
 
-def _load(states: Mapping[str, Any]) -> dict[str, AlertState]:
+def _load(states: Mapping[str, AlertState | dict]) -> dict[str, AlertState]:
     return {k: (v if isinstance(v, AlertState) else AlertState.from_dict(v))
             for k, v in states.items()}
 
 
-def advance(states: Mapping[str, Any], findings: Iterable[Any], silences: Iterable[Any],
-            now: float, settings: Any, *, batch: bool = False
-            ) -> tuple[dict[str, AlertState], list[Message]]:
+def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding],
+            silences: Iterable[Silence], now: float, settings: RuleSettings, *,
+            batch: bool = False) -> tuple[dict[str, AlertState], list[Message]]:
     """One file's findings -> (all states, messages: at most one per rig).
 
     ``states`` maps key -> AlertState or its dict. With ``batch`` no message is made: openings
@@ -282,7 +288,7 @@ def advance(states: Mapping[str, Any], findings: Iterable[Any], silences: Iterab
     return out, _group(events, now)
 
 
-def _late(out: dict[str, AlertState], silences: list[Any], rig_bad: set[str], now: float,
+def _late(out: dict[str, AlertState], silences: list[Silence], rig_bad: set[str], now: float,
           skip: set[str] = frozenset()) -> list[_Event]:
     """Open keys never announced (held by a silence that ended, inhibition, learning): announce."""
     events = []
@@ -298,14 +304,15 @@ def _late(out: dict[str, AlertState], silences: list[Any], rig_bad: set[str], no
     return events
 
 
-def tick(states: Mapping[str, Any], silences: Iterable[Any], now: float, settings: Any
-         ) -> tuple[dict[str, AlertState], list[Message]]:
+def tick(states: Mapping[str, AlertState | dict], silences: Iterable[Silence], now: float,
+         settings: RuleSettings) -> tuple[dict[str, AlertState], list[Message]]:
     """No new file: announce open alerts whose silence has ended (one message per rig)."""
     out = _load(states)
     return out, _group(_late(out, list(silences), set(), now), now)
 
 
-def flush_digest(states: Mapping[str, Any], silences: Iterable[Any], now: float, settings: Any
+def flush_digest(states: Mapping[str, AlertState | dict], silences: Iterable[Silence],
+                 now: float, settings: RuleSettings
                  ) -> tuple[dict[str, AlertState], Message | None]:
     """After a backlog: ONE message listing what opened and what resolved, or None."""
     out = _load(states)

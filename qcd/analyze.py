@@ -1,10 +1,11 @@
-"""Recording -> FileMeasures: baseline windows, test-step source, one pass over the data, notes.
+"""Recording -> FileMeasures (qcd.results): baseline windows, test-step source, one pass, notes.
 
-The dataclasses here are what every later stage (store, judge, report, scan --json) consumes.
 Windows: gap-free files in 1 s blocks (events: block RMS > 3x median, left out and counted);
 episodic files before the first command change (the spectrum also after the return to
 holding). Test step from the protocol, else a recorded command, else the declared pulse.
-Imports qcd.recording, qcd.measures, qcd.units, qcd.config (TestPulse), qcd.errors.
+``baseline_blocks`` gives one channel's baseline blocks as the spectrum takes them (compare).
+Imports qcd.recording, qcd.measures, qcd.results, qcd.units, qcd.errors.
+Over 500 lines: windows, blocks and test pulse share one pass; a split follows the measure work.
 """
 from __future__ import annotations
 
@@ -12,8 +13,7 @@ import collections
 import hashlib
 import logging
 import math
-from dataclasses import dataclass, field, replace
-from datetime import datetime
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -25,9 +25,9 @@ from qcd.measures import drift
 from qcd.measures import noise as nz
 from qcd.measures import spectrum as sp
 from qcd.recording import open_recording
+from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum, display_unit
 
-__all__ = ["MODES", "Measure", "Spectrum", "ChannelMeasures", "FileMeasures", "analyze",
-           "analyze_path"]
+__all__ = ["analyze", "analyze_path", "Baseline", "baseline_blocks"]
 
 log = logging.getLogger("qcd.analyze")
 
@@ -42,98 +42,6 @@ class _LazyTestPulse:
 
 
 tp = _LazyTestPulse()
-
-# Recording modes, stored as files.mode and used by rules as [mode] tables.
-MODES = ("voltage_clamp", "current_clamp", "extracellular", "unknown")
-
-
-@dataclass(frozen=True)
-class Measure:
-    """One number with its display unit (qcd.units.display_unit); bools and counts have ''."""
-    name: str
-    value: float | int | bool
-    unit: str
-
-
-@dataclass(frozen=True)
-class Spectrum:
-    """Compact PSD of a channel's baseline: ~200 log-spaced points, density in unit**2/Hz.
-
-    ``unit`` is the channel's display unit (pA or mV), so density is pA**2/Hz or mV**2/Hz.
-    """
-    freqs_hz: tuple[float, ...]
-    density: tuple[float, ...]
-    unit: str
-
-
-@dataclass(frozen=True)
-class ChannelMeasures:
-    index: int                       # input channel index in the file (0-based)
-    name: str
-    unit: str                        # the channel's own unit string, cleaned ('pA', '?')
-    dimension: str                   # 'A', 'V' or '' (qcd.units.channel_quantity)
-    measures: dict[str, Measure]     # by measure name; a measure that cannot be computed is absent
-    notes: tuple[str, ...] = ()      # why a measure is absent, fallbacks taken
-    spectrum: Spectrum | None = None
-
-
-@dataclass(frozen=True)
-class FileMeasures:
-    path: str
-    status: str                      # 'ok' | 'error'
-    error: str | None = None         # one sentence naming the file and the reason
-    error_kind: str | None = None    # qcd.errors.RECORDING_ERROR_KINDS
-    mode: str = "unknown"            # MODES
-    format: str = ""                 # 'ABF1' | 'ABF2'
-    fs_hz: float | None = None
-    duration_s: float | None = None
-    n_sweeps: int | None = None
-    gap_free: bool | None = None
-    recorded_at: datetime | None = None   # from the header (UTC-naive as the file gives it)
-    size: int | None = None
-    mtime: float | None = None
-    sha256: str | None = None
-    channels: tuple[ChannelMeasures, ...] = ()
-    notes: tuple[str, ...] = ()      # file-level oddities and fallbacks
-    extra: dict[str, Any] = field(default_factory=dict)   # per-sweep series etc., JSON-able
-
-    def to_json(self) -> dict[str, Any]:
-        """The ``qcd scan --json`` object (one per file, one per line).
-
-        ``{"path", "status", "error", "error_kind", "mode", "format", "fs_hz", "duration_s",
-        "n_sweeps", "gap_free", "recorded_at", "notes", "channels": [{"index", "name", "unit",
-        "measures": {NAME: {"value", "unit"}}, "notes"}]}``. ``spectral_lines`` has as value a
-        list of ``{"freq_hz", "rms"}`` objects (rms in the measure's unit), loudest first.
-        """
-        chans = []
-        for c in self.channels:
-            ms: dict[str, Any] = {}
-            for name, m in c.measures.items():
-                if name == "spectral_lines":
-                    value: Any = [{"freq_hz": _num(f), "rms": _num(r)} for f, r in m.value]
-                else:
-                    value = _num(m.value)
-                ms[name] = {"value": value, "unit": m.unit}
-            chans.append({"index": c.index, "name": c.name, "unit": c.unit,
-                          "dimension": c.dimension, "measures": ms, "notes": list(c.notes)})
-        return {
-            "path": self.path, "status": self.status, "error": self.error,
-            "error_kind": self.error_kind, "mode": self.mode, "format": self.format,
-            "fs_hz": self.fs_hz, "duration_s": self.duration_s, "n_sweeps": self.n_sweeps,
-            "gap_free": self.gap_free,
-            "recorded_at": self.recorded_at.isoformat() if self.recorded_at else None,
-            "notes": list(self.notes), "channels": chans,
-        }
-
-
-def _num(v: Any) -> Any:
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    v = float(v)
-    return v if math.isfinite(v) else None
-
 
 # ------------------------------------------------------------------------------ the analysis
 
@@ -250,7 +158,7 @@ def _recorded_span(y: np.ndarray) -> tuple[int, int | None] | None:
     if len(y) < 8:
         return None
     d = np.diff(y)
-    sd = 1.4826 * float(np.median(np.abs(d - np.median(d)))) / math.sqrt(2.0)
+    sd = nz.MAD_SCALE * float(np.median(np.abs(d - np.median(d)))) / math.sqrt(2.0)
     hold = float(np.median(y[:max(3, min(len(y) // 20, 50))]))
     scale = float(np.max(np.abs(y))) or 1.0
     away = np.abs(y - hold) > max(6.0 * sd, 1e-6 * scale)
@@ -530,7 +438,7 @@ _AVERAGE_DECIDES = ("no_transient", "not_separable", "above_bound", "too_short")
 def _put(out: dict[str, Measure], name: str, value_si: float | None, dim: str) -> None:
     if value_si is None or not np.isfinite(value_si):
         return
-    unit = units.display_unit(name, dim) if dim in units.DISPLAY else ""
+    unit = display_unit(name, dim) if dim in units.DISPLAY else ""
     value = units.from_si(value_si, unit) if dim not in ("", "%") else float(value_si)
     out[name] = Measure(name, float(value), unit)
 
@@ -699,6 +607,7 @@ def _access_change(cells: list[tuple[int, Any]], groups: tuple[list[Any], list[A
         notes.append(f"access_change_pct: {e}")
         return
     _put(out, "access_change_pct", pct, "%")
+    _put(out, "access_change_pct_se", pct_se, "%")
     sweeps = f"first {g} vs last {g} sweeps" if g > 1 else "first vs last sweep"
     notes.append(f"access_change_pct {pct:+.1f} % +- {pct_se:.1f} % ({sweeps}, {how})")
 
@@ -754,7 +663,7 @@ def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
             continue
         _put(out, name, sp.band_rms(freqs, psd, lo, min(top, fs / 2), line), dim)
     lines = sp.spectral_lines(freqs, psd, k_segments=k_seg, line_hz=line or mains_hz)
-    unit = units.display_unit("noise_rms", dim) if dim else ""
+    unit = display_unit("noise_rms", dim) if dim else ""
     f = 1.0 / units.FACTORS[unit] if dim else 1.0
     out["spectral_lines"] = Measure("spectral_lines",
                                     tuple((round(fq, 3), r * f) for fq, r in lines), unit)
@@ -888,6 +797,23 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
                            dim, out, tuple(notes), spectrum)
 
 
+def _plan(rec: Any, pulse: Any, notes: list[str], mode: str | None = None
+          ) -> tuple[_Dims, str, int | None, dict[int, _StepPlan], list[list[tuple[int, int]]]]:
+    """(dimensions, mode, primary channel, test-step plans, baseline windows per sweep);
+    ``mode`` is the rig's declared recording mode, for headers that cannot tell."""
+    dims = _Dims(rec, notes)
+    mode, primary = _mode(rec, dims, notes, declared=mode, pulse=pulse)
+    want = {"voltage_clamp": "A", "current_clamp": "V"}.get(mode)
+    plans: dict[int, _StepPlan] = {}
+    if want is not None:
+        for c in range(len(rec.channels)):
+            if dims.dim[c] == want and (c == primary or c in rec.commands):
+                plans[c] = _plan_steps(rec, dims, mode, c, primary, pulse)
+    windows = [] if rec.gap_free else _baseline_windows(rec, dims, mode, primary,
+                                                        list(plans.values()), notes)
+    return dims, mode, primary, plans, windows
+
+
 def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
             mode: str | None = None, chunk_size: int = 1 << 20) -> FileMeasures:
     """Measure an open Recording (one pass over its samples).
@@ -900,16 +826,7 @@ def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
     """
     rec = recording
     notes: list[str] = list(rec.notes)
-    dims = _Dims(rec, notes)
-    mode, primary = _mode(rec, dims, notes, declared=mode, pulse=pulse)
-    want = {"voltage_clamp": "A", "current_clamp": "V"}.get(mode)
-    plans: dict[int, _StepPlan] = {}
-    if want is not None:
-        for c in range(len(rec.channels)):
-            if dims.dim[c] == want and (c == primary or c in rec.commands):
-                plans[c] = _plan_steps(rec, dims, mode, c, primary, pulse)
-    windows = [] if rec.gap_free else _baseline_windows(rec, dims, mode, primary,
-                                                        list(plans.values()), notes)
+    dims, mode, primary, plans, windows = _plan(rec, pulse, notes, mode)
     channels = tuple(_channel(rec, c, dims, mode, plans.get(c), windows, mains_hz, chunk_size)
                      for c in range(len(rec.channels)))
     return FileMeasures(
@@ -961,3 +878,63 @@ def analyze_path(path: Any, *, pulse: Any = None, mains_hz: float | None = None,
                             error=f"{p}: internal error while measuring "
                                   f"({type(e).__name__}: {e})", **facts)
     return replace(fm, **facts)
+
+
+@dataclass(frozen=True)
+class Baseline:
+    """One channel's baseline as blocks of equal length: the stretches analyze takes its
+    spectrum from (gap-free: 1 s blocks; episodic: the windows at the holding level), blocks
+    that hold events left out."""
+    fs: float
+    dimension: str                   # 'A', 'V' or '' (qcd.units.channel_quantity)
+    unit: str                        # the blocks' unit: the display unit, else the channel's
+    blocks: np.ndarray               # (n, L)
+    events: int                      # blocks left out because they hold events
+    notes: tuple[str, ...] = ()
+
+
+def baseline_blocks(rec: Any, channel: int, *, pulse: Any = None,
+                    max_blocks: int | None = None) -> Baseline:
+    """The baseline blocks of one channel of an open Recording, in its display unit.
+
+    The windows and block length are analyze's own (``pulse`` as for ``analyze``); at most
+    ``max_blocks`` blocks are read from a gap-free file, so a long file is not read whole.
+    """
+    notes: list[str] = []
+    dims, _, _, _, windows = _plan(rec, pulse, notes)
+    dim, factor = dims.dim[channel], dims.factor[channel]
+    unit = units.DISPLAY[dim] if dim else (rec.channels[channel].unit.replace("\x00", "").strip())
+    scale = factor / units.FACTORS[unit] if dim else 1.0
+    fs = rec.fs
+    rows: list[np.ndarray] = []
+    if rec.gap_free:
+        L = max(1, min(int(round(fs * _BLOCK_S)), rec.n_samples))
+        left = np.empty(0)
+        for x in rec.chunks(channel, None, size=max(L, (1 << 20) // L * L)):
+            x = np.concatenate((left, x)) if len(left) else x
+            nb = len(x) // L
+            if max_blocks is not None:
+                nb = min(nb, max_blocks - sum(len(r) for r in rows))
+            rows.append(x[:nb * L].reshape(nb, L))
+            left = x[nb * L:]
+            if max_blocks is not None and sum(len(r) for r in rows) >= max_blocks:
+                break
+    else:
+        L = min(int(round(fs * _BLOCK_S)), max((b - a for w in windows for a, b in w), default=0))
+        for k, wins in enumerate(windows):
+            x = rec.sweep(channel, k) if L >= _MIN_BLOCK else np.empty(0)
+            for a, b in wins:
+                nb = (b - a) // L if L >= _MIN_BLOCK else 0
+                if nb:
+                    rows.append(x[a:a + nb * L].reshape(nb, L))
+    blocks = np.concatenate(rows) * scale if rows else np.empty((0, max(L, 0)))
+    blocks = blocks[np.isfinite(blocks).all(axis=1)]
+    events = 0
+    if len(blocks):
+        X, _, _ = sp.block_fft(blocks)
+        sd, _ = nz.parseval_sd(X, blocks.shape[1], fs)
+        keep = ~nz.event_blocks(sd)
+        events = int((~keep).sum())
+        blocks = blocks[keep]
+    return Baseline(float(fs), dim, unit, blocks, events, tuple(notes))
+

@@ -3,6 +3,7 @@
 Exit codes: 0 all good, 1 some file failed (or an alert/delivery problem was found), 2 usage or
 config error. A QcdError prints as one line; a traceback only with --debug.
 Each command's body is a ``_cmd_<name>(args) -> int`` below; library code lives in its module.
+Over 500 lines: the whole command surface (every option and its help) is one parser here.
 """
 from __future__ import annotations
 
@@ -10,9 +11,13 @@ import argparse
 import logging
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from qcd import __version__
 from qcd.errors import ConfigError, QcdError
+
+if TYPE_CHECKING:
+    from qcd.results import FileMeasures, Measure
 
 __all__ = ["main", "build_parser"]
 
@@ -170,27 +175,22 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _scan_files(paths: list[Path]) -> list[Path]:
-    """Files named and *.abf files under folders (recursive, sorted), in argument order.
-
-    ConfigError (exit 2) for a path that does not exist."""
+    """Files named and the recordings under folders (``intake.recordings_in``), in argument
+    order. ConfigError (exit 2) for a path that does not exist."""
+    from qcd.intake import recordings_in
     out: list[Path] = []
     seen: set[Path] = set()
     for p in paths:
-        if p.is_dir():
-            found = sorted(q for q in p.rglob("*") if q.suffix.lower() == ".abf"
-                           and not q.is_dir())
-        elif p.exists():
-            found = [p]
-        else:
+        if not p.exists():
             raise ConfigError(None, "", f"no such file or folder: {p}")
-        for q in found:
+        for q in recordings_in(p):
             if q not in seen:
                 seen.add(q)
                 out.append(q)
     return out
 
 
-def _scan_one(job: tuple) -> object:
+def _scan_one(job: tuple) -> FileMeasures:
     """Measure one file (runs in a worker process with --workers)."""
     from qcd.analyze import analyze_path
     path, pulse, mains_hz, mode = job
@@ -201,14 +201,14 @@ _SCAN_MODES = {"voltage_clamp": "VC", "current_clamp": "CC", "extracellular": "E
                "unknown": "?"}
 
 
-def _scan_value(ms: dict, name: str, digits: int = 3) -> str:
+def _scan_value(ms: dict[str, Measure], name: str, digits: int = 3) -> str:
     m = ms.get(name)
     if m is None:
         return "-"
     return f"{m.value:.{digits}g} {m.unit}".strip()
 
 
-def _scan_row(fm: object, width: int = 22) -> str:
+def _scan_row(fm: FileMeasures, width: int = 22) -> str:
     """One line of the scan table (fits 100 columns)."""
     name = Path(fm.path).name
     name = name if len(name) <= width else name[:width - 1] + "~"
@@ -242,8 +242,9 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         # measure -> store -> judge -> alerts -> delivery, as the service does (qcd.pipeline)
         import time
 
-        from qcd.config import find_config, load_config, load_rules
+        from qcd.config import find_config, load_config
         from qcd.pipeline import scan
+        from qcd.ruleset import load_rules
         from qcd.store import Store
         if not args.rig:
             raise ConfigError(None, "rig", "scan --store needs --rig NAME (a rig of the config)")
@@ -319,11 +320,6 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             if progress and i < len(files):
                 print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
                       file=sys.stderr, flush=True)
-    except BrokenPipeError:
-        # the reader of stdout went away (``| head``): stop quietly, as command-line tools do
-        import os
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
-        return EXIT_FAILED if failed else EXIT_OK
     finally:
         if pool:
             pool.shutdown(cancel_futures=True)
@@ -336,7 +332,8 @@ def _cmd_scan(args: argparse.Namespace) -> int:
 
 def _cmd_watch(args: argparse.Namespace) -> int:
     from qcd import watch
-    from qcd.config import find_config, load_config, load_rules
+    from qcd.config import find_config, load_config
+    from qcd.ruleset import load_rules
     from qcd.store import Store
     cfg = load_config(find_config(args.config))
     if not cfg.rigs:
@@ -401,16 +398,12 @@ def _cmd_report(args: argparse.Namespace) -> int:
                                   f"(known: {', '.join(known) or 'none'})")
         report = build_report(store, now, since, args.rig)
         if args.html:
-            args.html.write_text(render_html(report, store), encoding="utf-8")
-    try:
-        if args.json:
-            print(json.dumps(report.to_json(), indent=1, default=str))
-        else:
-            print(render_text(report))
-        sys.stdout.flush()
-    except BrokenPipeError:               # ``| head``: stop quietly
-        import os
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            args.html.write_text(render_html(report), encoding="utf-8")
+    if args.json:
+        print(json.dumps(report.to_json(), indent=1, default=str))
+    else:
+        print(render_text(report))
+    sys.stdout.flush()
     if args.html:
         print(f"HTML report written to {args.html}", file=sys.stderr if args.json else sys.stdout)
     bad = any(r.open_alerts or r.n_error for r in report.rigs) or report.outbox.get("stuck")
@@ -430,15 +423,10 @@ def _cmd_trend(args: argparse.Namespace) -> int:
                               f"(known: {', '.join(store.rigs()) or 'none'})")
         rows = trend_rows(store, args.rig, args.measure, channel=args.channel, days=args.days,
                           now=time.time())
-    try:
-        if args.csv:
-            sys.stdout.write(render_trend_csv(rows))
-        else:
-            print(render_trend_text(args.rig, args.measure, rows))
-        sys.stdout.flush()
-    except BrokenPipeError:               # ``| head``: stop quietly
-        import os
-        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    if args.csv:
+        sys.stdout.write(render_trend_csv(rows))
+    else:
+        print(render_trend_text(args.rig, args.measure, rows))
     return EXIT_OK if rows else EXIT_FAILED
 
 
@@ -461,56 +449,20 @@ def _cmd_compare(args: argparse.Namespace) -> int:
 
 
 def _cmd_alerts(args: argparse.Namespace) -> int:
-    import fnmatch
     import time
 
-    from qcd.config import find_config, load_config, redact_text
+    from qcd.config import find_config, load_config
+    from qcd.report import build_alerts, render_alerts
     from qcd.store import Store
-
     cfg = load_config(find_config(args.config))
     if not cfg.database.exists():
         print(f"qcd alerts: no database yet at {cfg.database} (start 'qcd watch' first)",
               file=sys.stderr)
         return EXIT_FAILED
-    now = time.time()
-
-    def when(t: float | None) -> str:
-        if t is None:
-            return "-"
-        from datetime import datetime
-        return datetime.fromtimestamp(t).astimezone().strftime("%Y-%m-%d %H:%M %Z")
-
-    def table(title: str, head: tuple[str, ...], rows: list[tuple]) -> None:
-        print(f"{title}: {len(rows) or 'none'}")
-        if not rows:
-            return
-        cells = [tuple(head)] + [tuple("-" if c is None else str(c) for c in r) for r in rows]
-        widths = [max(len(r[i]) for r in cells) for i in range(len(head))]
-        for r in cells:
-            print("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())
-
     with Store(cfg.database) as store:
-        open_ = store.open_alerts(args.rig)
-        resolved = store.recent_alerts(now - args.days * 86400.0, args.rig)
-        silences = [s for s in store.active_silences(now)
-                    if args.rig is None or fnmatch.fnmatchcase(args.rig, s.rig_glob)]
-        counts = store.outbox_counts()
-        stuck = [r for r in store.stuck_rows() if args.rig is None or r["rig"] == args.rig]
-    table("open alerts", ("rig", "channel", "measure", "rule", "state", "opened", "announced"),
-          [(a["rig"], a["channel"], a["measure"], a["rule"], a["state"], when(a["opened_at"]),
-            "yes" if a["announced"] else "no") for a in open_])
-    table(f"resolved in the last {args.days:g} days", ("rig", "channel", "measure", "rule",
-                                                       "opened", "resolved"),
-          [(a["rig"], a["channel"], a["measure"], a["rule"], when(a["opened_at"]),
-            when(a["resolved_at"])) for a in resolved])
-    table("active silences", ("id", "rig", "rules", "from", "until", "reason"),
-          [(s.id, s.rig_glob, s.rule_glob, when(s.start_at),
-            "resolved" if s.end_at is None else when(s.end_at), s.reason) for s in silences])
-    print(f"outbox: {counts['pending']} pending, {counts['sent']} sent, {counts['stuck']} stuck")
-    table("undeliverable messages", ("id", "rig", "title", "attempts", "created", "last error"),
-          [(r["id"], r["rig"], r["title"], r["attempts"], when(r["created_at"]),
-            redact_text(r["last_error"] or "", cfg.notify)) for r in stuck])
-    return EXIT_FAILED if open_ or stuck else EXIT_OK
+        alerts = build_alerts(store, time.time(), days=args.days, rig=args.rig)
+    print(render_alerts(alerts, secrets=cfg.notify))
+    return EXIT_FAILED if alerts.open or alerts.stuck else EXIT_OK
 
 
 def _cmd_silence(args: argparse.Namespace) -> int:
@@ -613,7 +565,7 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"qcd {args.command}: interrupted", file=sys.stderr)
         return 130
-    except BrokenPipeError:               # ``qcd ... | head``: the reader left; stop quietly
+    except BrokenPipeError:   # ``qcd ... | head``: the reader left; stop quietly, as tools do
         _quiet_stdout()
         return EXIT_OK
 

@@ -26,7 +26,7 @@ from watchdog.observers.polling import PollingObserver
 from qcd.errors import RecordingError
 
 __all__ = ["Ready", "GaveUp", "Intake", "is_candidate_name", "header_fits", "held_open",
-           "is_network_path", "scan_folder"]
+           "is_network_path", "scan_folder", "recordings_in"]
 
 log = logging.getLogger("qcd.intake")
 
@@ -64,8 +64,11 @@ def header_fits(path: Path, size: int) -> str | None:
     """
     if size == 0:
         return "empty so far"
-    from qcd.recording import open_recording
+    from qcd.recording import not_finished, open_recording
     try:
+        why = not_finished(path, size)        # HDF5: superblock end-of-file address vs size
+        if why is not None:
+            return why
         with open_recording(path):
             return None
     except RecordingError as e:
@@ -349,6 +352,16 @@ def scan_folder(root: Path, patterns, *, listdir=os.scandir):
                     yield p, e.stat()
             except OSError:
                 continue
+
+
+def recordings_in(path: Path) -> list[Path]:
+    """A file as itself; a folder's recordings: every file below it whose suffix a reader takes
+    (``qcd.recording.SUFFIXES``), recursive and sorted, hidden and temporary files skipped."""
+    from qcd.recording import SUFFIXES
+    path = Path(path)
+    if not path.is_dir():
+        return [path]
+    return sorted(p for p, _ in scan_folder(path, tuple(f"*{s}" for s in SUFFIXES)))
 
 
 class _Inbox(FileSystemEventHandler):

@@ -1,32 +1,27 @@
 """FileMeasures + the rig's history + Rules -> Findings, with noise-source hints (pure).
 
-Also the drift statistics on their own: ``robust_z``, ``ewma``, ``cusum``. Imports qcd.config
-(rule dataclasses), qcd.units and numpy; never reads TOML, never touches the store.
+Also the drift statistics on their own: ``robust_z``, ``ewma``, ``cusum``. Imports qcd.ruleset
+(rule dataclasses), qcd.results (measure registry, hints), qcd.units, qcd.measures.noise (the
+MAD scale) and numpy; never reads TOML, never touches the store.
 """
 from __future__ import annotations
 
 import logging
 import math
 from dataclasses import dataclass
-from datetime import datetime, timezone
 from typing import Any, Callable, Iterable, Sequence
 
 import numpy as np
 
-from qcd.config import HistoryRule, LimitRule, Rules
+from qcd.measures.noise import MAD_SCALE
+from qcd.results import HINTS, MEASURES, SAFETY_NOTE, ChannelMeasures, FileMeasures, Measure
+from qcd.ruleset import HistoryRule, LimitRule, Rules
 from qcd.units import DIMENSION, FACTORS
 
-__all__ = ["SAFETY_NOTE", "MAD_SCALE", "Finding", "Chart", "CusumChart", "judge", "robust_z",
-           "baseline", "ewma", "ewma_limits", "cusum", "noise_hints", "file_time"]
+__all__ = ["Finding", "Chart", "CusumChart", "judge", "robust_z", "baseline", "ewma",
+           "ewma_limits", "cusum", "noise_hints"]
 
 log = logging.getLogger(__name__)
-
-SAFETY_NOTE = ("Safety: follow your institution's electrical-safety rules and local codes; never "
-               "open mains-powered equipment; leave building wiring and earth to a qualified, "
-               "licensed electrician.")
-
-# 1/Phi^-1(0.75): MAD -> SD for normal data (Rousseeuw & Croux 1993).
-MAD_SCALE = 1.482602218505602
 
 History = Callable[[str, int, str], Sequence[tuple[float, float]]]
 
@@ -145,28 +140,9 @@ def cusum(x: Iterable[float], target: float, k: float, h: float) -> CusumChart:
 # --- noise-source hints -------------------------------------------------------------------------
 
 _MAINS = "mains"
-_HINTS = {
-    _MAINS: "mains hum and its harmonics grew: check the grounding (a single ground point, no "
-            "ground loops, a loose or corroded ground lead, the bath ground) and any mains-"
-            "powered device newly placed near the rig",
-    "high": "broadband high-frequency noise grew: check the headstage and its connector, the "
-            "pipette capacitance (glass, coating, fill) and the bath level",
-    "mid": "mid-band noise grew: check the headstage, the pipette holder and electronics "
-           "newly placed near the rig",
-    "mech": "noise at 10-70 Hz grew: check for vibration (air table, pumps, manipulators, "
-            "building work) and mechanical coupling to the rig",
-    "lines": "narrow spectral lines that are not mains harmonics appeared: check switching power "
-             "supplies, displays, LED drivers and chargers near the rig",
-    "low": "slow fluctuation and drift grew: check the perfusion (flow, bubbles, bath level), "
-           "the reference electrode and the temperature",
-}
-# measure -> hint group; the band names are the measures' (DESIGN.md band list)
-_HINT_MEASURES = {
-    "hum_rms": _MAINS, "hum_fundamental_rms": _MAINS, "hum_fraction": _MAINS,
-    "band_rms_1k_corner": "high", "band_rms_70_1k": "mid", "band_rms_10_70": "mech",
-    "band_rms_0p5_10": "low", "band_rms_0.5_10": "low", "baseline_drift": "low",
-}
-_NOISE_MEASURES = {"noise_rms", "noise_rms_1k", "noise_pp", "pp_over_rms"} | set(_HINT_MEASURES)
+# measure -> hint group, and the noise measures (a bad one gets a hint): qcd.results.MEASURES
+_HINT_MEASURES = {name: m.hint_group for name, m in MEASURES.items() if m.hint_group}
+_NOISE_MEASURES = {name for name, m in MEASURES.items() if m.noise}
 
 
 def _number(v: Any) -> float | None:
@@ -183,13 +159,13 @@ def _hint_text(groups: Sequence[str]) -> str:
     if not groups:
         return ""
     text = "Possible source (a check to make, not a diagnosis): " + "; ".join(
-        _HINTS[g] for g in groups) + "."
+        HINTS[g].text for g in groups) + "."
     if _MAINS in groups:
         text += " " + SAFETY_NOTE
     return text
 
 
-def noise_hints(ch: Any, mode: str, history: History, rules: Rules) -> list[str]:
+def noise_hints(ch: ChannelMeasures, mode: str, history: History, rules: Rules) -> list[str]:
     """Hint groups of the bands that grew against the rig's history, biggest growth first."""
     grown: dict[str, float] = {}
     lines = ch.measures.get("spectral_lines")
@@ -220,19 +196,6 @@ def noise_hints(ch: Any, mode: str, history: History, rules: Rules) -> list[str]
 
 # --- the judge ---------------------------------------------------------------------------------
 
-def file_time(fm: Any, now: float) -> float:
-    """The file's recording time as Unix seconds (header time, else mtime, else ``now``)."""
-    rec = getattr(fm, "recorded_at", None)
-    if isinstance(rec, datetime):
-        if rec.tzinfo is None:
-            rec = rec.replace(tzinfo=timezone.utc)
-        return rec.timestamp()
-    if isinstance(rec, (int, float)):
-        return float(rec)
-    mtime = getattr(fm, "mtime", None)
-    return float(mtime) if mtime else float(now)
-
-
 def _values(rows: Iterable[Any], limit: int) -> list[float]:
     """Finite values of history rows (newest first), at most ``limit``, returned oldest first."""
     rows = sorted(rows, key=lambda r: -float(r[0]))[:limit]
@@ -251,18 +214,12 @@ def _matches(modes: tuple[str, ...], mode: str) -> bool:
     return "*" in modes or mode in modes
 
 
-def _fmt(value: float | None, unit: str) -> str:
-    if value is None:
-        return "-"
-    return f"{value:.4g} {unit}".strip()
-
-
 def _to_si(value: float, unit: str) -> tuple[float, str]:
     canon = unit if unit in FACTORS else ""
     return float(value) * FACTORS.get(canon, 1.0), DIMENSION.get(canon, "")
 
 
-def _limit(rule: LimitRule, m: Any) -> tuple[bool, bool] | None:
+def _limit(rule: LimitRule, m: Measure) -> tuple[bool, bool] | None:
     """(bad, clear) for one measure against a fixed limit; None when the rule cannot apply."""
     if not isinstance(m.value, (bool, int, float)):
         return None
@@ -341,15 +298,15 @@ def _normal_range(past: list[float], unit: str) -> str:
     return f"normal {lo:.3g}-{hi:.3g} {unit} (median {np.median(past):.3g}, {len(past)} files)"
 
 
-def judge(fm: Any, rig: Any, history: History, rules: Rules, now: float) -> list[Finding]:
+def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: float
+          ) -> list[Finding]:
     """Every evaluated (channel, measure, rule) of one file as a Finding, plus rig-level ones.
 
-    ``rig`` is a RigConfig (or its name); ``history(mode, channel, measure)`` gives the rig's
-    [(recorded_at, value)] of good, unflagged files before this one.
+    ``history(mode, channel, measure)`` gives the rig's [(recorded_at, value)] of good,
+    unflagged files before this one.
     """
-    rig_name = rig if isinstance(rig, str) else rig.name
     st = rules.settings
-    path = str(getattr(fm, "path", ""))
+    path = str(fm.path)
     intake = dict(rig=rig_name, mode="*", channel=-1, measure="file", rule="intake_error",
                   kind="rig", severity="warning", unit="", for_files=st.intake_for_files,
                   clear_files=st.clear_files, repeat_h=st.repeat_h, path=path)

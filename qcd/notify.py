@@ -5,18 +5,22 @@ crash between the send and that mark can send it again (once) on the next start;
 stays pending and is retried (30 s doubling to 1 h), and after 24 h it is marked ``stuck``,
 never dropped. Targets are sent to one by one, and within one running Sender a target that
 accepted a message is not sent it again while another target is down.
-Imports apprise, qcd.config (redact), qcd.errors.
+Imports apprise, qcd.config (redact), qcd.errors; the Store it is given as a type.
 """
 from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from typing import Any, Iterable
+from typing import TYPE_CHECKING, Any, Iterable
 
 import apprise
 
 from qcd.config import redact, redact_text
 from qcd.errors import DeliveryError
+
+if TYPE_CHECKING:
+    from qcd.config import Config
+    from qcd.store import Store
 
 __all__ = ["Sender", "SendResult", "Delivery", "deliver_due", "backoff_s", "BACKOFF_START_S",
            "BACKOFF_CAP_S", "STUCK_AFTER_S"]
@@ -73,9 +77,9 @@ class Sender:
             raise DeliveryError("no notification targets configured" + where)
 
     @classmethod
-    def from_config(cls, config: Any) -> "Sender":
+    def from_config(cls, config: Config) -> "Sender":
         """From ``Config.notify`` URLs and ``Config.notify_config``."""
-        return cls(getattr(config, "notify", ()) or (), getattr(config, "notify_config", None))
+        return cls(config.notify, config.notify_config)
 
     def targets(self) -> list[str]:
         """The targets, redacted (safe to print)."""
@@ -132,11 +136,7 @@ class Sender:
         return out
 
 
-def _field(row: Any, name: str) -> Any:
-    return row[name] if isinstance(row, dict) else getattr(row, name)
-
-
-def deliver_due(store: Any, sender: Any, now: float, *, limit: int = 50) -> Delivery:
+def deliver_due(store: Store, sender: Sender, now: float, *, limit: int = 50) -> Delivery:
     """Send the outbox rows due at ``now``; record sent, retry (back-off) or stuck.
 
     After the first failed send the call stops, so a dead target costs one attempt per call,
@@ -144,10 +144,10 @@ def deliver_due(store: Any, sender: Any, now: float, *, limit: int = 50) -> Deli
     """
     sent = retried = stuck = 0
     for row in store.outbox_due(now, limit=limit):
-        rid = _field(row, "id")
+        rid = row["id"]
         try:
-            res = sender.send(_field(row, "title") or "", _field(row, "body") or "",
-                              _field(row, "kind") or "firing", key=rid)
+            res = sender.send(row["title"] or "", row["body"] or "", row["kind"] or "firing",
+                              key=rid)
             ok, error = res.ok, res.detail
         except DeliveryError as e:
             ok, error = False, str(e)
@@ -158,12 +158,12 @@ def deliver_due(store: Any, sender: Any, now: float, *, limit: int = 50) -> Deli
             store.mark_sent(rid, now)        # at once: a crash before this mark resends once
             sent += 1
             continue
-        created = float(_field(row, "created_at"))
-        attempts = int(_field(row, "attempts") or 0)
+        created = float(row["created_at"])
+        attempts = int(row["attempts"] or 0)
         if now - created >= STUCK_AFTER_S:
             store.mark_stuck(rid, now, error)
             log.error("message %s (%s) undelivered for 24 h, marked stuck: %s", rid,
-                      _field(row, "title"), error)
+                      row["title"], error)
             stuck += 1
         else:
             wait = backoff_s(attempts)

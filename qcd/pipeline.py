@@ -13,12 +13,19 @@ import logging
 import os
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, Callable, Iterable
+from typing import TYPE_CHECKING, Any, Callable, Iterable
 
 from qcd import alerts
-from qcd.analyze import FileMeasures, analyze_path
+from qcd.analyze import analyze_path
 from qcd.errors import RecordingError, StoreError
-from qcd.judge import file_time, judge
+from qcd.judge import Finding, judge
+from qcd.results import FileMeasures, file_time
+
+if TYPE_CHECKING:
+    from qcd.config import RigConfig
+    from qcd.notify import Sender
+    from qcd.ruleset import Rules
+    from qcd.store import Store
 
 __all__ = ["process", "commit", "flush_digest", "tick", "judge_file", "scan", "ScanResult",
            "recording_order", "DIGEST_FILES"]
@@ -35,22 +42,19 @@ def _error(path: Any, kind: str, reason: str, fm: FileMeasures | None = None) ->
     return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind)
 
 
-def _rig_name(rig: Any) -> str:
-    return rig if isinstance(rig, str) else rig.name
-
-
-def judge_file(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float) -> list:
+def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float
+               ) -> list[Finding]:
     """The judge with the rig's history bound to the store (files recorded before this one)."""
     st = rules.settings
-    name, before = _rig_name(rig), file_time(fm, now)
+    name, before = rig.name, file_time(fm.recorded_at, fm.mtime, now)
 
     def history(mode: str, channel: int, measure: str) -> list[tuple[float, float]]:
         return store.history(name, mode, channel, measure, limit=st.history_files,
                              days=st.history_days, before=before)
-    return judge(fm, rig, history, rules, now)
+    return judge(fm, name, history, rules, now)
 
 
-def _changed(before: dict[str, dict], after: dict[str, Any]) -> list[dict]:
+def _changed(before: dict[str, dict], after: dict[str, alerts.AlertState]) -> list[dict]:
     out = []
     for key, s in after.items():
         d = s.to_dict()
@@ -59,7 +63,7 @@ def _changed(before: dict[str, dict], after: dict[str, Any]) -> list[dict]:
     return out
 
 
-def _deliver(store: Any, sender: Any, now: float) -> None:
+def _deliver(store: Store, sender: Sender | None, now: float) -> None:
     if sender is None:
         return
     from qcd.notify import deliver_due
@@ -71,7 +75,7 @@ def _deliver(store: Any, sender: Any, now: float) -> None:
         log.exception("delivering notifications")
 
 
-def _end_resolved_silences(store: Any, now: float) -> None:
+def _end_resolved_silences(store: Store, now: float) -> None:
     """End 'until resolved' silences once every alert they muted has resolved."""
     open_ended = [s for s in store.active_silences(now) if s.end_at is None]
     if not open_ended:
@@ -85,14 +89,14 @@ def _end_resolved_silences(store: Any, now: float) -> None:
             log.info("silence %s (%s) ended: its alerts resolved", sil.id, sil.reason)
 
 
-def commit(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float, sender: Any = None,
-           *, batch: bool = False) -> FileMeasures:
+def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float,
+           sender: Sender | None = None, *, batch: bool = False) -> FileMeasures:
     """Judge a measured file, advance its rig's alerts and store it all in one transaction.
 
     Never raises for a bad file; a StoreError (the database itself failing) propagates.
     With ``batch`` no message is queued per file (see ``flush_digest``).
     """
-    name = _rig_name(rig)
+    name = rig.name
     try:
         findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)
@@ -114,13 +118,11 @@ def commit(fm: FileMeasures, rig: Any, store: Any, rules: Any, now: float, sende
     return fm
 
 
-def process(path: Any, rig: Any, store: Any, rules: Any, now: float, *, sender: Any = None,
-            batch: bool = False) -> FileMeasures:
+def process(path: str | os.PathLike, rig: RigConfig, store: Store, rules: Rules, now: float, *,
+            sender: Sender | None = None, batch: bool = False) -> FileMeasures:
     """Measure one file (rig's test pulse and mains frequency) and ``commit`` it."""
     try:
-        fm = analyze_path(path, pulse=getattr(rig, "test_pulse", None),
-                          mains_hz=getattr(rig, "mains_hz", None),
-                          mode=getattr(rig, "mode", None))
+        fm = analyze_path(path, pulse=rig.test_pulse, mains_hz=rig.mains_hz, mode=rig.mode)
     except RecordingError as e:              # analyze_path should return these; be safe
         fm = _error(path, e.kind, str(e))
     except Exception as e:
@@ -130,7 +132,8 @@ def process(path: Any, rig: Any, store: Any, rules: Any, now: float, *, sender: 
     return commit(fm, rig, store, rules, now, sender, batch=batch)
 
 
-def flush_digest(store: Any, rules: Any, now: float, sender: Any = None) -> alerts.Message | None:
+def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None = None
+                 ) -> alerts.Message | None:
     """After a backlog: one digest of what opened and resolved, queued with its states."""
     before = store.alert_states()
     states, message = alerts.flush_digest(before, store.active_silences(now), now,
@@ -143,7 +146,8 @@ def flush_digest(store: Any, rules: Any, now: float, sender: Any = None) -> aler
     return message
 
 
-def tick(store: Any, rules: Any, now: float, sender: Any = None) -> list[alerts.Message]:
+def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None
+         ) -> list[alerts.Message]:
     """No new file: one message per rig for open alerts whose silence has just ended."""
     before = store.alert_states()
     states, messages = alerts.tick(before, store.active_silences(now), now, rules.settings)
@@ -161,7 +165,7 @@ def _recording_time(path: Path) -> tuple[float, str]:
     try:
         with open_recording(path) as rec:
             if rec.recorded_at is not None:
-                return file_time(rec, 0.0), os.fspath(path)
+                return file_time(rec.recorded_at), os.fspath(path)
     except Exception:                        # a bad file is measured (and reported) later
         pass
     try:
@@ -170,7 +174,7 @@ def _recording_time(path: Path) -> tuple[float, str]:
         return 0.0, os.fspath(path)
 
 
-def recording_order(paths: Iterable[Any]) -> list[Path]:
+def recording_order(paths: Iterable[str | os.PathLike]) -> list[Path]:
     """Files sorted by recording time (header, else mtime), then by name."""
     return sorted((Path(p) for p in paths), key=_recording_time)
 
@@ -179,13 +183,13 @@ def recording_order(paths: Iterable[Any]) -> list[Path]:
 class ScanResult:
     files: list[FileMeasures] = field(default_factory=list)
     opened: list[dict] = field(default_factory=list)      # alert rows that opened in this scan
-    digest: Any = None                                      # the digest Message, if any
+    digest: alerts.Message | None = None                    # the digest Message, if any
     outbox: dict[str, int] = field(default_factory=dict)
     learning: dict[str, int] = field(default_factory=dict)  # mode -> good files, still learning
 
 
-def scan(paths: Iterable[Any], rig: Any, store: Any, rules: Any, *, clock: Callable[[], float],
-         sender: Any = None, on_file: Callable[[FileMeasures], None] | None = None,
+def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules: Rules, *,
+         clock: Callable[[], float], sender: Sender | None = None, on_file: Callable[[FileMeasures], None] | None = None,
          batch: bool | None = None) -> ScanResult:
     """``qcd scan --store``: measure -> store -> judge -> alerts -> delivery, in recording order.
 
@@ -194,7 +198,7 @@ def scan(paths: Iterable[Any], rig: Any, store: Any, rules: Any, *, clock: Calla
     """
     files = recording_order(paths)
     batch = len(files) > DIGEST_FILES if batch is None else batch
-    name = _rig_name(rig)
+    name = rig.name
     was_open = {a["key"] for a in store.open_alerts(name)}
     out = ScanResult()
     for path in files:

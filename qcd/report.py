@@ -1,12 +1,14 @@
-"""The morning report and trends from the store: plain data, terminal text, JSON and one
-self-contained HTML file (plots embedded as base64 PNG, no network, no outside files).
+"""The morning report, trends and the alerts list from the store: plain data, then terminal
+text, JSON and one self-contained HTML page (qcd.html).
 
-Imports qcd.store (read queries only), qcd.units, numpy and matplotlib (Agg backend);
-qcd.judge only for its SAFETY_NOTE. The before/after comparison lives in qcd.compare.
+``build_report``, ``trend_rows`` and ``build_alerts`` are the only functions that read the
+store (its read queries only); everything rendered, JSON included, comes from what they return.
+Imports qcd.results, qcd.html, qcd.config (durations, redaction), qcd.errors,
+qcd.measures.noise (the MAD scale) and numpy; the Store it is given. Over 500 lines: the three
+listings people read (report, trend, alerts) share their data and formatting.
 """
 from __future__ import annotations
 
-import base64
 import csv
 import fnmatch
 import html
@@ -15,34 +17,31 @@ import math
 import re
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
-from typing import Any, Iterable
+from typing import TYPE_CHECKING, Any, Iterable
 
 import numpy as np
 
+from qcd.alerts import Silence
+from qcd.config import parse_duration, redact_text
 from qcd.errors import ConfigError
+from qcd.html import Curve, Panel, page, spectra_figure, trend_figure
+from qcd.measures.noise import MAD_SCALE
+from qcd.results import MEASURES, SAFETY_NOTE, Spectrum, file_time, shown
 
-__all__ = ["KEY_MEASURES", "MeasureLine", "RigReport", "Report", "parse_since", "normal_range",
-           "build_report", "render_text", "render_html", "trend_rows", "render_trend_text",
-           "render_trend_csv", "sparkline", "figure_data_uri", "page", "safety_note"]
+if TYPE_CHECKING:
+    from qcd.store import Store
 
-# The measures the morning report shows, in this order, when a rig has them.
-KEY_MEASURES = ("noise_rms", "noise_rms_1k", "hum_rms", "band_rms_1k_corner", "holding",
-                "baseline_drift", "seal_resistance", "access_resistance",
-                "membrane_resistance", "membrane_capacitance", "clipping_fraction")
+__all__ = ["KEY_MEASURES", "MeasureLine", "Trend", "LatestSpectrum", "RigReport", "Report",
+           "parse_since", "normal_range", "build_report", "render_text", "render_html",
+           "trend_rows", "render_trend_text", "render_trend_csv", "sparkline", "AlertList",
+           "build_alerts", "render_alerts"]
+
+# The measures the morning report shows, in this order, when a rig has them, and the ones plotted.
+KEY_MEASURES = shown("report")
+_PLOTTED = shown("plot")
 NORMAL_SPREADS = 3.0        # normal range = median +- 3 robust SD (1.4826 MAD)
 HISTORY_DAYS = 30.0
 _SPARKS = "\u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588"
-
-
-def safety_note() -> str:
-    """The electrical-safety caution that goes beside every grounding hint."""
-    try:
-        from qcd.judge import SAFETY_NOTE
-        return SAFETY_NOTE
-    except Exception:  # judge not importable yet: the same caution, stated here
-        return ("Electrical safety: follow your institution's electrical-safety rules and local "
-                "codes; never open mains-powered equipment; leave building wiring and earth to "
-                "a qualified, licensed electrician.")
 
 
 def _is_grounding(hint: str) -> bool:
@@ -50,12 +49,13 @@ def _is_grounding(hint: str) -> bool:
 
 
 def parse_since(text: str, now: float) -> float:
-    """'18h', '3d', '90m', '2w' or an ISO date/time (UTC when no zone) -> Unix seconds."""
+    """'18h', '3d', '90m', '2w' (``parse_duration``) or an ISO date/time (UTC when no zone)
+    -> Unix seconds."""
     t = str(text).strip()
-    m = re.fullmatch(r"(\d+(?:\.\d+)?)\s*([smhdw])", t)
-    if m:
-        mult = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 604800}[m.group(2)]
-        return now - float(m.group(1)) * mult
+    try:
+        return now - parse_duration(t, "--since")
+    except ConfigError:
+        pass
     try:
         dt = datetime.fromisoformat(t)
     except ValueError:
@@ -69,13 +69,13 @@ def parse_since(text: str, now: float) -> float:
 def normal_range(values: Iterable[float]) -> tuple[float, float, int] | None:
     """(median, robust SD = 1.4826 MAD, n) of a history; None when empty.
 
-    Robust z as in Iglewicz & Hoaglin 1993 / Rousseeuw & Croux 1993 (METHODS.md section 7).
+    Robust z as in Iglewicz & Hoaglin 1993 / Rousseeuw & Croux 1993 (docs/methods.md §7).
     """
     v = np.asarray([x for x in values if x is not None and math.isfinite(x)], dtype=float)
     if v.size == 0:
         return None
     med = float(np.median(v))
-    return med, 1.4826 * float(np.median(np.abs(v - med))), int(v.size)
+    return med, MAD_SCALE * float(np.median(np.abs(v - med))), int(v.size)
 
 
 @dataclass(frozen=True)
@@ -94,6 +94,27 @@ class MeasureLine:
 
 
 @dataclass(frozen=True)
+class Trend:
+    """A key measure's stored values over the history window, for the trend plots."""
+    measure: str
+    channel: int
+    unit: str
+    points: tuple[tuple[float, float, bool], ...]    # (recorded_at, value, flagged), oldest first
+    alerts_opened: tuple[float, ...] = ()
+
+
+@dataclass(frozen=True)
+class LatestSpectrum:
+    """The rig's latest baseline spectrum, its reference (median of recent good files) and the
+    mains line to mark."""
+    path: str
+    channel: int
+    spectrum: Spectrum
+    reference: Spectrum | None
+    line_hz: float | None
+
+
+@dataclass(frozen=True)
 class RigReport:
     rig: str
     n_files: int
@@ -107,6 +128,8 @@ class RigReport:
     safety_note: str | None
     silences: tuple[dict, ...] = ()      # active silences matching the rig
     resolved_alerts: tuple[dict, ...] = ()   # alerts that resolved within the period
+    trends: tuple[Trend, ...] = ()       # the plotted key measures (at most six)
+    spectrum: LatestSpectrum | None = None
 
 
 @dataclass(frozen=True)
@@ -121,24 +144,17 @@ class Report:
 
 
 def _file_time(f: dict) -> float:
-    t = f.get("recorded_at")
-    return float(t if t is not None else (f.get("mtime") or 0.0))
+    return file_time(f.get("recorded_at"), f.get("mtime"), 0.0)
 
 
-def _series(store, rig: str, measure: str, channel: int | None, since: float | None):
+def _series(store: Store, rig: str, measure: str, channel: int | None, since: float | None
+            ) -> list[tuple]:
     rows = store.measure_series(rig, measure, channel=channel, since=since)
     return sorted(rows, key=lambda r: (r[0] if r[0] is not None else 0.0))
 
 
-def _channels_of(store, rig: str, measure: str, since: float) -> list[int]:
-    """Input channels (0-3) that carry this measure in the rig's recent files."""
-    return [ch for ch in range(4) if store.measure_series(rig, measure, channel=ch, since=since)]
-
-
-def _measure_line(store, rig: str, measure: str, channel: int, now: float) -> MeasureLine | None:
-    rows = _series(store, rig, measure, channel, now - HISTORY_DAYS * 86400.0)
-    if not rows:
-        return None
+def _measure_line(rows: list[tuple], measure: str, channel: int) -> MeasureLine:
+    """The latest of ``rows`` (a measure's series, oldest first) against the ones before."""
     t, value, unit = rows[-1][0], rows[-1][1], rows[-1][2]
     history = [r[1] for r in rows[:-1] if not r[3]]       # unflagged, before the latest
     nr = normal_range(history)
@@ -181,20 +197,59 @@ def _add_hint(hints: list[str], hint: str) -> None:
     hints.append(hint)
 
 
-def build_report(store, now: float, since: float, rigs: Iterable[str] | None = None) -> Report:
-    """Per rig: the period's files, each key measure against its normal range, open alerts
-    and the noise-source hints of the period's findings."""
+def _key_measures(store: Store, rig: str, now: float, opened: list[dict]
+                  ) -> tuple[list[MeasureLine], list[Trend]]:
+    """Each key measure per input channel (0-3) against its normal range, and the series of
+    the first six plotted ones with their alert openings."""
+    t0 = now - HISTORY_DAYS * 86400.0
+    lines, trends = [], []
+    for measure in KEY_MEASURES:
+        for ch in range(4):
+            rows = _series(store, rig, measure, ch, t0)
+            if not rows:
+                continue
+            ml = _measure_line(rows, measure, ch)
+            lines.append(ml)
+            if measure in _PLOTTED and len(trends) < 6:
+                marks = sorted({a["opened_at"] for a in opened if a.get("opened_at")
+                                and a.get("measure") == measure
+                                and a.get("channel") in (None, ch)})
+                trends.append(Trend(measure, ch, ml.unit,
+                                    tuple((r[0], r[1], bool(r[3])) for r in rows), tuple(marks)))
+    return lines, trends
+
+
+def _latest_spectrum(store: Store, rig: str, files: list[dict], now: float
+                     ) -> LatestSpectrum | None:
+    """Channel 0's spectrum of the period's latest good file (else of the latest stored one)."""
+    t0 = now - HISTORY_DAYS * 86400.0
+    ok = [f for f in files if f.get("status") == "ok"]
+    latest = ok[-1] if ok else None
+    if latest is None:
+        rows = _series(store, rig, "noise_rms", 0, t0)
+        if not rows:
+            return None
+        latest = {"id": rows[-1][4], "path": rows[-1][5], "mode": None,
+                  "recorded_at": rows[-1][0]}
+    spec = store.spectrum(latest["id"], 0)
+    if spec is None or not len(spec.freqs_hz):
+        return None
+    ref = store.reference_spectrum(rig, latest.get("mode") or "unknown", 0,
+                                   before=_file_time(latest))
+    line = _series(store, rig, "line_hz", 0, t0)
+    return LatestSpectrum(str(latest.get("path") or ""), 0, spec, ref,
+                          float(line[-1][1]) if line else None)
+
+
+def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | None = None
+                 ) -> Report:
+    """Per rig: the period's files, each key measure against its normal range, open alerts,
+    the noise-source hints of the period's findings, and what the page plots."""
     names = list(rigs) if rigs else list(store.rigs())
     out = []
     for rig in names:
         files = sorted(store.files(rig=rig, since=since, until=None), key=_file_time)
         files = [f for f in files if not f.get("superseded")]
-        lines = []
-        for measure in KEY_MEASURES:
-            for ch in _channels_of(store, rig, measure, now - HISTORY_DAYS * 86400.0):
-                ml = _measure_line(store, rig, measure, ch, now)
-                if ml is not None:
-                    lines.append(ml)
         hints: list[str] = []
         flags: dict[int, list[str]] = {}
         for f in files:
@@ -204,8 +259,10 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
                 flags.setdefault(f["id"], []).append(_flag_text(fd))
                 h = fd.get("hint")
                 if h:
-                    _add_hint(hints, h.replace(safety_note(), "").strip())
+                    _add_hint(hints, h.replace(SAFETY_NOTE, "").strip())
         alerts = tuple(store.open_alerts(rig=rig))
+        lines, trends = _key_measures(store, rig, now, list(alerts) + list(
+            store.recent_alerts(now - HISTORY_DAYS * 86400.0, rig=rig)))
         silences = tuple({"rig_glob": x.rig_glob, "rule_glob": x.rule_glob,
                           "start_at": x.start_at, "end_at": x.end_at, "reason": x.reason}
                          for x in store.active_silences(now) if fnmatch.fnmatchcase(rig, x.rig_glob))
@@ -219,8 +276,8 @@ def build_report(store, now: float, since: float, rigs: Iterable[str] | None = N
             sum(f.get("status") == "error" for f in files),
             sum(bool(f.get("flagged")) for f in files), slim, tuple(lines),
             tuple(dict(a) for a in alerts), tuple(hints),
-            safety_note() if any(_is_grounding(h) for h in hints) else None, silences,
-            resolved))
+            SAFETY_NOTE if any(_is_grounding(h) for h in hints) else None, silences,
+            resolved, tuple(trends), _latest_spectrum(store, rig, files, now)))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
 
@@ -374,185 +431,101 @@ def render_trend_csv(rows: list[tuple]) -> str:
     return buf.getvalue()
 
 
+# ----------------------------------------------------------------------------- alerts
+
+@dataclass(frozen=True)
+class AlertList:
+    """What ``qcd alerts`` shows: open and recently resolved alerts, silences, the outbox."""
+    days: float
+    open: tuple[dict, ...]
+    resolved: tuple[dict, ...]
+    silences: tuple[Silence, ...]
+    outbox: dict[str, int]
+    stuck: tuple[dict, ...]
+
+
+def build_alerts(store: Store, now: float, *, days: float, rig: str | None = None) -> AlertList:
+    """Open alerts, those resolved in the last ``days``, active silences and the outbox (of one
+    rig, or every rig when None)."""
+    return AlertList(
+        days, tuple(store.open_alerts(rig)), tuple(store.recent_alerts(now - days * 86400.0, rig)),
+        tuple(s for s in store.active_silences(now)
+              if rig is None or fnmatch.fnmatchcase(rig, s.rig_glob)),
+        dict(store.outbox_counts()),
+        tuple(r for r in store.stuck_rows() if rig is None or r["rig"] == rig))
+
+
+def _local(t: float | None) -> str:
+    if t is None:
+        return "-"
+    return datetime.fromtimestamp(t).astimezone().strftime("%Y-%m-%d %H:%M %Z")
+
+
+def _table(title: str, head: tuple[str, ...], rows: list[tuple]) -> list[str]:
+    out = [f"{title}: {len(rows) or 'none'}"]
+    if not rows:
+        return out
+    cells = [tuple(head)] + [tuple("-" if c is None else str(c) for c in r) for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(head))]
+    for r in cells:
+        out.append("  " + "  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())
+    return out
+
+
+def render_alerts(a: AlertList, *, secrets: Iterable[str] = ()) -> str:
+    """Plain text tables (times in the local zone); ``secrets`` (notification URLs) are
+    redacted from delivery errors."""
+    secrets = tuple(secrets)
+    out = _table("open alerts", ("rig", "channel", "measure", "rule", "state", "opened",
+                                 "announced"),
+                 [(x["rig"], x["channel"], x["measure"], x["rule"], x["state"],
+                   _local(x["opened_at"]), "yes" if x["announced"] else "no") for x in a.open])
+    out += _table(f"resolved in the last {a.days:g} days", ("rig", "channel", "measure", "rule",
+                                                            "opened", "resolved"),
+                  [(x["rig"], x["channel"], x["measure"], x["rule"], _local(x["opened_at"]),
+                    _local(x["resolved_at"])) for x in a.resolved])
+    out += _table("active silences", ("id", "rig", "rules", "from", "until", "reason"),
+                  [(x.id, x.rig_glob, x.rule_glob, _local(x.start_at),
+                    "resolved" if x.end_at is None else _local(x.end_at), x.reason)
+                   for x in a.silences])
+    ob = a.outbox
+    out.append(f"outbox: {ob['pending']} pending, {ob['sent']} sent, {ob['stuck']} stuck")
+    out += _table("undeliverable messages", ("id", "rig", "title", "attempts", "created",
+                                             "last error"),
+                  [(r["id"], r["rig"], r["title"], r["attempts"], _local(r["created_at"]),
+                    redact_text(r["last_error"] or "", secrets)) for r in a.stuck])
+    return "\n".join(out)
+
+
 # ----------------------------------------------------------------------------- HTML
 
-_CSS = """
-body{font:14px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;color:#1d2430;margin:0;
-background:#f4f5f7}
-main{max-width:1180px;margin:0 auto;padding:24px 28px 60px}
-h1{font-size:24px;margin:0 0 4px}h2{font-size:19px;margin:0 0 10px;display:flex;gap:12px;
-align-items:baseline}
-.sub{color:#5a6472;margin:0 0 18px}
-section.rig{background:#fff;border:1px solid #dde1e7;border-radius:8px;padding:18px 20px;
-margin:18px 0}
-.pill{font-size:12px;font-weight:600;border-radius:10px;padding:2px 9px;background:#e6efe6;
-color:#235a2c}.pill.bad{background:#fbe4e1;color:#8c2415}.pill.warn{background:#fff1d6;
-color:#7a5200}
-table{border-collapse:collapse;width:100%;margin:8px 0 14px;font-size:13px}
-th,td{text-align:left;padding:4px 8px;border-bottom:1px solid #eceef2;vertical-align:top}
-th{background:#f7f8fa;font-weight:600}td.num{text-align:right;font-variant-numeric:tabular-nums}
-tr.high td,tr.low td,tr.flag td,tr.sig td{background:#fdf0ee}tr.err td{background:#fff6e0}
-img{max-width:100%;display:block;margin:6px 0 10px}
-.alerts li{margin:2px 0}.hint{background:#f2f6fb;border-left:4px solid #4a6fa5;padding:6px 10px;
-margin:6px 0}
-.safety{background:#fff6e0;border-left:4px solid #c98a00;padding:6px 10px;margin:6px 0;
-font-size:13px}
-.meta{color:#5a6472}details summary{cursor:pointer;color:#4a6fa5;margin:6px 0}
-"""
+def _trend_image(rig: RigReport, now: float, since: float) -> str | None:
+    lines = {(m.measure, m.channel): m for m in rig.measures}
+    panels = []
+    for t in rig.trends:
+        m = lines[(t.measure, t.channel)]
+        info = MEASURES[t.measure]
+        panels.append(Panel(
+            f"{info.label} ({t.measure}, ch {t.channel})", t.unit, [p[0] for p in t.points],
+            [p[1] for p in t.points], [p[2] for p in t.points],
+            (m.low, m.median, m.high) if m.low is not None else None, t.alerts_opened,
+            info.log_axis))
+    return trend_figure(panels, shade=(since, now))
 
 
-def page(title: str, body: str) -> str:
-    """A whole self-contained HTML page around ``body``."""
-    return (f"<!DOCTYPE html>\n<html lang='en'><head><meta charset='utf-8'>"
-            f"<meta name='viewport' content='width=device-width, initial-scale=1'>"
-            f"<title>{html.escape(title)}</title><style>{_CSS}</style></head>"
-            f"<body><main>{body}</main></body></html>\n")
+def _spectrum_image(s: LatestSpectrum) -> str:
+    curves = []
+    if s.reference is not None and len(s.reference.freqs_hz):
+        curves.append(Curve(s.reference.freqs_hz, s.reference.density,
+                            "rig reference (median of recent good files)", "#7a8494", 1.4))
+    curves.append(Curve(s.spectrum.freqs_hz, s.spectrum.density,
+                        f"latest: {_short(s.path, 40)}", "#c8553d"))
+    return spectra_figure(curves, unit=s.spectrum.unit, line_hz=s.line_hz,
+                          title=f"latest baseline spectrum against the rig's reference, "
+                                f"channel {s.channel}")
 
 
-def figure_data_uri(fig) -> str:
-    """A matplotlib figure as a data: URI (PNG, base64)."""
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png")
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
-
-
-def _plt():
-    import matplotlib
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-    return plt
-
-
-_LABELS = {"noise_rms": "baseline RMS noise", "noise_rms_1k": "RMS noise, 1 kHz band",
-           "hum_rms": "mains hum RMS", "band_rms_1k_corner": "noise 1 kHz to corner",
-           "holding": "holding level", "baseline_drift": "baseline drift",
-           "seal_resistance": "seal resistance", "access_resistance": "access resistance",
-           "membrane_resistance": "membrane resistance",
-           "membrane_capacitance": "membrane capacitance",
-           "clipping_fraction": "clipped samples"}
-
-
-# Trend plots per rig (the table lists every key measure).
-_PLOTTED = ("noise_rms", "noise_rms_1k", "hum_rms", "band_rms_1k_corner", "holding",
-            "seal_resistance", "access_resistance", "membrane_resistance",
-            "membrane_capacitance")
-
-
-def _trend_figure(store, rig: RigReport, now: float, since: float) -> str | None:
-    from matplotlib.dates import AutoDateLocator, DateFormatter
-    plt = _plt()
-    lines = [m for m in rig.measures if m.measure in _PLOTTED][:6]
-    if not lines:
-        return None
-    ncol = 2
-    nrow = math.ceil(len(lines) / ncol)
-    height = 2.25 * nrow + 0.45
-    fig, axes = plt.subplots(nrow, ncol, figsize=(11.4, height), dpi=96, squeeze=False)
-    fig.subplots_adjust(left=0.065, right=0.99, top=1 - 0.3 / height, bottom=0.5 / height,
-                        hspace=0.5, wspace=0.14)
-    t0 = now - HISTORY_DAYS * 86400.0
-    marked = list(rig.open_alerts) + list(store.recent_alerts(t0, rig=rig.rig))
-    for ax, m in zip(axes.flat, lines):
-        opened = sorted({a.get("opened_at") for a in marked
-                         if a.get("opened_at") and a.get("measure") == m.measure
-                         and a.get("channel") in (None, m.channel)})
-        rows = _series(store, rig.rig, m.measure, m.channel, t0)
-        ts = [datetime.fromtimestamp(r[0], tz=timezone.utc) for r in rows]
-        vs = np.array([r[1] for r in rows], dtype=float)
-        fl = np.array([bool(r[3]) for r in rows])
-        if m.low is not None:
-            ax.axhspan(m.low, m.high, color="#4a9d5b", alpha=0.13, lw=0,
-                       label="normal range")
-            ax.axhline(m.median, color="#4a9d5b", lw=0.8, alpha=0.7)
-        ax.plot(ts, vs, color="#4a6fa5", lw=0.9, marker="o", ms=2.6)
-        if fl.any():
-            ax.plot([t for t, f in zip(ts, fl) if f], vs[fl], "o", color="#c8553d", ms=4.5,
-                    label="flagged file")
-        for i, t in enumerate(opened):
-            ax.axvline(datetime.fromtimestamp(t, tz=timezone.utc), color="#c8553d", lw=1.0,
-                       ls="--", label="alert opened" if i == 0 else None)
-        ax.axvspan(datetime.fromtimestamp(since, tz=timezone.utc),
-                   datetime.fromtimestamp(now, tz=timezone.utc), color="#999999", alpha=0.08,
-                   lw=0)
-        name = _LABELS.get(m.measure, m.measure)
-        ax.set_title(f"{name} ({m.measure}, ch {m.channel})", fontsize=9.5, loc="left")
-        ax.set_ylabel(m.unit or "value", fontsize=9)
-        ax.tick_params(labelsize=8)
-        ax.xaxis.set_major_locator(AutoDateLocator(minticks=3, maxticks=7))
-        ax.xaxis.set_major_formatter(DateFormatter("%m-%d"))
-        ax.grid(True, alpha=0.25)
-        if m.measure in ("hum_rms", "seal_resistance", "membrane_resistance") and \
-                vs.size and np.all(vs > 0) and vs.max() / vs.min() > 20:
-            ax.set_yscale("log")
-        if fl.any() or m.low is not None or opened:
-            ax.legend(fontsize=7, loc="best", framealpha=0.75)
-    for ax in list(axes.flat)[len(lines):]:
-        ax.axis("off")
-    for ax in axes[-1]:
-        if ax.has_data():
-            ax.set_xlabel("date (UTC)", fontsize=9)
-    uri = figure_data_uri(fig)
-    plt.close(fig)
-    return uri
-
-
-def _spectrum_figure(store, rig: RigReport, now: float) -> str | None:
-    ok = [f for f in rig.files if f.get("status") == "ok"]
-    latest = ok[-1] if ok else None
-    if latest is None:
-        rows = _series(store, rig.rig, "noise_rms", 0, now - HISTORY_DAYS * 86400.0)
-        if not rows:
-            return None
-        latest = {"id": rows[-1][4], "path": rows[-1][5], "mode": None,
-                  "recorded_at": rows[-1][0]}
-    spec = store.spectrum(latest["id"], 0)
-    if spec is None or not len(spec.freqs_hz):
-        return None
-    ref = None
-    try:
-        ref = store.reference_spectrum(rig.rig, latest.get("mode") or "unknown", 0,
-                                       before=_file_time(latest))
-    except TypeError:
-        ref = None
-    plt = _plt()
-    fig, ax = plt.subplots(figsize=(11.4, 3.6), dpi=96)
-    fig.subplots_adjust(left=0.065, right=0.99, top=0.92, bottom=0.13)
-    f = np.asarray(spec.freqs_hz, dtype=float)
-    d = np.asarray(spec.density, dtype=float)
-    sel = (f > 0) & (d > 0)
-    if ref is not None and len(ref.freqs_hz):
-        fr, dr = np.asarray(ref.freqs_hz), np.asarray(ref.density)
-        rs = (fr > 0) & (dr > 0)
-        ax.loglog(fr[rs], dr[rs], color="#7a8494", lw=1.4, label="rig reference (median of "
-                  "recent good files)")
-    ax.loglog(f[sel], d[sel], color="#c8553d", lw=1.1, label=f"latest: {_short(latest.get('path'), 40)}")
-    line = _latest_value(store, rig.rig, "line_hz", now) or 0.0
-    if line:
-        top = f[sel].max() if sel.any() else 0
-        for h in range(1, 11):
-            if h * line > min(top, 1000.0):
-                break
-            ax.axvline(h * line, color="#c98a00", lw=0.7, ls=":", alpha=0.8,
-                       label=f"mains harmonics ({line:g} Hz)" if h == 1 else None)
-    if sel.any():                         # keep the filter roll-off from squashing the rest
-        ax.set_ylim(bottom=max(float(np.min(d[sel])), float(np.median(d[sel])) * 1e-4) / 2)
-    ax.set_xlabel("frequency (Hz)")
-    ax.set_ylabel(f"PSD ({spec.unit}\u00b2/Hz)")
-    ax.grid(True, which="major", alpha=0.3)
-    ax.legend(fontsize=8, loc="lower left")
-    ax.set_title("latest baseline spectrum against the rig's reference, channel 0",
-                 fontsize=10, loc="left")
-    uri = figure_data_uri(fig)
-    plt.close(fig)
-    return uri
-
-
-def _latest_value(store, rig: str, measure: str, now: float) -> float | None:
-    rows = _series(store, rig, measure, 0, now - HISTORY_DAYS * 86400.0)
-    return float(rows[-1][1]) if rows else None
-
-
-def render_html(r: Report, store) -> str:
+def render_html(r: Report) -> str:
     """The morning report as one self-contained HTML page (plots as data: URIs)."""
     parts = [f"<h1>qcd morning report</h1><p class='sub'>{_when(r.since)} to "
              f"{_when(r.generated_at)} UTC &middot; {len(r.rigs)} rig(s) &middot; trends over "
@@ -594,12 +567,12 @@ def render_html(r: Report, store) -> str:
                              f"<td class='num'>{rng}</td><td>{html.escape(m.unit)}</td>"
                              f"<td>{m.state}</td></tr>")
             parts.append("</tbody></table>")
-        img = _trend_figure(store, rig, r.generated_at, r.since)
+        img = _trend_image(rig, r.generated_at, r.since)
         if img:
             parts.append(f"<img alt='trends of {html.escape(rig.rig)}' src='{img}'>")
-        img = _spectrum_figure(store, rig, r.generated_at)
-        if img:
-            parts.append(f"<img alt='latest spectrum of {html.escape(rig.rig)}' src='{img}'>")
+        if rig.spectrum is not None:
+            parts.append(f"<img alt='latest spectrum of {html.escape(rig.rig)}' "
+                         f"src='{_spectrum_image(rig.spectrum)}'>")
         parts.append(_files_table(rig))
         parts.append("</section>")
     return page("qcd morning report", "".join(parts))

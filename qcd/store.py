@@ -2,7 +2,9 @@
 
 One writer process (the service); short writes from a second process (``qcd silence``) are
 safe because every write transaction starts with BEGIN IMMEDIATE. Times are Unix seconds.
-Imports sqlite-utils, numpy, qcd.errors and qcd.analyze (dataclasses only).
+Imports sqlite-utils, numpy, qcd.errors, qcd.results (what a measured file is) and
+qcd.alerts (Message, Silence); never qcd.analyze. Over 500 lines: one Store class holds every
+query, so that no other module holds SQL.
 """
 from __future__ import annotations
 
@@ -15,7 +17,7 @@ import threading
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -23,12 +25,14 @@ import numpy as np
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
+from qcd.alerts import Message, Silence
 from qcd.errors import StoreError
+from qcd.results import ChannelMeasures, FileMeasures, Spectrum, file_time
 
-if TYPE_CHECKING:  # qcd.analyze pulls in scipy: imported lazily so `qcd silence` starts fast
-    from qcd.analyze import ChannelMeasures, FileMeasures, Spectrum
+if TYPE_CHECKING:
+    from qcd.judge import Finding
 
-__all__ = ["Store", "FileState", "Silence", "MIGRATIONS", "to_unix"]
+__all__ = ["Store", "FileState", "MIGRATIONS"]
 
 log = logging.getLogger("qcd.store")
 
@@ -133,33 +137,6 @@ class FileState:
     status: str
 
 
-@dataclass(frozen=True)
-class Silence:
-    id: int
-    rig_glob: str
-    rule_glob: str
-    start_at: float
-    end_at: float | None          # None: until the silenced alerts resolve
-    reason: str
-
-
-def to_unix(value: datetime | float | int | None) -> float | None:
-    """A datetime (naive = UTC, as file headers give it) or a number -> Unix seconds."""
-    if value is None:
-        return None
-    if isinstance(value, datetime):
-        if value.tzinfo is None:
-            value = value.replace(tzinfo=timezone.utc)
-        return value.timestamp()
-    return float(value)
-
-
-def _get(obj: Any, name: str, default: Any = None) -> Any:
-    if isinstance(obj, dict):
-        return obj.get(name, default)
-    return getattr(obj, name, default)
-
-
 def _plain(value: Any) -> Any:
     """numpy scalars -> Python scalars (np.float64 is a float already; np.int64, np.bool_ not)."""
     if isinstance(value, np.generic):
@@ -210,16 +187,6 @@ def _encode_value(value: Any) -> tuple[float | None, str, str | None]:
     return None, "json", _dumps(value)
 
 
-def _decode_value(value: float | None, kind: str, text: str | None) -> Any:
-    if kind == "bool":
-        return bool(value)
-    if kind == "int":
-        return int(text) if text is not None else int(value)  # type: ignore[arg-type]
-    if kind == "float":
-        return float(text) if text is not None else float(value)  # type: ignore[arg-type]
-    return json.loads(text) if text is not None else None
-
-
 def _f32(values: Iterable[float]) -> bytes:
     return np.asarray(tuple(values), dtype="<f4").tobytes()
 
@@ -228,15 +195,14 @@ def _from_f32(blob: bytes) -> tuple[float, ...]:
     return tuple(float(x) for x in np.frombuffer(blob, dtype="<f4"))
 
 
-def _bad_targets(findings: Iterable[Any]) -> tuple[bool, set[tuple[int | None, str]]]:
+def _bad_targets(findings: Iterable[Finding]) -> tuple[bool, set[tuple[int | None, str]]]:
     """(any bad finding, {(channel or None, measure)} named by bad findings)."""
     any_bad, named = False, set()
     for f in findings:
-        if _get(f, "bad"):
+        if f.bad:
             any_bad = True
-            measure = _get(f, "measure")
-            if measure:
-                named.add((_get(f, "channel"), str(measure)))
+            if f.measure:
+                named.add((f.channel, f.measure))
     return any_bad, named
 
 
@@ -296,10 +262,6 @@ class Store:
             return
         with self._write():      # BEGIN IMMEDIATE: two processes opening at once migrate once
             MIGRATIONS.apply(self.db)
-
-    def schema_steps(self) -> list[str]:
-        """Names of the applied schema steps, in order."""
-        return [m.name for m in MIGRATIONS.applied(self.db)]
 
     def close(self) -> None:
         with self._lock:
@@ -374,11 +336,6 @@ class Store:
                         (rig, os.fspath(path)))
         return FileState(*row) if row else None
 
-    def has_content(self, rig: str, sha256: str) -> bool:
-        """A current (non-superseded) row of this rig holds this content already."""
-        return self._one("SELECT 1 FROM files WHERE rig = ? AND sha256 = ? AND superseded = 0 "
-                         "LIMIT 1", (rig, sha256)) is not None
-
     # --- history for the judge ----------------------------------------------------------------
 
     def history(self, rig: str, mode: str, channel: int, measure: str, *, limit: int = 30,
@@ -418,7 +375,6 @@ class Store:
         if not rows:
             return None
         unit, freqs, _ = rows[0]
-        from qcd.analyze import Spectrum
         same = [np.frombuffer(d, dtype="<f4") for u, f, d in rows if u == unit and f == freqs]
         median = np.median(np.vstack(same).astype(np.float64), axis=0)
         return Spectrum(freqs_hz=_from_f32(freqs), density=tuple(float(x) for x in median),
@@ -433,8 +389,8 @@ class Store:
     # --- one processed file ---------------------------------------------------------------------
 
     def commit_file(self, rig: str, fm: FileMeasures, *, analysed_at: float,
-                    findings: Iterable[Any] = (), alert_states: Iterable[dict] = (),
-                    messages: Iterable[Any] = ()) -> int:
+                    findings: Iterable[Finding] = (), alert_states: Iterable[dict] = (),
+                    messages: Iterable[Message] = ()) -> int:
         """Store everything of one processed file in ONE transaction; returns the file id.
 
         Content already stored for the rig (same sha256, current row) is not stored again:
@@ -465,7 +421,7 @@ class Store:
             for ch in fm.channels:
                 self._insert_channel(conn, file_id, ch, named)
             for f in findings:
-                self._insert_finding(conn, file_id, rig, fm.mode, f)
+                self._insert_finding(conn, file_id, f)
             self._upsert_alerts(conn, alert_states, analysed_at)
             self._queue(conn, messages, analysed_at)
             if self._before_commit is not None:
@@ -475,14 +431,12 @@ class Store:
     @staticmethod
     def _insert_file(conn: sqlite3.Connection, rig: str, fm: FileMeasures, path: str,
                      analysed_at: float, flagged: bool) -> int:
+        recorded_at = file_time(fm.recorded_at, fm.mtime, float(analysed_at))
         if fm.recorded_at is not None:
-            recorded_at = to_unix(fm.recorded_at)
             aware = isinstance(fm.recorded_at, datetime) and fm.recorded_at.tzinfo is not None
             source = "header_tz" if aware else "header"
-        elif fm.mtime is not None:
-            recorded_at, source = float(fm.mtime), "mtime"
         else:
-            recorded_at, source = float(analysed_at), "analysed"
+            source = "mtime" if fm.mtime is not None else "analysed"
         cur = conn.execute(
             "INSERT INTO files (rig, path, size, mtime, sha256, recorded_at, time_source, "
             "analysed_at, status, error_kind, error, mode, format, fs_hz, duration_s, n_sweeps, "
@@ -519,22 +473,17 @@ class Store:
                          (file_id, idx, sp.unit, _f32(sp.freqs_hz), _f32(sp.density)))
 
     @staticmethod
-    def _insert_finding(conn: sqlite3.Connection, file_id: int, rig: str, mode: str,
-                        f: Any) -> None:
-        ch = _get(f, "channel")
+    def _insert_finding(conn: sqlite3.Connection, file_id: int, f: Finding) -> None:
         conn.execute(
             "INSERT INTO findings (file_id, rig, mode, channel, measure, rule, kind, bad, "
             "severity, value, unit, limit_text, hint) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
-            (file_id, _get(f, "rig", rig), _get(f, "mode", mode),
-             None if ch is None else int(ch), _get(f, "measure"), _get(f, "rule"),
-             _get(f, "kind"), int(bool(_get(f, "bad"))), _str_or_none(_get(f, "severity")),
-             _real(_get(f, "value")), _get(f, "unit"), _get(f, "limit_text"), _get(f, "hint")))
+            (file_id, f.rig, f.mode, None if f.channel is None else int(f.channel), f.measure,
+             f.rule, f.kind, int(bool(f.bad)), f.severity, _real(f.value), f.unit,
+             f.limit_text, f.hint))
 
     @staticmethod
     def _upsert_alerts(conn: sqlite3.Connection, states: Iterable[dict], now: float) -> None:
         for st in states:
-            if not isinstance(st, dict):
-                st = st.to_dict()
             ch = st.get("channel")
             announced = _plain(st.get("announced"))
             conn.execute(
@@ -553,18 +502,16 @@ class Store:
                  (None if announced is None else int(bool(announced)))))
 
     @staticmethod
-    def _queue(conn: sqlite3.Connection, messages: Iterable[Any], now: float) -> None:
+    def _queue(conn: sqlite3.Connection, messages: Iterable[Message], now: float) -> None:
         for m in messages:
-            created = _real(_get(m, "created_at")) or float(now)
             conn.execute(
                 "INSERT OR IGNORE INTO outbox (alert_key, transition, kind, priority, rig, title, "
                 "body, created_at, status, attempts, next_at) "
                 "VALUES (?,?,?,?,?,?,?,?,'pending',0,?)",
-                (str(_get(m, "alert_key")), _plain(_get(m, "transition")), _get(m, "kind"),
-                 _plain(_get(m, "priority")), _get(m, "rig"), _get(m, "title"),
-                 _get(m, "body"), created, created))
+                (m.alert_key, int(m.transition), m.kind, int(m.priority), m.rig, m.title,
+                 m.body, float(now), float(now)))
 
-    def commit_alerts(self, alert_states: Iterable[dict] = (), messages: Iterable[Any] = (),
+    def commit_alerts(self, alert_states: Iterable[dict] = (), messages: Iterable[Message] = (),
                       *, now: float | None = None) -> None:
         """Alert states and outbox rows without a file (silence ends, digests), one transaction.
 
@@ -637,13 +584,6 @@ class Store:
     def stuck_rows(self) -> list[dict[str, Any]]:
         return self._rows("SELECT * FROM outbox WHERE status = 'stuck' ORDER BY created_at, id")
 
-    def outbox_rows(self, alert_key: str | None = None) -> list[dict[str, Any]]:
-        """Every outbox row (of one key), oldest first."""
-        if alert_key is None:
-            return self._rows("SELECT * FROM outbox ORDER BY created_at, id")
-        return self._rows("SELECT * FROM outbox WHERE alert_key = ? ORDER BY created_at, id",
-                          (alert_key,))
-
     # --- silences --------------------------------------------------------------------------------
 
     def add_silence(self, rig_glob: str, rule_glob: str, start_at: float, end_at: float | None,
@@ -663,13 +603,6 @@ class Store:
         rows = self._one_all("SELECT id, rig_glob, rule_glob, start_at, end_at, reason FROM "
                              "silences WHERE start_at <= ? AND (end_at IS NULL OR end_at > ?) "
                              "ORDER BY start_at, id", (now, now))
-        return [Silence(*r) for r in rows]
-
-    def recent_silences(self, since: float) -> list[Silence]:
-        """Silences still open-ended or ending at or after ``since`` (active or just ended)."""
-        rows = self._one_all("SELECT id, rig_glob, rule_glob, start_at, end_at, reason FROM "
-                             "silences WHERE end_at IS NULL OR end_at >= ? ORDER BY start_at, id",
-                             (since,))
         return [Silence(*r) for r in rows]
 
     def end_silence(self, id: int, now: float) -> bool:
@@ -757,7 +690,6 @@ class Store:
                         "channel = ?", (file_id, channel))
         if row is None:
             return None
-        from qcd.analyze import Spectrum
         return Spectrum(freqs_hz=_from_f32(row[1]), density=_from_f32(row[2]), unit=row[0])
 
     def findings(self, file_id: int) -> list[dict[str, Any]]:
@@ -765,54 +697,6 @@ class Store:
         for r in rows:
             r["bad"] = bool(r["bad"])
         return rows
-
-    def file_measures(self, file_id: int) -> dict[int, dict[str, tuple[Any, str]]]:
-        """{channel: {name: (value, unit)}}, values exactly as FileMeasures carried them."""
-        out: dict[int, dict[str, tuple[Any, str]]] = {}
-        for ch, name, value, unit, kind, text in self._one_all(
-                "SELECT channel, name, value, unit, kind, json FROM measures WHERE file_id = ? "
-                "ORDER BY rowid", (file_id,)):
-            out.setdefault(int(ch), {})[name] = (_decode_value(value, kind, text), unit)
-        return out
-
-    def flagged_measures(self, file_id: int) -> set[tuple[int, str]]:
-        """{(channel, measure)} flagged by a bad finding."""
-        return {(int(c), n) for c, n in self._one_all(
-            "SELECT channel, name FROM measures WHERE file_id = ? AND flagged = 1", (file_id,))}
-
-    def load_file(self, file_id: int) -> FileMeasures | None:
-        """The stored file rebuilt as a FileMeasures (spectra as float32 gave them)."""
-        from qcd.analyze import ChannelMeasures, FileMeasures, Measure
-        rows = self._rows("SELECT * FROM files WHERE id = ?", (file_id,))
-        if not rows:
-            return None
-        f = rows[0]
-        measures = self.file_measures(file_id)
-        channels = []
-        for ch, name, unit, dim, notes in self._one_all(
-                "SELECT channel, name, unit, dimension, notes FROM channels WHERE file_id = ? "
-                "ORDER BY rowid", (file_id,)):
-            ms = {k: Measure(k, v, u) for k, (v, u) in measures.get(int(ch), {}).items()}
-            channels.append(ChannelMeasures(index=int(ch), name=name, unit=unit, dimension=dim,
-                                            measures=ms, notes=tuple(json.loads(notes)),
-                                            spectrum=self.spectrum(file_id, int(ch))))
-        recorded: datetime | None = None
-        if f["time_source"] in ("header", "header_tz"):
-            recorded = datetime.fromtimestamp(f["recorded_at"], timezone.utc)
-            if f["time_source"] == "header":
-                recorded = recorded.replace(tzinfo=None)
-        return FileMeasures(
-            path=f["path"], status=f["status"], error=f["error"], error_kind=f["error_kind"],
-            mode=f["mode"], format=f["format"], fs_hz=f["fs_hz"], duration_s=f["duration_s"],
-            n_sweeps=f["n_sweeps"],
-            gap_free=None if f["gap_free"] is None else bool(f["gap_free"]),
-            recorded_at=recorded, size=f["size"], mtime=f["mtime"], sha256=f["sha256"],
-            channels=tuple(channels), notes=tuple(json.loads(f["notes"])),
-            extra=json.loads(f["extra"]))
-
-
-def _str_or_none(v: Any) -> str | None:
-    return None if v is None else str(v)
 
 
 def _alert_row(r: dict[str, Any]) -> dict[str, Any]:

@@ -1,14 +1,14 @@
 """Units: SI factors for the ASCII unit names qcd prints and stores, and the display table.
 
 Code computes in SI; values leave qcd (JSON, store, report) in the display unit of their
-quantity. Imports nothing from qcd.
+quantity (per measure: qcd.results.display_unit). Imports nothing from qcd.
 """
 from __future__ import annotations
 
 import re
 
 __all__ = ["FACTORS", "DIMENSION", "DISPLAY", "to_si", "from_si", "parse_quantity",
-           "channel_quantity", "display_unit"]
+           "channel_quantity"]
 
 # ASCII unit -> factor to SI. Dimension names are SI base spellings.
 FACTORS: dict[str, float] = {
@@ -42,14 +42,12 @@ for _u in ("mV/min", "uV/min", "V/min"):
     DIMENSION[_u] = "V/s"
 DIMENSION.update({"%": "%", "": "", "dB": "dB"})
 
-# SI dimension -> the unit values are shown, stored and compared in.
+# SI dimension -> the unit values are shown, stored and compared in (a measure may override
+# it: qcd.results.MEASURES, e.g. seal resistance in GOhm).
 DISPLAY: dict[str, str] = {
     "A": "pA", "V": "mV", "Ohm": "MOhm", "F": "pF", "s": "ms", "Hz": "Hz",
     "A/s": "pA/min", "V/s": "mV/min", "%": "%", "": "", "dB": "dB",
 }
-
-# Measures whose display unit differs from their dimension's default.
-_MEASURE_UNIT = {"seal_resistance": "GOhm", "tau": "us"}
 
 _SPELLINGS = {"ohm": "Ohm", "kohm": "kOhm", "mohm": "MOhm", "gohm": "GOhm",
               "\u03a9": "Ohm", "k\u03a9": "kOhm", "M\u03a9": "MOhm", "G\u03a9": "GOhm",
@@ -80,11 +78,6 @@ def to_si(value: float, unit: str) -> float:
 def from_si(value: float, unit: str) -> float:
     """An SI value -> ``unit``."""
     return float(value) / FACTORS[_canonical(unit)]
-
-
-def display_unit(measure: str, dimension: str) -> str:
-    """The unit a measure is shown in, given its SI dimension ('A', 'V', 'Ohm', ...)."""
-    return _MEASURE_UNIT.get(measure, DISPLAY[dimension])
 
 
 _QUANTITY = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(\S*)\s*$")

@@ -48,7 +48,7 @@ def _measure(path: str, pulse: Any, mains_hz: float | None, mode: str | None = N
 
 
 def _error_measures(path: Path, kind: str, reason: str, size: int = -1, mtime: float = -1.0):
-    from qcd.analyze import FileMeasures
+    from qcd.results import FileMeasures
     return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind,
                         size=size if size >= 0 else None, mtime=mtime if mtime >= 0 else None)
 
@@ -69,8 +69,7 @@ def make_sender(config: Any):
         log.warning("no notification targets configured: alerts are stored but not sent")
         return None
     from qcd import notify
-    factory = getattr(notify.Sender, "from_config", None)
-    return factory(config) if factory else notify.Sender(config.notify, config.notify_config)
+    return notify.Sender.from_config(config)
 
 
 @dataclass
@@ -448,15 +447,15 @@ class Service:
             return
         self._seen[(r.rig, r.path)] = (r.size, r.mtime)
         self._backlog_done(r)
-        if getattr(fm, "status", "ok") == "ok":
+        if fm.status == "ok":
             self.counts["measured"] += 1
             if not batch:                     # the backlog logs progress lines instead
                 log.info("%s: measured and stored (rig %s)", r.path, r.rig)
         else:
             self.counts["errors"] += 1
-            log.warning("%s", getattr(fm, "error", None) or f"{r.path}: error")
+            log.warning("%s", fm.error or f"{r.path}: error")
         self._last_file[r.rig] = {"path": os.fspath(r.path), "at": now,
-                                  "status": getattr(fm, "status", "ok")}
+                                  "status": fm.status}
 
     def _give_up(self, g: GaveUp, now: float) -> None:
         if not g.reason:                      # settled but never fit: measure, store the error
@@ -499,8 +498,7 @@ class Service:
 
     def _checkpoint(self) -> None:
         """Keep the -wal file small (long readers, such as a report, can starve checkpoints)."""
-        wal_bytes = getattr(self.store, "wal_bytes", None)
-        if wal_bytes is None or wal_bytes() < self.wal_limit_bytes:
+        if self.store.wal_bytes() < self.wal_limit_bytes:
             return
         try:
             busy, _, _ = self.store.checkpoint()

@@ -5,7 +5,8 @@ Header offsets follow the ABF2 section table (16-byte entries from byte 76: bloc
 entry count) and the fixed ABF1 header layout (offsets as read by pyabf's header modules).
 Run as a script (``python badfiles.py FOLDER ABF2 ABF1 LIMIT_MB``) it opens every case, then
 300 seeded random corruptions, under an address-space limit and prints JSON lines;
-test_recording.py does that in a subprocess.
+test_recording.py does that in a subprocess (``--hdf5 FOLDER N LIMIT_MB``: the same for
+corruptions of a small NWB file, for test_formats.py).
 """
 from __future__ import annotations
 
@@ -41,8 +42,8 @@ def build(folder: Path, abf2_source: Path, abf1_source: Path) -> list[tuple[str,
     v1 = Path(abf1_source).read_bytes()
     cases: list[tuple[str, Path, str, str]] = []
 
-    def put(name: str, data: bytes, kind: str, what: str) -> None:
-        p = folder / f"{name}.abf"
+    def put(name: str, data: bytes, kind: str, what: str, suffix: str = ".abf") -> None:
+        p = folder / f"{name}{suffix}"
         p.write_bytes(data)
         cases.append((name, p, kind, what))
 
@@ -116,6 +117,39 @@ def build(folder: Path, abf2_source: Path, abf1_source: Path) -> list[tuple[str,
     put("abf1_bad_version", _patch(v1, (4, "<f", float("inf"))), "bad_header",
         "ABF1 format version infinity")
 
+    # NWB (HDF5) and the formats read through python-neo; the NWB files follow pynwb's layout
+    ok = folder / "mini.h5"
+    mini_nwb(ok)
+    good = ok.read_bytes()
+    ok.unlink()
+    put("nwb_cut_in_half", good[:len(good) // 2], "truncated",
+        "an NWB file cut half-way (the superblock's end-of-file address is past the end)",
+        ".nwb")
+    put("nwb_superblock_only", good[:40], "truncated", "only the first 40 bytes of an NWB file",
+        ".nwb")
+    put("hdf5_garbage_after_signature", good[:8] + b"\x07" + rng.randbytes(4096), "bad_header",
+        "the HDF5 signature followed by random bytes (superblock version 7)", ".nwb")
+    mini_nwb(folder / "nwb_no_ephys_series.nwb", series=False)
+    cases.append(("nwb_no_ephys_series", folder / "nwb_no_ephys_series.nwb", "unsupported",
+                  "an NWB file whose /acquisition holds no electrophysiology series"))
+    mini_nwb(folder / "hdf5_not_nwb.nwb", nwb=False)
+    cases.append(("hdf5_not_nwb", folder / "hdf5_not_nwb.nwb", "unsupported",
+                  "a plain HDF5 file named .nwb"))
+    mini_nwb(folder / "nwb_huge_chunks.nwb", chunk=20_000_000)
+    cases.append(("nwb_huge_chunks", folder / "nwb_huge_chunks.nwb", "unsupported",
+                  "an NWB series stored in 80 MB chunks (each read would inflate one whole)"))
+    nix = folder / "nix_cut.nix"
+    nix.write_bytes(good[:len(good) // 3])
+    cases.append(("nix_cut_short", nix, "truncated", "an HDF5 file named .nix cut short"))
+    put("neo_cannot_parse_wcp", rng.randbytes(20_000), "bad_header",
+        "random bytes named .wcp: python-neo's reader fails on them", ".wcp")
+    put("neo_cannot_parse_edr", rng.randbytes(20_000), "bad_header",
+        "random bytes named .edr: python-neo's reader fails on them", ".edr")
+    put("neo_cannot_parse_rhd", rng.randbytes(20_000), "bad_header",
+        "random bytes named .rhd: python-neo's reader fails on them", ".rhd")
+    put("neo_needs_companion", rng.randbytes(4096), "unsupported",
+        "a .ns5 file: python-neo reads that format only with its companion files", ".ns5")
+
     # not regular files / not readable
     d = folder / "folder.abf"
     d.mkdir()
@@ -138,9 +172,40 @@ def build(folder: Path, abf2_source: Path, abf1_source: Path) -> list[tuple[str,
         locked.chmod(0)
         cases.append(("no_read_permission", locked, "unreadable", "mode 000"))
     unknown = folder / "recording.dat"
-    unknown.write_bytes(v2)
-    cases.append(("unknown_suffix", unknown, "unsupported", "a valid ABF2 named .dat"))
+    unknown.write_bytes(b"sample,value\n" + v2[4:])
+    cases.append(("unknown_suffix", unknown, "unsupported",
+                  "an unknown signature named .dat (a valid ABF2 named so is read as ABF)"))
     return cases
+
+
+def mini_nwb(path: Path, *, series: bool = True, nwb: bool = True, chunk: int = 0) -> None:
+    """A small NWB file written with h5py in pynwb's layout: one voltage-clamp sweep."""
+    import h5py
+    import numpy as np
+    with h5py.File(path, "w") as f:
+        if nwb:
+            f.attrs["nwb_version"] = "2.7.0"
+            f.attrs["neurodata_type"] = "NWBFile"
+            f["session_start_time"] = "2024-05-01T09:30:00+02:00"
+        f.create_group("acquisition")
+        f.create_group("general/intracellular_ephys/electrode0")
+        if not series:
+            g = f["acquisition"].create_group("temperature")
+            g.attrs["neurodata_type"] = "TimeSeries"
+            g["data"] = np.zeros(100)
+            return
+        g = f["acquisition"].create_group("sweep0")
+        g.attrs.update(neurodata_type="VoltageClampSeries", sweep_number=0)
+        if chunk:
+            d = g.create_dataset("data", shape=(100,), maxshape=(None,), dtype="<i4",
+                                 chunks=(chunk,))
+        else:
+            d = g.create_dataset("data", data=np.random.default_rng(1).integers(
+                -300, 300, 20_000).astype("<i2"))
+        d.attrs.update(unit="amperes", conversion=1e-12, offset=0.0, resolution=-1.0)
+        st = g.create_dataset("starting_time", data=0.0)
+        st.attrs.update(rate=20_000.0, unit="seconds")
+        g["electrode"] = h5py.SoftLink("/general/intracellular_ephys/electrode0")
 
 
 def mutations(sources: list[Path], n: int, seed: int):
@@ -194,6 +259,46 @@ def _fuzz(folder: Path, sources: list[Path], n: int) -> dict:
     return {"fuzz": n, "other": other, "slowest": slowest, "outcomes": outcomes}
 
 
+def hdf5_mutations(source: bytes, n: int, seed: int):
+    """``n`` seeded corruptions of an HDF5 file: bytes changed in its first 16 KB (superblock,
+    object headers, B-trees, heaps). Yields (label, bytes)."""
+    rng = random.Random(seed)
+    for i in range(n):
+        buf = bytearray(source)
+        for _ in range(rng.choice([1, 2, 4, 8])):
+            buf[rng.randrange(8, min(len(buf), 16384))] = rng.randrange(256)
+        if rng.random() < 0.1:
+            buf = buf[:rng.randrange(8, len(buf))]
+        yield f"hdf5_mutation_{i}", bytes(buf)
+
+
+def _hdf5_fuzz(folder: Path, n: int) -> dict:
+    """Open and read every HDF5 mutation; collect anything but RecordingError."""
+    from qcd.errors import RecordingError
+    from qcd.recording import open_recording
+
+    src = folder / "source.nwb"
+    mini_nwb(src)
+    path = folder / "mutation.nwb"
+    other, slowest, outcomes = [], 0.0, {}
+    for label, data in hdf5_mutations(src.read_bytes(), n, seed=11):
+        path.write_bytes(data)
+        t0 = time.perf_counter()
+        try:
+            with open_recording(path) as rec:
+                for _ in rec.raw_chunks_all(size=1 << 14):
+                    pass
+                for cmd in rec.commands.values():
+                    cmd.waveform(0)
+            outcomes["ok"] = outcomes.get("ok", 0) + 1
+        except RecordingError as e:
+            outcomes[e.kind] = outcomes.get(e.kind, 0) + 1
+        except BaseException as e:  # noqa: BLE001 - exactly what the test forbids
+            other.append(f"{label}: {type(e).__name__}: {str(e)[:200]}")
+        slowest = max(slowest, time.perf_counter() - t0)
+    return {"fuzz": n, "other": other, "slowest": slowest, "outcomes": outcomes}
+
+
 def _run(folder: Path, abf2: Path, abf1: Path, limit_mb: int) -> None:
     """Open every case under an address-space limit; one JSON line per case."""
     from qcd.recording import open_recording  # after the limit is set below
@@ -220,13 +325,23 @@ def _run(folder: Path, abf2: Path, abf1: Path, limit_mb: int) -> None:
     print(json.dumps({"done": True, "limit_mb": limit_mb}), flush=True)
 
 
-if __name__ == "__main__":
-    _folder, _abf2, _abf1, _limit = sys.argv[1:5]
+def _limit_memory(limit_mb: int) -> None:
     import numpy  # noqa: F401 - imported before the limit so its arenas are counted in the base
     import pyabf  # noqa: F401
+    import h5py  # noqa: F401
+    import neo.rawio  # noqa: F401
 
     with open("/proc/self/statm") as fh:
         base = int(fh.read().split()[0]) * os.sysconf("SC_PAGE_SIZE")
-    cap = base + int(_limit) * (1 << 20)
+    cap = base + int(limit_mb) * (1 << 20)
     resource.setrlimit(resource.RLIMIT_AS, (cap, cap))
-    _run(Path(_folder), Path(_abf2), Path(_abf1), int(_limit))
+
+
+if __name__ == "__main__":
+    if sys.argv[1] == "--hdf5":          # badfiles.py --hdf5 FOLDER N LIMIT_MB
+        _limit_memory(int(sys.argv[4]))
+        print(json.dumps(_hdf5_fuzz(Path(sys.argv[2]), int(sys.argv[3]))), flush=True)
+    else:
+        _folder, _abf2, _abf1, _limit = sys.argv[1:5]
+        _limit_memory(int(_limit))
+        _run(Path(_folder), Path(_abf2), Path(_abf1), int(_limit))

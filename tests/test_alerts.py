@@ -7,7 +7,7 @@ from dataclasses import dataclass, replace
 from hypothesis import given, settings as hsettings, strategies as st
 
 from qcd.alerts import AlertState, advance, flush_digest, tick
-from qcd.config import RuleSettings
+from qcd.ruleset import RuleSettings
 from qcd.judge import Finding
 
 SET = RuleSettings()

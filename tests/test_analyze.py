@@ -14,7 +14,8 @@ from hypothesis import strategies as st
 
 from badfiles import build as build_bad_files
 from conftest import ABF_FILES, abf, require_data
-from qcd.analyze import MODES, analyze, analyze_path
+from qcd.analyze import analyze, analyze_path
+from qcd.results import MODES
 from qcd.config import TestPulse
 from qcd.recording import open_recording
 from references import sampled_cell, sine
@@ -97,14 +98,15 @@ def test_holding_change_is_not_a_test_pulse():
 
 
 def test_model_cell_gives_whole_cell_values():
-    # METHODS §2 typical model-cell values [M, from memory]: whole-cell 10 MOhm + 500 MOhm || 33 pF
+    # docs/methods.md §2 typical model-cell values [M, from memory]:
+    # whole-cell 10 MOhm + 500 MOhm || 33 pF
     ms = primary(measured("vc_model_cell_step.abf")).measures
     assert ms["access_resistance"].unit == "MOhm"
     assert ms["access_resistance"].value == pytest.approx(10.0, rel=0.2)
     assert ms["membrane_resistance"].value == pytest.approx(500.0, rel=0.1)
     assert ms["membrane_capacitance"].unit == "pF"
     assert ms["membrane_capacitance"].value == pytest.approx(33.0, rel=0.1)
-    # tau = Cm Ra Rm / (Ra + Rm) = 323.5 us for those values (METHODS §1.1 table)
+    # tau = Cm Ra Rm / (Ra + Rm) = 323.5 us for those values (docs/methods.md §1.1 table)
     assert ms["tau"].unit == "us"
     assert ms["tau"].value == pytest.approx(323.5, rel=0.2)
     assert abs(ms["access_change_pct"].value) < 10.0      # a model circuit does not drift
@@ -163,7 +165,7 @@ def test_spectrum_is_compact_and_in_display_units():
     assert sp is not None and sp.unit == "mV"
     assert 50 <= len(sp.freqs_hz) <= 210 and len(sp.freqs_hz) == len(sp.density)
     assert all(a < b for a, b in zip(sp.freqs_hz, sp.freqs_hz[1:]))
-    # integral of the compact spectrum approximates the variance (Parseval, METHODS §3.4)
+    # integral of the compact spectrum approximates the variance (Parseval, docs/methods.md §3.4)
     f = np.array(sp.freqs_hz)
     total = float(np.trapezoid(sp.density, f))
     assert total == pytest.approx(ch.measures["noise_rms"].value ** 2, rel=0.6)
@@ -215,8 +217,8 @@ def _write_abf1(path: Path, sweeps: np.ndarray, fs: float, unit: str = "pA",
 
 
 def test_declared_pulse_gives_whole_cell_values(tmp_path):
-    # no protocol in the file: the declared step (METHODS §1.1 cell: Ra 10 MOhm, Rm 500 MOhm,
-    # Cm 33 pF, dV -5 mV) is the test step; the charge method recovers the circuit
+    # no protocol in the file: the declared step (docs/methods.md §1.1 cell: Ra 10 MOhm,
+    # Rm 500 MOhm, Cm 33 pF, dV -5 mV) is the test step; the charge method recovers the circuit
     fs = 20_000.0
     rng = np.random.default_rng(1)
     sweeps = np.array([sampled_cell(-5e-3, 10e6, 500e6, 33e-12, fs, n_pre=400, n_step=2000,
@@ -277,7 +279,7 @@ def test_nan_samples_leave_their_windows_out_with_a_note(tmp_path):
 def test_drift_does_not_count_in_noise_pp(tmp_path):
     # white noise on a steep ramp (50 sigma per second): noise_pp is taken of the detrended
     # window, so pp/rms stays at the Gaussian range of N = 1e4 samples, E[R]/sigma = 7.703
-    # (METHODS §3.3), and the drift shows in baseline_drift instead
+    # (docs/methods.md §3.3), and the drift shows in baseline_drift instead
     fs = 10_000.0
     n = int(20 * fs)
     x = np.random.default_rng(4).normal(0, 1.0, n) + 50.0 * np.arange(n) / fs

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from qcd.compare import compare_paths, render_compare_html, render_compare_text
-from qcd.demo import write_abf1
+from qcd.synth import write_abf1
 
 FS = 10_000.0
 

@@ -6,8 +6,8 @@ from pathlib import Path
 import pytest
 
 from qcd.cli import main
-from qcd.config import (Config, TestPulse, default_rules_path, find_config, load_config,
-                        parse_duration, redact, redact_text, starter_config)
+from qcd.config import (PATTERNS, Config, TestPulse, default_rules_path, find_config,
+                        load_config, parse_duration, redact, redact_text, starter_config)
 from qcd.errors import ConfigError
 
 GOOD = '''
@@ -52,7 +52,7 @@ def test_good_config_loads_with_paths_relative_to_the_file(tmp_path):
     assert a.patterns == ("*.abf", "*.ABF") and a.polling is True and a.mains_hz == 50.0
     assert a.test_pulse == TestPulse(-5.0, 0.010, 0.020)
     assert b.test_pulse == TestPulse(10.0, 0.005, 0.050)
-    assert b.patterns == ("*.abf",) and b.polling is False and b.mains_hz is None
+    assert b.patterns == PATTERNS and b.polling is False and b.mains_hz is None
     assert cfg.rig("rig.b_2") is b
 
 

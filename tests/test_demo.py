@@ -1,6 +1,6 @@
-"""The demo lab: its models agree with the analytic references (tests/references.py, METHODS.md),
-its files are real ABF1 that pyabf and qcd's reader read back, and the real pipeline finds its
-scripted faults (and nothing on the healthy rig)."""
+"""The demo lab: its models agree with the analytic references (tests/references.py,
+docs/methods.md), its files are real ABF1 that pyabf and qcd's reader read back, and the real
+pipeline finds its scripted faults (and nothing on the healthy rig)."""
 from __future__ import annotations
 
 import math
@@ -12,53 +12,54 @@ import numpy as np
 import pytest
 
 import references as ref
-from qcd import demo
+from qcd import demo, synth
 
 
 def test_cell_model_equals_the_closed_form_reference():
     t = np.linspace(-1e-4, 5e-3, 500)
-    args = (-5e-3, 10e6, 500e6, 33e-12)       # METHODS §1.1 check cell
-    assert np.allclose(demo.cell_step_current(t, *args), ref.cell_step_current(t, *args),
+    args = (-5e-3, 10e6, 500e6, 33e-12)       # docs/methods.md §1.1 check cell
+    assert np.allclose(synth.cell_step_current(t, *args), ref.cell_step_current(t, *args),
                        rtol=1e-12, atol=0)
-    # METHODS §1.1 check values: I0 = -500 pA, I_ss = -9.8039 pA
-    assert demo.cell_step_current(np.array([1e-12]), *args)[0] == pytest.approx(-500e-12, rel=1e-6, abs=0)
-    assert demo.cell_step_current(np.array([1.0]), *args)[0] == pytest.approx(-9.8039e-12,
+    # docs/methods.md §1.1 check values: I0 = -500 pA, I_ss = -9.8039 pA
+    assert synth.cell_step_current(np.array([1e-12]), *args)[0] == pytest.approx(-500e-12, rel=1e-6, abs=0)
+    assert synth.cell_step_current(np.array([1.0]), *args)[0] == pytest.approx(-9.8039e-12,
                                                                            rel=1e-4, abs=0)
 
 
 def test_filtered_whole_cell_sweep_agrees_with_the_analog_bessel_reference():
     fs, fc = demo._PATCH_FS, demo._PATCH_FC
     ra, rm, cm = 11e6, 450e6, 30e-12
-    sw = demo.whole_cell_sweeps(np.random.default_rng(0), n_sweeps=1, fs=fs, fc=fc, ra=ra,
+    sw = synth.whole_cell_sweeps(np.random.default_rng(0), n_sweeps=1, fs=fs, fc=fc, ra=ra,
                                 rm=rm, cm=cm, noise_sd=0.0, hum_amps=(0.0,), holding=0.0)[0]
-    on = int(round(demo._STEP_START_S * fs))
-    n_step = int(round(demo._STEP_LEN_S * fs))
+    on = int(round(synth.STEP_START_S * fs))
+    n_step = int(round(synth.STEP_LEN_S * fs))
     # references: analog 4-pole Bessel (lsim), first sample 1/fs after onset (phase = 1)
-    r = ref.sampled_cell(demo._WHOLE_CELL_STEP_V, ra, rm, cm, fs, n_pre=50, n_step=n_step,
+    r = ref.sampled_cell(synth.WHOLE_CELL_STEP_V, ra, rm, cm, fs, n_pre=50, n_step=n_step,
                          n_post=50, filter_hz=fc, phase=1.0)
     mine = sw[on + 1 - 50: on + 1 - 50 + len(r)]   # ref[50] is 1/fs after onset
     peak = float(np.max(np.abs(r)))
     assert np.max(np.abs(mine - r)) < 1e-4 * peak      # 40x first-order hold vs lsim
     # steady state: dV / (Ra + Rm) (Ohm's law)
-    assert sw[on + n_step - 10] == pytest.approx(demo._WHOLE_CELL_STEP_V / (ra + rm), rel=1e-3, abs=0)
+    assert sw[on + n_step - 10] == pytest.approx(synth.WHOLE_CELL_STEP_V / (ra + rm), rel=1e-3, abs=0)
 
 
 def test_seal_model_is_ohms_law():
-    # METHODS §1.3: +10 mV across 1 GOhm gives 10.0 pA
-    assert demo.seal_step_current(np.array([1e-3]), 10e-3, 1e9)[0] == pytest.approx(10e-12, rel=1e-9, abs=0)
+    # docs/methods.md §1.3: +10 mV across 1 GOhm gives 10.0 pA
+    assert synth.seal_step_current(np.array([1e-3]), 10e-3, 1e9)[0] == pytest.approx(10e-12, rel=1e-9, abs=0)
     r = ref.sampled_resistor(10e-3, 1e9, 20000.0, n_pre=10, n_step=400, filter_hz=2000.0)
     assert r[300] == pytest.approx(10e-12, rel=1e-3, abs=0)
 
 
 def test_thermal_noise_matches_the_johnson_nyquist_table():
-    # METHODS §3.1 table [D], 295 K: 500 MOhm -> 0.1805 pA at 1 kHz, 10 GOhm -> 0.1276 pA at 10 kHz
-    assert demo.thermal_noise_rms(500e6, 1e3) == pytest.approx(0.1805e-12, abs=1e-16)
-    assert demo.thermal_noise_rms(10e9, 1e4) == pytest.approx(0.1276e-12, abs=1e-16)
+    # docs/methods.md §3.1 table [D], 295 K: 500 MOhm -> 0.1805 pA at 1 kHz,
+    # 10 GOhm -> 0.1276 pA at 10 kHz
+    assert synth.thermal_noise_rms(500e6, 1e3) == pytest.approx(0.1805e-12, abs=1e-16)
+    assert synth.thermal_noise_rms(10e9, 1e4) == pytest.approx(0.1276e-12, abs=1e-16)
 
 
 def test_hum_wave_has_the_sine_rms():
     t = np.arange(100_000) / 10_000.0           # 10 s, whole cycles of 50/100/150 Hz
-    y = demo.hum_wave(t, 50.0, (1.0, 0.3))
+    y = synth.hum_wave(t, 50.0, (1.0, 0.3))
     assert np.sqrt(np.mean(y ** 2)) == pytest.approx(math.sqrt(0.5 + 0.045), rel=1e-6)
 
 
@@ -66,11 +67,11 @@ def test_written_files_read_back_with_pyabf_and_qcd(tmp_path):
     import pyabf
     from qcd.recording import open_recording
     when = datetime(2026, 11, 3, 14, 25, 7, 250000, tzinfo=timezone.utc).timestamp()
-    sweeps = demo.whole_cell_sweeps(np.random.default_rng(1), n_sweeps=3, fs=20000.0, fc=2000.0,
+    sweeps = synth.whole_cell_sweeps(np.random.default_rng(1), n_sweeps=3, fs=20000.0, fc=2000.0,
                                     ra=10e6, rm=500e6, cm=33e-12, noise_sd=1e-12,
                                     hum_amps=(0.3e-12,), holding=-40e-12) * 1e12
     path = tmp_path / "2026-11-03_cell02.abf"
-    demo.write_abf1(path, sweeps, 20000.0, "pA", when)
+    synth.write_abf1(path, sweeps, 20000.0, "pA", when)
     abf = pyabf.ABF(str(path))
     assert abf.sweepCount == 3 and abf.dataRate == 20000
     assert abf.abfDateTime == datetime(2026, 11, 3, 14, 25, 7, 250000)
@@ -85,10 +86,10 @@ def test_written_files_read_back_with_pyabf_and_qcd(tmp_path):
         assert rec.recorded_at.replace(tzinfo=timezone.utc).timestamp() == \
             pytest.approx(when, abs=1e-3)
         assert np.allclose(rec.sweep(0, 2), abf.sweepY, atol=1e-4)
-    field = demo.field_trace(np.random.default_rng(2), fs=10000.0, fc=1000.0, duration_s=2.0,
+    field = synth.field_trace(np.random.default_rng(2), fs=10000.0, fc=1000.0, duration_s=2.0,
                              noise_sd=12e-6, hum_amps=(4e-6,), offset=0.0) * 1e3
     fpath = tmp_path / "2026-11-03_slice01.abf"
-    demo.write_abf1(fpath, field, 10000.0, "mV", when, gap_free=True)
+    synth.write_abf1(fpath, field, 10000.0, "mV", when, gap_free=True)
     with open_recording(fpath) as rec:
         assert rec.gap_free and rec.n_sweeps == 1
 
@@ -241,7 +242,7 @@ def test_sample_ground_fix_shows_in_compare():
     from qcd.compare import compare_paths
     root = Path(__file__).resolve().parent.parent / "demo_data" / "compare"
     c = compare_paths(root / "ground_before.abf", root / "ground_after.abf")
-    hum = {x.name: x for x in c.changes}["hum_total"]
+    hum = {x.name: x for x in c.changes}["hum_rms"]
     # hum amplitudes divided by 10 -> -20 dB (20 log10 0.1), per-file scatter aside
     assert hum.significant and hum.change_db == pytest.approx(-20.0, abs=1.5)
     assert c.before.line_hz == 50.0 and c.safety_note

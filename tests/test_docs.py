@@ -1,5 +1,6 @@
 """The docs follow the code: every command has --help and a README section, and every measure
-name the analysis can produce is in the README's measures table (sqlite-utils' docs test idea)."""
+name of the registry (the names analysis can produce) is in the README's measures table
+(sqlite-utils' docs test idea)."""
 from __future__ import annotations
 
 import re
@@ -20,22 +21,18 @@ def _commands() -> list[str]:
 
 
 def _measure_names() -> set[str]:
-    """Names analyze can store: its literal Measure/_put names, the spectrum band table, and
-    whatever it actually produces on the committed demo sample."""
+    """Names qcd can store: the registry (qcd.results.MEASURES), checked against what analyze
+    actually produces on the committed demo sample."""
     from qcd.analyze import analyze_path
-    from qcd.measures import spectrum
-    src = (ROOT / "qcd" / "analyze.py").read_text(encoding="utf-8")
-    names = set(re.findall(r'_put\(out, "(\w+)"', src))
-    names |= set(re.findall(r'Measure\("(\w+)"', src))
-    names |= set(re.findall(r'\("(\w+)", "(?:Ohm|F|s|A|V|%)"\)', src))
-    for m in re.finditer(r'for name in \(([^)]*)\)', src):
-        names |= set(re.findall(r'"(\w+)"', m.group(1)))
-    names |= set(spectrum.BANDS)
+    from qcd.results import MEASURES
+    produced = set()
     for path in sorted((ROOT / "demo_data").rglob("*.abf")):
         fm = analyze_path(path)
         for ch in fm.channels:
-            names |= set(ch.measures)
-    return names
+            produced |= set(ch.measures)
+    unregistered = sorted(produced - set(MEASURES))
+    assert not unregistered, f"analyze produces names missing from the registry: {unregistered}"
+    return set(MEASURES)
 
 
 def _measures_table() -> set[str]:
@@ -82,3 +79,33 @@ def test_readme_config_example_loads(tmp_path):
     cfg = load_config(path)
     assert [r.name for r in cfg.rigs] == ["patch-1"]
     assert cfg.rigs[0].test_pulse is not None and cfg.rigs[0].mains_hz == 50
+
+
+def test_the_registry_describes_the_units_analyze_gives():
+    # every produced measure carries the unit its registry entry says (qcd.results.MEASURES):
+    # the channel's display unit for 'signal', per minute for 'signal/s', '' for plain numbers
+    from qcd.analyze import analyze_path
+    from qcd.results import HINTS, MEASURES, display_unit
+    from qcd.units import DISPLAY, FACTORS
+    for name, m in MEASURES.items():
+        assert m.hint_group is None or m.hint_group in HINTS, name
+        assert not m.display_unit or m.display_unit in FACTORS, name
+    from conftest import abf
+    # (vc_tight_seal_noisy.abf reads as a small whole cell; vc_units_A_no_protocol.abf gives a seal)
+    real = [abf(n) for n in ("vc_step_abf1.abf", "vc_tight_seal_noisy.abf", "cc_steps_abf1.abf",
+                             "vc_units_A_no_protocol.abf")]
+    seen = set()
+    for path in sorted((ROOT / "demo_data").rglob("*.abf")) + real:
+        for ch in analyze_path(path).channels:
+            for name, got in ch.measures.items():
+                dim = MEASURES[name].dimension
+                if dim == "signal":
+                    want = DISPLAY[ch.dimension]
+                elif dim == "signal/s":
+                    want = DISPLAY[ch.dimension + "/s"]
+                else:
+                    want = display_unit(name, dim)
+                assert got.unit == want, (path.name, name, got.unit, want)
+                seen.add(name)
+    assert {"noise_rms", "baseline_drift", "hum_rms", "access_resistance", "tau",
+            "seal_resistance", "input_resistance"} <= seen, sorted(seen)

@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 from scipy.stats import median_abs_deviation
 
-from qcd.analyze import ChannelMeasures, FileMeasures, Measure
-from qcd.config import load_rules
 from qcd.errors import ConfigError
-from qcd.judge import SAFETY_NOTE, baseline, cusum, ewma, ewma_limits, judge, robust_z
+from qcd.judge import baseline, cusum, ewma, ewma_limits, judge, robust_z
+from qcd.results import SAFETY_NOTE, ChannelMeasures, FileMeasures, Measure
+from qcd.ruleset import load_rules
 
 # --- NIST/SEMATECH e-Handbook 6.3.2.4 "EWMA Control Charts", worked example -------------------
 EWMA_X = [52.0, 47.0, 53.0, 49.3, 50.1, 47.0, 51.0, 50.1, 51.2, 50.5,
@@ -73,7 +73,7 @@ RA_HISTORY = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]
 
 
 def test_robust_z_matches_methods_check_values():
-    # METHODS 7 check: median 9.5, MAD 0.5 (scaled 0.7413), new 18 MOhm -> z = 11.47
+    # docs/methods.md §7 check: median 9.5, MAD 0.5 (scaled 0.7413), new 18 MOhm -> z = 11.47
     med, scale = baseline(RA_HISTORY)
     assert med == 9.5
     assert scale == pytest.approx(0.7413, abs=1e-4)

@@ -15,6 +15,7 @@ from qcd.notify import BACKOFF_CAP_S, Sender, backoff_s, deliver_due
 from qcd.store import Store
 
 from sinks import HttpSink
+from stored import outbox_rows
 
 T0 = 1_780_000_000.0
 
@@ -84,7 +85,7 @@ def test_failing_target_retries_with_backoff_then_delivers_exactly_once(http_sin
     for _ in range(5):
         d = deliver_due(store, sender, now)
         assert d.retried == 1 and d.sent == 0
-        (row,) = store.outbox_rows()
+        (row,) = outbox_rows(store)
         assert row["status"] == "pending" and row["last_error"]
         waits.append(row["next_at"] - now)
         assert deliver_due(store, sender, row["next_at"] - 1).retried == 0   # not due yet
@@ -128,7 +129,7 @@ def test_undeliverable_row_becomes_stuck_after_a_day_and_is_kept(store, apprise_
     deliver_due(store, sender, T0 + 10)
     d = deliver_due(store, sender, T0 + 24 * 3600 + 1)
     assert d.stuck == 1
-    (row,) = store.outbox_rows()
+    (row,) = outbox_rows(store)
     assert row["status"] == "stuck" and row["last_error"]
     assert store.outbox_counts() == {"pending": 0, "sent": 0, "stuck": 1}
     assert deliver_due(store, sender, T0 + 48 * 3600).sent == 0    # stuck rows are not resent
@@ -166,7 +167,7 @@ def test_one_dead_target_does_not_make_the_others_receive_it_twice(store, http_s
             d = deliver_due(store, sender, now)
             assert d.sent == 0
             now += 3600
-        (row,) = store.outbox_rows()
+        (row,) = outbox_rows(store)
         assert row["status"] == "pending" and f"127.0.0.1:{dead.port}" in row["last_error"]
         assert len(http_sink.wait_for(1)) == 1          # the live target got it once
         dead.start()

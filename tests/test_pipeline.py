@@ -24,7 +24,8 @@ import pytest
 from scipy.signal import bessel, sosfilt
 
 from qcd.cli import main
-from qcd.config import RigConfig, load_rules
+from qcd.config import RigConfig
+from qcd.ruleset import load_rules
 from qcd.notify import Sender, deliver_due
 from qcd.pipeline import process
 from qcd.store import Store
@@ -159,7 +160,8 @@ def test_hum_alert_arrives_as_one_mail(lab, rig, store, rules, smtp_sink):
 _CHILD = textwrap.dedent("""
     import sys
     from pathlib import Path
-    from qcd.config import RigConfig, load_rules
+    from qcd.config import RigConfig
+    from qcd.ruleset import load_rules
     from qcd.pipeline import process
     from qcd.store import Store
     db, folder, t0, step = sys.argv[1], Path(sys.argv[2]), float(sys.argv[3]), float(sys.argv[4])
@@ -299,7 +301,7 @@ def test_silence_mutes_the_alert_and_its_end_sends_one_message(lab, rig, store, 
 
 def test_a_bug_while_judging_becomes_an_internal_error_row_and_the_caller_carries_on(
         lab, rig, store, caplog):
-    from qcd.config import Rules
+    from qcd.ruleset import Rules
     _, files, times = lab
     broken = Rules(settings=None)          # not a valid Rules: judging fails inside qcd
     fm = process(files[0], rig, store, broken, times[0])

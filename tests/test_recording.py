@@ -364,10 +364,15 @@ def test_files_written_by_pyabf_read_as_pyabf_reads_them(tmp_path):
 
 def test_unknown_suffix_is_unsupported(tmp_path):
     p = tmp_path / "trace.dat"
-    p.write_bytes(b"ABF2" + bytes(600))
+    p.write_bytes(b"TRACE" + bytes(600))
     with pytest.raises(RecordingError) as e:
         open_recording(p)
     assert e.value.kind == "unsupported" and str(p) in str(e.value)
+    # the ABF signature routes a file to the ABF reader whatever its suffix
+    p.write_bytes(b"ABF2" + bytes(600))
+    with pytest.raises(RecordingError) as e:
+        open_recording(p)
+    assert e.value.kind == "bad_header"
 
 
 # -------------------------------------------------------------------------- bad files

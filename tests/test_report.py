@@ -1,7 +1,7 @@
 """The morning report and trend read the store and show exactly its numbers.
 
 The store is filled through Store.commit_file with FileMeasures whose values are the access-
-resistance history of METHODS.md section 7 (median 9.5 MOhm, MAD 0.5 MOhm, robust SD 0.7413;
+resistance history of docs/methods.md §7 (median 9.5 MOhm, MAD 0.5 MOhm, robust SD 0.7413;
 Iglewicz & Hoaglin 1993, robust z), plus one outlier.
 """
 from __future__ import annotations
@@ -16,13 +16,14 @@ from html.parser import HTMLParser
 import numpy as np
 import pytest
 
-from qcd.analyze import ChannelMeasures, FileMeasures, Measure, Spectrum
+from qcd.judge import Finding
+from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum
 from qcd.report import (build_report, normal_range, parse_since, render_html, render_text,
                         render_trend_csv, render_trend_text, sparkline, trend_rows)
 from qcd.store import Store
 
 NOW = datetime(2026, 11, 20, 8, 0, tzinfo=timezone.utc).timestamp()
-RA = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]   # METHODS.md §7 check values
+RA = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]   # docs/methods.md §7 check values
 
 
 def _fm(i: int, t: float, ra: float, hum: float, status: str = "ok") -> FileMeasures:
@@ -52,12 +53,10 @@ def store(tmp_path):
     hint = "mains hum rose against the reference: check the grounding of the rig"
     fid = s.commit_file(
         "rig-a", _fm(10, NOW - 3600.0, 18.0, 3.0), analysed_at=NOW,
-        findings=[{"channel": 0, "measure": "access_resistance", "rule": "access_high",
-                   "kind": "limit", "bad": True, "severity": "warning", "value": 18.0,
-                   "unit": "MOhm", "limit_text": "> 15 MOhm", "hint": None},
-                  {"channel": 0, "measure": "hum_rms", "rule": "hum_drift", "kind": "drift",
-                   "bad": True, "severity": "warning", "value": 3.0, "unit": "pA",
-                   "limit_text": "z > 4", "hint": hint}],
+        findings=[Finding("rig-a", "voltage_clamp", 0, "access_resistance", "access_high",
+                          "limit", True, "warning", 18.0, "MOhm", "> 15 MOhm"),
+                  Finding("rig-a", "voltage_clamp", 0, "hum_rms", "hum_drift", "drift", True,
+                          "warning", 3.0, "pA", "z > 4", hint)],
         alert_states=[{"key": "rig-a|voltage_clamp|0|hum_rms|hum_drift", "rig": "rig-a",
                        "mode": "voltage_clamp", "channel": 0, "measure": "hum_rms",
                        "rule": "hum_drift", "state": "open", "opened_at": NOW - 3600.0,
@@ -72,7 +71,7 @@ def store(tmp_path):
 def test_normal_range_matches_the_published_robust_z_example():
     med, sd, n = normal_range(RA)
     assert med == 9.5 and n == 10
-    assert sd == pytest.approx(0.7413, abs=1e-4)       # 1.4826 x MAD 0.5 (METHODS §7)
+    assert sd == pytest.approx(0.7413, abs=1e-4)       # 1.4826 x MAD 0.5 (docs/methods.md §7)
     assert (18.0 - med) / sd == pytest.approx(11.47, abs=0.01)
 
 
@@ -127,7 +126,7 @@ class _Collect(HTMLParser):
 
 
 def test_html_report_is_one_self_contained_file(store):
-    page = render_html(build_report(store, NOW, parse_since("18h", NOW)), store)
+    page = render_html(build_report(store, NOW, parse_since("18h", NOW)))
     p = _Collect()
     p.feed(page)
     p.close()
@@ -182,7 +181,7 @@ def test_active_silence_is_shown_with_its_reason(store):
     r = build_report(store, NOW, parse_since("18h", NOW))
     text = render_text(r)
     assert "silenced until" in text and "replacing the bath ground" in text
-    assert "replacing the bath ground" in render_html(r, store)
+    assert "replacing the bath ground" in render_html(r)
 
 
 def test_sparkline_keeps_a_single_dip_when_it_downsamples():

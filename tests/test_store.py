@@ -1,7 +1,7 @@
 """The SQLite store: round-trips, supersede/dedup, history windows, outbox, silences,
 concurrency between processes (WAL, BEGIN IMMEDIATE, busy timeout), crash safety, migrations.
 
-The FileMeasures here are built by hand from qcd.analyze's dataclasses: the store's job is to
+The FileMeasures here are built by hand from qcd.results' dataclasses: the store's job is to
 give back exactly what it was given. SQLite behaviour relied on is from sqlite.org (wal.html,
 lang_transaction.html "BEGIN IMMEDIATE", pragma.html) and measured in OPERATIONS.md section 5.
 """
@@ -16,7 +16,7 @@ import subprocess
 import sys
 import textwrap
 import time
-from dataclasses import dataclass, replace
+from dataclasses import replace
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -26,10 +26,14 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from sqlite_utils import Database
 
-from qcd.analyze import ChannelMeasures, FileMeasures, Measure, Spectrum
+from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum, file_time
 from qcd.cli import main
 from qcd.errors import StoreError
-from qcd.store import MIGRATIONS, FileState, Silence, Store, to_unix
+from qcd.judge import Finding
+from qcd.alerts import Message, Silence
+from qcd.store import MIGRATIONS, FileState, Store
+from stored import (file_measures, flagged_measures, has_content, load_file, outbox_rows,
+                    recent_silences, schema_steps)
 
 DAY = 86400.0
 T0 = 1_780_000_000.0          # a fixed "now" (2026), passed in as the clock
@@ -69,29 +73,19 @@ def fmeasures(path="/data/rig-a/c01.abf", sha="a" * 64, at: float | None = T0 - 
     return FileMeasures(**base)
 
 
-@dataclass(frozen=True)
-class F:                       # a finding as the judge gives one (attribute access)
-    channel: int | None
-    measure: str | None
-    rule: str
-    bad: bool
-    kind: str = "limit"
-    severity: str = "warning"
-    value: float | None = None
-    unit: str = ""
-    limit_text: str = ""
-    hint: str = ""
+def F(channel: int | None, measure: str, rule: str, bad: bool, *, kind: str = "limit",
+      severity: str = "warning", value: float | None = None, unit: str = "",
+      limit_text: str = "", hint: str = "") -> Finding:
+    """A finding as the judge gives one (channel None: every channel of the measure)."""
+    return Finding(rig="rig-a", mode="voltage_clamp", channel=channel, measure=measure,
+                   rule=rule, kind=kind, bad=bad, severity=severity, value=value, unit=unit,
+                   limit_text=limit_text, hint=hint)
 
 
-@dataclass(frozen=True)
-class Msg:                     # an outbox message as the alert lifecycle gives one
-    alert_key: str
-    transition: int
-    kind: str = "open"
-    priority: int = 1
-    rig: str = "rig-a"
-    title: str = "noise up"
-    body: str = "noise_rms 3 pA"
+def Msg(alert_key: str, transition: int, *, kind: str = "open", priority: int = 1,
+        rig: str = "rig-a", title: str = "noise up", body: str = "noise_rms 3 pA") -> Message:
+    """An outbox message as the alert lifecycle gives one."""
+    return Message(alert_key, transition, kind, priority, rig, title, body)
 
 
 def f32(values):
@@ -103,14 +97,14 @@ def f32(values):
 def test_file_measures_round_trip(store):
     fm = fmeasures()
     fid = store.commit_file("rig-a", fm, analysed_at=T0)
-    got = store.load_file(fid)
+    got = load_file(store, fid)
     sp = fm.channels[0].spectrum
     expected_spectrum = Spectrum(f32(sp.freqs_hz), f32(sp.density), "pA")   # stored float32
     ch0 = replace(fm.channels[0], spectrum=expected_spectrum)
     assert got == replace(fm, channels=(ch0, fm.channels[1]))
     assert type(got.channels[0].measures["n_blocks_excluded"].value) is int
     assert got.channels[0].measures["alias_risk"].value is False
-    assert store.file_measures(fid) == {
+    assert file_measures(store, fid) == {
         0: {"noise_rms": (1.25, "pA"), "hum_rms": (0.5, "pA"), "alias_risk": (False, ""),
             "n_blocks_excluded": (3, ""),
             "spectral_lines": ([[1234.5, 0.02], [3000.0, 0.01]], "pA")},
@@ -128,13 +122,13 @@ def test_naive_header_time_is_utc_and_missing_time_falls_back_to_mtime(store):
                             analysed_at=T0)
     # 2026-03-01T12:00:00Z = 1772366400 (computed with Python's calendar.timegm)
     assert store.files("rig-a")[0]["recorded_at"] == 1772366400.0
-    assert store.load_file(fid).recorded_at == naive
+    assert load_file(store, fid).recorded_at == naive
     fid2 = store.commit_file("rig-a", fmeasures(path="/p2.abf", sha="2" * 64, at=None,
                                                 mtime=1772000000.5), analysed_at=T0)
     row = [r for r in store.files("rig-a") if r["id"] == fid2][0]
     assert row["recorded_at"] == 1772000000.5 and row["time_source"] == "mtime"
-    assert store.load_file(fid2).recorded_at is None
-    assert to_unix(datetime(2026, 3, 1, 12, tzinfo=timezone.utc)) == 1772366400.0
+    assert load_file(store, fid2).recorded_at is None
+    assert file_time(datetime(2026, 3, 1, 12, tzinfo=timezone.utc)) == 1772366400.0
 
 
 def test_error_file_gets_a_row(store):
@@ -145,7 +139,7 @@ def test_error_file_gets_a_row(store):
     assert "header promises" in row["error"]
     assert store.file_state("rig-a", fm.path) == FileState(fid, fm.size, fm.mtime, fm.sha256,
                                                            "error")
-    assert store.load_file(fid) == fm
+    assert load_file(store, fid) == fm
 
 
 # --- dedup and supersede ----------------------------------------------------------------------------
@@ -159,9 +153,9 @@ def test_same_content_is_never_stored_twice(store):
                               analysed_at=T0 + 10, messages=[Msg("k1", 2)])
     assert again == fid
     assert len(store.files("rig-a", include_superseded=True)) == 1
-    assert [r["transition"] for r in store.outbox_rows()] == [1]     # nothing new marked
-    assert store.has_content("rig-a", fm.sha256)
-    assert not store.has_content("rig-b", fm.sha256)
+    assert [r["transition"] for r in outbox_rows(store)] == [1]     # nothing new marked
+    assert has_content(store, "rig-a", fm.sha256)
+    assert not has_content(store, "rig-b", fm.sha256)
     # another rig may hold the same content
     assert store.commit_file("rig-b", fm, analysed_at=T0) != fid
 
@@ -179,7 +173,7 @@ def test_changed_file_supersedes_the_old_row(store):
     assert [r["id"] for r in store.files("rig-a")] == [id_new]
     assert store.history("rig-a", "voltage_clamp", 0, "noise_rms", before=T0) == \
         [(T0 - DAY, 9.0)]
-    assert not store.has_content("rig-a", "a" * 64)       # the old content is not current
+    assert not has_content(store, "rig-a", "a" * 64)       # the old content is not current
     # changed back: measured again, supersedes the second version
     id_back = store.commit_file("rig-a", replace(old, recorded_at=new.recorded_at),
                                 analysed_at=T0 + 1)
@@ -233,7 +227,7 @@ def test_history_excludes_flagged_superseded_error_and_out_of_window_rows(store)
     assert store.history("rig-a", "voltage_clamp", 1, "noise_rms", before=T0)[0] == \
         (T0 - DAY, 0.02)
     assert store.history("rig-a", "voltage_clamp", 0, "spectral_lines", before=T0) == []
-    assert store.flagged_measures(fid4) == {(0, "hum_rms")}
+    assert flagged_measures(store, fid4) == {(0, "hum_rms")}
     assert store.files("rig-a", since=T0 - 1.6 * DAY, until=T0 - 1.4 * DAY)[0]["flagged"]
     # ok and current, flagged or not: f1 f2 f3 f4 f6 f7 f10' f11
     assert store.good_file_count("rig-a", "voltage_clamp") == 8
@@ -248,7 +242,7 @@ def test_finding_without_channel_flags_the_measure_on_every_channel(store):
     fid = store.commit_file("rig-a", fmeasures(), analysed_at=T0,
                             findings=[F(None, "noise_rms", "noise_max", True, value=3.0,
                                         unit="pA", limit_text="> 2 pA", hint="check ground")])
-    assert store.flagged_measures(fid) == {(0, "noise_rms"), (1, "noise_rms")}
+    assert flagged_measures(store, fid) == {(0, "noise_rms"), (1, "noise_rms")}
     (f,) = store.findings(fid)
     assert f["bad"] is True and f["value"] == 3.0 and f["hint"] == "check ground"
     assert f["rig"] == "rig-a" and f["channel"] is None
@@ -288,14 +282,14 @@ def test_alert_states_upsert_and_queries(store):
     (rec,) = store.recent_alerts(T0)
     assert rec["resolved_at"] == T0 + 100 and rec["details"]["bad_files"] == 2
     assert store.recent_alerts(T0 + 200) == []
-    assert store.outbox_rows()[0]["created_at"] == T0 + 100
+    assert outbox_rows(store)[0]["created_at"] == T0 + 100
 
 
 def test_outbox_is_unique_per_key_and_transition(store):
     store.commit_file("rig-a", fmeasures(), analysed_at=T0,
                       messages=[Msg("k", 1), Msg("k", 1, title="again"), Msg("k", 2)])
     store.commit_alerts(messages=[Msg("k", 2, title="again"), Msg("j", 1)], now=T0 + 1)
-    rows = store.outbox_rows()
+    rows = outbox_rows(store)
     assert [(r["alert_key"], r["transition"], r["title"]) for r in rows] == \
         [("k", 1, "noise up"), ("k", 2, "noise up"), ("j", 1, "noise up")]
     assert store.outbox_counts() == {"pending": 3, "sent": 0, "stuck": 0}
@@ -314,7 +308,7 @@ def test_outbox_due_retry_sent_stuck(store):
     assert [r["alert_key"] for r in store.outbox_due(T0 + 36)] == ["b", "c"]
     store.mark_stuck(c["id"], T0 + 7, "gave up after 24 h")
     store.mark_sent(c["id"], T0 + 8)               # a late receipt for a stuck row
-    rows = {r["alert_key"]: r for r in store.outbox_rows()}
+    rows = {r["alert_key"]: r for r in outbox_rows(store)}
     assert rows["a"]["status"] == "sent" and rows["a"]["sent_at"] == T0 + 6
     assert rows["a"]["attempts"] == 1
     assert rows["b"]["status"] == "pending" and rows["b"]["attempts"] == 1
@@ -340,7 +334,7 @@ def test_silences(store):
     assert store.end_silence(s2, T0 + 300) is True
     assert store.end_silence(s2, T0 + 400) is False
     assert store.active_silences(T0 + 300) == [store.active_silences(T0 + 299)[0]]
-    assert [s.id for s in store.recent_silences(T0 + 250)] == [s1, s2]
+    assert [s.id for s in recent_silences(store, T0 + 250)] == [s1, s2]
     with pytest.raises(StoreError):
         store.add_silence("rig-a", "*", T0, T0, "", T0)
 
@@ -386,7 +380,7 @@ def test_older_database_is_migrated_forward_and_reopening_is_a_no_op(tmp_path):
     assert "files_history" not in {i.name for i in db["files"].indexes}
     db.close()
     with Store(path) as s:
-        assert s.schema_steps() == ["m001_tables", "m002_indexes"]
+        assert schema_steps(s) == ["m001_tables", "m002_indexes"]
         assert [r["path"] for r in s.files()] == ["/x.abf"]
         applied = s._rows("SELECT name, applied_at FROM _sqlite_migrations ORDER BY id")
         assert {"files_history", "files_rig_path", "outbox_due"} <= \
@@ -482,7 +476,8 @@ WRITER_LOOP = """
     import sys, time
     from pathlib import Path
     from qcd.store import Store
-    from tests.test_store import fmeasures
+    sys.path.insert(0, "tests")
+    from test_store import fmeasures
     stop = Path(sys.argv[2])
     with Store(sys.argv[1]) as s:
         print("ready", flush=True)
@@ -533,7 +528,8 @@ CRASH = """
     import sys, time
     from pathlib import Path
     from qcd.store import Store
-    from tests.test_store import fmeasures, F, Msg
+    sys.path.insert(0, "tests")
+    from test_store import fmeasures, F, Msg
     def stop_here():
         Path(sys.argv[2]).write_text("in transaction")
         time.sleep(120)
@@ -572,10 +568,10 @@ def test_a_process_killed_inside_commit_file_leaves_no_half_stored_file(tmp_path
         assert s.file_state("rig-a", "/data/rig-a/c01.abf").sha256 == "a" * 64  # not superseded
         assert s._one("SELECT count(*) FROM measures WHERE file_id != ?", (id_old,))[0] == 0
         assert s._one("SELECT count(*) FROM findings")[0] == 0
-        assert s.alert_states() == {} and s.outbox_rows() == []
+        assert s.alert_states() == {} and outbox_rows(s) == []
         # the file is measured again on the next start and stored whole
         new = s.commit_file("rig-a", fmeasures(sha="b" * 64, noise=99.0), analysed_at=3.0)
-        assert s.file_measures(new)[0]["noise_rms"] == (99.0, "pA")
+        assert file_measures(s, new)[0]["noise_rms"] == (99.0, "pA")
 
 
 # --- hypothesis: stored values come back exactly ---------------------------------------------------
@@ -615,12 +611,12 @@ def test_stored_values_round_trip(tmp_path):
                              {k: Measure(k, v, units) for k, v in values.items()})
         fm = fmeasures(path=f"/h/{n}.abf", sha=f"{n:064d}", channels=(ch,), extra=extra)
         fid = store.commit_file("rig-h", fm, analysed_at=T0)
-        got = store.file_measures(fid)[0]
+        got = file_measures(store, fid)[0]
         assert list(got) == list(values)
         for k, v in values.items():
             assert same(got[k][0], v), (k, v, got[k][0])
             assert got[k][1] == units
-        back = store.load_file(fid)
+        back = load_file(store, fid)
         assert same(back.extra, json.loads(json.dumps(extra)))
         for k, v in values.items():
             number = v if isinstance(v, (bool, int, float)) else None

@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 
 from conftest import abf
+from stored import outbox_rows
 from qcd import pipeline
 from qcd.analyze import analyze_path
 from qcd.config import Config, RigConfig
@@ -71,7 +72,7 @@ class Recorder:
     """Counts what the service commits; measures and commits through the real pipeline."""
 
     def __init__(self, store: Store) -> None:
-        from qcd.config import load_rules
+        from qcd.ruleset import load_rules
         self.store = store
         self.committed: list = []
         self.rules = load_rules()
@@ -526,7 +527,7 @@ def test_catch_up_draws_a_progress_bar_on_a_terminal(tmp_path, store, capsys):
 
 
 def test_backlog_gives_one_digest_not_a_message_per_file(tmp_path, store):
-    from qcd.config import load_rules
+    from qcd.ruleset import load_rules
     folder = tmp_path / "rig"
     folder.mkdir()
     for i in range(6):                         # six unreadable files waiting at start-up
@@ -536,14 +537,14 @@ def test_backlog_gives_one_digest_not_a_message_per_file(tmp_path, store):
     svc.start(time.time())
     try:
         wait_until(lambda: len(store.files(rig=RIG)) == 6, 20.0, lambda: svc.step(time.time()))
-        wait_until(lambda: store.outbox_rows(), 5.0, lambda: svc.step(time.time()))
+        wait_until(lambda: outbox_rows(store), 5.0, lambda: svc.step(time.time()))
         (folder / "bad_live.abf").write_bytes(b"also not a recording " * 100)
         wait_until(lambda: len(store.files(rig=RIG)) == 7, 20.0, lambda: svc.step(time.time()))
         for _ in range(10):
             svc.step(time.time())
     finally:
         svc.close()
-    kinds = [r["kind"] for r in store.outbox_rows()]
+    kinds = [r["kind"] for r in outbox_rows(store)]
     assert kinds.count("digest") == 1, kinds   # the six backlog files: one message
     assert len(kinds) <= 2, kinds              # plus at most one for the live file
 

@@ -10,7 +10,7 @@ MAX_POINTS = 1000     # above this, medians are pooled into MAX_POINTS groups fi
 
 def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     """(slope, intercept): median of pairwise slopes (Theil 1950; Sen 1968), intercept the
-    median of y - slope t. Breakdown point 29.3 % (METHODS §6)."""
+    median of y - slope t. Breakdown point 29.3 % (docs/methods.md §6)."""
     t = np.asarray(t, dtype=float)
     y = np.asarray(y, dtype=float)
     if len(t) < 2:

@@ -6,9 +6,13 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["parseval_sd", "peak_to_peak", "rms", "detrended_sd", "lowpass_sd",
-           "clipping_count", "EVENT_FACTOR", "event_blocks"]
+           "clipping_count", "EVENT_FACTOR", "event_blocks", "MAD_SCALE"]
 
 EVENT_FACTOR = 3.0    # a block with RMS above 3x the median block RMS holds an event (DESIGN)
+
+# 1/Phi^-1(0.75): median absolute deviation -> SD for normal data (Rousseeuw & Croux 1993;
+# docs/methods.md §7). The one robust-scale constant of qcd.
+MAD_SCALE = 1.482602218505602
 
 
 def parseval_sd(X: np.ndarray, n: int, fs: float, band_hz: float = 1000.0
@@ -35,8 +39,9 @@ def parseval_sd(X: np.ndarray, n: int, fs: float, band_hz: float = 1000.0
 
 
 def peak_to_peak(blocks: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(max - min, max, min) of each row (METHODS §3.3). noise_pp takes it of the detrended
-    window (the residual of the least-squares line, as noise_rms), so drift does not count."""
+    """(max - min, max, min) of each row (docs/methods.md §3.3). noise_pp takes it of the
+    detrended window (the residual of the least-squares line, as noise_rms), so drift does not
+    count."""
     blocks = np.atleast_2d(blocks)
     mx = blocks.max(axis=1).astype(float)      # integer samples: no overflow in max - min
     mn = blocks.min(axis=1).astype(float)

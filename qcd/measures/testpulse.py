@@ -1,8 +1,9 @@
 """Test-pulse measures: step detection, whole-cell Ra/Rm/Cm/tau, seal, current-clamp input resistance.
 
-Pure functions on numpy arrays in SI units (A, V, Ω, F, s); formulas and checks in METHODS.md §1.
-The multi-exponential fit through the amplifier's filter lives in qcd.measures.transient.
-Imports numpy, scipy and qcd.measures.transient only.
+Pure functions on numpy arrays in SI units (A, V, Ω, F, s); formulas and checks in
+docs/methods.md §1. The multi-exponential fit through the amplifier's filter lives in
+qcd.measures.transient. Imports numpy, scipy, qcd.measures.noise (the MAD scale) and
+qcd.measures.transient.
 """
 from __future__ import annotations
 
@@ -14,13 +15,14 @@ import numpy as np
 from scipy import optimize
 
 from qcd.measures import transient as tr
+from qcd.measures.noise import MAD_SCALE
 
 __all__ = [
     "StepWindow", "WholeCell", "Rejected", "CurrentClamp", "StepResponse", "BESSEL4_DELAY",
     "OPEN_PIPETTE_MAX_OHM", "MAX_ACCESS_OHM", "MAX_ACCESS_REL_SE", "SEAL_MAX_OHM",
     "PIPETTE_MAX_F",
     "find_step", "step_response", "average_response", "resolvable_tau", "transient_model",
-    "try_whole_cell", "whole_cell_of", "whole_cell", "peak_access_resistance", "seal_resistance",
+    "try_whole_cell", "whole_cell_of", "peak_access_resistance", "seal_resistance",
     "seal_resistance_se",
     "input_resistance", "classify", "builds_up", "average_steps", "access_change_pct",
     "access_change",
@@ -133,7 +135,7 @@ def _noise_sd(x: np.ndarray) -> float:
     if len(x) < 3:
         return 0.0
     d = np.diff(x)
-    return float(1.4826 * np.median(np.abs(d - np.median(d))) / math.sqrt(2.0))
+    return float(MAD_SCALE * np.median(np.abs(d - np.median(d))) / math.sqrt(2.0))
 
 
 def _noise_correlation(x: np.ndarray, max_lag: int = 20) -> float:
@@ -703,18 +705,6 @@ def _one_exponential(resp: StepResponse, filter_hz: float | None, k0: int,
                      holding=resp.holding, i_ss=float(i_ss), charge=float(q),
                      fit_start_s=float(t[k_fit]), head=head,
                      components=((float(tau), float(q / tau)),))
-
-
-def whole_cell(current: np.ndarray, fs: float, step: StepWindow, *,
-               filter_hz: float | None = None,
-               rails: tuple[float, float] | None = None) -> WholeCell | None:
-    """Whole-cell estimates (Ra, Rm, Cm, τ, Rt, holding, I_ss, Q) or None; see `try_whole_cell`.
-
-    Units SI (Ω, F, s, A, C). Source: METHODS §1.1, §1.2 and §1.5.
-    Use `try_whole_cell` for the reason when this returns None.
-    """
-    r = try_whole_cell(current, fs, step, filter_hz=filter_hz, rails=rails)
-    return r if isinstance(r, WholeCell) else None
 
 
 def peak_access_resistance(current: np.ndarray, fs: float, step: StepWindow) -> float:

@@ -52,7 +52,7 @@ def _parts(store):
     try:
         from qcd import pipeline
         from qcd.analyze import analyze_path
-        from qcd.config import load_rules
+        from qcd.ruleset import load_rules
         analyze_path(ROOT.parent / "shared" / "data" / "abf" / "variable_sweep_length.abf")
         rules = load_rules()
         return "real pipeline", analyze_path, (

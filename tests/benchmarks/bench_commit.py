@@ -13,8 +13,9 @@ from pathlib import Path
 
 import numpy as np
 
-from qcd.analyze import ChannelMeasures, FileMeasures, Measure
-from qcd.config import RigConfig, load_rules
+from qcd.results import ChannelMeasures, FileMeasures, Measure
+from qcd.config import RigConfig
+from qcd.ruleset import load_rules
 from qcd.pipeline import commit, flush_digest
 from qcd.store import Store
 

@@ -21,7 +21,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from qcd.analyze import ChannelMeasures, FileMeasures, Measure, Spectrum  # noqa: E402
+from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum  # noqa: E402
 from qcd.store import Store  # noqa: E402
 
 NAMES = [f"m{i:02d}" for i in range(25)]
