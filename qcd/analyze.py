@@ -480,13 +480,18 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
     rejected = list(t.rejected)
     model = avg_cell = groups = None
     if t.responses:
-        # the component model is chosen once, on the average of the sweeps with the most
-        # common step, and each sweep is fitted with it (same components, its own values)
-        key = collections.Counter((len(r.y), r.amplitude) for _, r in t.responses)
-        common = key.most_common(1)[0][0]
-        group = [r for _, r in t.responses if (len(r.y), r.amplitude) == common]
-        avg = tp.average_response(group)
-        same = sorted((k, r) for k, r in t.responses if (len(r.y), r.amplitude) == common)
+        # the component model is chosen once, on the average of the sweeps with the usual
+        # step (size within 2 %, length within 2 % of the median: a recorded command's step
+        # varies by its noise and a sample), and each sweep is fitted with it
+        amp = float(np.median([r.amplitude for _, r in t.responses]))
+        n_med = float(np.median([len(r.y) for _, r in t.responses]))
+        same = sorted((k, r) for k, r in t.responses
+                      if abs(r.amplitude - amp) <= 0.01 * abs(amp)
+                      and abs(len(r.y) - n_med) <= 0.02 * n_med)
+        if not same:                     # two kinds of step, neither the usual one
+            same = [min(t.responses, key=lambda kr: abs(kr[1].amplitude - amp))]
+        alike = {k for k, _ in same}
+        avg = tp.average_response([r for _, r in same])
         g = min(_TP_CHANGE_SWEEPS, len(same) // 2)
         if g:
             groups = ([r for _, r in same[:g]], [r for _, r in same[-g:]])
@@ -497,8 +502,7 @@ def _tp_measures(t: _TestPulse, out: dict[str, Measure], notes: list[str]) -> No
         # sweep shows either: no per-sweep fits then
         if not (isinstance(avg_cell, tp.Rejected) and avg_cell.code in _AVERAGE_DECIDES):
             for k, r in t.responses:
-                w = tp.whole_cell_of(r, filter_hz=fc, model=model if (len(r.y), r.amplitude)
-                                     == common else None)
+                w = tp.whole_cell_of(r, filter_hz=fc, model=model if k in alike else None)
                 (cells if isinstance(w, tp.WholeCell) else rejected).append((k, w))
     if isinstance(avg_cell, tp.Rejected) and avg_cell.code in ("not_separable", "above_bound"):
         # what the average of the sweeps cannot resolve, no single sweep can either

@@ -920,3 +920,25 @@ def test_sweep_that_does_not_fit_the_files_model_gives_no_value_and_the_reason()
     r = tp.whole_cell_of(tp.step_response(y, fs, step), filter_hz=fc, model=model)
     assert isinstance(r, tp.Rejected) and r.code == "bad_fit"
     assert "2-component fit" in r.reason and "opposite sign" in r.reason
+
+
+def test_average_of_recorded_command_steps_that_differ_by_noise_and_a_sample():
+    # a recorded command gives each sweep's step a slightly different size (its noise) and
+    # length (a sample): such steps are averaged, aligned at the step and cut to the shortest;
+    # steps of another size are not (a step family is no test pulse)
+    fs, fc = 25e3, 5e3
+    resp = []
+    for k, (amp, extra) in enumerate(((-5.00, 0), (-5.02, 1), (-4.99, 0))):
+        y, step = _cell_sweep(CELL_A, fc, fs, 0.5, dv=amp * mV, noise_sd=1 * pA,
+                              rng=np.random.default_rng(k))
+        resp.append(tp.step_response(y, fs, tp.StepWindow(step.start, step.stop + extra,
+                                                            amp * mV)))
+    avg = tp.average_response(resp)
+    assert avg.sweeps == 3 and len(avg.y) == min(len(r.y) for r in resp)
+    assert avg.amplitude == _approx(-5.0033 * mV, rel=1e-3)
+    assert avg.noise == _approx(resp[0].noise / math.sqrt(3), rel=1e-9)
+    w = tp.whole_cell_of(avg, filter_hz=fc)
+    assert w.access_resistance == _approx(CELL_A[0], rel=0.05)
+    y10, s10 = _cell_sweep(CELL_A, fc, fs, 0.5, dv=-10 * mV)
+    with pytest.raises(ValueError):
+        tp.average_response([resp[0], tp.step_response(y10, fs, s10)])

@@ -370,17 +370,22 @@ def step_response(current: np.ndarray, fs: float, step: StepWindow, *,
 
 
 def average_response(responses: Sequence[StepResponse]) -> StepResponse:
-    """Mean of equal steps (same length, amplitude and rate): noise falls by √N (METHODS §1.3)."""
+    """Mean of like steps (same rate; amplitudes within 2 %, as a recorded command's are):
+    noise falls by √N (METHODS §1.3). Aligned at the step's first sample and cut to the
+    shortest; the amplitude is the mean."""
     if not responses:
         raise ValueError("average_response needs at least one response")
-    lengths = {len(r.y) for r in responses}
-    if len(lengths) != 1:
-        raise ValueError(f"responses differ in length: {sorted(lengths)}")
-    k = sum(r.sweeps for r in responses)
-    y = np.sum([r.y * r.sweeps for r in responses], axis=0) / k
+    amps = np.array([r.amplitude for r in responses])
+    if np.ptp(amps) > 0.02 * float(np.max(np.abs(amps))):
+        raise ValueError(f"steps differ in size: {amps.min():.4g} to {amps.max():.4g}")
+    n = min(len(r.y) for r in responses)
+    w = np.array([r.sweeps for r in responses], dtype=float)
+    k = float(w.sum())
+    y = np.sum([r.y[:n] * r.sweeps for r in responses], axis=0) / k
     r0 = responses[0]
-    return StepResponse(y, r0.fs, r0.amplitude, float(np.mean([r.holding for r in responses])),
-                        r0.noise / math.sqrt(k), k,
+    return StepResponse(y, r0.fs, float(np.sum(amps * w) / k),
+                        float(np.sum([r.holding * r.sweeps for r in responses]) / k),
+                        r0.noise / math.sqrt(k), int(k),
                         float(np.median([r.noise_corr for r in responses])))
 
 
