@@ -223,7 +223,8 @@ def _scan_row(fm: FileMeasures, width: int = 22) -> str:
     if "hum_rms" in ms and "line_hz" in ms:
         hum = f"{_scan_value(ms, 'hum_rms')}@{ms['line_hz'].value:.4g}"
     if "access_resistance" in ms:
-        tp = (f"Ra {ms['access_resistance'].value:.3g}/Rm {ms['membrane_resistance'].value:.3g}"
+        rm = ms["membrane_resistance"].value if "membrane_resistance" in ms else 0.0
+        tp = (f"Ra {ms['access_resistance'].value:.3g}/Rm {rm:.{4 if rm >= 1e3 else 3}g}"
               f" MOhm Cm {_scan_value(ms, 'membrane_capacitance')}"
               if "membrane_resistance" in ms else f"Ra {_scan_value(ms, 'access_resistance')}")
     elif "seal_resistance" in ms:
