@@ -22,6 +22,7 @@ import numpy as np
 from qcd import units
 from qcd.errors import RecordingError
 from qcd.measures import drift
+from qcd.measures import mains
 from qcd.measures import noise as nz
 from qcd.measures import spectrum as sp
 from qcd.recording import open_recording
@@ -328,13 +329,20 @@ class _Blocks:
         self.fft = sp.BlockFFT(L)
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
-        self.humfit: sp.HumFit | None = None   # short windows with a declared mains_hz
+        self.humfit: mains.HumFit | None = None   # short windows with a declared mains_hz
+        self.lines: mains.LineBins | None = None  # bins near the mains harmonics (line_hz)
         self._median_step = max(1, L // _MEDIAN_SAMPLES)
         self.parts: dict[str, list[np.ndarray]] = {k: [] for k in
                                                    ("sd", "sd_band", "pp", "mean", "median", "t")}
 
-    def add(self, blocks: np.ndarray, t0: np.ndarray) -> None:
-        """Add (n, L) blocks: float64 (detrended in place) or raw integer counts."""
+    def add(self, blocks: np.ndarray, t0: np.ndarray, starts: np.ndarray | None = None,
+            run: int = 0) -> None:
+        """Add (n, L) blocks: float64 (detrended in place) or raw integer counts.
+
+        ``starts``: each block's first sample on the continuous stretch ``run`` (a sweep);
+        by default from ``t0`` (block centres) on one stretch, as in a gap-free file."""
+        if starts is None:
+            starts = np.rint(np.asarray(t0) * self.fs - self.L / 2).astype(np.int64)
         _, mx, mn = nz.peak_to_peak(blocks)
         if self.rails is not None:
             lo, hi = self.rails
@@ -343,7 +351,7 @@ class _Blocks:
         finite = np.isfinite(mx) & np.isfinite(mn)      # float files may hold NaN/inf samples
         if not finite.all():
             self.nonfinite += int((~finite).sum())
-            blocks, t0 = blocks[finite], t0[finite]
+            blocks, t0, starts = blocks[finite], t0[finite], starts[finite]
             if not len(blocks):
                 return
         sub = blocks[:, ::self._median_step]
@@ -362,6 +370,8 @@ class _Blocks:
             pp, _, _ = nz.peak_to_peak(self.fft.detrended)     # still in cache
             sd, sd_band = nz.parseval_sd(X, self.L, self.fs)
             self.welch.add(X, sd)
+            if self.lines is not None:
+                self.lines.add(X, starts[a:a + g], run)
             for k, v in (("sd", sd), ("sd_band", sd_band), ("mean", mean), ("pp", pp)):
                 self.parts[k].append(v)
         for k, v in (("median", med), ("t", t0)):
@@ -379,6 +389,8 @@ class _Blocks:
 
     def psd(self, exclude: frozenset[int]) -> tuple[np.ndarray, int]:
         P, n = self.welch.psd(exclude)
+        if self.lines is not None:
+            self.lines.exclude(exclude)
         return P * self.scale ** 2, n
 
 
@@ -616,6 +628,32 @@ def _access_change(cells: list[tuple[int, Any]], groups: tuple[list[Any], list[A
     notes.append(f"access_change_pct {pct:+.1f} % +- {pct_se:.1f} % ({sweeps}, {how})")
 
 
+def _hum_measures(h: "mains.Hum", dim: str, var: float, out: dict[str, Measure],
+                  notes: list[str]) -> None:
+    """hum_rms with its standard error; below detectability only an upper bound, hum_rms_max."""
+    unit = units.display_unit("hum_rms", dim) if dim in units.DISPLAY else ""
+    show = (lambda v: f"{units.from_si(v, unit):.3g} {unit}") if unit else (lambda v: f"{v:.3g}")
+    if not h.found:
+        _put(out, "hum_rms_max", h.rms_max, dim)
+        notes.append(f"no mains line stands clear of its local noise floor at harmonics 1-"
+                     f"{mains.DETECT_HARMONICS} of 50 or 60 Hz: hum_rms not measured, at most "
+                     f"{show(h.rms_max)} (hum_rms_max, {mains.Z_SIGNIFICANT:g} standard errors)")
+        return
+    if not h.measured:
+        # a value its own noise could have made is no measurement: it would enter the rig's
+        # history and the drift charts as if it were one
+        _put(out, "hum_rms_max", h.rms_max, dim)
+        notes.append(f"hum not told apart from the noise floor near the harmonics "
+                     f"({show(h.rms)} +- {show(h.rms_se)}): hum_rms not reported, at most "
+                     f"{show(h.rms_max)} (hum_rms_max)")
+        return
+    _put(out, "hum_rms", h.rms, dim)
+    _put(out, "hum_rms_se", h.rms_se, dim)
+    _put(out, "hum_fundamental_rms", math.sqrt(max(h.fundamental_power, 0.0)), dim)
+    if var > 0:
+        out["hum_fraction"] = Measure("hum_fraction", max(h.power, 0.0) / var, "")
+
+
 def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
               mains_hz: float | None, out: dict[str, Measure], notes: list[str]
               ) -> Spectrum | None:
@@ -628,25 +666,23 @@ def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
     var = float(np.sum(psd) * df)
     line = None
     if df <= _MAX_HUM_DF and fs / 2 > 75.0:
-        h = sp.hum(freqs, psd, k_segments=k_seg, mains_hz=mains_hz)
-        if h is None:
-            notes.append("no mains line stands out of the noise (50/60 Hz family test)")
-        else:
+        h = mains.hum(freqs, psd, k_segments=k_seg, mains_hz=mains_hz, lines=acc.lines)
+        if h.found and h.line_measured:
             line = h.line_hz
             out["line_hz"] = Measure("line_hz", round(h.line_hz, 2), "Hz")
-            _put(out, "hum_rms", math.sqrt(h.power), dim)
-            _put(out, "hum_fundamental_rms", math.sqrt(h.fundamental_power), dim)
-            if var > 0:
-                out["hum_fraction"] = Measure("hum_fraction", h.power / var, "")
+        elif h.found:
+            line = h.line_hz
+            notes.append(f"no line stands clear of the noise at the declared mains "
+                         f"{h.line_hz:g} Hz (harmonics 1-{mains.DETECT_HARMONICS}): hum taken "
+                         f"at {h.line_hz:g} Hz, line_hz not measured")
+        _hum_measures(h, dim, var, out, notes)
     elif acc.humfit is not None and acc.humfit.count:
-        p = acc.humfit.powers() * acc.scale ** 2
-        _put(out, "hum_rms", math.sqrt(float(p.sum())), dim)
-        _put(out, "hum_fundamental_rms", math.sqrt(float(p[0])), dim)
-        if var > 0:
-            out["hum_fraction"] = Measure("hum_fraction", float(p.sum()) / var, "")
+        h = acc.humfit.result().scaled(acc.scale ** 2)
+        _hum_measures(h, dim, var, out, notes)
         notes.append(f"hum fitted at the declared mains {acc.humfit.line_hz:g} Hz by least "
                      f"squares in {acc.humfit.count} windows of {L / fs * 1e3:.4g} ms (too "
-                     f"short for the PSD to resolve the line; line_hz not measured)")
+                     f"short for the PSD to resolve the line; line_hz not measured), each "
+                     f"harmonic corrected by the noise density measured beside it")
     else:
         more = "" if mains_hz else "; declare the rig's mains_hz (or --mains) to fit it"
         notes.append(f"hum not measured: baseline windows of {L / fs * 1e3:.4g} ms give "
@@ -709,8 +745,11 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
         same = L2 == L and all(len(w) == 1 for w in windows)
         acc_s = acc if same else (_Blocks(L2, fs) if L2 >= _MIN_BLOCK else None)
         if (acc_s is not None and mains_hz and fs / acc_s.L > _MAX_HUM_DF
-                and sp.HumFit.fits(acc_s.L, fs, mains_hz)):
-            acc_s.humfit = sp.HumFit(acc_s.L, fs, mains_hz)
+                and mains.HumFit.fits(acc_s.L, fs, mains_hz)):
+            acc_s.humfit = mains.HumFit(acc_s.L, fs, mains_hz)
+    if acc_s is not None and fs / acc_s.L <= _MAX_HUM_DF and fs / 2 > 75.0:
+        acc_s.lines = mains.LineBins(acc_s.L, fs, (mains_hz,) if mains_hz else (50.0, 60.0),
+                                     scale=acc_s.scale)
     if rec.gap_free:
         # raw converter counts in chunks of whole blocks; gain, offset and the SI factor are
         # applied to the results (every measure is linear in the samples or offset-free)
@@ -754,7 +793,8 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
                     nb = (b - a) // n_l
                     if nb:
                         t0 = t_k + (a + np.arange(nb) * n_l + n_l / 2) / fs
-                        target.add(xs[a:a + nb * n_l].reshape(nb, n_l).copy(), t0)
+                        target.add(xs[a:a + nb * n_l].reshape(nb, n_l).copy(), t0,
+                                   a + np.arange(nb) * n_l, k)
     spectrum = None
     for a_ in {id(acc): acc, id(acc_s): acc_s}.values():
         if a_ is not None and a_.nonfinite:

@@ -1,5 +1,6 @@
-"""Spectral measures: streaming Welch PSD from one rfft per block, mains hum, bands, corner,
-aliasing, narrow lines and the compact display spectrum. numpy/scipy only, SI in and out.
+"""Spectral measures: streaming Welch PSD from one rfft per block, bands, corner, aliasing,
+narrow lines and the compact display spectrum (mains hum: qcd.measures.mains). numpy only, SI
+in and out.
 
 Every block of L samples is transformed once (``block_fft``); the linear detrend, the Hann
 window of Welch's method and the band RMS values are all derived from that one transform.
@@ -8,12 +9,11 @@ from __future__ import annotations
 
 import heapq
 import math
-from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["block_fft", "BlockFFT", "hann_psd", "WelchAccumulator", "Hum", "hum", "mains_family_db",
-           "band_rms", "BANDS", "corner_hz", "alias_ratio_db", "ALIAS_LIMIT_DB",
+__all__ = ["block_fft", "BlockFFT", "hann_psd", "WelchAccumulator", "mains_mask", "band_rms",
+           "BANDS", "corner_hz", "alias_ratio_db", "ALIAS_LIMIT_DB", "line_threshold",
            "spectral_lines", "compact_spectrum"]
 
 # Fixed reporting bands (Hz): measure name -> (low, high). 'corner' is the file's corner_hz.
@@ -231,136 +231,6 @@ def _floor_correction(k_segments: int) -> float:
     return (k - 1.0 / 3.0 + 8.0 / (405.0 * k) + 184.0 / (25515.0 * k * k)) / k
 
 
-@dataclass(frozen=True)
-class Hum:
-    """Mains hum from a density PSD (METHODS §4.2-4.3); powers in unit**2."""
-    line_hz: float                 # refined fundamental
-    nominal_hz: float              # 50 or 60
-    detected: bool                 # found from the data (False: given as mains_hz)
-    family_db: float | None        # 10 log10(S50/S60), METHODS §4.3
-    harmonics: tuple[tuple[int, float, float], ...]   # (h, centre Hz, P_h)
-    power: float                   # sum of P_h (>= 0 each) up to max_hz
-    fundamental_power: float
-
-
-def _harmonic_power(freqs: np.ndarray, psd: np.ndarray, centre: float, half: float,
-                    floor_fix: float) -> tuple[float, float, int]:
-    """(P_h, floor, bins in band): band sum minus the median floor of the flanks, times df."""
-    df = freqs[1] - freqs[0]
-    dist = np.abs(freqs - centre)
-    band = dist <= half + 1e-9 * df
-    flank = (dist > half + df * 1.0) & (dist <= half + df * 11.0)
-    if not band.any() or flank.sum() < 3:
-        return 0.0, 0.0, 0
-    floor = float(np.median(psd[flank])) / floor_fix
-    p = float(np.sum(psd[band] - floor) * df)
-    return p, floor, int(band.sum())
-
-
-def _family_sum(freqs, psd, f0, n_max, df, floor_fix, k_segments):
-    total, var = 0.0, 0.0
-    for h in range(1, n_max + 1):
-        centre = h * f0
-        if abs(centre / 300.0 - round(centre / 300.0)) < 1e-6:   # multiples of 300 Hz: both
-            continue
-        if centre > 0.9 * freqs[-1]:
-            break
-        half = max(3 * df, h * f0 * SEARCH_DEVIATION)
-        p, floor, nb = _harmonic_power(freqs, psd, centre, half, floor_fix)
-        total += max(p, 0.0)
-        var += (floor * df) ** 2 * nb * 1.5 / max(k_segments, 1)
-    return total, math.sqrt(var)
-
-
-def mains_family_db(freqs: np.ndarray, psd: np.ndarray, k_segments: int = 1) -> tuple[float, bool]:
-    """(10 log10(S50/S60), whether the louder family stands 6 sigma above the noise floor).
-
-    S is the floor-corrected power of harmonics 1-5 of each family, multiples of 300 Hz left
-    out (METHODS §4.3, common practice). >= +10 dB means 50 Hz, <= -10 dB means 60 Hz.
-    """
-    df = float(freqs[1] - freqs[0])
-    fix = _floor_correction(k_segments)
-    s50, sd50 = _family_sum(freqs, psd, 50.0, 5, df, fix, k_segments)
-    s60, sd60 = _family_sum(freqs, psd, 60.0, 5, df, fix, k_segments)
-    tiny = 1e-300
-    ratio = 10 * math.log10((s50 + tiny) / (s60 + tiny))
-    strong = (s50 > 6 * sd50 and s50 > 0) if ratio >= 0 else (s60 > 6 * sd60 and s60 > 0)
-    return ratio, bool(strong)
-
-
-def _refine(freqs, psd, nominal, df, floor_fix, max_hz) -> float:
-    """f0 from Hann peak interpolation of harmonics 1-5 that stand clear of the floor,
-    weighted by P_h h^2 (a higher harmonic pins f0 h times tighter). Only h <= 5 is used so a
-    strong non-mains line near a high harmonic cannot pull the estimate."""
-    num, den = 0.0, 0.0
-    for h in range(1, 6):
-        centre = h * nominal
-        if centre > max_hz or centre >= 0.9 * freqs[-1]:
-            break
-        half = max(3 * df, centre * SEARCH_DEVIATION)
-        sel = np.flatnonzero(np.abs(freqs - centre) <= half)
-        p, floor, nb = _harmonic_power(freqs, psd, centre, half, floor_fix)
-        if len(sel) < 3 or p <= 25 * floor * df:
-            continue
-        k = int(sel[np.argmax(psd[sel])])
-        if not 0 < k < len(psd) - 1:
-            continue
-        mag = np.sqrt(np.maximum(psd[k - 1:k + 2] - floor, 0.0))
-        if mag[1] <= 0:
-            continue
-        # Hann-window interpolation (Grandke 1983): delta = (2a-1)/(a+1), a = |X_{k+-1}|/|X_k|
-        # on the larger side; exact for one tone without noise.
-        side = 1.0 if mag[2] >= mag[0] else -1.0
-        a = (mag[2] if side > 0 else mag[0]) / mag[1]
-        delta = side * float(np.clip((2 * a - 1) / (a + 1), 0.0, 1.0))
-        w = p * h * h
-        num += w * (freqs[k] + delta * df) / h
-        den += w
-    if den == 0:
-        return nominal
-    f0 = num / den
-    return float(np.clip(f0, nominal * (1 - SEARCH_DEVIATION), nominal * (1 + SEARCH_DEVIATION)))
-
-
-def hum(freqs: np.ndarray, psd: np.ndarray, *, k_segments: int = 1,
-        mains_hz: float | None = None, max_hz: float = 1000.0) -> Hum | None:
-    """Mains hum from a one-sided density PSD (unit**2/Hz) with bin spacing df.
-
-    P_h = sum over |f_k - h f0| <= W_h of (P_k - floor) df, W_h = max(3 df, h * 0.2 Hz), floor
-    the median of the flanking bins (corrected for the median/mean ratio of a K-segment
-    average); hum power = sum of P_h, h f0 <= max_hz [METHODS §4.2; ENBW: Harris 1978].
-    Without ``mains_hz`` the family test of METHODS §4.3 decides 50 or 60 Hz and None is
-    returned when neither family stands clearly above the noise; f0 is refined by Hann-window
-    peak interpolation to about 0.05 Hz.
-    """
-    df = float(freqs[1] - freqs[0])
-    fix = _floor_correction(k_segments)
-    family = None
-    if mains_hz is None:
-        family, strong = mains_family_db(freqs, psd, k_segments)
-        if not strong or abs(family) < 10.0:
-            return None
-        nominal = 50.0 if family > 0 else 60.0
-        detected = True
-    else:
-        nominal = float(mains_hz)
-        detected = False
-    f0 = _refine(freqs, psd, nominal, df, fix, max_hz)
-    rows = []
-    total = 0.0
-    h = 1
-    while h * f0 <= max_hz and h * f0 < freqs[-1] - 3 * df:
-        centre = h * f0
-        half = max(3 * df, h * GRID_DEVIATION_HZ)
-        p, _, _ = _harmonic_power(freqs, psd, centre, half, fix)
-        p = max(p, 0.0)
-        rows.append((h, centre, p))
-        total += p
-        h += 1
-    fund = rows[0][2] if rows else 0.0
-    return Hum(f0, nominal, detected, family, tuple(rows), total, fund)
-
-
 def mains_mask(freqs: np.ndarray, f0: float | None, top_hz: float) -> np.ndarray:
     """True on bins within W_h of a harmonic of f0 (up to top_hz)."""
     mask = np.zeros(len(freqs), dtype=bool)
@@ -457,13 +327,20 @@ def corner_hz(freqs: np.ndarray, psd: np.ndarray, k_segments: int = 1) -> float 
     return float(freqs[i - 1] + frac * (freqs[i] - freqs[i - 1]))
 
 
+def line_threshold(k_segments: int) -> float:
+    """How far (as a factor) a narrow line's peak bin must stand above the local floor of a
+    K-segment average: max(3, 1 + 20/K**0.75) (common practice; noise alone passes it with a
+    chance of about 1e-9 per bin). Shared by spectral_lines and the mains line search."""
+    return max(3.0, 1.0 + 20.0 / max(k_segments, 1) ** 0.75)
+
+
 def spectral_lines(freqs: np.ndarray, psd: np.ndarray, *, k_segments: int = 1,
                    line_hz: float | None = None, n_max: int = 5,
                    min_hz: float = 20.0) -> list[tuple[float, float]]:
     """Strongest narrow peaks that are not mains harmonics: [(freq_hz, rms)], loudest first.
 
     A line is a local maximum standing above the running median of +-25 bins by
-    max(3, 1 + 20/K**0.75) (so a K-segment average seldom passes by chance; common practice),
+    ``line_threshold(K)`` (so a K-segment average seldom passes by chance; common practice),
     between min_hz and 0.9 f_N, not within W_h of a harmonic of line_hz (up to 2 kHz). Its RMS
     is the floor-corrected power of the peak bin and two neighbours each side.
     """
@@ -471,7 +348,7 @@ def spectral_lines(freqs: np.ndarray, psd: np.ndarray, *, k_segments: int = 1,
         return []
     df = float(freqs[1] - freqs[0])
     local = _running_median(psd, 51) / _floor_correction(k_segments)
-    thr = max(3.0, 1.0 + 20.0 / max(k_segments, 1) ** 0.75)
+    thr = line_threshold(k_segments)
     ok = (freqs >= min_hz) & (freqs <= 0.9 * freqs[-1]) & (local > 0)
     ok &= ~mains_mask(freqs, line_hz, 2000.0)
     peak = np.zeros(len(psd), dtype=bool)
@@ -507,66 +384,3 @@ def compact_spectrum(freqs: np.ndarray, psd: np.ndarray, n_points: int = 200
     fsum = np.bincount(idx, weights=f, minlength=n_points)
     keep = counts > 0
     return fsum[keep] / counts[keep], sums[keep] / counts[keep]
-
-
-class HumFit:
-    """Mains amplitude by least squares in windows too short for the PSD to resolve the line.
-
-    Episodic voltage-clamp files often have pre-step baselines of 20-50 ms: their periodogram
-    bins are 20-50 Hz wide, so a 50 Hz line cannot be told from its neighbours. With the mains
-    frequency known (the rig's ``mains_hz``), each window is fitted with a constant, a linear
-    trend and a cosine/sine pair at every harmonic h*f0 <= ``max_hz`` (linear least squares,
-    common practice). The power of harmonic h in one window is (a^2 + b^2)/2 minus the noise
-    bias sigma^2 ((X'X)^-1_aa + (X'X)^-1_bb)/2, with sigma^2 from the residual; powers are
-    averaged over windows (the phase differs from sweep to sweep, the power does not).
-    The bias term assumes white noise: coloured noise near the line (1/f, drift) adds about
-    its density times the fit's ~1/T bandwidth, so very short windows read high (measured on a
-    real gap-free file: +16 % at 50 ms, +9 % at 100 ms, within 1 % from 200 ms on).
-    Units: squared input units; the caller scales.
-    """
-
-    def __init__(self, n: int, fs: float, line_hz: float, max_hz: float = 1000.0) -> None:
-        t = np.arange(n) / fs
-        self.harmonics = [h for h in range(1, 41)
-                          if h * line_hz <= min(max_hz, 0.45 * fs)]
-        cols = []
-        for h in self.harmonics:
-            w = 2 * np.pi * h * line_hz * t
-            cols += [np.cos(w), np.sin(w)]
-        X = np.column_stack(cols)
-        A = np.column_stack([np.ones(n), t - t.mean()])
-        X = X - A @ np.linalg.lstsq(A, X, rcond=None)[0]   # orthogonal to mean and trend
-        self.X = X
-        inv = np.linalg.inv(X.T @ X)
-        self.pinv = inv @ X.T
-        d = np.diag(inv)
-        self.bias_per_var = 0.5 * (d[0::2] + d[1::2])
-        self.dof = n - 2 - X.shape[1]
-        self.line_hz = line_hz
-        self.sums = np.zeros(len(self.harmonics))
-        self.count = 0
-
-    @staticmethod
-    def fits(n: int, fs: float, line_hz: float) -> bool:
-        """Whether windows of n samples can carry the fit: one whole mains cycle, spare dof."""
-        return n / fs >= 1.0 / line_hz and n >= 8 * max(1, int(min(1000.0, 0.45 * fs)
-                                                                // line_hz)) + 10
-
-    def add(self, blocks: np.ndarray) -> None:
-        """Add (n_windows, n) windows (any offset and linear trend)."""
-        C = blocks @ self.pinv.T
-        centred = blocks - blocks.mean(axis=1, keepdims=True)
-        resid = centred - C @ self.X.T
-        # the linear trend is orthogonal to X, so take it out of the residual too
-        tt = np.arange(blocks.shape[1]) - (blocks.shape[1] - 1) / 2.0
-        resid -= np.outer(resid @ tt / (tt @ tt), tt)
-        s2 = np.einsum("ij,ij->i", resid, resid) / self.dof
-        power = 0.5 * (C[:, 0::2] ** 2 + C[:, 1::2] ** 2) - np.outer(s2, self.bias_per_var)
-        self.sums += power.sum(axis=0)
-        self.count += blocks.shape[0]
-
-    def powers(self) -> np.ndarray:
-        """Mean power per harmonic (clipped at zero), squared input units."""
-        if not self.count:
-            return np.zeros(len(self.harmonics))
-        return np.maximum(self.sums / self.count, 0.0)
