@@ -140,9 +140,11 @@ def cusum(x: Iterable[float], target: float, k: float, h: float) -> CusumChart:
 # --- noise-source hints -------------------------------------------------------------------------
 
 _MAINS = "mains"
+_BROAD = "broad"
 # measure -> hint group, and the noise measures (a bad one gets a hint): qcd.results.MEASURES
 _HINT_MEASURES = {name: m.hint_group for name, m in MEASURES.items() if m.hint_group}
 _NOISE_MEASURES = {name for name, m in MEASURES.items() if m.noise}
+_BANDS = ("band_rms_0p5_10", "band_rms_10_70", "band_rms_70_1k", "band_rms_1k_corner")
 
 
 def _number(v: Any) -> float | None:
@@ -151,8 +153,28 @@ def _number(v: Any) -> float | None:
         return None
     v = float(v)
     return v if math.isfinite(v) else None
+
+
 _GROWN_Z = 3.0          # a band "grew" at robust z > 3 on log values ...
 _GROWN_RATIO = 1.5      # ... and at least 1.5x its median (common practice, not a published rule)
+_SE_SIGMAS = 2.0        # a value with a standard error counts as its value -+ 2 SE
+
+
+def _se(ch: Any, name: str) -> float:
+    """The standard error a channel reports beside a measure (``<name>_se``), else 0."""
+    m = ch.measures.get(f"{name}_se")
+    v = _number(m.value) if m is not None else None
+    return v if v is not None and v > 0 else 0.0
+
+
+def _ratio(value: float, past: list[float]) -> tuple[float, bool] | None:
+    """(value / median of past, grown): grown at robust z > 3 on logs and >= 1.5x the median."""
+    past = [v for v in past if v > 0]
+    if value <= 0 or len(past) < 3:
+        return None
+    med = float(np.median(past))
+    z = robust_z(math.log(value), [math.log(v) for v in past], min_spread=0.05)
+    return value / med, bool(z > _GROWN_Z and value >= _GROWN_RATIO * med)
 
 
 def _hint_text(groups: Sequence[str]) -> str:
@@ -165,32 +187,55 @@ def _hint_text(groups: Sequence[str]) -> str:
     return text
 
 
-def noise_hints(ch: ChannelMeasures, mode: str, history: History, rules: Rules) -> list[str]:
-    """Hint groups of the bands that grew against the rig's history, biggest growth first."""
+def noise_hints(ch: ChannelMeasures, mode: str, history: History, rules: Rules
+                ) -> list[str]:
+    """Hint groups of what grew against the rig's history, biggest growth first.
+
+    Like is compared with like: when the noise floor rose in (nearly) every band together, that
+    is one broadband change (headstage, pipette, bath), and a band or the drift counts on its
+    own only where it grew 1.5x beyond that common factor. Mains hum counts only by its lower
+    bound, hum_rms - 2 hum_rms_se, whose error comes from the noise floor beside the harmonics,
+    so a rising floor alone cannot make the hum look grown."""
+    n_hist = rules.settings.history_files
+
+    def past(name: str) -> list[float]:
+        vals = _values(history(mode, ch.index, name), n_hist)
+        return [abs(v) for v in vals] if name == "baseline_drift" else vals
+
+    def value(name: str) -> float | None:
+        m = ch.measures.get(name)
+        v = _number(m.value) if m is not None else None
+        return abs(v) if v is not None and name == "baseline_drift" else v
+
     grown: dict[str, float] = {}
     lines = ch.measures.get("spectral_lines")
-    noise = _number(ch.measures["noise_rms"].value) if "noise_rms" in ch.measures else None
+    noise = value("noise_rms")
     if lines is not None and isinstance(lines.value, (list, tuple)) and noise:
         # strongest non-mains line carrying >= 30 % of the baseline RMS (common practice)
         rms = [float(x[1]) for x in lines.value if isinstance(x, (list, tuple)) and len(x) >= 2]
         if rms and max(rms) >= 0.3 * noise:
             grown["lines"] = _GROWN_RATIO
-    for name, group in _HINT_MEASURES.items():
-        m = ch.measures.get(name)
-        value = _number(m.value) if m is not None else None
-        if value is None:
-            continue
-        if name == "baseline_drift":
-            value = abs(value)
-        past = [abs(v) if name == "baseline_drift" else v for v in
-                _values(history(mode, ch.index, name), rules.settings.history_files)]
-        past = [v for v in past if v > 0]
-        if value <= 0 or len(past) < 3:
-            continue
-        med = float(np.median(past))
-        z = robust_z(math.log(value), [math.log(v) for v in past], min_spread=0.05)
-        if z > _GROWN_Z and value >= _GROWN_RATIO * med:
-            grown[group] = max(grown.get(group, 0.0), value / med)
+    bands: dict[str, tuple[float, bool]] = {}
+    for name in _BANDS + ("baseline_drift",):
+        v = value(name)
+        r = _ratio(v, past(name)) if v is not None else None
+        if r is not None:
+            bands[name] = r
+    spectral = {k: r for k, r in bands.items() if k != "baseline_drift"}
+    up = [r for r, g in spectral.values() if g]
+    common = 1.0
+    if len(spectral) >= 3 and len(up) >= max(2, len(spectral) - 1):
+        common = float(np.median(up))
+        grown[_BROAD] = common
+    for name, (r, g) in bands.items():
+        if g and r / common >= _GROWN_RATIO:
+            group = _HINT_MEASURES[name]
+            grown[group] = max(grown.get(group, 0.0), r / common)
+    hum = value("hum_rms")
+    if hum is not None:
+        r = _ratio(hum - _SE_SIGMAS * _se(ch, "hum_rms"), past("hum_rms"))
+        if r is not None and r[1]:
+            grown[_MAINS] = r[0]
     return sorted(grown, key=lambda g: -grown[g])[:3]     # biggest growth first
 
 
@@ -293,6 +338,30 @@ def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = ""
     return bad, clear_ok, f"CUSUM {stat:.2f} sigma (limit {rule.h:g})"
 
 
+def _with(m: Measure, value: float) -> Measure:
+    """The measure ``m`` with another value (same name and unit)."""
+    return Measure(m.name, value, m.unit)
+
+
+def _interval(evaluate: Callable[[float], tuple | None], m: Any, se: float) -> tuple | None:
+    """evaluate(value) -> (bad, clear, ...); with a standard error the whole interval
+    value -+ 2 SE must be bad to count as bad, and all of it clear to count as clear (a value
+    its own noise could have moved across the limit is neither). Other fields from the value."""
+    if isinstance(m.value, bool) or _number(m.value) is None:
+        return evaluate(m.value)
+    point = evaluate(float(m.value))
+    if point is None or not se:
+        return point
+    v = float(m.value)
+    low = v - _SE_SIGMAS * se
+    ends = [evaluate(max(low, 1e-300) if v > 0 else low), evaluate(v + _SE_SIGMAS * se)]
+    if any(e is None for e in ends):
+        return point
+    bad = all(e[0] for e in ends)
+    clear = all(e[1] for e in ends)
+    return (bad, clear) + tuple(point[2:])
+
+
 def _normal_range(past: list[float], unit: str) -> str:
     lo, hi = np.percentile(past, [10, 90])
     return f"normal {lo:.3g}-{hi:.3g} {unit} (median {np.median(past):.3g}, {len(past)} files)"
@@ -324,10 +393,10 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
             for rule in rules.limits:
                 if rule.measure != m.name or not _matches(rule.modes, mode):
                     continue
-                res = _limit(rule, m)
+                res = _interval(lambda x: _limit(rule, _with(m, x)), m, _se(ch, m.name))
                 if res is None:
                     continue
-                bad, clear_ok = res
+                bad, clear_ok = res[:2]
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
                     groups = noise_hints(ch, mode, history, rules) if groups is None else groups
@@ -353,7 +422,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                 continue
             jump = ""
             for rule in sorted(hist_rules, key=lambda r: r.test != "z"):    # z rules first
-                res = _drift(rule, value, past, m.unit)
+                res = _interval(lambda x: _drift(rule, x, past, m.unit), m, _se(ch, m.name))
                 if res is None:
                     continue
                 bad, clear_ok, stat_text = res

@@ -47,7 +47,10 @@ HINTS: dict[str, Hint] = {
     "mains": Hint("mains hum and its harmonics",
                   "the grounding (a single ground point, no ground loops, a loose or corroded "
                   "ground lead, the bath ground) and any mains-powered device newly placed near "
-                  "the rig"),
+                  "the rig", "grew beyond what the noise floor near them explains"),
+    "broad": Hint("the noise floor",
+                  "the headstage and its connector, the pipette (capacitance: glass, coating, "
+                  "fill level) and the bath level", "rose across the spectrum (broadband)"),
     "high": Hint("broadband high-frequency noise",
                  "the headstage and its connector, the pipette capacitance (glass, coating, "
                  "fill) and the bath level"),
@@ -97,6 +100,9 @@ MEASURES: dict[str, MeasureInfo] = {
     "line_hz": MeasureInfo("Hz", "mains frequency", show=("compare",)),
     "hum_rms": MeasureInfo(_SIG, "mains hum RMS", hint_group="mains", noise=True,
                            show=("report", "plot", "compare"), log_axis=True),
+    "hum_rms_se": MeasureInfo(_SIG, "standard error of the hum RMS"),
+    "hum_rms_max": MeasureInfo(_SIG, "upper bound on the mains hum", hint_group="mains",
+                               noise=True),
     "hum_fundamental_rms": MeasureInfo(_SIG, "mains fundamental RMS", hint_group="mains",
                                        noise=True),
     "hum_fraction": MeasureInfo("", "hum share of the baseline variance", hint_group="mains",

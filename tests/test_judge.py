@@ -280,3 +280,60 @@ def test_field_example_rules_load_over_the_defaults(rules):
     # 25 uV against a 20 uV limit, in mV as stored for an extracellular channel
     fm = _fm({"noise_rms_1k": (0.025, "mV")}, mode="extracellular")
     assert _by_rule(judge(fm, "r", _no_history, r, 0))["field_noise_high"].bad
+
+
+# --- noise-source hints: like with like -----------------------------------------------------------
+
+_BANDS = ("band_rms_0p5_10", "band_rms_10_70", "band_rms_70_1k", "band_rms_1k_corner")
+
+
+def _histories(normal: dict[str, float], n: int = 30, seed: int = 5):
+    """Each measure's history: its normal value with 5 % lognormal scatter, newest first."""
+    rng = np.random.default_rng(seed)
+    rows = {k: [(1000.0 - i, v * math.exp(rng.normal(0, 0.05))) for i in range(n)]
+            for k, v in normal.items()}
+    return lambda mode, channel, name: rows.get(name, [])
+
+
+_NORMAL = {"noise_rms": 1.2, "noise_rms_1k": 0.9, "hum_rms": 0.26, "band_rms_0p5_10": 0.2,
+           "band_rms_10_70": 0.25, "band_rms_70_1k": 0.5, "band_rms_1k_corner": 0.6}
+
+
+def test_a_broadband_step_gives_the_broadband_hint_not_grounding(rules):
+    # the headstage fault of the demo: every band x3.5, the hum unchanged but measured with a
+    # large error because the floor beside the harmonics rose (hum_rms_se)
+    now = {k: (v * 3.5, "pA") for k, v in _NORMAL.items() if k != "hum_rms"}
+    now["hum_rms"] = (0.55, "pA")          # 2.1x its normal by noise alone ...
+    now["hum_rms_se"] = (0.16, "pA")       # ... which its standard error covers
+    f = _by_rule(judge(_fm(now), "r", _histories(_NORMAL), rules, 0))
+    assert f["noise_jump"].bad
+    hint = f["noise_jump"].hint
+    assert "broadband" in hint and "headstage" in hint
+    assert "grounding" not in hint and SAFETY_NOTE not in hint
+    assert "slow fluctuation" not in hint and "vibration" not in hint
+    # the hum rule itself: value -+ 2 SE reaches back into the normal range: not bad, and not
+    # a clear either (the value cannot tell)
+    assert not f["hum_jump"].bad and not f["hum_jump"].clear
+
+
+def test_a_hum_creep_gives_the_grounding_hint_with_the_safety_caution(rules):
+    now = {k: (v, "pA") for k, v in _NORMAL.items()}
+    now["hum_rms"] = (0.6, "pA")
+    now["hum_rms_se"] = (0.02, "pA")
+    now["noise_rms"] = (1.3, "pA")
+    f = _by_rule(judge(_fm(now), "r", _histories(_NORMAL), rules, 0))
+    assert f["hum_jump"].bad
+    assert "grounding" in f["hum_jump"].hint and SAFETY_NOTE in f["hum_jump"].hint
+    assert "broadband" not in f["hum_jump"].hint
+
+
+def test_a_band_counts_on_its_own_only_beyond_the_broadband_factor(rules):
+    # the floor doubled everywhere, and 10-70 Hz grew 8x: broadband plus vibration
+    now = {k: (v * 2.0, "pA") for k, v in _NORMAL.items() if k.startswith("band")}
+    now["band_rms_10_70"] = (_NORMAL["band_rms_10_70"] * 8.0, "pA")
+    now["noise_rms"] = (_NORMAL["noise_rms"] * 2.5, "pA")
+    f = _by_rule(judge(_fm(now), "r", _histories(_NORMAL), rules, 0))
+    hint = f["noise_jump"].hint
+    assert "vibration" in hint and "broadband" in hint
+    assert hint.index("vibration") < hint.index("broadband")      # biggest growth first
+    assert "mid-band" not in hint and "slow fluctuation" not in hint
