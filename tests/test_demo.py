@@ -116,12 +116,15 @@ def test_plan_scripts_each_fault_once_and_keeps_one_rig_healthy():
 
 @pytest.fixture(scope="module")
 def lab(tmp_path_factory):
-    """A reduced lab (8 days, 3 files per rig per day) through the real watch service."""
+    """A reduced lab (7 days, 3 files per rig per day) through the real watch service.
+
+    7 days put the headstage failure and the lost seal on the last day and the creeping ground
+    in its second day, so the final morning report shows every scripted fault."""
     import io
     folder = tmp_path_factory.mktemp("lab")
     out = io.StringIO()
     # workers=0: files are measured and committed in arrival order, so the run is reproducible
-    result = demo.run_demo(folder, days=8, files_per_day=3, out=out, workers=0,
+    result = demo.run_demo(folder, days=7, files_per_day=3, out=out, workers=0,
                            end=datetime(2026, 11, 20, tzinfo=timezone.utc))
     from qcd.store import Store
     store = Store(result.database)
@@ -257,7 +260,52 @@ def test_report_hints_name_the_scripted_sources(lab):
     assert any("grounding" in h for h in rigs["field-1"].hints)
     assert rigs["field-1"].safety_note and "electrician" in rigs["field-1"].safety_note
     assert any("headstage" in h for h in rigs["patch-2"].hints)
+    # the failing headstage raised the broadband floor only: its hum stays what it was
+    assert not any("grounding" in h for h in rigs["patch-2"].hints)
     assert not rigs["patch-1"].hints and rigs["patch-1"].n_flagged == 0
+
+
+@pytest.mark.slow
+def test_morning_report_and_first_alert_name_each_scripted_source(lab):
+    # what a user reads: the default morning report (qcd report, --since 18h, at 07:30 after the
+    # last day) and the first message each rig sent. ground -> grounding with the safety
+    # caution; headstage -> the broadband hint and not grounding; seal -> the seal limit and
+    # no noise hint; healthy -> nothing.
+    from qcd.judge import SAFETY_NOTE
+    from qcd.report import build_report, parse_since, render_text
+    result, store, _ = lab
+    now = result.plan.end + 7.5 * 3600.0
+    report = build_report(store, now, parse_since("18h", now))
+    rigs = {x.rig: x for x in report.rigs}
+    text = {rig: render_text(build_report(store, now, parse_since("18h", now), [rig]))
+            for rig in rigs}
+    first: dict[str, dict] = {}
+    for row in store.outbox_rows():
+        first.setdefault(row["rig"], row)
+
+    ground, msg = rigs["field-1"], first["field-1"]
+    assert any("grounding" in h for h in ground.hints)
+    assert ground.safety_note and "electrician" in ground.safety_note
+    assert "hum_rms" in msg["title"] and "grounding" in msg["body"] and SAFETY_NOTE in msg["body"]
+
+    head, msg = rigs["patch-2"], first["patch-2"]
+    assert head.hints and all("headstage" in h and "broadband" in h for h in head.hints)
+    assert not any(w in h for h in head.hints for w in ("grounding", "mains"))
+    assert head.safety_note is None and "hum_rms" not in text["patch-2"].split("open alerts")[1]
+    assert "noise_rms" in msg["title"] and "headstage" in msg["body"]
+    assert "grounding" not in msg["body"] and "hum" not in msg["title"]
+
+    seal, msg = rigs["patch-3"], first["patch-3"]
+    assert any(a["rule"] == "gigaseal" for a in seal.open_alerts)
+    assert "seal_resistance / gigaseal" in text["patch-3"]
+    assert any("gigaseal: below 1 GOhm" in flag for f in seal.files for flag in f["flags"])
+    assert not seal.hints and seal.safety_note is None
+    assert "seal_resistance" in msg["title"] and "below 1 GOhm" in msg["title"]
+    assert "Possible source" not in msg["body"]
+
+    healthy = rigs["patch-1"]
+    assert not healthy.hints and not healthy.open_alerts and healthy.n_flagged == 0
+    assert "patch-1" not in first
 
 
 def test_demo_command_rejects_too_few_days(capsys):
