@@ -631,7 +631,7 @@ def _access_change(cells: list[tuple[int, Any]], groups: tuple[list[Any], list[A
 def _hum_measures(h: "mains.Hum", dim: str, var: float, out: dict[str, Measure],
                   notes: list[str]) -> None:
     """hum_rms with its standard error; below detectability only an upper bound, hum_rms_max."""
-    unit = units.display_unit("hum_rms", dim) if dim in units.DISPLAY else ""
+    unit = display_unit("hum_rms", dim) if dim in units.DISPLAY else ""
     show = (lambda v: f"{units.from_si(v, unit):.3g} {unit}") if unit else (lambda v: f"{v:.3g}")
     if not h.found:
         _put(out, "hum_rms_max", h.rms_max, dim)

@@ -23,6 +23,7 @@ from qcd.analyze import Baseline, analyze_path, baseline_blocks
 from qcd.errors import QcdError, RecordingError
 from qcd.html import Curve, page, spectra_figure
 from qcd.intake import recordings_in
+from qcd.measures import mains
 from qcd.measures import spectrum as sp
 from qcd.recording import open_recording
 from qcd.results import HINTS, MEASURES, SAFETY_NOTE, shown
@@ -139,9 +140,9 @@ def _powers(freqs: np.ndarray, psd: np.ndarray, k: int, fs: float, line: float |
         if r is not None:
             out[name] = r * r
     if line is not None:
-        hum = sp.hum(freqs, psd, k_segments=k, mains_hz=line)
+        hum = mains.hum(freqs, psd, k_segments=k, mains_hz=line)
         out["hum_rms"] = hum.power
-        for h, _, p in hum.harmonics[:N_HARMONICS]:
+        for h, _, p, _ in hum.harmonics[:N_HARMONICS]:
             out[f"hum_h{h}"] = p
     return out
 
@@ -171,8 +172,8 @@ def _side(paths: list[Path], bases: list[Baseline], L: int, line: float | None, 
 
 
 def _mains(freqs: np.ndarray, psd: np.ndarray, k: int) -> float:
-    """50 or 60 Hz: the louder harmonic family (spectrum.mains_family_db, docs/methods.md §4.3)."""
-    ratio, _ = sp.mains_family_db(freqs, psd, k)
+    """50 or 60 Hz: the louder harmonic family (mains.mains_family_db, docs/methods.md §4.3)."""
+    ratio = mains.mains_family_db(freqs, psd, k)
     return 50.0 if ratio >= 0 else 60.0
 
 
