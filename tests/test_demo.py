@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 
 import references as ref
+import stored
 from qcd import demo, synth
 
 
@@ -280,7 +281,7 @@ def test_morning_report_and_first_alert_name_each_scripted_source(lab):
     text = {rig: render_text(build_report(store, now, parse_since("18h", now), [rig]))
             for rig in rigs}
     first: dict[str, dict] = {}
-    for row in store.outbox_rows():
+    for row in stored.outbox_rows(store):
         first.setdefault(row["rig"], row)
 
     ground, msg = rigs["field-1"], first["field-1"]
