@@ -630,7 +630,8 @@ def _access_change(cells: list[tuple[int, Any]], groups: tuple[list[Any], list[A
 
 def _hum_measures(h: "mains.Hum", dim: str, var: float, out: dict[str, Measure],
                   notes: list[str]) -> None:
-    """hum_rms with its standard error; below detectability only an upper bound, hum_rms_max."""
+    """hum_rms with its standard error (and an upper bound when it is not told apart from the
+    floor); without a mains line found or declared, only the bound, hum_rms_max."""
     unit = display_unit("hum_rms", dim) if dim in units.DISPLAY else ""
     show = (lambda v: f"{units.from_si(v, unit):.3g} {unit}") if unit else (lambda v: f"{v:.3g}")
     if not h.found:
@@ -639,19 +640,16 @@ def _hum_measures(h: "mains.Hum", dim: str, var: float, out: dict[str, Measure],
                      f"{mains.DETECT_HARMONICS} of 50 or 60 Hz: hum_rms not measured, at most "
                      f"{show(h.rms_max)} (hum_rms_max, {mains.Z_SIGNIFICANT:g} standard errors)")
         return
-    if not h.measured:
-        # a value its own noise could have made is no measurement: it would enter the rig's
-        # history and the drift charts as if it were one
-        _put(out, "hum_rms_max", h.rms_max, dim)
-        notes.append(f"hum not told apart from the noise floor near the harmonics "
-                     f"({show(h.rms)} +- {show(h.rms_se)}): hum_rms not reported, at most "
-                     f"{show(h.rms_max)} (hum_rms_max)")
-        return
     _put(out, "hum_rms", h.rms, dim)
     _put(out, "hum_rms_se", h.rms_se, dim)
     _put(out, "hum_fundamental_rms", math.sqrt(max(h.fundamental_power, 0.0)), dim)
     if var > 0:
         out["hum_fraction"] = Measure("hum_fraction", max(h.power, 0.0) / var, "")
+    if not h.measured:
+        _put(out, "hum_rms_max", h.rms_max, dim)
+        notes.append(f"hum not told apart from the noise floor near the harmonics: hum_rms "
+                     f"{show(h.rms)} +- {show(h.rms_se)}, at most {show(h.rms_max)} "
+                     f"(hum_rms_max)")
 
 
 def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,

@@ -199,7 +199,7 @@ def noise_hints(ch: ChannelMeasures, mode: str, history: History, rules: Rules
     n_hist = rules.settings.history_files
 
     def past(name: str) -> list[float]:
-        vals = _values(history(mode, ch.index, name), n_hist)
+        vals = _precise(history, mode, ch, name, n_hist, side="up")
         return [abs(v) for v in vals] if name == "baseline_drift" else vals
 
     def value(name: str) -> float | None:
@@ -253,6 +253,33 @@ def _values(rows: Iterable[Any], limit: int) -> list[float]:
         if math.isfinite(v):
             out.append(v)
     return out
+
+
+_IMPRECISE = 3.0       # a past value 3x less precise than the rig's usual stays out of the reference
+
+
+def _precise(history: History, mode: str, ch: ChannelMeasures, name: str, limit: int,
+             side: str = "both") -> list[float]:
+    """``_values`` of a measure's history; for a measure that carries a standard error
+    (``<name>_se``), compared like with like:
+
+    - values measured with 3x the history's median error or more are left out: a reading
+      taken while the noise floor was high says little about the rig's normal, and would carry
+      that floor into the reference and the drift charts;
+    - for an upward test each past value counts as its upper bound, value + 2 SE (what the
+      rig's normal could have been), for a downward test as its lower bound; a rise must then
+      clear what the floor allowed before, not only the values the noise happened to give."""
+    rows = list(history(mode, ch.index, name))
+    if f"{name}_se" in ch.measures and rows:
+        se = {float(t): float(v) for t, v in history(mode, ch.index, f"{name}_se")}
+        errs = [se[float(r[0])] for r in rows if float(r[0]) in se]
+        if errs:
+            cap = _IMPRECISE * float(np.median(errs))
+            rows = [r for r in rows if se.get(float(r[0]), 0.0) < cap or cap <= 0]
+            sign = {"up": 1.0, "down": -1.0}.get(side, 0.0)
+            rows = [(r[0], float(r[1]) + sign * _SE_SIGMAS * se.get(float(r[0]), 0.0))
+                    for r in rows]
+    return _values(rows, limit)
 
 
 def _matches(modes: tuple[str, ...], mode: str) -> bool:
@@ -414,15 +441,18 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                           if r.measure == m.name and _matches(r.modes, mode)]
             if not hist_rules or _number(m.value) is None:
                 continue
-            past = _values(history(mode, ch.index, m.name), st.history_files)
-            seen = max(seen, len(past))
+            points = _precise(history, mode, ch, m.name, st.history_files)
+            seen = max(seen, len(points))
+            past = points
             learning = len(past) < st.learning_files
             value = float(m.value)
             if not math.isfinite(value):
                 continue
             jump = ""
             for rule in sorted(hist_rules, key=lambda r: r.test != "z"):    # z rules first
-                res = _interval(lambda x: _drift(rule, x, past, m.unit), m, _se(ch, m.name))
+                ref = _precise(history, mode, ch, m.name, st.history_files, rule.side) \
+                    if _se(ch, m.name) else points
+                res = _interval(lambda x: _drift(rule, x, ref, m.unit), m, _se(ch, m.name))
                 if res is None:
                     continue
                 bad, clear_ok, stat_text = res

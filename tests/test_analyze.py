@@ -323,10 +323,14 @@ def test_declared_mains_gives_hum_on_short_episodic_baselines():
     fitted = analyze_path(path, mains_hz=60.0).channels[0]
     ms = fitted.measures
     assert any("least squares" in n for n in fitted.notes)
+    assert ms["hum_rms"].unit == ms["hum_rms_se"].unit == "pA"
+    assert 0 <= ms["hum_fundamental_rms"].value <= ms["hum_rms"].value + 1e-12
+    # hum power is a part of the baseline variance (Parseval): the fraction lies in [0, 1)
+    assert 0 <= ms["hum_fraction"].value < 1
     # this cell's floor near 60 Hz (about 0.1 pA^2/Hz, steep below it) is far above any line
-    # there: the fit finds no hum it can tell from the floor, reports none, and says how much
-    # there could be (less than the baseline's own RMS: Parseval)
-    assert "hum_rms" not in ms
-    assert 0 < ms["hum_rms_max"].value < ms["noise_rms"].value
+    # there: the fit finds no hum it can tell from the floor, and says how much there could
+    # be (less than the baseline's own RMS: Parseval)
+    assert ms["hum_rms"].value <= 2 * ms["hum_rms_se"].value
+    assert ms["hum_rms"].value <= ms["hum_rms_max"].value < ms["noise_rms"].value
     assert ms["hum_rms_max"].unit == "pA"
     assert any("hum_rms_max" in n for n in fitted.notes)
