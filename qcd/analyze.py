@@ -22,7 +22,7 @@ import numpy as np
 from qcd import units
 from qcd.errors import RecordingError
 from qcd.measures import drift
-from qcd.measures import mains
+from qcd.measures import humfit, mains, zoom
 from qcd.measures import noise as nz
 from qcd.measures import spectrum as sp
 from qcd.recording import open_recording
@@ -329,8 +329,8 @@ class _Blocks:
         self.fft = sp.BlockFFT(L)
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
-        self.humfit: mains.HumFit | None = None   # short windows with a declared mains_hz
-        self.lines: mains.LineBins | None = None  # bins near the mains harmonics (line_hz)
+        self.humfit: humfit.HumFit | None = None   # short windows with a declared mains_hz
+        self.lines: zoom.LineBins | None = None  # bins near the mains harmonics (line_hz)
         self._median_step = max(1, L // _MEDIAN_SAMPLES)
         self.parts: dict[str, list[np.ndarray]] = {k: [] for k in
                                                    ("sd", "sd_band", "pp", "mean", "median", "t")}
@@ -743,10 +743,10 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
         same = L2 == L and all(len(w) == 1 for w in windows)
         acc_s = acc if same else (_Blocks(L2, fs) if L2 >= _MIN_BLOCK else None)
         if (acc_s is not None and mains_hz and fs / acc_s.L > _MAX_HUM_DF
-                and mains.HumFit.fits(acc_s.L, fs, mains_hz)):
-            acc_s.humfit = mains.HumFit(acc_s.L, fs, mains_hz)
+                and humfit.HumFit.fits(acc_s.L, fs, mains_hz)):
+            acc_s.humfit = humfit.HumFit(acc_s.L, fs, mains_hz)
     if acc_s is not None and fs / acc_s.L <= _MAX_HUM_DF and fs / 2 > 75.0:
-        acc_s.lines = mains.LineBins(acc_s.L, fs, (mains_hz,) if mains_hz else (50.0, 60.0),
+        acc_s.lines = zoom.LineBins(acc_s.L, fs, (mains_hz,) if mains_hz else (50.0, 60.0),
                                      scale=acc_s.scale)
     if rec.gap_free:
         # raw converter counts in chunks of whole blocks; gain, offset and the SI factor are

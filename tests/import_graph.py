@@ -28,7 +28,7 @@ PLUGINS = {"recording": ("nwb", "neoread")}
 LAYERS = (
     "errors", "units", "measures",
     "measures.noise", "measures.drift", "measures.spectrum", "measures.transient",
-    "measures.mains",
+    "measures.mains", "measures.humfit", "measures.zoom",
     "measures.testpulse",
     "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "ruleset",
     "judge", "alerts", "store", "notify", "analyze", "intake", "pipeline", "watch",

@@ -8,20 +8,20 @@ import math
 import numpy as np
 import pytest
 
-from qcd.measures import mains
+from qcd.measures import humfit, mains, zoom
 from qcd.measures import spectrum as sp
 from references import analog_bessel_noise, sine
 
 
-def _spectrum(x: np.ndarray, fs: float, L: int, *, zoom: bool = True):
+def _spectrum(x: np.ndarray, fs: float, L: int, *, coherent: bool = True):
     """(freqs, Welch PSD, segments, LineBins) of x in contiguous L-sample blocks."""
     nb = len(x) // L
     X, _, _ = sp.block_fft(x[:nb * L].reshape(nb, L))
     acc = sp.WelchAccumulator(L, fs)
     acc.add(X, np.ones(nb))
     lines = None
-    if zoom:
-        lines = mains.LineBins(L, fs)
+    if coherent:
+        lines = zoom.LineBins(L, fs)
         lines.add(X, np.arange(nb) * L, 0)
     P, k = acc.psd()
     return np.arange(L // 2 + 1) * fs / L, P, k, lines
@@ -59,13 +59,13 @@ def test_hum_worked_example_methods_4_2():
     assert h.significant and h.power_se < 0.01 * h.power
 
 
-@pytest.mark.parametrize("zoom", [False, True], ids=["psd", "zoom"])
+@pytest.mark.parametrize("coherent", [False, True], ids=["psd", "zoom"])
 @pytest.mark.parametrize("f0", [50.0, 50.1, 49.9, 50.07, 60.0, 60.1, 59.9, 59.96])
-def test_hum_amplitude_within_5_percent_off_nominal(f0, zoom):
+def test_hum_amplitude_within_5_percent_off_nominal(f0, coherent):
     # amplitude of the fundamental A = sqrt(2 P1) within 5 % with the grid up to 0.1 Hz off
     # (METHODS §4.2 signal; §4.1: +-200 mHz normal deviation), line found to 0.05 Hz
     x, fs = _methods_42_signal(f1=f0, seed=int(f0 * 100))
-    f, P, k, lines = _spectrum(x, fs, 10_000, zoom=zoom)
+    f, P, k, lines = _spectrum(x, fs, 10_000, coherent=coherent)
     h = mains.hum(f, P, k_segments=k, lines=lines)
     assert h.found and h.line_measured
     assert h.nominal_hz == (50.0 if f0 < 55 else 60.0)
@@ -180,7 +180,7 @@ def test_hum_fit_in_short_windows_recovers_the_worked_example_amplitudes():
     fs, n = 20_000.0, 1000
     rng = np.random.default_rng(11)
     t = np.arange(n) / fs
-    fit = mains.HumFit(n, fs, 50.0)
+    fit = humfit.HumFit(n, fs, 50.0)
     for _ in range(300):
         ph = rng.uniform(0, 2 * np.pi, 2)
         y = (1.0 * np.sin(2 * np.pi * 50.05 * t + ph[0]) + 0.3 * np.sin(2 * np.pi * 150.15 * t
@@ -198,7 +198,7 @@ def test_hum_fit_reports_next_to_nothing_without_mains():
     # white noise only: after the noise-bias correction the hum power averages to ~0
     fs, n = 20_000.0, 1000
     rng = np.random.default_rng(12)
-    fit = mains.HumFit(n, fs, 60.0)
+    fit = humfit.HumFit(n, fs, 60.0)
     fit.add(rng.normal(0.0, 0.5, (300, n)))
     h = fit.result()
     assert abs(h.power) <= 3 * h.power_se
@@ -226,7 +226,7 @@ def test_hum_fit_is_not_biased_by_filtered_noise(ms, fc_div):
         t0 = rng.uniform(0, 100)
         b += sum(a * np.sin(2 * np.pi * h * 60.0 * (t + t0) + rng.uniform(0, 6.3))
                  for h, a in enumerate(amps, start=1))
-    fit = mains.HumFit(n, fs, 60.0)
+    fit = humfit.HumFit(n, fs, 60.0)
     fit.add(blocks)
     h = fit.result()
     assert abs(h.power - truth) <= 3 * h.power_se
@@ -248,7 +248,7 @@ def test_hum_fit_error_matches_the_scatter_over_noise_draws():
         for b in blocks:
             t0 = rng.uniform(0, 100)
             b += sum(a * np.sin(2 * np.pi * h * 60.0 * (t + t0)) for h, a in enumerate(amps, 1))
-        fit = mains.HumFit(n, fs, 60.0)
+        fit = humfit.HumFit(n, fs, 60.0)
         fit.add(blocks)
         h = fit.result()
         vals.append(h.power)
@@ -273,7 +273,7 @@ def test_hum_fit_agrees_with_the_psd_on_a_real_gap_free_file(ms):
         x = np.concatenate(list(rec.chunks(0)))
         fs = rec.fs
     n = int(ms / 1000 * fs)
-    fit = mains.HumFit(n, fs, ref["line_hz"].value)
+    fit = humfit.HumFit(n, fs, ref["line_hz"].value)
     fit.add(x[: len(x) // n * n].reshape(-1, n))
     h = fit.result()
     assert math.sqrt(max(h.fundamental_power, 0.0)) == pytest.approx(
@@ -283,8 +283,8 @@ def test_hum_fit_agrees_with_the_psd_on_a_real_gap_free_file(ms):
 
 def test_hum_fit_needs_two_and_a_half_mains_cycles():
     # the probe half a cycle below the fundamental must stay apart from the baseline polynomial
-    assert not mains.HumFit.fits(int(0.035 * 20_000), 20_000.0, 60.0)     # 2.1 cycles
-    assert mains.HumFit.fits(int(0.050 * 20_000), 20_000.0, 50.0)         # 2.5 cycles
+    assert not humfit.HumFit.fits(int(0.035 * 20_000), 20_000.0, 60.0)     # 2.1 cycles
+    assert humfit.HumFit.fits(int(0.050 * 20_000), 20_000.0, 50.0)         # 2.5 cycles
 
 
 def test_incomplete_gamma_tail_matches_scipy():

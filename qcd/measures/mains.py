@@ -1,6 +1,7 @@
 """Mains hum: finding the mains line (50 or 60 Hz), its frequency, and the hum power of each
-harmonic with its standard error, from the Welch PSD (windows of 0.5 s and longer) or by least
-squares in shorter windows. numpy/scipy only, SI in and out; imports qcd.measures.spectrum.
+harmonic with its standard error, from the Welch PSD (windows of 0.5 s and longer; shorter
+windows: qcd.measures.humfit; the phase-coherent zoom that pins the frequency:
+qcd.measures.zoom). numpy only, SI in and out; imports qcd.measures.spectrum.
 
 Every hum power here is corrected for the noise that falls into the harmonic's band, using the
 noise density measured right beside that harmonic in the same windows, and is not clipped at
@@ -12,26 +13,22 @@ from __future__ import annotations
 
 import functools
 import math
-from statistics import NormalDist
 from dataclasses import dataclass, replace
+from statistics import NormalDist
+from typing import Any
 
 import numpy as np
 
 from qcd.measures.spectrum import (GRID_DEVIATION_HZ, SEARCH_DEVIATION, _floor_correction,
                                    _running_median, line_threshold)
 
-__all__ = ["Hum", "hum", "mains_family_db", "LineBins", "HumFit", "Z_SIGNIFICANT",
-           "DETECT_HARMONICS", "gamma_q"]
+__all__ = ["Hum", "hum", "mains_family_db", "Z_SIGNIFICANT", "DETECT_HARMONICS", "gamma_q"]
 
 Z_SIGNIFICANT = 2.0      # hum power below 2 standard errors is not told apart from the floor
 DETECT_HARMONICS = 5     # lines are searched at harmonics 1-5 (METHODS §4.3 family test range)
 _FALSE_LINE_P = 1e-4     # chance that noise alone makes one search window (one harmonic of
                          # one family) stand out; about 1e-3 per file over harmonics 1-5
-_FIT_STANDS = 3.0        # standard errors a harmonic of the fit must stand above zero
 _FLANK_BINS = 20         # floor: median of 20 bins each side beyond a band or search window
-_HALO = 4                # bins each side of a frequency used to evaluate its Hann-windowed DTFT
-_RUN_BLOCKS = 16         # blocks summed with their phase (about 16 s at 1 s blocks): longer
-                         # stretches would smear the line as the grid frequency wanders
 
 
 @dataclass(frozen=True)
@@ -345,7 +342,7 @@ def _search(freqs, psd, local, F, h, k_segments) -> _Search | None:
     return _Search(h, F, floor, stands, peak_hz, float(psd[k]) / floor)
 
 
-def _coherent_fundamental(found: list[_Search], lines: "LineBins", scale2: float,
+def _coherent_fundamental(found: list[_Search], lines: Any, scale2: float,
                           k_segments: int) -> None:
     """Search the fundamental's window again in the phase-coherent zoom (contiguous blocks):
     a steady line gains the stretch length over the noise there. The blocks' Hann windows
@@ -396,7 +393,7 @@ def _total(rows) -> tuple[float, float]:
 
 def hum(freqs: np.ndarray, psd: np.ndarray, *, k_segments: int = 1,
         mains_hz: float | None = None, max_hz: float = 1000.0,
-        lines: "LineBins | None" = None) -> Hum:
+        lines: Any = None) -> Hum:
     """Mains hum from a one-sided density PSD (unit**2/Hz) averaged over ``k_segments``.
 
     P_h = sum over |f_k - h f0| <= W_h of (P_k - floor) df, W_h = max(3 df, h * 0.2 Hz), floor
@@ -404,15 +401,16 @@ def hum(freqs: np.ndarray, psd: np.ndarray, *, k_segments: int = 1,
     hum power = sum of P_h for h f0 <= max_hz, none clipped at zero [METHODS §4.2; ENBW: Harris
     1978]. Each P_h carries a standard error from the local floor (see ``_band``).
 
-    Without ``mains_hz`` a line within +-1.5 % of a harmonic of 50 or 60 Hz (EN 50160 +-1 % plus
+    Without ``mains_hz``, a line within +-1.5 % of a harmonic of 50 or 60 Hz (EN 50160 +-1 % plus
     margin) that stands clear of its local floor makes the channel's mains: at harmonics 1-5 the
-    peak of the phase-coherent zoomed spectrum (``lines``; else the 3 bins around the PSD peak)
-    must pass the level that noise passes with chance 1e-6 per frequency cell, and at any
-    harmonic up to ``max_hz`` the narrow-line test of ``spectral_lines`` counts too. The family
-    test of METHODS §4.3 then only chooses 50 or 60 Hz. When nothing stands out the result has
-    source 'none' and only its ``upper_power`` is meaningful. f0 is refined from the standing
-    harmonics 1-5: the maximum of their summed zoomed spectra (``lines``), else Hann-window
-    peak interpolation.
+    3 bins around a local maximum in the window must pass the level noise passes with chance
+    1e-4 per window, or, on contiguous blocks, the fundamental's peak in the phase-coherent zoom
+    must (``_coherent_fundamental``); at any harmonic up to ``max_hz`` whatever the narrow-line
+    test of ``spectral_lines`` would list counts too. The family test of METHODS §4.3 then only
+    chooses 50 or 60 Hz. When nothing stands out the result has source 'none' and only its
+    ``upper_power`` (the louder family's) is meaningful. f0 is refined from the standing
+    harmonics 1-5 (``_refine``). ``lines`` is the blocks' qcd.measures.zoom.LineBins (None: no
+    zoom).
     """
     df = float(freqs[1] - freqs[0])
     top = min(len(psd), int((max(max_hz, 5 * 61.0) * (1 + SEARCH_DEVIATION) + 12 * df) / df) + 30)
@@ -492,266 +490,3 @@ def _refine(stand: list[_Search], nominal: float, lines, scale2, df: float
         num += w * s.peak_hz / s.h
         den += w
     return float(np.clip(num / den, lo_f, hi_f)), True
-
-
-# ----------------------------------------------------------------------------- phase-coherent zoom
-
-def _hann_kernel(u: np.ndarray, n: int) -> np.ndarray:
-    """(1/n) sum_m w_m exp(-i 2 pi u m / n) for the periodic Hann window w, u in bins.
-
-    The sum of the three shifted Dirichlet kernels 0.5 D(u) - 0.25 D(u-1) - 0.25 D(u+1),
-    D(u) = exp(-i pi u (n-1)/n) sin(pi u) / (n sin(pi u/n)), with their common factors taken
-    out; whole-bin u (removable singularities) is nudged by 1e-9 bin."""
-    u = np.asarray(u, dtype=float)
-    u = np.where(np.abs(u - np.rint(u)) < 1e-9, u + 1e-9, u)
-    a = np.pi / n
-    bracket = (0.5 / np.sin(a * u) - 0.25 * np.exp(-1j * a) / np.sin(a * (u - 1))
-               - 0.25 * np.exp(1j * a) / np.sin(a * (u + 1)))
-    return np.exp(-1j * a * u * (n - 1)) * np.sin(np.pi * u) / n * bracket
-
-
-class LineBins:
-    """The complex DFT bins of each baseline block around the first mains harmonics.
-
-    From them the Hann-windowed spectrum of every block is evaluated at any frequency near a
-    harmonic (Y_b(nu) = sum_k X_bk G(nu - k), G the window's DTFT; exact up to the few bins
-    left out, whose weight falls as 1/distance^3), and the blocks of one continuous stretch are
-    summed with the phase a steady line would have at their start times: a line then adds up
-    coherently over up to 16 blocks while noise adds in power, which pins the frequency far
-    below one bin (common practice; the zoom is the periodogram of the longer stretch). Blocks
-    of different sweeps, whose relative timing the header may not give exactly, are added in
-    power only. Keeps the first ``keep`` blocks: with 64 s of a line that stands out, the
-    frequency is already known to a few mHz.
-    """
-
-    def __init__(self, n: int, fs: float, nominals: tuple[float, ...] = (50.0, 60.0),
-                 n_harm: int = DETECT_HARMONICS, keep: int = 64, scale: float = 1.0) -> None:
-        self.n, self.fs = n, fs
-        self.df = fs / n
-        self.scale2 = scale * scale
-        bins: set[int] = set()
-        for F in nominals:
-            for h in range(1, n_harm + 1):
-                c = h * F
-                half = c * SEARCH_DEVIATION + self.df
-                lo = int(math.floor((c - half) / self.df)) - _HALO - 2
-                hi = int(math.ceil((c + half) / self.df)) + _HALO + 2
-                bins.update(k for k in range(max(lo, 1), min(hi, n // 2) + 1))
-        self.bins = np.array(sorted(bins), dtype=int)
-        self._pos = {int(k): i for i, k in enumerate(self.bins)}
-        self.keep = keep
-        self._rows: list[np.ndarray] = []
-        self._start: list[int] = []
-        self._run: list[tuple[int, int]] = []
-        self._first: dict[int, int] = {}
-        self.count = 0                 # blocks kept
-        self.seen = 0                  # blocks offered (their index is the Welch block index)
-        self._excluded: frozenset[int] = frozenset()
-        self._cache: tuple | None = None
-        self._s2 = float(np.sum((0.5 - 0.5 * np.cos(2 * np.pi * np.arange(n) / n)) ** 2))
-
-    def add(self, X: np.ndarray, starts: np.ndarray, run: int) -> None:
-        """Blocks' rfft rows with their first sample's index on the stretch ``run``."""
-        m = X.shape[0]
-        take = min(m, self.keep - self.count)
-        if take > 0 and len(self.bins):
-            self._rows.append(X[:take, self.bins].copy())
-            first = self._first.setdefault(run, int(starts[0]))
-            for s in starts[:take]:
-                s = int(s)
-                self._start.append(s)
-                self._run.append((run, (s - first) // (_RUN_BLOCKS * self.n)))
-            self.count += take
-            self._cache = None
-        self.seen += m
-
-    def exclude(self, blocks: frozenset[int] | set[int]) -> None:
-        """Leave these blocks (Welch block indices, e.g. event blocks) out."""
-        self._excluded = frozenset(blocks)
-        self._cache = None
-
-    def _arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-        """(bins of the kept blocks, their start times in s, stretch index, stretches)."""
-        if self._cache is None:
-            keep = np.array([i not in self._excluded for i in range(self.count)], dtype=bool)
-            X = np.concatenate(self._rows)[keep] if self._rows else np.zeros((0, len(self.bins)))
-            runs = [r for r, ok in zip(self._run, keep) if ok]
-            ids = {r: i for i, r in enumerate(dict.fromkeys(runs))}
-            idx = np.array([ids[r] for r in runs], dtype=int)
-            start = np.array(self._start, dtype=float)[keep] / self.fs
-            self._cache = (X, start, idx, len(ids))
-        return self._cache
-
-    @property
-    def span_s(self) -> float:
-        """Length of the longest stretch summed with phase (s): the zoom's resolution 1/span."""
-        _, _, idx, _ = self._arrays()
-        return (int(np.bincount(idx).max()) if len(idx) else 1) * self.n / self.fs
-
-    @property
-    def kappa(self) -> float:
-        """Gamma shape of the zoom power of noise: (sum R)^2 / sum R^2 over stretches of R."""
-        _, _, idx, _ = self._arrays()
-        r = np.bincount(idx).astype(float) if len(idx) else np.ones(1)
-        return float(r.sum() ** 2 / float((r * r).sum()))
-
-    def power(self, f_hz: np.ndarray) -> np.ndarray:
-        """Zoomed density (unit**2/Hz, before ``scale2``) at the frequencies ``f_hz``: noise
-        averages to the Welch PSD's density, a steady line rises with the stretch length."""
-        f = np.atleast_1d(np.asarray(f_hz, dtype=float))
-        X, start, idx, n_runs = self._arrays()
-        nu = f / self.df
-        lo = int(math.floor(nu.min())) - _HALO
-        hi = int(math.ceil(nu.max())) + _HALO
-        ks = np.array([k for k in range(lo, hi + 1) if k in self._pos], dtype=int)
-        if not len(ks) or not len(idx):
-            return np.zeros(len(f))
-        # einsum, not a BLAS product: these matrices are small, and a threaded BLAS on a
-        # busy machine costs far more than the arithmetic
-        Y = np.einsum("bk,kf->bf", X[:, [self._pos[int(k)] for k in ks]],
-                      _hann_kernel(nu[None, :] - ks[:, None], self.n))
-        Y *= np.exp(-2j * np.pi * np.outer(start, f))
-        Z = np.zeros((n_runs, len(f)), dtype=complex)
-        np.add.at(Z, idx, Y)
-        # |Z|^2 per stretch, over all blocks, in the density scaling of hann_psd: 2/(fs sum w^2)
-        return (Z.real ** 2 + Z.imag ** 2).sum(axis=0) * 2.0 / (
-            self.fs * self._s2 * len(idx))
-
-
-# ----------------------------------------------------------------------------- short windows
-
-class HumFit:
-    """Mains hum by least squares in windows too short for the PSD to resolve the line.
-
-    Episodic voltage-clamp files often have pre-step baselines of 40-200 ms: their periodogram
-    bins are 5-25 Hz wide, so a 50 Hz line cannot be told from its neighbours. With the mains
-    frequency known (the rig's ``mains_hz``), each window is fitted with a quadratic baseline
-    (Legendre polynomials of degree 0-2) and a cosine/sine pair at every harmonic h f0 <=
-    ``max_hz`` and at every probe frequency (j + 1/2) f0 halfway between them (linear least
-    squares, common practice).
-
-    The power of a pair in one window is (a^2 + b^2)/2. At a probe there is no mains, so its
-    power is noise alone, and the noise density there is that power over the pair's gain
-    g = ((X'X)^-1_aa + (X'X)^-1_bb)/2 x fs/2 (the gain of locally white noise). A harmonic's
-    noise bias is its own gain times the density at h f0, interpolated between the probes
-    beside it linearly in log density against log frequency (exact for a power-law spectrum:
-    white, 1/f, 1/f^2), from the densities averaged over the windows, divided by the bias such
-    a product of powers has on means of N exponential powers (E[m^w] = Gamma(N + w) /
-    (Gamma(N) N^w) for each factor). Filtered, 1/f or any smooth
-    noise is thus corrected for where it is, not as white noise spread to Nyquist. Corrected
-    powers are averaged over windows (the phase differs from sweep to sweep, the power does not)
-    without clipping. Standard errors: the scatter of the raw powers over windows plus, by the
-    delta method, that of the probe densities. The quadratic baseline keeps slow drift out of
-    the lowest probe; on very steep spectra (drift-dominated below the fundamental) windows of
-    2.5-4 mains cycles still read within about 10 % (tested on a synthetic 1/f^3 floor and on a
-    real gap-free recording against the PSD method). Units: squared input units.
-    """
-
-    _POLY = 2           # baseline polynomial degree
-    MIN_CYCLES = 2.4    # shorter windows make the lowest probe nearly a baseline polynomial
-
-    def __init__(self, n: int, fs: float, line_hz: float, max_hz: float = 1000.0) -> None:
-        t = np.arange(n) / fs
-        top = min(max_hz, 0.45 * fs)
-        self.harmonics = [h for h in range(1, 41) if h * line_hz <= top]
-        nh = len(self.harmonics)
-        self.probes = [j + 0.5 for j in range(nh + 1) if (j + 0.5) * line_hz < 0.45 * fs]
-        cols = []
-        for f in [h * line_hz for h in self.harmonics] + [q * line_hz for q in self.probes]:
-            w = 2 * np.pi * f * t
-            cols += [np.cos(w), np.sin(w)]
-        X = np.column_stack(cols)
-        tc = (t - t.mean()) / max(t.max() - t.mean(), 1e-300)
-        A = np.column_stack([np.polynomial.legendre.legval(tc, [0] * k + [1])
-                             for k in range(self._POLY + 1)])
-        X = X - A @ np.linalg.lstsq(A, X, rcond=None)[0]   # orthogonal to the baseline
-        inv = np.linalg.inv(X.T @ X)
-        self.pinv = inv @ X.T
-        gain = 0.5 * (np.diag(inv)[0::2] + np.diag(inv)[1::2])
-        self.gain_h, self.gain_p = gain[:nh], gain[nh:]
-        self.line_hz = line_hz
-        self._raw = np.zeros((2, nh))              # sum, sum of squares of pair powers
-        self._tot = np.zeros(2)                    # ... of their sum over harmonics
-        self._den = np.zeros((2, len(self.probes)))  # ... of probe densities (power / gain)
-        self.count = 0
-
-    @classmethod
-    def fits(cls, n: int, fs: float, line_hz: float) -> bool:
-        """Whether windows of n samples can carry the fit: 2.4 mains cycles, spare dof."""
-        n_pairs = 2 * max(1, int(min(1000.0, 0.45 * fs) // line_hz)) + 1
-        return n / fs >= cls.MIN_CYCLES / line_hz and n >= 4 * n_pairs + 10
-
-    def add(self, blocks: np.ndarray) -> None:
-        """Add (n_windows, n) windows (any offset and slow drift)."""
-        C = np.einsum("bn,kn->bk", blocks, self.pinv)
-        pw = 0.5 * (C[:, 0::2] ** 2 + C[:, 1::2] ** 2)
-        nh = len(self.harmonics)
-        raw, den = pw[:, :nh], pw[:, nh:] / self.gain_p
-        tot = raw.sum(axis=1)
-        self._raw += (raw.sum(axis=0), (raw * raw).sum(axis=0))
-        self._tot += (float(tot.sum()), float(tot @ tot))
-        self._den += (den.sum(axis=0), (den * den).sum(axis=0))
-        self.count += blocks.shape[0]
-
-    def _mean_var(self, acc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(mean, variance of the mean) from running sums; None-free for count < 3 (nan)."""
-        n = self.count
-        mean = acc[0] / n
-        var = (np.maximum(acc[1] / n - mean * mean, 0.0) / (n - 1)) if n >= 3 else \
-            np.full(np.shape(mean), np.nan)
-        return mean, var
-
-    def result(self) -> Hum:
-        """The fitted hum as a Hum (source 'declared'; line_hz is the declared frequency)."""
-        nh = len(self.harmonics)
-        if not self.count:
-            rows = tuple((h, h * self.line_hz, 0.0, 0.0) for h in self.harmonics)
-            return Hum(self.line_hz, self.line_hz, "declared", False, None, rows, 0.0, 0.0)
-        n = self.count
-        raw, raw_var = self._mean_var(self._raw)
-        tot, tot_var = self._mean_var(self._tot)
-        den, den_var = self._mean_var(self._den)
-        # E[m^w] for m the mean of n exponential powers over its expectation (Gamma(n, 1/n)):
-        # the interpolated density is a product of such powers; divide the bias it leaves out
-        def mean_pow(w: float) -> float:
-            return math.exp(math.lgamma(n + w) - math.lgamma(n) - w * math.log(n))
-        bias = np.zeros(nh)
-        # d bias_h / d den_j, for the delta-method variance of the summed bias
-        dbias = np.zeros((nh, len(self.probes)))
-        for i, h in enumerate(self.harmonics):
-            lo, hi = i, i + 1                      # probes h - 1/2 and h + 1/2
-            if hi < len(self.probes) and den[lo] > 0 and den[hi] > 0:
-                w_lo = math.log((h + 0.5) / h) / math.log((h + 0.5) / (h - 0.5))
-                w_hi = 1.0 - w_lo
-                bias[i] = self.gain_h[i] * math.exp(
-                    w_lo * math.log(den[lo]) + w_hi * math.log(den[hi])) / (
-                    mean_pow(w_lo) * mean_pow(w_hi))
-                dbias[i, lo] = bias[i] * w_lo / den[lo]
-                dbias[i, hi] = bias[i] * w_hi / den[hi]
-            elif hi < len(self.probes):            # a probe without noise (digital zero)
-                bias[i] = self.gain_h[i] * 0.5 * (den[lo] + den[hi])
-                dbias[i, lo] = dbias[i, hi] = 0.5 * self.gain_h[i]
-            else:
-                bias[i] = self.gain_h[i] * den[lo]
-                dbias[i, lo] = self.gain_h[i]
-        p = raw - bias
-        if n >= 3:
-            var_h = raw_var + (dbias * dbias) @ den_var
-            var_t = float(tot_var) + float((dbias.sum(axis=0) ** 2) @ den_var)
-        else:
-            # no scatter to go by: a window's pair power of noise is exponential, its SD its mean
-            var_h = (bias + np.maximum(p, 0.0)) ** 2 / n
-            var_t = float(var_h.sum())
-        se = np.sqrt(var_h)
-        rows = tuple((h, h * self.line_hz, float(p[i]), float(se[i]))
-                     for i, h in enumerate(self.harmonics))
-        # a harmonic 1-5 whose power stands 3 standard errors above zero (one-sided 0.13 %
-        # each): a line of the declared mains seen in the fit
-        stand = tuple(h for h, _, ph, e in rows
-                      if h <= DETECT_HARMONICS and ph > _FIT_STANDS * e and ph > 0)
-        return Hum(self.line_hz, self.line_hz, "declared", False, None, rows,
-                   float(p.sum()), math.sqrt(max(var_t, 0.0)), stand)
-
-    def powers(self) -> np.ndarray:
-        """Mean corrected power per harmonic (not clipped), squared input units."""
-        return np.array([r[2] for r in self.result().harmonics])
