@@ -370,18 +370,26 @@ def _with(m: Measure, value: float) -> Measure:
     return Measure(m.name, value, m.unit)
 
 
-def _interval(evaluate: Callable[[float], tuple | None], m: Any, se: float) -> tuple | None:
+def _interval(evaluate: Callable[[float], tuple | None], m: Measure, se: float,
+              absolute: bool = False) -> tuple | None:
     """evaluate(value) -> (bad, clear, ...); with a standard error the whole interval
     value -+ 2 SE must be bad to count as bad, and all of it clear to count as clear (a value
-    its own noise could have moved across the limit is neither). Other fields from the value."""
+    its own noise could have moved across the limit is neither). ``absolute``: the rule
+    compares |value|, so the interval is taken of |value| (from 0 when it spans zero). Other
+    fields come from the value itself."""
     if isinstance(m.value, bool) or _number(m.value) is None:
         return evaluate(m.value)
     point = evaluate(float(m.value))
     if point is None or not se:
         return point
     v = float(m.value)
-    low = v - _SE_SIGMAS * se
-    ends = [evaluate(max(low, 1e-300) if v > 0 else low), evaluate(v + _SE_SIGMAS * se)]
+    low, high = v - _SE_SIGMAS * se, v + _SE_SIGMAS * se
+    if absolute:
+        low, high = (0.0 if low <= 0 <= high else min(abs(low), abs(high))), \
+            max(abs(low), abs(high))
+    elif v > 0:
+        low = max(low, 1e-300)           # a positive measure: its interval stays positive
+    ends = [evaluate(low), evaluate(high)]
     if any(e is None for e in ends):
         return point
     bad = all(e[0] for e in ends)
@@ -420,7 +428,8 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
             for rule in rules.limits:
                 if rule.measure != m.name or not _matches(rule.modes, mode):
                     continue
-                res = _interval(lambda x: _limit(rule, _with(m, x)), m, _se(ch, m.name))
+                res = _interval(lambda x: _limit(rule, _with(m, x)), m, _se(ch, m.name),
+                                rule.absolute)
                 if res is None:
                     continue
                 bad, clear_ok = res[:2]

@@ -337,3 +337,18 @@ def test_a_band_counts_on_its_own_only_beyond_the_broadband_factor(rules):
     assert "vibration" in hint and "broadband" in hint
     assert hint.index("vibration") < hint.index("broadband")      # biggest growth first
     assert "mid-band" not in hint and "slow fluctuation" not in hint
+
+
+def test_a_limit_counts_a_value_with_an_error_only_when_its_whole_interval_is_beyond(rules):
+    # access_change_pct with its standard error against the 20 % limit on |change| (common
+    # practice): 30 +- 2 % is beyond it, 24 +- 5 % could be inside it (neither bad nor clear),
+    # -3 +- 15 % spans zero change (its |interval| starts at 0: not bad)
+    def check(value, se):
+        fm = _fm({"access_change_pct": (value, "%"), "access_change_pct_se": (se, "%")})
+        return _by_rule(judge(fm, "r", _no_history, rules, 0))["access_change"]
+    assert check(30.0, 2.0).bad
+    f = check(24.0, 5.0)
+    assert not f.bad and not f.clear
+    f = check(-3.0, 15.0)
+    assert not f.bad and not f.clear
+    assert check(5.0, 1.0).clear and not check(5.0, 1.0).bad
