@@ -25,8 +25,8 @@ from watchdog.observers.polling import PollingObserver
 
 from qcd.errors import RecordingError
 
-__all__ = ["Ready", "GaveUp", "Intake", "is_candidate_name", "header_fits", "held_open",
-           "is_network_path", "scan_folder", "recordings_in"]
+__all__ = ["Ready", "GaveUp", "Hint", "Intake", "is_candidate_name", "header_fits",
+           "held_open", "is_network_path", "scan_folder", "recordings_in"]
 
 log = logging.getLogger("qcd.intake")
 
@@ -364,29 +364,45 @@ def recordings_in(path: Path) -> list[Path]:
     return sorted(p for p, _ in scan_folder(path, tuple(f"*{s}" for s in SUFFIXES)))
 
 
-class _Inbox(FileSystemEventHandler):
-    """Only enqueues (rig, path, closed); deletions as (rig, path, None). Runs on watchdog's thread."""
+@dataclass(frozen=True)
+class Hint:
+    """What an observer saw at ``path`` in ``rig``'s folder; ``what`` is one of:
 
-    def __init__(self, q: "queue.Queue", rig: str, root: Path) -> None:
+    'written' (created or modified), 'closed' (closed after writing, Linux), 'removed'
+    (deleted or moved away), 'folder' (a folder made or moved in: look inside), 'root_gone'
+    (the rig folder itself was deleted).
+    """
+    rig: str
+    path: str
+    what: str
+
+
+class _Inbox(FileSystemEventHandler):
+    """Only enqueues a Hint per event. Runs on watchdog's thread."""
+
+    def __init__(self, q: "queue.Queue[Hint]", rig: str, root: Path) -> None:
         self._q, self._rig, self._root = q, rig, root
+
+    def _put(self, path: Any, what: str) -> None:
+        self._q.put(Hint(self._rig, os.fsdecode(path), what))
 
     def on_any_event(self, event) -> None:
         t = type(event)
         if t in (FileCreatedEvent, FileModifiedEvent):
-            self._q.put((self._rig, os.fsdecode(event.src_path), False))
+            self._put(event.src_path, "written")
         elif t is FileClosedEvent:                      # close after write (Linux)
-            self._q.put((self._rig, os.fsdecode(event.src_path), True))
+            self._put(event.src_path, "closed")
         elif t is FileMovedEvent:
-            self._q.put((self._rig, os.fsdecode(event.src_path), None))
-            self._q.put((self._rig, os.fsdecode(event.dest_path), False))
+            self._put(event.src_path, "removed")
+            self._put(event.dest_path, "written")
         elif t is FileDeletedEvent:
-            self._q.put((self._rig, os.fsdecode(event.src_path), None))
+            self._put(event.src_path, "removed")
         elif t is DirMovedEvent:
-            self._q.put((self._rig, os.fsdecode(event.dest_path), "dir"))
+            self._put(event.dest_path, "folder")
         elif t is DirCreatedEvent:           # files may land before its watch is added
-            self._q.put((self._rig, os.fsdecode(event.src_path), "dir"))
+            self._put(event.src_path, "folder")
         elif t is DirDeletedEvent and os.fsdecode(event.src_path) == os.fspath(self._root):
-            self._q.put((self._rig, os.fspath(self._root), "gone"))
+            self._put(self._root, "root_gone")
         # opened / closed_no_write (our own reads), attrib, dir events: nothing to do
 
 

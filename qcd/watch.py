@@ -21,8 +21,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
-from qcd.intake import (GaveUp, Intake, Ready, is_candidate_name, is_network_path, scan_folder,
-                        _FolderWatch)
+from qcd.intake import (GaveUp, Hint, Intake, Ready, is_candidate_name, is_network_path,
+                        scan_folder, _FolderWatch)
 
 __all__ = ["Service", "status", "format_status", "setup_logging", "is_network_path",
            "scan_folder", "default_workers", "make_sender", "LOG_NAME"]
@@ -137,7 +137,7 @@ class Service:
                              give_up_s=config.give_up_hours * 3600.0, stat=stat)
         self._stat = stat
         self._rigs = {r.name: r for r in config.rigs}
-        self._events: "queue.Queue" = queue.Queue()
+        self._events: "queue.Queue[Hint]" = queue.Queue()
         self._folders = [_FolderWatch(r, Path(os.path.abspath(f)), self._events,
                                       poll_interval_s=poll_interval_s)
                          for r in config.rigs for f in r.folders]
@@ -303,18 +303,19 @@ class Service:
     def _drain_events(self, now: float) -> None:
         while True:
             try:
-                rig_name, path, closed = self._events.get_nowait()
+                hint = self._events.get_nowait()
             except queue.Empty:
                 return
+            rig_name = hint.rig
             rig = self._rigs.get(rig_name)
             if rig is None:
                 continue
-            p = Path(path)
-            if closed is None:
+            p = Path(hint.path)
+            if hint.what == "removed":
                 self.intake.discard(rig_name, p)
-            elif closed == "gone":
+            elif hint.what == "root_gone":
                 self._last_folder_check = -1e18      # check the folders on this step
-            elif closed == "dir":                    # a folder moved in or made: look inside
+            elif hint.what == "folder":              # a folder moved in or made: look inside
                 root = self._root_of(rig, p)
                 if root is None or not is_candidate_name(p / "x", ("x",), root):
                     continue                         # a hidden folder
@@ -322,7 +323,7 @@ class Service:
                     if self._needs_measuring(rig_name, fp, st):
                         self.intake.offer(rig_name, fp, now, live=True)
             elif is_candidate_name(p, rig.patterns, self._root_of(rig, p)):
-                self.intake.offer(rig_name, p, now, live=True, closed=bool(closed))
+                self.intake.offer(rig_name, p, now, live=True, closed=hint.what == "closed")
 
     def _root_of(self, rig, p: Path) -> Path | None:
         for fw in self._folders:
