@@ -896,29 +896,22 @@ def _file_facts(p: Path, digest: bool) -> dict[str, Any]:
 
 def analyze_path(path: Any, *, pulse: Any = None, mains_hz: float | None = None,
                  mode: str | None = None, digest: bool = True,
-                 chunk_size: int = 1 << 20) -> FileMeasures:
-    """Open, measure and close one file. Never raises for a bad file: status 'error' instead.
+                 chunk_size: int = 1 << 20, recording: Any = None) -> FileMeasures:
+    """Open, measure and close one file. A bad file gives status 'error' instead of raising.
 
     ``digest`` computes the file's sha256 (for the store's duplicate check); ``qcd scan``
-    without ``--store`` skips it.
+    without ``--store`` skips it. ``recording``: the file's header already read (by intake).
+    Any other exception is a bug in qcd: ``pipeline.measure`` stores it as 'internal'.
     """
     p = Path(path)
     facts = _file_facts(p, digest)
     try:
-        with open_recording(p) as rec:
+        with (recording if recording is not None else open_recording(p)) as rec:
             fm = analyze(rec, pulse=pulse, mains_hz=mains_hz, mode=mode,
                          chunk_size=chunk_size)
     except RecordingError as e:
         return FileMeasures(path=str(p), status="error", error=str(e), error_kind=e.kind,
                             **facts)
-    except MemoryError as e:
-        return FileMeasures(path=str(p), status="error", error_kind="internal",
-                            error=f"{p}: out of memory while measuring ({e})", **facts)
-    except Exception as e:  # a bug in qcd: logged with its traceback, stored as 'internal'
-        log.exception("internal error while measuring %s", p)
-        return FileMeasures(path=str(p), status="error", error_kind="internal",
-                            error=f"{p}: internal error while measuring "
-                                  f"({type(e).__name__}: {e})", **facts)
     return replace(fm, **facts)
 
 

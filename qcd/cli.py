@@ -190,13 +190,6 @@ def _scan_files(paths: list[Path]) -> list[Path]:
     return out
 
 
-def _scan_one(job: tuple) -> FileMeasures:
-    """Measure one file (runs in a worker process with --workers)."""
-    from qcd.analyze import analyze_path
-    path, pulse, mains_hz, mode = job
-    return analyze_path(path, pulse=pulse, mains_hz=mains_hz, mode=mode, digest=False)
-
-
 _SCAN_MODES = {"voltage_clamp": "VC", "current_clamp": "CC", "extracellular": "EXT",
                "unknown": "?"}
 
@@ -239,6 +232,8 @@ def _scan_row(fm: FileMeasures, width: int = 22) -> str:
 
 
 def _cmd_scan(args: argparse.Namespace) -> int:
+    if args.workers < 1:
+        raise ConfigError(None, "workers", f"needs at least 1, got {args.workers}")
     if args.store:
         # measure -> store -> judge -> alerts -> delivery, as the service does (qcd.pipeline)
         import time
@@ -272,7 +267,8 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             what = "ok" if fm.status == "ok" else f"error ({fm.error_kind}): {fm.error}"
             print(f"stored  {fm.path}  {what}", flush=True)
         with Store(cfg.database) as store:
-            res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said)
+            res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
+                       workers=args.workers)
         failed = sum(fm.status != "ok" for fm in res.files)
         print(f"qcd scan: {len(res.files)} files stored for rig {rig.name}, {failed} failed")
         for a in res.opened:
@@ -290,26 +286,20 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             print("qcd scan: no *.abf files found", file=sys.stderr)
         return EXIT_FAILED if failed or ob.get("stuck", 0) else EXIT_OK
     import json
-    import multiprocessing
-    from concurrent.futures import ProcessPoolExecutor
 
-    from qcd.config import parse_pulse
-    pulse = parse_pulse(args.pulse) if args.pulse else None
-    if args.workers < 1:
-        raise ConfigError(None, "workers", f"needs at least 1, got {args.workers}")
+    from qcd.config import RigConfig, parse_pulse
+    from qcd.pipeline import measure_all
+    # no config: the declared pulse, mains and mode of the command line, for an unnamed rig
+    rig = RigConfig("", (), test_pulse=parse_pulse(args.pulse) if args.pulse else None,
+                    mains_hz=args.mains, mode=args.mode)
     files = _scan_files(list(args.paths))
-    jobs = [(f, pulse, args.mains, args.mode) for f in files]
     progress = sys.stderr.isatty() and len(files) > 1
     if not args.json:
         print(f"{'file':<22} {'mode':<4}{'noise_rms':>10} {'rms_1k':>10} {'hum@line_hz':>15} "
               f"{'test pulse':<28} status")
     failed = 0
-    # spawn, not fork: the workers start clean whatever threads the parent holds
-    pool = (ProcessPoolExecutor(max_workers=args.workers,
-                                mp_context=multiprocessing.get_context("spawn"))
-            if args.workers > 1 else None)
+    results = measure_all(files, rig, args.workers, digest=False)
     try:
-        results = pool.map(_scan_one, jobs) if pool else map(_scan_one, jobs)
         for i, fm in enumerate(results, 1):
             if progress:
                 print("\r" + " " * 79 + "\r", end="", file=sys.stderr)
@@ -322,8 +312,7 @@ def _cmd_scan(args: argparse.Namespace) -> int:
                 print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
                       file=sys.stderr, flush=True)
     finally:
-        if pool:
-            pool.shutdown(cancel_futures=True)
+        results.close()                      # stops the worker processes
     if progress:
         print("\r" + " " * 79 + "\r", end="", file=sys.stderr, flush=True)
     if not files:
@@ -354,8 +343,8 @@ def _cmd_watch(args: argparse.Namespace) -> int:
 
 def _cmd_status(args: argparse.Namespace) -> int:
     import time
-    from qcd import watch
     from qcd.config import find_config, load_config
+    from qcd.status import format_status, status
     from qcd.store import Store
     cfg = load_config(find_config(args.config))
     if not cfg.database.is_file():
@@ -364,8 +353,8 @@ def _cmd_status(args: argparse.Namespace) -> int:
         return EXIT_FAILED
     with Store(cfg.database) as store:
         now = time.time()
-        st = watch.status(store, now)
-    print(watch.format_status(st, now))
+        st = status(store, now)
+    print(format_status(st, now))
     return EXIT_OK if st["alive"] else EXIT_FAILED
 
 

@@ -175,8 +175,7 @@ def synthesize(spec: FileSpec, kind: str) -> tuple[np.ndarray, float, str, bool]
     return a * 1e3, _FIELD_FS, "mV", True
 
 
-def _build_one(args: tuple) -> str:
-    folder, spec, kind = args
+def _build_one(folder: str, spec: FileSpec, kind: str) -> str:
     sweeps, fs, unit, gap_free = synthesize(spec, kind)
     path = Path(folder) / spec.relpath
     write_abf1(path, sweeps, fs, unit, spec.recorded_at, gap_free=gap_free)
@@ -189,21 +188,12 @@ def build_lab(folder: Path, plan: LabPlan,
     """Write every planned file under ``folder``; returns their paths, oldest first.
 
     ``workers`` > 1 writes in that many processes (the files are independent)."""
+    from qcd.workers import imap
     kinds = {r.name: r.kind for r in plan.rigs}
     jobs = [(str(folder), spec, kinds[spec.rig]) for spec in plan.files]
     out: list[Path] = []
-    if workers > 1 and len(jobs) > 8:
-        import concurrent.futures as cf
-        import multiprocessing
-        ctx = multiprocessing.get_context("spawn" if sys.platform == "win32" else "fork")
-        with cf.ProcessPoolExecutor(workers, mp_context=ctx) as pool:
-            for n, p in enumerate(pool.map(_build_one, jobs, chunksize=8), start=1):
-                out.append(Path(p))
-                if progress:
-                    progress(n, len(jobs))
-        return out
-    for n, job in enumerate(jobs, start=1):
-        out.append(Path(_build_one(job)))
+    for n, p in enumerate(imap(_build_one, jobs, workers if len(jobs) > 8 else 1), start=1):
+        out.append(Path(p))
         if progress:
             progress(n, len(jobs))
     return out
@@ -308,7 +298,8 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
     from qcd.ruleset import load_rules
     from qcd.report import build_report, render_html, render_text
     from qcd.store import Store
-    from qcd.watch import Service, default_workers, make_sender
+    from qcd.watch import Service, make_sender
+    from qcd.workers import default_workers
     out = out or sys.stdout
     say = _printer(out)
     t_start = time.monotonic()

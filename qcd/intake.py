@@ -13,9 +13,9 @@ import logging
 import os
 import queue
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable
+from typing import TYPE_CHECKING, Any, Callable, Iterable
 
 from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
                              FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
@@ -25,8 +25,12 @@ from watchdog.observers.polling import PollingObserver
 
 from qcd.errors import RecordingError
 
-__all__ = ["Ready", "GaveUp", "Hint", "Intake", "is_candidate_name", "header_fits",
-           "held_open", "is_network_path", "scan_folder", "recordings_in"]
+if TYPE_CHECKING:
+    from qcd.recording import Recording
+
+__all__ = ["Ready", "GaveUp", "Hint", "Intake", "is_candidate_name", "read_header",
+           "header_fits", "carried", "held_open", "is_network_path", "scan_folder",
+           "recordings_in"]
 
 log = logging.getLogger("qcd.intake")
 
@@ -37,7 +41,8 @@ _NETWORK_FS = {"cifs", "smb3", "smbfs", "nfs", "nfs4", "fuse.sshfs", "sshfs", "9
                "fuse.rclone", "afpfs", "davfs", "fuse.davfs2"}
 
 Stat = Callable[[str], os.stat_result]
-HeaderCheck = Callable[[Path, int], "str | None"]
+# (why the file is not ready yet, or None; its header when it was read)
+HeaderCheck = Callable[[Path, int], "tuple[str | None, Any]"]
 
 
 def is_candidate_name(path: Path, patterns: Iterable[str], root: Path | None = None) -> bool:
@@ -56,29 +61,50 @@ def is_candidate_name(path: Path, patterns: Iterable[str], root: Path | None = N
     return any(fnmatch.fnmatch(low, pat.lower()) for pat in patterns)
 
 
-def header_fits(path: Path, size: int) -> str | None:
-    """None when the header parses and its data fits ``size``; else why the file is not ready.
+def read_header(path: Path, size: int) -> tuple[str | None, Recording | None]:
+    """(None, the header) when it parses and its data fits ``size``; else (why the file is not
+    ready, None).
 
     Only 'truncated' (and an empty file) mean "still being written"; any other bad header is
-    the pipeline's business (it stores the error), so the file counts as ready.
+    the pipeline's business (it stores the error), so the file counts as ready, with no
+    header. The header is the open Recording when ``carried`` keeps it (the measuring step
+    reads from it and closes it), else None (the measuring step opens the file again).
     """
     if size == 0:
-        return "empty so far"
+        return "empty so far", None
     from qcd.recording import not_finished, open_recording
     try:
         why = not_finished(path, size)        # HDF5: superblock end-of-file address vs size
         if why is not None:
-            return why
-        with open_recording(path):
-            return None
+            return why, None
+        return None, carried(open_recording(path))
     except RecordingError as e:
         if e.kind == "truncated":
-            return e.detail
+            return e.detail, None
         if e.kind == "empty":
-            return "empty so far"
-        return None
+            return "empty so far", None
+        return None, None
     except Exception:                         # the pipeline will record what is wrong
-        return None
+        return None, None
+
+
+def header_fits(path: Path, size: int) -> str | None:
+    """None when the header parses and its data fits ``size``; else why the file is not ready."""
+    return read_header(path, size)[0]
+
+
+# Formats whose Recording holds no file handle between reads and is plain data, so it can wait
+# in the queue and go to a measuring process as it is (the ABF reader's memmap windows).
+_CARRIED_FORMATS = ("ABF1", "ABF2")
+
+
+def carried(rec: Recording) -> Recording | None:
+    """``rec`` when it can be measured later, in another process, from the header read now;
+    else None, with ``rec`` closed (a reader may hold the file open until ``close()``)."""
+    if rec.format in _CARRIED_FORMATS:
+        return rec
+    rec.close()
+    return None
 
 
 def held_open(path: Path) -> bool:
@@ -107,11 +133,13 @@ def held_open(path: Path) -> bool:
 
 @dataclass(frozen=True)
 class Ready:
+    """A settled file to measure; ``header`` is its Recording as intake read it (or None)."""
     rig: str
     path: Path
     size: int
     mtime: float
     live: bool
+    header: Recording | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -148,7 +176,7 @@ class Intake:
     """
 
     def __init__(self, *, settle_s: float, give_up_s: float, stat: Stat = os.stat,
-                 header_check: HeaderCheck = header_fits,
+                 header_check: HeaderCheck = read_header,
                  probe: Callable[[Path], bool] = held_open) -> None:
         self.settle_s = float(settle_s)
         self.give_up_s = float(give_up_s)
@@ -261,7 +289,7 @@ class Intake:
             self._retry_or_give_up(it, now, gave_up, stable=False,
                                    due=it.stable_since + self.settle_s)
             return
-        why = self._header(it.path, size)
+        why, header = self._header(it.path, size)
         if why is None and self._probe(it.path):
             why = "held open by another program"
         if why is not None:
@@ -269,7 +297,7 @@ class Intake:
             self._retry_or_give_up(it, now, gave_up, stable=True)
             return
         self._items.pop(key, None)
-        ready.append(Ready(it.rig, it.path, size, mtime, it.live))
+        ready.append(Ready(it.rig, it.path, size, mtime, it.live, header))
 
     def _retry_or_give_up(self, it: _Item, now: float, gave_up: list[GaveUp], *, stable: bool,
                           due: float | None = None) -> None:

@@ -1,34 +1,38 @@
-"""One home for the step order: analyze -> judge -> alerts -> store (one transaction) -> deliver.
+"""One home for the step order: measure -> judge -> alerts -> store (one transaction) -> deliver.
 
-``process`` measures and commits one file; ``commit`` is the second half for a FileMeasures
-measured elsewhere (the service's workers); ``flush_digest`` ends a backlog with one message;
-``tick`` announces alerts whose silence ended. Only here are unexpected errors caught: a bad
-file becomes an error row, a bug becomes error_kind 'internal' (logged with its traceback).
-Imports qcd.analyze, qcd.recording (header times for ordering), qcd.judge, qcd.alerts,
+``measure`` is the one measuring path (the service's workers, ``qcd scan`` with or without
+``--store``); ``commit`` judges and stores what it measured; ``process`` = ``commit(measure())``.
+``flush_digest`` ends a backlog with one message; ``tick`` announces alerts whose silence
+ended. Only here are unexpected errors caught: a bad file becomes an error row, a bug becomes
+error_kind 'internal' (logged with its traceback). Imports qcd.analyze, qcd.results,
+qcd.recording and qcd.intake (headers for ordering), qcd.judge, qcd.alerts, qcd.workers,
 qcd.notify, qcd.errors.
 """
 from __future__ import annotations
 
+import hashlib
 import logging
 import os
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable, Iterable
+from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
 from qcd import alerts
 from qcd.analyze import analyze_path
-from qcd.errors import RecordingError, StoreError
+from qcd.errors import StoreError
 from qcd.judge import Finding, judge
 from qcd.results import FileMeasures, file_time
+from qcd.workers import imap
 
 if TYPE_CHECKING:
     from qcd.config import RigConfig
     from qcd.notify import Sender
+    from qcd.recording import Recording
     from qcd.ruleset import Rules
     from qcd.store import Store
 
-__all__ = ["process", "commit", "flush_digest", "tick", "judge_file", "scan", "ScanResult",
-           "recording_order", "DIGEST_FILES"]
+__all__ = ["measure", "measure_all", "process", "commit", "error_file", "flush_digest", "tick",
+           "judge_file", "scan", "ScanResult", "recording_order", "DIGEST_FILES"]
 
 # More files than this in one ``scan`` is a backlog: one digest instead of a message per file.
 DIGEST_FILES = 20
@@ -36,10 +40,48 @@ DIGEST_FILES = 20
 log = logging.getLogger(__name__)
 
 
-def _error(path: Any, kind: str, reason: str, fm: FileMeasures | None = None) -> FileMeasures:
-    if fm is not None:
-        return replace(fm, status="error", error_kind=kind, error=reason)
-    return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind)
+def error_file(path: str | os.PathLike, kind: str, reason: str, *, size: int | None = None,
+               mtime: float | None = None, sha256: str | None = None) -> FileMeasures:
+    """The FileMeasures of a file that could not be measured (``kind`` as in qcd.errors)."""
+    return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind,
+                        size=size, mtime=mtime, sha256=sha256)
+
+
+def _facts(path: str | os.PathLike, digest: bool) -> dict[str, Any]:
+    """Size, mtime and (with ``digest``) sha256 of a file whose measuring failed."""
+    try:
+        st = os.stat(path)
+        out: dict[str, Any] = {"size": int(st.st_size), "mtime": float(st.st_mtime)}
+        if digest:
+            h = hashlib.sha256()
+            with open(path, "rb") as f:
+                for block in iter(lambda: f.read(1 << 22), b""):
+                    h.update(block)
+            out["sha256"] = h.hexdigest()
+        return out
+    except OSError:
+        return {}
+
+
+def measure(path: str | os.PathLike, rig: RigConfig, *, recording: Recording | None = None,
+            digest: bool = True) -> FileMeasures:
+    """Measure one file with the rig's test pulse, mains frequency and mode. Never raises.
+
+    ``recording``: its header already read (intake's ``Ready.header``); ``digest``: compute
+    the sha256 the store's duplicate check uses. The one place where an unexpected exception
+    becomes an 'internal' error row (logged with its traceback).
+    """
+    pulse, mains_hz, mode = rig.test_pulse, rig.mains_hz, rig.mode
+    try:
+        return analyze_path(path, pulse=pulse, mains_hz=mains_hz, mode=mode, digest=digest,
+                            recording=recording)
+    except MemoryError as e:
+        reason = f"{os.fspath(path)}: out of memory while measuring ({e})"
+    except Exception as e:
+        log.exception("internal error while measuring %s", path)
+        reason = (f"{os.fspath(path)}: internal error while measuring "
+                  f"({type(e).__name__}: {e})")
+    return error_file(path, "internal", reason, **_facts(path, digest))
 
 
 def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float
@@ -107,8 +149,8 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
         raise
     except Exception as e:
         log.exception("judging %s", fm.path)
-        fm = _error(fm.path, "internal", f"{fm.path}: internal error while judging "
-                                        f"({type(e).__name__}: {e})", fm)
+        fm = replace(fm, status="error", error_kind="internal",
+                     error=f"{fm.path}: internal error while judging ({type(e).__name__}: {e})")
         findings, changed, messages = [], [], []
     store.commit_file(name, fm, analysed_at=now, findings=findings, alert_states=changed,
                       messages=messages)
@@ -120,16 +162,8 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
 
 def process(path: str | os.PathLike, rig: RigConfig, store: Store, rules: Rules, now: float, *,
             sender: Sender | None = None, batch: bool = False) -> FileMeasures:
-    """Measure one file (rig's test pulse and mains frequency) and ``commit`` it."""
-    try:
-        fm = analyze_path(path, pulse=rig.test_pulse, mains_hz=rig.mains_hz, mode=rig.mode)
-    except RecordingError as e:              # analyze_path should return these; be safe
-        fm = _error(path, e.kind, str(e))
-    except Exception as e:
-        log.exception("measuring %s", path)
-        fm = _error(path, "internal", f"{os.fspath(path)}: internal error while measuring "
-                                      f"({type(e).__name__}: {e})")
-    return commit(fm, rig, store, rules, now, sender, batch=batch)
+    """``measure`` one file and ``commit`` it."""
+    return commit(measure(path, rig), rig, store, rules, now, sender, batch=batch)
 
 
 def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None = None
@@ -159,24 +193,41 @@ def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None
     return messages
 
 
-def _recording_time(path: Path) -> tuple[float, str]:
-    """Header time of a file (for ordering), else its mtime; unreadable files sort by mtime."""
+def _opened(path: Path) -> tuple[tuple[float, str], Recording | None]:
+    """(sort key, the file's header to measure from, or None).
+
+    The key is the header time, else the mtime, then the name; a file that cannot be opened
+    sorts by its mtime and ``measure`` stores what is wrong with it. A header that can go to
+    a measuring process as it is (``intake.carried``) is kept; ``measure`` closes it.
+    """
+    from qcd.intake import carried
     from qcd.recording import open_recording
     try:
-        with open_recording(path) as rec:
-            if rec.recorded_at is not None:
-                return file_time(rec.recorded_at), os.fspath(path)
+        rec = open_recording(path)
     except Exception:                        # a bad file is measured (and reported) later
-        pass
+        return _by_mtime(path), None
+    when = rec.recorded_at
+    rec = carried(rec)
+    if when is not None:
+        return (file_time(when), os.fspath(path)), rec
+    return _by_mtime(path), rec
+
+
+def _by_mtime(path: Path) -> tuple[float, str]:
     try:
         return path.stat().st_mtime, os.fspath(path)
     except OSError:
         return 0.0, os.fspath(path)
 
 
+def _in_order(paths: Iterable[str | os.PathLike]) -> list[tuple[Path, Recording | None]]:
+    opened = [(Path(p), _opened(Path(p))) for p in paths]
+    return [(p, rec) for p, (_, rec) in sorted(opened, key=lambda x: x[1][0])]
+
+
 def recording_order(paths: Iterable[str | os.PathLike]) -> list[Path]:
     """Files sorted by recording time (header, else mtime), then by name."""
-    return sorted((Path(p) for p in paths), key=_recording_time)
+    return [p for p, _ in _in_order(paths)]
 
 
 @dataclass
@@ -188,22 +239,42 @@ class ScanResult:
     learning: dict[str, int] = field(default_factory=dict)  # mode -> good files, still learning
 
 
+def measure_all(paths: list[Path], rig: RigConfig, workers: int = 1, *, digest: bool = True,
+                headers: list[Recording | None] | None = None) -> Iterator[FileMeasures]:
+    """``measure`` each file, in ``workers`` processes (qcd.workers), results in ``paths`` order."""
+    headers = headers or [None] * len(paths)
+
+    def crashed(i: int, reason: str) -> FileMeasures:
+        return error_file(paths[i], "internal", f"{os.fspath(paths[i])}: {reason}",
+                          **_facts(paths[i], digest))
+    return imap(_measure_job, [(p, rig, h, digest) for p, h in zip(paths, headers)], workers,
+                on_crash=crashed)
+
+
+def _measure_job(path: Path, rig: RigConfig, recording: Recording | None, digest: bool
+                 ) -> FileMeasures:
+    return measure(path, rig, recording=recording, digest=digest)
+
+
 def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules: Rules, *,
-         clock: Callable[[], float], sender: Sender | None = None, on_file: Callable[[FileMeasures], None] | None = None,
-         batch: bool | None = None) -> ScanResult:
+         clock: Callable[[], float], sender: Sender | None = None,
+         on_file: Callable[[FileMeasures], None] | None = None, batch: bool | None = None,
+         workers: int = 1) -> ScanResult:
     """``qcd scan --store``: measure -> store -> judge -> alerts -> delivery, in recording order.
 
-    ``batch`` (default: more than DIGEST_FILES files) ends with one digest instead of one
-    message per file.
+    ``workers`` > 1 measures in that many processes; every result is committed here, in
+    recording order, through this one writer. ``batch`` (default: more than DIGEST_FILES
+    files) ends with one digest instead of one message per file.
     """
-    files = recording_order(paths)
+    ordered = _in_order(paths)
+    files = [p for p, _ in ordered]
     batch = len(files) > DIGEST_FILES if batch is None else batch
     name = rig.name
     was_open = {a["key"] for a in store.open_alerts(name)}
     out = ScanResult()
-    for path in files:
-        fm = process(path, rig, store, rules, clock(), sender=None if batch else sender,
-                     batch=batch)
+    measured = measure_all(files, rig, workers, headers=[rec for _, rec in ordered])
+    for fm in measured:
+        fm = commit(fm, rig, store, rules, clock(), None if batch else sender, batch=batch)
         out.files.append(fm)
         if on_file is not None:
             on_file(fm)

@@ -1,15 +1,14 @@
-"""The service: start-up catch-up, one loop step, worker processes, heartbeat and status.
+"""The service: start-up catch-up, one loop step, heartbeat.
 
 Observers (qcd.intake) only enqueue; all work runs on the service thread, the one SQLite
-writer. Measuring runs in worker processes; every result is committed here via the pipeline.
-Imports qcd.intake, qcd.pipeline, qcd.notify, qcd.analyze (in workers); store passed in.
+writer. Measuring (``pipeline.measure``) runs in worker processes (qcd.workers); every result
+is committed here via the pipeline. Imports qcd.intake, qcd.pipeline, qcd.workers, qcd.notify;
+store passed in. `qcd status` reads what the heartbeat writes (qcd.status).
 """
 from __future__ import annotations
 
-import concurrent.futures as cf
 import logging
 import logging.handlers
-import multiprocessing
 import os
 import queue
 import signal
@@ -21,46 +20,17 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
 
+from qcd import pipeline
 from qcd.intake import (GaveUp, Hint, Intake, Ready, is_candidate_name, is_network_path,
                         scan_folder, _FolderWatch)
+from qcd.workers import Jobs, default_workers
 
-__all__ = ["Service", "status", "format_status", "setup_logging", "is_network_path",
-           "scan_folder", "default_workers", "make_sender", "LOG_NAME"]
+__all__ = ["Service", "setup_logging", "is_network_path", "scan_folder", "make_sender",
+           "LOG_NAME"]
 
 log = logging.getLogger("qcd.watch")
 
 LOG_NAME = "qcd.log"
-
-
-# ---------------------------------------------------------------- platform
-
-def default_workers() -> int:
-    """Measuring processes for this machine: the number of cores, at most 4."""
-    return max(1, min(os.cpu_count() or 1, 4))
-
-
-# ---------------------------------------------------------------- measuring
-
-def _measure(path: str, pulse: Any, mains_hz: float | None, mode: str | None = None):
-    """Runs in a worker process: one file -> FileMeasures (never raises for a bad file)."""
-    from qcd.analyze import analyze_path
-    return analyze_path(path, pulse=pulse, mains_hz=mains_hz, mode=mode)
-
-
-def _error_measures(path: Path, kind: str, reason: str, size: int = -1, mtime: float = -1.0):
-    from qcd.results import FileMeasures
-    return FileMeasures(path=os.fspath(path), status="error", error=reason, error_kind=kind,
-                        size=size if size >= 0 else None, mtime=mtime if mtime >= 0 else None)
-
-
-def _pipeline_steps(store, rules) -> tuple[Callable, Callable, Callable]:
-    """The one writer's commit, the backlog digest and the periodic tick, bound to the store."""
-    from qcd import pipeline
-
-    def commit(fm, rig, now, batch=False):
-        return pipeline.commit(fm, rig, store, rules, now, batch=batch)
-    return (commit, lambda now: pipeline.flush_digest(store, rules, now),
-            lambda now: pipeline.tick(store, rules, now))
 
 
 def make_sender(config: Any):
@@ -72,11 +42,12 @@ def make_sender(config: Any):
     return notify.Sender.from_config(config)
 
 
-@dataclass
-class _Job:
-    ready: Ready
-    submitted_at: float
-    crashes: int = 0
+def _pipeline_steps(store, rules) -> tuple[Callable, Callable, Callable]:
+    """The one writer's commit, the backlog digest and the periodic tick, bound to the store."""
+    def commit(fm, rig, now, batch=False):
+        return pipeline.commit(fm, rig, store, rules, now, batch=batch)
+    return (commit, lambda now: pipeline.flush_digest(store, rules, now),
+            lambda now: pipeline.tick(store, rules, now))
 
 
 @dataclass
@@ -115,17 +86,16 @@ class _Progress:
 class Service:
     """The watch service. ``start(now)``, then ``step(now)`` repeatedly (``run()`` does both).
 
-    ``measure(path, rig) -> FileMeasures`` and ``commit(fm, rig, now)`` default to
-    ``analyze_path`` in a process pool and ``pipeline.commit``. ``workers=0`` measures on the
-    service thread (no pool). ``stat`` and the clock (``now``) are parameters for tests.
+    Files are measured with ``pipeline.measure`` in ``workers`` processes (``workers=0``: on
+    the service thread, one file per step) and committed with ``pipeline.commit``, or with
+    ``commit(fm, rig, now)`` when given (no backlog digest then). ``stat`` and the clock
+    (``now``) are parameters for tests.
     """
 
     def __init__(self, config: Any, store: Any, rules: Any = None, *, sender: Any = None,
                  workers: int | None = None, catch_up: bool = True, poll_s: float = 0.25,
                  beat_s: float = 5.0, rescan_s: float = 300.0, folder_check_s: float = 2.0,
-                 poll_interval_s: float = 1.0, stat=os.stat,
-                 commit: Callable | None = None, measure: Callable | None = None,
-                 deliver: Callable | None = None, digest: Callable | None = None,
+                 poll_interval_s: float = 1.0, stat=os.stat, commit: Callable | None = None,
                  progress_tty: bool | None = None) -> None:
         self.config, self.store, self.rules, self.sender = config, store, rules, sender
         self.workers = default_workers() if workers is None else max(0, int(workers))
@@ -142,20 +112,15 @@ class Service:
                                       poll_interval_s=poll_interval_s)
                          for r in config.rigs for f in r.folders]
         if commit is None:
-            self._commit, pipeline_digest, self._tick = _pipeline_steps(store, rules)
-            self._digest = digest or pipeline_digest
+            self._commit, self._digest, self._tick = _pipeline_steps(store, rules)
         else:
-            self._commit, self._digest, self._tick = commit, digest, None
+            self._commit, self._digest, self._tick = commit, None, None
         self.tick_s = 60.0
         self.wal_limit_bytes = 32 << 20
         self._last_tick = -1e18
         self._batch_pending = False         # backlog files were committed without messages
         self._seen: dict[tuple[str, Path], tuple[int, float]] = {}
-        self._measure_inline = measure
-        self._deliver = deliver
-        self._pool: cf.ProcessPoolExecutor | None = None
-        self._jobs: dict[cf.Future, _Job] = {}
-        self._inline: list[Ready] = []
+        self._jobs = Jobs(pipeline.measure, self.workers, on_crash=self._crashed)
         self._last_folder_check = self._last_rescan = self._last_beat = -1e18
         self._started_at = 0.0
         self._host = socket.gethostname()
@@ -164,7 +129,6 @@ class Service:
         self.progress = _Progress(tty=sys.stderr.isatty() if progress_tty is None
                                   else progress_tty)
         self._backlog_keys: set[tuple[str, Path]] = set()
-        self._resubmit: list[_Job] = []
 
     # -- lifecycle
 
@@ -189,19 +153,7 @@ class Service:
         """Stop observers and workers; nothing half-written (only step() commits)."""
         for fw in self._folders:
             fw.stop()
-        if self._pool is not None:
-            for fut in list(self._jobs):
-                fut.cancel()
-            procs = list(getattr(self._pool, "_processes", {}).values())
-            self._pool.shutdown(wait=False, cancel_futures=True)
-            deadline = time.monotonic() + 5.0
-            for p in procs:                  # abandon a long measurement: restart re-measures
-                p.join(timeout=max(0.0, deadline - time.monotonic()))
-                if p.is_alive():
-                    p.terminate()
-                    p.join(timeout=2.0)
-            self._pool = None
-        self._jobs.clear()
+        self._jobs.close()                   # abandon a long measurement: restart re-measures
         try:
             self._heartbeat(time.time() if now is None else now, stopped=True)
         except Exception:
@@ -254,7 +206,7 @@ class Service:
                 log.info("rescan found %d file(s) the events missed", n)
         busy = False
         capacity = max(1, 2 * self.workers)
-        out = len(self._jobs) + len(self._inline)
+        out = len(self._jobs)
         ready, gave_up = self.intake.check(now, backlog_window=max(0, capacity - out))
         for g in gave_up:
             self._give_up(g, now)
@@ -262,9 +214,9 @@ class Service:
             self._submit(r, now)
         busy |= self._collect(now)
         self._flush_digest(now)
-        if self._deliver is not None or self.sender is not None:
+        if self.sender is not None:
             try:
-                (self._deliver or self._deliver_due)(now)
+                self._deliver_due(now)
             except Exception:
                 log.exception("delivering notifications")
         if self._tick is not None and now - self._last_tick >= self.tick_s:
@@ -277,7 +229,7 @@ class Service:
             self._heartbeat(now)
             self._checkpoint()
         self.progress.tick(now)
-        return busy or bool(self._inline)
+        return busy or (self.workers == 0 and len(self._jobs) > 0)
 
     def rescan(self, now: float) -> int:
         """Look through every rig folder now (as the periodic rescan does); files queued."""
@@ -286,8 +238,8 @@ class Service:
 
     def wait_idle(self) -> None:
         """Between steps: until a measurement finishes, a stop is asked for, or poll_s passed."""
-        if self._jobs:
-            cf.wait(list(self._jobs), timeout=self.poll_s, return_when=cf.FIRST_COMPLETED)
+        if self.workers and len(self._jobs):
+            self._jobs.wait(self.poll_s)
         else:
             self.stop_event.wait(self.poll_s)
 
@@ -296,7 +248,7 @@ class Service:
         notify.deliver_due(self.store, self.sender, now)
 
     def queue_len(self) -> int:
-        return len(self.intake) + len(self._jobs) + len(self._inline)
+        return len(self.intake) + len(self._jobs)
 
     # -- intake
 
@@ -364,65 +316,17 @@ class Service:
             self.counts["skipped"] += 1
             self._backlog_done(r)
             return
-        if self.workers == 0:
-            self._inline.append(r)
-            return
-        if self._pool is None:
-            self._pool = _new_pool(self.workers)
-        rig = self._rigs[r.rig]
-        fut = self._pool.submit(_measure, os.fspath(r.path), rig.test_pulse, rig.mains_hz,
-                                rig.mode)
-        self._jobs[fut] = _Job(r, now)
+        self._jobs.submit(r, os.fspath(r.path), self._rigs[r.rig], recording=r.header)
+
+    def _crashed(self, r: Ready, reason: str) -> Any:
+        return pipeline.error_file(r.path, "internal", f"{r.path}: {reason}", size=r.size,
+                                   mtime=r.mtime)
 
     def _collect(self, now: float) -> bool:
-        if self._inline:                      # workers=0: one file per step, on this thread
-            r = self._inline.pop(0)
-            rig = self._rigs[r.rig]
-            measure = self._measure_inline or (lambda p, rg: _measure(p, rg.test_pulse,
-                                                                      rg.mains_hz, rg.mode))
-            self._finish(r, measure(os.fspath(r.path), rig), now)
-            return True
-        done = [f for f in self._jobs if f.done()]
-        broken = False
-        for fut in done:
-            job = self._jobs.pop(fut)
-            try:
-                fm = fut.result()
-            except cf.process.BrokenProcessPool:
-                broken = True
-                job.crashes += 1
-                if job.crashes >= 2:
-                    self._finish(job.ready, _error_measures(
-                        job.ready.path, "internal", f"{job.ready.path}: the measuring process "
-                        f"died twice on this file", job.ready.size, job.ready.mtime), now)
-                else:
-                    self._resubmit.append(job)
-                continue
-            except Exception as e:            # a bug in the measures: store, log, carry on
-                log.error("measuring %s failed: %r", job.ready.path, e)
-                fm = _error_measures(job.ready.path, "internal",
-                                     f"{job.ready.path}: internal error while measuring: {e!r}",
-                                     job.ready.size, job.ready.mtime)
-            self._finish(job.ready, fm, now)
-        if broken or self._resubmit:
-            self._restart_pool(now)
+        done = self._jobs.collect()
+        for r, fm in done:
+            self._finish(r, fm, now)
         return bool(done)
-
-    def _restart_pool(self, now: float) -> None:
-        log.error("a measuring process died; starting new ones")
-        old = self._pool
-        self._pool = None
-        pending = list(self._jobs.values()) + list(self._resubmit)
-        self._jobs.clear()
-        self._resubmit = []
-        if old is not None:
-            old.shutdown(wait=False, cancel_futures=True)
-        for job in pending:
-            self._pool = self._pool or _new_pool(self.workers)
-            rig = self._rigs[job.ready.rig]
-            fut = self._pool.submit(_measure, os.fspath(job.ready.path), rig.test_pulse,
-                                    rig.mains_hz, rig.mode)
-            self._jobs[fut] = _Job(job.ready, now, job.crashes)
 
     def _finish(self, r: Ready, fm: Any, now: float) -> None:
         """Commit one measured file, unless it changed while being measured (then wait again)."""
@@ -463,7 +367,9 @@ class Service:
             self._submit(Ready(g.rig, g.path, g.size, g.mtime, True), now)
             return
         self.counts["never_settled"] += 1
-        fm = _error_measures(g.path, "never_settled", g.reason, g.size, g.mtime)
+        fm = pipeline.error_file(g.path, "never_settled", g.reason,
+                                 size=g.size if g.size >= 0 else None,
+                                 mtime=g.mtime if g.mtime >= 0 else None)
         try:
             self._call_commit(fm, self._rigs[g.rig], now, (g.rig, g.path) in self._backlog_keys)
             self._last_file[g.rig] = {"path": os.fspath(g.path), "at": now, "status": "error"}
@@ -510,7 +416,7 @@ class Service:
     def _heartbeat(self, now: float, stopped: bool = False) -> None:
         self._last_beat = now
         state = {"beat_s": self.beat_s, "stopped": stopped, "workers": self.workers,
-                 "intake": self.intake.counts(), "measuring": len(self._jobs) + len(self._inline),
+                 "intake": self.intake.counts(), "measuring": len(self._jobs),
                  "counts": dict(self.counts), "last_file": dict(self._last_file),
                  "folders": {os.fspath(fw.root): fw.state for fw in self._folders},
                  "catch_up": {"total": self.progress.total, "done": self.progress.done}}
@@ -524,27 +430,7 @@ class _StatLike:
         self.st_size, self.st_mtime = size, mtime
 
 
-def _new_pool(workers: int) -> cf.ProcessPoolExecutor:
-    # spawn: fork with observer threads running is unsafe (and warns on 3.12+), and spawned
-    # workers are our own children, which _watch_parent ends when the service is killed
-    return cf.ProcessPoolExecutor(max_workers=workers,
-                                  mp_context=multiprocessing.get_context("spawn"),
-                                  initializer=_watch_parent, initargs=(os.getpid(),))
-
-
-def _watch_parent(pid: int) -> None:
-    """In a worker: exit when the service process is gone (kill -9 leaves no one to stop us)."""
-    # Ctrl-C reaches the whole process group: the service decides, workers carry on quietly
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-
-    def watch() -> None:
-        while _pid_alive(pid):
-            time.sleep(1.0)
-        os._exit(0)
-    threading.Thread(target=watch, name="qcd-parent-watch", daemon=True).start()
-
-
-# ---------------------------------------------------------------- logging and status
+# ---------------------------------------------------------------- logging
 
 def setup_logging(database: Path, *, debug: bool = False, max_bytes: int = 5 << 20,
                   backups: int = 5) -> Path:
@@ -558,111 +444,3 @@ def setup_logging(database: Path, *, debug: bool = False, max_bytes: int = 5 << 
     root.addHandler(handler)
     root.setLevel(logging.DEBUG if debug else logging.INFO)
     return path
-
-
-def _pid_alive(pid: int) -> bool:
-    if pid <= 0:
-        return False
-    if sys.platform == "win32":
-        import ctypes
-        h = ctypes.windll.kernel32.OpenProcess(0x1000, False, pid)  # QUERY_LIMITED_INFORMATION
-        if not h:
-            return False
-        ctypes.windll.kernel32.CloseHandle(h)
-        return True
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
-def status(store: Any, now: float, *, host: str | None = None) -> dict:
-    """What `qcd status` shows: alive or not, queue, last file per rig, alerts, outbox."""
-    hb = store.heartbeat()
-    host = socket.gethostname() if host is None else host
-    out: dict[str, Any] = {"alive": False, "reason": "the service has never run on this "
-                                                     "database", "heartbeat": None}
-    if hb:
-        st = hb.get("state") or hb.get("state_json") or {}
-        if isinstance(st, str):
-            import json
-            st = json.loads(st)
-        beat_s = float(st.get("beat_s", 5.0))
-        age = now - float(hb["beat_at"])
-        same_host = hb.get("host") == host
-        pid_ok = _pid_alive(int(hb.get("pid") or 0)) if same_host else True
-        alive = (not st.get("stopped")) and age < 3 * beat_s and pid_ok
-        if alive:
-            reason = f"alive (pid {hb.get('pid')} on {hb.get('host')}, last beat {age:.1f} s ago)"
-        elif st.get("stopped"):
-            reason = f"stopped cleanly {age:.0f} s ago"
-        elif not pid_ok:
-            reason = f"not running: pid {hb.get('pid')} is gone (last beat {age:.0f} s ago)"
-        else:
-            reason = f"not responding: last beat {age:.0f} s ago (expected every {beat_s:g} s)"
-        out.update(alive=alive, reason=reason, heartbeat=hb, beat_age_s=age,
-                   queue_len=hb.get("queue_len"), intake=st.get("intake"),
-                   measuring=st.get("measuring"), folders=st.get("folders", {}),
-                   catch_up=st.get("catch_up"), counts=st.get("counts"))
-    last: dict[str, Any] = {}
-    for rig in store.rigs():
-        files = store.files(rig=rig)
-        if files:
-            f = max(files, key=lambda r: r.get("analysed_at") or 0)
-            last[rig] = {"path": f.get("path"), "status": f.get("status"),
-                         "analysed_at": f.get("analysed_at"), "error": f.get("error")}
-    out["last_file"] = last
-    out["open_alerts"] = list(store.open_alerts())
-    out["outbox"] = store.outbox_counts()
-    return out
-
-
-def _ago(now: float, t: float | None) -> str:
-    if t is None:
-        return "-"
-    s = now - t
-    if s < 120:
-        return f"{s:.0f} s ago"
-    if s < 7200:
-        return f"{s / 60:.0f} min ago"
-    if s < 172800:
-        return f"{s / 3600:.1f} h ago"
-    return f"{s / 86400:.1f} days ago"
-
-
-def format_status(st: dict, now: float) -> str:
-    """Plain text for the terminal."""
-    lines = [f"service: {st['reason']}"]
-    if st.get("alive"):
-        intake = st.get("intake") or {}
-        lines.append(f"queue: {st.get('queue_len', 0)} file(s) (settling live "
-                     f"{intake.get('live', 0)}, backlog {intake.get('backlog', 0)}, measuring "
-                     f"{st.get('measuring', 0)})")
-        cu = st.get("catch_up") or {}
-        if cu.get("total"):
-            lines.append(f"catching up: {cu.get('done', 0)} of {cu['total']} files")
-        for folder, state in (st.get("folders") or {}).items():
-            lines.append(f"folder {folder}: {state}")
-    if st["last_file"]:
-        lines.append("last file per rig:")
-        for rig, f in sorted(st["last_file"].items()):
-            extra = f" ({f['error']})" if f.get("status") != "ok" and f.get("error") else ""
-            lines.append(f"  {rig}: {f['path']}  {f['status']}{extra}, "
-                         f"{_ago(now, f.get('analysed_at'))}")
-    else:
-        lines.append("no files stored yet")
-    alerts = st["open_alerts"]
-    lines.append(f"open alerts: {len(alerts)}")
-    for a in alerts[:20]:
-        a = a if isinstance(a, dict) else getattr(a, "__dict__", {})
-        ch = a.get("channel")
-        where = f" (channel {ch})" if isinstance(ch, int) and ch >= 0 else ""
-        lines.append(f"  {a.get('rig')}: {a.get('measure') or ''} {a.get('rule') or ''}{where}, "
-                     f"{a.get('state')} since {_ago(now, a.get('opened_at'))}")
-    ob = st["outbox"]
-    lines.append(f"messages: {ob.get('pending', 0)} pending, {ob.get('stuck', 0)} stuck, "
-                 f"{ob.get('sent', 0)} sent")
-    return "\n".join(lines)

@@ -260,10 +260,15 @@ def test_scan_store_command_runs_the_whole_chain(lab, tmp_path, http_sink, capsy
         folders = ["{scan_dir}"]
         mains_hz = 50
     """))
-    code = main(["scan", "--store", "--rig", "rig-e2e", "--config", str(cfg), str(scan_dir)])
+    code = main(["scan", "--store", "--rig", "rig-e2e", "--config", str(cfg), "--workers", "2",
+                 str(scan_dir)])
     out = capsys.readouterr().out
     assert code == 0, out
     assert out.count("stored  ") == 16
+    # measured in two processes, committed in recording order (here the files' mtimes)
+    stored = [Path(line.split()[1]).name for line in out.splitlines()
+              if line.startswith("stored  ")]
+    assert stored == [f.name for f in files[16:32]]
     assert "alert opened: hum_rms" in out and "1 sent" in out
     (msg,) = http_sink.wait_for(1)
     assert "hum_rms" in msg["title"]
@@ -307,6 +312,21 @@ def test_a_bug_while_judging_becomes_an_internal_error_row_and_the_caller_carrie
     fm = process(files[0], rig, store, broken, times[0])
     assert fm.status == "error" and fm.error_kind == "internal"
     assert "internal error" in fm.error and "judging" in caplog.text
+    (row,) = store.files("rig-e2e")
+    assert row["status"] == "error" and row["error_kind"] == "internal"
+
+
+def test_a_bug_while_measuring_becomes_an_internal_error_row_with_the_file_facts(
+        lab, store, rules, caplog):
+    import hashlib
+    folder, files, times = lab
+    broken = RigConfig(name="rig-e2e", folders=(folder,), mains_hz="fifty")  # measuring fails
+    fm = process(files[0], broken, store, rules, times[0])
+    assert fm.status == "error" and fm.error_kind == "internal"
+    assert "internal error while measuring" in fm.error and "Traceback" in caplog.text
+    st = files[0].stat()                    # stored with its size, mtime and content hash
+    assert (fm.size, fm.mtime) == (st.st_size, st.st_mtime)
+    assert fm.sha256 == hashlib.sha256(files[0].read_bytes()).hexdigest()
     (row,) = store.files("rig-e2e")
     assert row["status"] == "error" and row["error_kind"] == "internal"
 

@@ -18,11 +18,11 @@ import pytest
 from conftest import abf
 from stored import outbox_rows
 from qcd import pipeline
-from qcd.analyze import analyze_path
 from qcd.config import Config, RigConfig
-from qcd.intake import GaveUp, Intake, Ready, header_fits, is_candidate_name
+from qcd.intake import GaveUp, Intake, header_fits, is_candidate_name
 from qcd.store import Store
-from qcd.watch import Service, is_network_path, scan_folder, status
+from qcd.status import status
+from qcd.watch import Service, is_network_path
 
 RIG = "rig-a"
 
@@ -45,7 +45,7 @@ def _fake_stat(table: dict):
 
 
 def _fits(path, size):
-    return None
+    return None, None
 
 
 def wait_until(cond, timeout: float, step=None, interval: float = 0.02):
@@ -78,7 +78,7 @@ class Recorder:
         self.rules = load_rules()
 
     def measure(self, path: str, rig):
-        return analyze_path(path, pulse=rig.test_pulse, mains_hz=rig.mains_hz)
+        return pipeline.measure(path, rig)
 
     def commit(self, fm, rig, now):
         self.committed.append(fm)
@@ -112,7 +112,7 @@ def _service(cfg, store, rec: Recorder, **kw) -> Service:
     kw.setdefault("poll_s", 0.02)
     kw.setdefault("folder_check_s", 0.2)
     kw.setdefault("progress_tty", False)
-    return Service(cfg, store, measure=rec.measure, commit=rec.commit, **kw)
+    return Service(cfg, store, commit=rec.commit, **kw)
 
 
 def _write_slowly(path: Path, data: bytes, pieces: int, gap_s: float, step) -> None:
@@ -169,7 +169,7 @@ def test_truncated_header_waits_then_hands_over_for_the_real_error():
 
     def header(path, size):
         calls.append(size)
-        return "header implies more data than present"
+        return "header implies more data than present", None
     it = Intake(settle_s=1.0, give_up_s=100.0, stat=_fake_stat(table), header_check=header,
                 probe=lambda p: False)
     it.offer(RIG, Path("/r/a.abf"), 0.0)

@@ -48,20 +48,12 @@ def _write_files(folder: Path, n: int, template: bytes, start: int = 0) -> None:
 
 
 def _parts(store):
-    """Real analyze_path + pipeline.commit when present; else the reader-only stand-in."""
-    try:
-        from qcd import pipeline
-        from qcd.analyze import analyze_path
-        from qcd.ruleset import load_rules
-        analyze_path(ROOT.parent / "shared" / "data" / "abf" / "variable_sweep_length.abf")
-        rules = load_rules()
-        return "real pipeline", analyze_path, (
-            lambda fm, rig, now, batch=False: pipeline.commit(fm, rig, store, rules, now))
-    except (ImportError, NotImplementedError, AttributeError):
-        from test_watch import reader_measures
-        return "reader only (measures stage not in this build)", \
-            (lambda p, pulse=None, mains_hz=None: reader_measures(p)), \
-            (lambda fm, rig, now, batch=False: store.commit_file(rig.name, fm, analysed_at=now))
+    """``pipeline.measure`` and ``pipeline.commit``, as the service runs them."""
+    from qcd import pipeline
+    from qcd.ruleset import load_rules
+    rules = load_rules()
+    return "real pipeline", pipeline.measure, (
+        lambda fm, rig, now, batch=False: pipeline.commit(fm, rig, store, rules, now))
 
 
 def baseline(tmp: Path, template: bytes, n: int) -> float:
@@ -73,7 +65,7 @@ def baseline(tmp: Path, template: bytes, n: int) -> float:
         _, measure, commit = _parts(store)
         t0 = time.perf_counter()
         for p in sorted(folder.iterdir()):
-            commit(measure(str(p)), rig, time.time())
+            commit(measure(p, rig), rig, time.time())
         return n / (time.perf_counter() - t0)
 
 

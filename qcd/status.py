@@ -1,0 +1,98 @@
+"""What `qcd status` shows: is the service alive (heartbeat age, pid), its queue, the last
+file per rig, open alerts and the outbox, as a dict and as plain text.
+
+Reads the store only. Imports qcd.workers (pid checks).
+"""
+from __future__ import annotations
+
+import socket
+from typing import Any
+
+from qcd.workers import pid_alive
+
+__all__ = ["status", "format_status"]
+
+
+def status(store: Any, now: float, *, host: str | None = None) -> dict:
+    """What `qcd status` shows: alive or not, queue, last file per rig, alerts, outbox."""
+    hb = store.heartbeat()
+    host = socket.gethostname() if host is None else host
+    out: dict[str, Any] = {"alive": False, "reason": "the service has never run on this "
+                                                     "database", "heartbeat": None}
+    if hb:
+        st = hb["state"]
+        beat_s = float(st.get("beat_s", 5.0))
+        age = now - float(hb["beat_at"])
+        same_host = hb.get("host") == host
+        pid_ok = pid_alive(int(hb.get("pid") or 0)) if same_host else True
+        alive = (not st.get("stopped")) and age < 3 * beat_s and pid_ok
+        if alive:
+            reason = f"alive (pid {hb.get('pid')} on {hb.get('host')}, last beat {age:.1f} s ago)"
+        elif st.get("stopped"):
+            reason = f"stopped cleanly {age:.0f} s ago"
+        elif not pid_ok:
+            reason = f"not running: pid {hb.get('pid')} is gone (last beat {age:.0f} s ago)"
+        else:
+            reason = f"not responding: last beat {age:.0f} s ago (expected every {beat_s:g} s)"
+        out.update(alive=alive, reason=reason, heartbeat=hb, beat_age_s=age,
+                   queue_len=hb.get("queue_len"), intake=st.get("intake"),
+                   measuring=st.get("measuring"), folders=st.get("folders", {}),
+                   catch_up=st.get("catch_up"), counts=st.get("counts"))
+    last: dict[str, Any] = {}
+    for rig in store.rigs():
+        files = store.files(rig=rig)
+        if files:
+            f = max(files, key=lambda r: r.get("analysed_at") or 0)
+            last[rig] = {"path": f.get("path"), "status": f.get("status"),
+                         "analysed_at": f.get("analysed_at"), "error": f.get("error")}
+    out["last_file"] = last
+    out["open_alerts"] = list(store.open_alerts())
+    out["outbox"] = store.outbox_counts()
+    return out
+
+
+def _ago(now: float, t: float | None) -> str:
+    if t is None:
+        return "-"
+    s = now - t
+    if s < 120:
+        return f"{s:.0f} s ago"
+    if s < 7200:
+        return f"{s / 60:.0f} min ago"
+    if s < 172800:
+        return f"{s / 3600:.1f} h ago"
+    return f"{s / 86400:.1f} days ago"
+
+
+def format_status(st: dict, now: float) -> str:
+    """Plain text for the terminal."""
+    lines = [f"service: {st['reason']}"]
+    if st.get("alive"):
+        intake = st.get("intake") or {}
+        lines.append(f"queue: {st.get('queue_len', 0)} file(s) (settling live "
+                     f"{intake.get('live', 0)}, backlog {intake.get('backlog', 0)}, measuring "
+                     f"{st.get('measuring', 0)})")
+        cu = st.get("catch_up") or {}
+        if cu.get("total"):
+            lines.append(f"catching up: {cu.get('done', 0)} of {cu['total']} files")
+        for folder, state in (st.get("folders") or {}).items():
+            lines.append(f"folder {folder}: {state}")
+    if st["last_file"]:
+        lines.append("last file per rig:")
+        for rig, f in sorted(st["last_file"].items()):
+            extra = f" ({f['error']})" if f.get("status") != "ok" and f.get("error") else ""
+            lines.append(f"  {rig}: {f['path']}  {f['status']}{extra}, "
+                         f"{_ago(now, f.get('analysed_at'))}")
+    else:
+        lines.append("no files stored yet")
+    alerts = st["open_alerts"]
+    lines.append(f"open alerts: {len(alerts)}")
+    for a in alerts[:20]:
+        ch = a.get("channel")
+        where = f" (channel {ch})" if isinstance(ch, int) and ch >= 0 else ""
+        lines.append(f"  {a.get('rig')}: {a.get('measure') or ''} {a.get('rule') or ''}{where}, "
+                     f"{a.get('state')} since {_ago(now, a.get('opened_at'))}")
+    ob = st["outbox"]
+    lines.append(f"messages: {ob.get('pending', 0)} pending, {ob.get('stuck', 0)} stuck, "
+                 f"{ob.get('sent', 0)} sent")
+    return "\n".join(lines)

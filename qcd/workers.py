@@ -1,0 +1,203 @@
+"""Worker processes: a spawned pool whose workers leave with their parent, and the crash rule.
+
+Shared by the service (``Jobs``: submit now, collect later), ``qcd scan --workers`` and
+``scan --store`` (``imap``: results in the order asked for) and the demo's file writer.
+
+The crash rule: a worker that dies (killed, out of memory, a crash inside a library) takes
+every job in flight with it. Those jobs run again in a new pool; a job whose worker died
+twice, or whose result could not be handed back, gives ``on_crash(key, reason)`` instead of
+a result, so one bad file never stops the others. Exceptions inside a job are the job
+function's business (``pipeline.measure`` never raises). Imports nothing from qcd.
+"""
+from __future__ import annotations
+
+import concurrent.futures as cf
+import logging
+import multiprocessing
+import os
+import signal
+import sys
+import threading
+import time
+from dataclasses import dataclass
+from typing import Any, Callable, Iterable, Iterator
+
+__all__ = ["Jobs", "imap", "default_workers", "pid_alive", "DIED_TWICE"]
+
+log = logging.getLogger("qcd.workers")
+
+DIED_TWICE = "the measuring process died twice on this file"
+
+
+def default_workers() -> int:
+    """Worker processes for this machine: the number of cores, at most 4."""
+    return max(1, min(os.cpu_count() or 1, 4))
+
+
+def pid_alive(pid: int) -> bool:
+    """True while process ``pid`` exists on this machine."""
+    if pid <= 0:
+        return False
+    if sys.platform == "win32":
+        import ctypes
+        h = ctypes.windll.kernel32.OpenProcess(0x1000, False, pid)  # QUERY_LIMITED_INFORMATION
+        if not h:
+            return False
+        ctypes.windll.kernel32.CloseHandle(h)
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _new_pool(workers: int) -> cf.ProcessPoolExecutor:
+    # spawn: fork with observer threads running is unsafe (and warns on 3.12+), and spawned
+    # workers are our own children, which _watch_parent ends when the parent is killed
+    return cf.ProcessPoolExecutor(max_workers=workers,
+                                  mp_context=multiprocessing.get_context("spawn"),
+                                  initializer=_watch_parent, initargs=(os.getpid(),))
+
+
+def _watch_parent(pid: int) -> None:
+    """In a worker: exit when the parent process is gone (kill -9 leaves no one to stop us)."""
+    # Ctrl-C reaches the whole process group: the parent decides, workers carry on quietly
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch() -> None:
+        while pid_alive(pid):
+            time.sleep(1.0)
+        os._exit(0)
+    threading.Thread(target=watch, name="qcd-parent-watch", daemon=True).start()
+
+
+@dataclass
+class _Job:
+    key: Any
+    args: tuple
+    kwargs: dict
+    crashes: int = 0
+
+
+class Jobs:
+    """``fn(*args, **kwargs)`` for each submitted job, in ``workers`` spawned processes.
+
+    ``workers=0`` runs the jobs in this process, one per ``collect()`` call, in the order
+    submitted. ``collect()`` returns ``[(key, result)]`` of the jobs finished so far;
+    ``on_crash(key, reason)`` gives the result of a job the crash rule ends (None: raise).
+    """
+
+    def __init__(self, fn: Callable[..., Any], workers: int, *,
+                 on_crash: Callable[[Any, str], Any] | None = None) -> None:
+        self.fn, self.workers, self.on_crash = fn, max(0, int(workers)), on_crash
+        self._pool: cf.ProcessPoolExecutor | None = None
+        self._running: dict[cf.Future, _Job] = {}
+        self._inline: list[_Job] = []
+
+    def __len__(self) -> int:
+        return len(self._running) + len(self._inline)
+
+    def submit(self, key: Any, *args: Any, **kwargs: Any) -> None:
+        job = _Job(key, args, kwargs)
+        if self.workers == 0:
+            self._inline.append(job)
+        else:
+            self._start(job)
+
+    def _start(self, job: _Job) -> None:
+        if self._pool is None:
+            self._pool = _new_pool(self.workers)
+        self._running[self._pool.submit(self.fn, *job.args, **job.kwargs)] = job
+
+    def collect(self) -> list[tuple[Any, Any]]:
+        """The finished jobs as ``(key, result)``; crashed ones run again (see the module)."""
+        if self._inline:
+            job = self._inline.pop(0)
+            return [(job.key, self.fn(*job.args, **job.kwargs))]
+        out, again, broken = [], [], False
+        for fut in [f for f in self._running if f.done()]:
+            job = self._running.pop(fut)
+            try:
+                out.append((job.key, fut.result()))
+            except cf.process.BrokenProcessPool:
+                broken = True
+                job.crashes += 1
+                if job.crashes >= 2:
+                    out.append((job.key, self._crashed(job, DIED_TWICE)))
+                else:
+                    again.append(job)
+            except Exception as e:            # the result could not be handed back
+                out.append((job.key, self._crashed(
+                    job, f"the measuring process could not return its result ({e!r})")))
+        if broken:
+            self._restart(again)
+        return out
+
+    def _crashed(self, job: _Job, reason: str) -> Any:
+        if self.on_crash is None:
+            raise RuntimeError(f"job {job.key!r}: {reason}")
+        return self.on_crash(job.key, reason)
+
+    def _restart(self, again: list[_Job]) -> None:
+        log.error("a worker process died; starting new ones")
+        old, self._pool = self._pool, None
+        pending = again + list(self._running.values())
+        self._running.clear()
+        if old is not None:
+            old.shutdown(wait=False, cancel_futures=True)
+        for job in pending:
+            self._start(job)
+
+    def wait(self, timeout: float | None) -> None:
+        """Until a running job finishes, or ``timeout`` seconds (None: no limit)."""
+        if self._running and not self._inline:
+            cf.wait(list(self._running), timeout=timeout, return_when=cf.FIRST_COMPLETED)
+
+    def close(self, grace_s: float = 5.0) -> None:
+        """Stop the workers; a job still running after ``grace_s`` is abandoned."""
+        self._inline.clear()
+        if self._pool is not None:
+            for fut in self._running:
+                fut.cancel()
+            procs = list((getattr(self._pool, "_processes", None) or {}).values())
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            deadline = time.monotonic() + grace_s
+            for p in procs:
+                p.join(timeout=max(0.0, deadline - time.monotonic()))
+                if p.is_alive():
+                    p.terminate()
+                    p.join(timeout=2.0)
+            self._pool = None
+        self._running.clear()
+
+
+def imap(fn: Callable[..., Any], jobs: Iterable[tuple], workers: int, *,
+         on_crash: Callable[[int, str], Any] | None = None) -> Iterator[Any]:
+    """``fn(*args)`` for each args tuple, results in the order given, as soon as each is ready.
+
+    ``workers`` <= 1 runs them in this process. At most 2 x ``workers`` jobs are ahead of the
+    one awaited, so memory stays bounded; ``on_crash`` gets the job's index.
+    """
+    todo = list(jobs)
+    if workers <= 1:
+        for args in todo:
+            yield fn(*args)
+        return
+    pool = Jobs(fn, workers, on_crash=on_crash)
+    done: dict[int, Any] = {}
+    ahead = 2 * workers
+    sent = 0
+    try:
+        for i in range(len(todo)):
+            while i not in done:
+                while sent < len(todo) and sent - i < ahead:
+                    pool.submit(sent, *todo[sent])
+                    sent += 1
+                pool.wait(None)
+                done.update(pool.collect())
+            yield done.pop(i)
+    finally:
+        pool.close()
