@@ -1,4 +1,4 @@
-"""Shared fixtures: the real recordings folder, thread-leak guard.
+"""Shared fixtures: the real recordings folder, a store, thread-leak and open-store guards.
 
 Real recordings come from ../shared/data/abf/ beside the checkout or $QCD_ABF_DATA; without
 them the tests that need them skip, unless QCD_REQUIRE_DATA=1 (CI), where they fail.
@@ -61,6 +61,30 @@ def no_leaked_threads():
             break
         time.sleep(0.05)
     assert not extra, f"threads left running: {[t.name for t in extra]}"
+
+
+@pytest.fixture(autouse=True)
+def every_store_closed(monkeypatch):
+    """Every Store a test opens is closed by its end (an open one holds the database's WAL)."""
+    from qcd.store import Store
+    opened = []
+    real_init = Store.__init__
+
+    def init(self, *args, **kwargs):
+        opened.append(self)
+        real_init(self, *args, **kwargs)
+    monkeypatch.setattr(Store, "__init__", init)
+    yield
+    left = [os.fspath(s.path) for s in opened if not getattr(s, "_closed", True)]
+    assert not left, f"Store left open: {left}"
+
+
+@pytest.fixture
+def store(tmp_path):
+    """An empty database in the test's folder (tmp_path/qcd.sqlite), closed afterwards."""
+    from qcd.store import Store
+    with Store(tmp_path / "qcd.sqlite") as s:
+        yield s
 
 
 # --- loopback notification sinks (tests/sinks.py) ----------------------------------------------

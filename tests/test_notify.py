@@ -12,7 +12,6 @@ from qcd.alerts import Message
 from qcd.cli import main
 from qcd.errors import DeliveryError
 from qcd.notify import BACKOFF_CAP_S, Sender, backoff_s, deliver_due
-from qcd.store import Store
 
 from sinks import HttpSink
 from stored import outbox_rows
@@ -20,15 +19,8 @@ from stored import outbox_rows
 T0 = 1_780_000_000.0
 
 
-@pytest.fixture
-def store(tmp_path):
-    s = Store(tmp_path / "qcd.sqlite")
-    yield s
-    s.close()
-
-
 def _queue(store, n, now=T0, kind="firing"):
-    msgs = [Message(alert_key=f"rig-a|voltage_clamp|0|hum_rms|hum_jump", transition=i + 1,
+    msgs = [Message(alert_key="rig-a|voltage_clamp|0|hum_rms|hum_jump", transition=i + 1,
                     kind=kind, priority=2, rig="rig-a", title=f"qcd rig-a: message {i}",
                     body=f"body {i}: hum_rms 0.5 pA") for i in range(n)]
     store.commit_alerts((), msgs, now=now)

@@ -78,13 +78,6 @@ def rules():
     return load_rules()
 
 
-@pytest.fixture
-def store(tmp_path):
-    s = Store(tmp_path / "qcd.sqlite")
-    yield s
-    s.close()
-
-
 def _run(files, times, rig, store, rules, sender=None):
     out = []
     for path, now in zip(files, times):

@@ -20,7 +20,6 @@ from qcd.judge import Finding
 from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum
 from qcd.report import (build_report, normal_range, parse_since, render_html, render_text,
                         render_trend_csv, render_trend_text, sparkline, trend_rows)
-from qcd.store import Store
 
 NOW = datetime(2026, 11, 20, 8, 0, tzinfo=timezone.utc).timestamp()
 RA = [8.0, 9.0, 10.0, 9.5, 8.5, 11.0, 10.0, 10.5, 9.0, 9.5]   # docs/methods.md §7 check values
@@ -46,8 +45,9 @@ def _fm(i: int, t: float, ra: float, hum: float, status: str = "ok") -> FileMeas
 
 
 @pytest.fixture
-def store(tmp_path):
-    s = Store(tmp_path / "qcd.sqlite")
+def store(store):
+    """The shared empty store, filled: rig-a's history with one flagged file, rig-b's one file."""
+    s = store
     for i, ra in enumerate(RA):
         s.commit_file("rig-a", _fm(i, NOW - (12 - i) * 86400.0, ra, 0.3), analysed_at=NOW)
     hint = "mains hum rose against the reference: check the grounding of the rig"
@@ -64,8 +64,7 @@ def store(tmp_path):
     s.commit_file("rig-a", _fm(11, NOW - 1800.0, 0, 0, status="error"), analysed_at=NOW)
     s.commit_file("rig-b", _fm(12, NOW - 7200.0, 9.0, 0.2), analysed_at=NOW)
     s.fid = fid
-    yield s
-    s.close()
+    return s
 
 
 def test_normal_range_matches_the_published_robust_z_example():

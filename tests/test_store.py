@@ -39,13 +39,6 @@ DAY = 86400.0
 T0 = 1_780_000_000.0          # a fixed "now" (2026), passed in as the clock
 
 
-@pytest.fixture
-def store(tmp_path):
-    s = Store(tmp_path / "qcd.sqlite")
-    yield s
-    s.close()
-
-
 def fmeasures(path="/data/rig-a/c01.abf", sha="a" * 64, at: float | None = T0 - DAY,
               noise=1.25, status="ok", mode="voltage_clamp", **kw) -> FileMeasures:
     recorded = None if at is None else datetime.fromtimestamp(at, timezone.utc).replace(tzinfo=None)

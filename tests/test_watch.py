@@ -88,13 +88,6 @@ class Recorder:
         return [Path(fm.path).name for fm in self.committed]
 
 
-@pytest.fixture
-def store(tmp_path):
-    s = Store(tmp_path / "qcd.sqlite")
-    yield s
-    s.close()
-
-
 @contextlib.contextmanager
 def _running(cfg, store, **kw):
     """A started service (measuring on its own thread) with its Recorder and loop step."""
