@@ -96,6 +96,7 @@ def test_scan_corrupt_file_among_good_ones_does_not_stop_the_scan(tmp_path, caps
     assert docs["cc_steps.abf"]["status"] == "ok"
 
 
+@pytest.mark.slow
 def test_scan_workers_give_the_same_output(tmp_path, capsys):
     folder, _ = _good(tmp_path, "vc_model_cell_step.abf", "cc_steps.abf", "cc_steps_abf1.abf",
                       "four_channel_no_cell.abf")

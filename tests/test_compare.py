@@ -86,6 +86,7 @@ def test_folders_use_file_to_file_variation(tmp_path):
         pytest.approx(20 * math.log10(0.25), abs=0.5)
 
 
+@pytest.mark.slow
 def test_outputs_json_text_and_self_contained_html(tmp_path):
     before = _write(tmp_path / "b.abf", 2.0, seed=1)
     after = _write(tmp_path / "a.abf", 0.5, seed=2)

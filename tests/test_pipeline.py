@@ -236,6 +236,7 @@ def test_unreadable_file_is_stored_as_error_and_reported(lab, rig, store, rules,
     assert row["status"] == "error"
 
 
+@pytest.mark.slow
 def test_scan_store_command_runs_the_whole_chain(lab, tmp_path, http_sink, capsys):
     folder, files, _ = lab
     scan_dir = tmp_path / "scan"

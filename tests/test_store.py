@@ -589,6 +589,7 @@ def same(a, b) -> bool:
     return a == b
 
 
+@pytest.mark.slow
 def test_stored_values_round_trip(tmp_path):
     store = Store(tmp_path / "h.sqlite")
     counter = iter(range(10 ** 9))
