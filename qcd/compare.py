@@ -5,8 +5,8 @@ this module pairs them: per noise band and mains harmonic (qcd.measures.spectrum
 hum) the change in dB and in the display unit, its standard error from the files' own
 variation (block to block within a file, or file to file when folders are given), and the
 registry's hint that fits. Terminal, JSON and HTML output.
-Imports numpy, qcd.analyze, qcd.recording, qcd.intake (finding files), qcd.measures.spectrum,
-qcd.results and qcd.html.
+Imports numpy, qcd.analyze, qcd.pipeline (measuring a side's files), qcd.recording,
+qcd.intake (finding files), qcd.measures.spectrum, qcd.results and qcd.html.
 """
 from __future__ import annotations
 
@@ -19,12 +19,14 @@ from typing import Any
 
 import numpy as np
 
-from qcd.analyze import Baseline, analyze_path, baseline_blocks
+from qcd.analyze import Baseline, baseline_blocks
+from qcd.config import RigConfig
 from qcd.errors import QcdError, RecordingError
 from qcd.html import Curve, page, spectra_figure
 from qcd.intake import recordings_in
 from qcd.measures import mains
 from qcd.measures import spectrum as sp
+from qcd.pipeline import measure
 from qcd.recording import open_recording
 from qcd.results import HINTS, MEASURES, SAFETY_NOTE, shown
 
@@ -180,8 +182,9 @@ def _mains(freqs: np.ndarray, psd: np.ndarray, k: int) -> float:
 def _analyze_measures(paths: list[Path], channel: int, line: float | None) -> dict[str, float]:
     """Median of analyze's numeric measures of channel ``channel`` over the side's files."""
     vals: dict[str, list[float]] = {}
+    rig = RigConfig("", (), mains_hz=line)      # no rig: only the mains frequency is known
     for p in paths:
-        fm = analyze_path(p, mains_hz=line, digest=False)
+        fm = measure(p, rig, digest=False)
         for ch in fm.channels:
             if ch.index != channel:
                 continue
