@@ -22,6 +22,7 @@ from qcd import pipeline
 from qcd.config import Config, RigConfig
 from qcd.intake import GaveUp, Intake, header_fits, is_candidate_name
 from qcd.store import Store
+from qcd.ruleset import Rules, load_rules
 from qcd.status import status
 from qcd.watch import Service, is_network_path
 
@@ -72,11 +73,10 @@ def _config(tmp_path: Path, folders, *, settle_s=0.5, give_up_h=1.0, polling=Fal
 class Recorder:
     """Counts what the service commits; measures and commits through the real pipeline."""
 
-    def __init__(self, store: Store) -> None:
-        from qcd.ruleset import load_rules
+    def __init__(self, store: Store, rules: Rules | None = None) -> None:
         self.store = store
         self.committed: list = []
-        self.rules = load_rules()
+        self.rules = rules or load_rules()
 
     def measure(self, path: str, rig):
         return pipeline.measure(path, rig)
@@ -452,7 +452,9 @@ def test_thousand_small_files_dropped_at_once_are_all_measured(tmp_path, store):
     for i in range(1000):                      # distinct content: the store keeps one per sha256
         (staging / f"s{i:04d}.abf").write_bytes(template[:-4] + i.to_bytes(4, "little"))
     cfg = _config(tmp_path, [folder], settle_s=0.3)
-    rec = Recorder(store)
+    # the burst is the point here, not judging (test_pipeline and test_judge do that): no rules
+    (tmp_path / "no_rules.toml").write_text("[settings]\n")
+    rec = Recorder(store, load_rules([tmp_path / "no_rules.toml"]))
     # measured in two worker processes, as the service runs by default
     svc = Service(cfg, store, workers=2, commit=rec.commit, poll_s=0.02, progress_tty=False)
     svc.start(time.time())
@@ -526,7 +528,6 @@ def test_catch_up_draws_a_progress_bar_on_a_terminal(tmp_path, store, capsys):
 
 
 def test_backlog_gives_one_digest_not_a_message_per_file(tmp_path, store):
-    from qcd.ruleset import load_rules
     folder = tmp_path / "rig"
     folder.mkdir()
     for i in range(6):                         # six unreadable files waiting at start-up
