@@ -16,7 +16,7 @@ import time
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import Callable
+from typing import Callable, Iterable
 
 import numpy as np
 
@@ -291,8 +291,9 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
              end: datetime | None = None) -> DemoResult:
     """Build the lab in ``folder`` (a new temporary folder when None) and run the real watch
     service over it with a simulated clock: each simulated day's recordings appear in the rig
-    folders in the evening, the service measures, judges and alerts, and its messages go
-    through apprise to alerts.log. Ends with the morning report (text and HTML)."""
+    folders in the evening (one file per rig at a time, so a rig's files are stored in the
+    order recorded whatever ``workers`` is), the service measures, judges and alerts, and its
+    messages go through apprise to alerts.log. Ends with the morning report (text and HTML)."""
     from qcd import notify
     from qcd.config import load_config
     from qcd.ruleset import load_rules
@@ -349,11 +350,11 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
         try:
             svc.start(clock)
             for day in range(plan.days):
-                for f in by_day.get(day, ()):       # the day's acquisitions arrive
-                    dest = folder / f.relpath
-                    os.replace(staging / f.relpath, dest)
                 clock = max(clock, plan.day_start(day) + 20 * 3600.0)
-                clock = _drain(svc, clock, config.settle_seconds)
+                for group in _rounds(by_day.get(day, ())):   # the day's acquisitions arrive
+                    for f in group:
+                        os.replace(staging / f.relpath, folder / f.relpath)
+                    clock = _drain(svc, clock, config.settle_seconds, len(group))
                 counts = store.outbox_counts()
                 if day % max(1, plan.days // 7) == 0 or day == plan.days - 1:
                     say(f"      day {day + 1}/{plan.days} ({_date(plan.day_start(day))}): "
@@ -391,22 +392,46 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
                       len(plan.files), seconds, text, plan)
 
 
-def _drain(svc, clock: float, settle_s: float, limit_s: float = 120.0) -> float:
-    """Step the service until it has nothing left to do; returns the simulated clock."""
+def _rounds(files: Iterable[FileSpec]) -> list[list[FileSpec]]:
+    """The files in groups with one file per rig at most, each rig's in the order recorded.
+
+    Each group is stored before the next arrives, so a rig's files are judged one after
+    another in recording order however many processes measure them: the run is reproducible.
+    """
+    groups: list[list[FileSpec]] = []
+    last: dict[str, int] = {}
+    for f in sorted(files, key=lambda f: f.recorded_at):
+        k = last.get(f.rig, -1) + 1
+        if k == len(groups):
+            groups.append([])
+        groups[k].append(f)
+        last[f.rig] = k
+    return groups
+
+
+def _drain(svc, clock: float, settle_s: float, files: int = 0, limit_s: float = 120.0) -> float:
+    """Step the service until it has finished ``files`` more files (their folder events arrive
+    on the observer's thread, a moment after the move) and has nothing left to do; returns the
+    simulated clock."""
+    target = sum(svc.counts.values()) + files
     idle = 0
     deadline = time.monotonic() + limit_s
     while time.monotonic() < deadline:
         clock += settle_s + 0.5
         _SIM_NOW[0] = clock
         busy = svc.step(clock)
-        if svc.queue_len() == 0 and not busy:
+        if svc.queue_len() == 0 and not busy and sum(svc.counts.values()) >= target:
             idle += 1
             if idle >= 2:
                 break
         else:
             idle = 0
-            if not busy:
-                time.sleep(0.003)       # the workers are measuring: give them the cores
+            if busy:
+                continue
+            if svc.workers and svc.queue_len() > len(svc.intake):
+                svc.wait_idle()         # until a worker hands back a file
+            else:
+                time.sleep(0.003)       # its folder events are on their way
     return clock
 
 

@@ -124,8 +124,9 @@ def lab(tmp_path_factory):
     import io
     folder = tmp_path_factory.mktemp("lab")
     out = io.StringIO()
-    # workers=0: files are measured and committed in arrival order, so the run is reproducible
-    result = demo.run_demo(folder, days=7, files_per_day=3, out=out, workers=0,
+    # two worker processes, as on the 2-core CI machine: each rig's files still arrive and are
+    # stored one after another (demo._rounds), so the run is reproducible
+    result = demo.run_demo(folder, days=7, files_per_day=3, out=out, workers=2,
                            end=datetime(2026, 11, 20, tzinfo=timezone.utc))
     from qcd.store import Store
     store = Store(result.database)
