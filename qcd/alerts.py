@@ -1,8 +1,8 @@
-"""Alert lifecycle (pure): (states, findings, silences, now, settings) -> (states, messages).
+"""Alert lifecycle (pure): (states, findings, mutes, now, settings) -> (states, messages).
 
 Key = (rig, mode, channel, measure, rule); states ok -> suspect -> open -> ok. Opening counts
 consecutive bad files, clearing counts good files beyond the clear level, a flap guard quiets
-unstable keys, reminders repeat at most every repeat_h while bad files arrive. Silences,
+unstable keys, reminders repeat at most every remind_h while bad files arrive. Mutes,
 inhibition and the learning phase hold messages back; the state machine always runs. One
 file's events become ONE message; a backlog (``batch=True`` + ``flush_digest``) becomes one
 digest. Every event has a number (``seq``) so an outbox row is unique on (key, transition).
@@ -19,7 +19,7 @@ if TYPE_CHECKING:
     from qcd.ruleset import RuleSettings
     from qcd.judge import Finding
 
-__all__ = ["AlertState", "Message", "Silence", "advance", "flush_digest", "tick", "PRIORITY"]
+__all__ = ["AlertState", "Message", "Mute", "advance", "flush_digest", "tick", "PRIORITY"]
 
 # Outbox priorities: firing above reminders above resolved (resolved are lower priority).
 PRIORITY = {"firing": 2, "unstable": 2, "digest": 2, "reminder": 1, "resolved": 0}
@@ -48,9 +48,9 @@ class AlertState:
     flapping: bool = False
     changes: list[int] = field(default_factory=list)   # 1 per file with an open/resolve change
     stable_files: int = 0
-    muted: str = ""                    # why the last message was held: silence|learning|inhibited
-    silences: list[int] = field(default_factory=list)  # until-resolved silences used this episode
-    spent: list[int] = field(default_factory=list)     # until-resolved silences whose episode ended
+    muted: str = ""                    # why the last message was held: mute|learning|inhibited
+    mutes: list[int] = field(default_factory=list)     # until-resolved mutes used this episode
+    spent: list[int] = field(default_factory=list)     # until-resolved mutes whose episode ended
     pending_resolved: bool = False     # batch mode: resolved, to be reported in the digest
     bad_files: int = 0                 # bad files in this episode
     value: float | None = None
@@ -58,9 +58,9 @@ class AlertState:
     limit_text: str = ""
     hint: str = ""
     path: str = ""
-    for_files: int = 2
-    clear_files: int = 3
-    repeat_h: float = 24.0
+    open_after_files: int = 2
+    resolve_after_files: int = 3
+    remind_h: float = 24.0
     learning: bool = False
     headline: str = ""
 
@@ -80,7 +80,7 @@ class AlertState:
             data["state"] = data["machine"]
         names = {f.name for f in fields(cls)}
         kw = {k: v for k, v in data.items() if k in names}
-        for k in ("changes", "silences", "spent"):
+        for k in ("changes", "mutes", "spent"):
             kw[k] = list(kw.get(k) or [])
         kw["announced"] = bool(kw.get("announced", False))
         kw["flapping"] = bool(kw.get("flapping", False))
@@ -105,13 +105,13 @@ class Message:
 
 
 @dataclass(frozen=True)
-class Silence:
+class Mute:
     """Messages of matching rigs/rules held back from start_at until end_at (a stored row)."""
     id: int
     rig_glob: str
     rule_glob: str
     start_at: float
-    end_at: float | None          # None: until the silenced alerts resolve
+    end_at: float | None          # None: until the muted alerts resolve
     reason: str
 
 
@@ -122,19 +122,19 @@ class _Event:
     seq: int
 
 
-def _silence_for(s: AlertState, silences: Iterable[Silence], now: float) -> Silence | None:
-    """The first silence that mutes this key now (until-resolved ones once per episode)."""
-    for sil in silences:
-        start, end = sil.start_at, sil.end_at
+def _mute_for(s: AlertState, mutes: Iterable[Mute], now: float) -> Mute | None:
+    """The first mute that holds this key's messages now (until-resolved ones once per episode)."""
+    for mute in mutes:
+        start, end = mute.start_at, mute.end_at
         if now < start or (end is not None and now >= end):
             continue
-        if not fnmatch.fnmatchcase(s.rig, sil.rig_glob):
+        if not fnmatch.fnmatchcase(s.rig, mute.rig_glob):
             continue
-        if not fnmatch.fnmatchcase(s.rule, sil.rule_glob):
+        if not fnmatch.fnmatchcase(s.rule, mute.rule_glob):
             continue
-        if end is None and sil.id in s.spent:
+        if end is None and mute.id in s.spent:
             continue
-        return sil
+        return mute
     return None
 
 
@@ -160,15 +160,15 @@ def _inhibited(s: AlertState, states: Mapping[str, AlertState], rig_bad: set[str
     return False
 
 
-def _mute_reason(s: AlertState, states: Mapping[str, AlertState], silences: Iterable[Silence],
+def _mute_reason(s: AlertState, states: Mapping[str, AlertState], mutes: Iterable[Mute],
                  rig_bad: set[str], now: float) -> str:
     if s.learning and s.kind == "drift":
         return "learning"
-    sil = _silence_for(s, silences, now)
-    if sil is not None:
-        if sil.end_at is None and sil.id not in s.silences:
-            s.silences.append(sil.id)
-        return "silence"
+    mute = _mute_for(s, mutes, now)
+    if mute is not None:
+        if mute.end_at is None and mute.id not in s.mutes:
+            s.mutes.append(mute.id)
+        return "mute"
     if _inhibited(s, states, rig_bad):
         return "inhibited"
     return ""
@@ -176,8 +176,8 @@ def _mute_reason(s: AlertState, states: Mapping[str, AlertState], silences: Iter
 
 def _step(s: AlertState, f: Finding, now: float, settings: RuleSettings) -> list[str]:
     """Advance one key by one file; the raw events ('opened', 'resolved', 'reminder', ...)."""
-    for name in ("severity", "value", "unit", "limit_text", "hint", "path", "for_files",
-                 "clear_files", "repeat_h", "learning", "headline"):
+    for name in ("severity", "value", "unit", "limit_text", "hint", "path", "open_after_files",
+                 "resolve_after_files", "remind_h", "learning", "headline"):
         setattr(s, name, getattr(f, name))
     s.updated_at = now
     events: list[str] = []
@@ -189,13 +189,13 @@ def _step(s: AlertState, f: Finding, now: float, settings: RuleSettings) -> list
             s.state = "suspect"
             s.bad_files = 0
         s.bad_files += 1
-        if s.state == "suspect" and s.bad_run >= max(1, f.for_files):
+        if s.state == "suspect" and s.bad_run >= max(1, f.open_after_files):
             s.state, s.opened_at, s.resolved_at = "open", now, None
             s.announced = s.announced and s.flapping     # the flap guard's message still holds
             change = True
             events.append("opened")
         elif s.state == "open" and s.announced and s.last_sent_at is not None and \
-                now - s.last_sent_at >= f.repeat_h * 3600.0:
+                now - s.last_sent_at >= f.remind_h * 3600.0:
             events.append("reminder")
     else:
         s.bad_run = 0
@@ -203,7 +203,7 @@ def _step(s: AlertState, f: Finding, now: float, settings: RuleSettings) -> list
             s.state = "ok"
         elif s.state == "open":
             s.clear_run = s.clear_run + 1 if f.clear else 0
-            if s.clear_run >= max(1, f.clear_files):
+            if s.clear_run >= max(1, f.resolve_after_files):
                 s.state, s.resolved_at, s.clear_run = "ok", now, 0
                 change = True
                 events.append("resolved")
@@ -227,7 +227,7 @@ def _load(states: Mapping[str, AlertState | dict]) -> dict[str, AlertState]:
 
 
 def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding],
-            silences: Iterable[Silence], now: float, settings: RuleSettings, *,
+            mutes: Iterable[Mute], now: float, settings: RuleSettings, *,
             batch: bool = False) -> tuple[dict[str, AlertState], list[Message]]:
     """One file's findings -> (all states, messages: at most one per rig).
 
@@ -235,7 +235,7 @@ def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding]
     stay unannounced and announced resolutions are kept for ``flush_digest``.
     """
     out = _load(states)
-    silences = list(silences)
+    mutes = list(mutes)
     findings = list(findings)
     rig_bad = {f.rig for f in findings if f.kind == "rig" and f.bad}
     raw: list[tuple[str, AlertState]] = []
@@ -251,11 +251,11 @@ def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding]
     for what, s in raw:
         s.seq += 1
         if what == "resolved":
-            s.silences, s.spent = [], sorted(set(s.spent) | set(s.silences))
-        if what == "resolved":      # resolutions are held only by a silence
-            reason = "silence" if _silence_for(s, silences, now) is not None else ""
+            s.mutes, s.spent = [], sorted(set(s.spent) | set(s.mutes))
+        if what == "resolved":      # resolutions are held only by a mute
+            reason = "mute" if _mute_for(s, mutes, now) is not None else ""
         else:
-            reason = _mute_reason(s, out, silences, rig_bad, now)
+            reason = _mute_reason(s, out, mutes, rig_bad, now)
         if what == "resolved":
             was = s.announced
             s.announced = False
@@ -284,18 +284,18 @@ def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding]
         events.append(_Event(what, s, s.seq))
     if not batch:
         done = {e.state.key for e in events}
-        events += _late(out, silences, rig_bad, now, skip=done)
+        events += _late(out, mutes, rig_bad, now, skip=done)
     return out, _group(events, now)
 
 
-def _late(out: dict[str, AlertState], silences: list[Silence], rig_bad: set[str], now: float,
+def _late(out: dict[str, AlertState], mutes: list[Mute], rig_bad: set[str], now: float,
           skip: set[str] = frozenset()) -> list[_Event]:
-    """Open keys never announced (held by a silence that ended, inhibition, learning): announce."""
+    """Open keys never announced (held by a mute that ended, inhibition, learning): announce."""
     events = []
     for s in sorted(out.values(), key=lambda x: x.key):
         if s.key in skip or s.state != "open" or s.announced:
             continue
-        if _mute_reason(s, out, silences, rig_bad, now):
+        if _mute_reason(s, out, mutes, rig_bad, now):
             continue
         s.seq += 1
         s.announced, s.last_sent_at = True, now
@@ -304,21 +304,21 @@ def _late(out: dict[str, AlertState], silences: list[Silence], rig_bad: set[str]
     return events
 
 
-def tick(states: Mapping[str, AlertState | dict], silences: Iterable[Silence], now: float,
+def tick(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute], now: float,
          settings: RuleSettings) -> tuple[dict[str, AlertState], list[Message]]:
-    """No new file: announce open alerts whose silence has ended (one message per rig)."""
+    """No new file: announce open alerts whose mute has ended (one message per rig)."""
     out = _load(states)
-    return out, _group(_late(out, list(silences), set(), now), now)
+    return out, _group(_late(out, list(mutes), set(), now), now)
 
 
-def flush_digest(states: Mapping[str, AlertState | dict], silences: Iterable[Silence],
+def flush_digest(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute],
                  now: float, settings: RuleSettings
                  ) -> tuple[dict[str, AlertState], Message | None]:
     """After a backlog: ONE message listing what opened and what resolved, or None."""
     out = _load(states)
-    # Opened during the backlog itself, not held back by a silence: say so plainly.
+    # Opened during the backlog itself, not held back by a mute: say so plainly.
     events = [_Event("backlog", e.state, e.seq) if e.what == "late" else e
-              for e in _late(out, list(silences), set(), now)]
+              for e in _late(out, list(mutes), set(), now)]
     for s in sorted(out.values(), key=lambda x: x.key):
         if s.pending_resolved:
             s.pending_resolved = False
@@ -368,14 +368,15 @@ def _describe(e: _Event) -> str:
              f"  file: {s.path}",
              f"  value: {_value(s)}; {'' if s.kind == 'drift' else 'limit: '}{s.limit_text}"]
     if e.what == "resolved":
-        lines.append(f"  resolved after {s.clear_files} good files; open since {_when(s.opened_at)}")
+        lines.append(f"  resolved after {s.resolve_after_files} good files; open since "
+                     f"{_when(s.opened_at)}")
     elif e.what == "unstable":
         lines.append("  this alert keeps opening and resolving: it stays open and quiet until "
                      "it has been stable for a while")
     elif e.what == "reminder":
         lines.append(f"  open since {_when(s.opened_at)}, {s.bad_files} bad files so far")
     elif e.what == "late":
-        lines.append(f"  open since {_when(s.opened_at)} (messages were held back: silence, "
+        lines.append(f"  open since {_when(s.opened_at)} (messages were held back: mute, "
                      f"learning phase or a rig-level alert)")
     elif e.what == "backlog":
         lines.append(f"  open since {_when(s.opened_at)} (found while catching up on files "

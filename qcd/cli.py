@@ -130,21 +130,28 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("alerts", help="open and recent alerts, undelivered messages",
                        description="List open alerts, alerts resolved recently, active "
-                                   "silences and messages still waiting in the outbox.",
+                                   "mutes and messages still waiting in the outbox.",
                        epilog="Example: qcd alerts --days 7")
     p.add_argument("--days", type=float, default=7.0, metavar="D",
                    help="resolved alerts of the last D days (7)")
     p.add_argument("--rig", metavar="NAME", help="only this rig")
     _common(p)
 
-    p = sub.add_parser("silence", help="mute a rig's messages for a while",
-                       description="Mute the messages of a rig (glob) for a duration, or until "
-                                   "its open alerts resolve. Alerts keep being evaluated.",
-                       epilog="Example: qcd silence rig-b 2h --reason 'replacing headstage'")
-    p.add_argument("rig", metavar="RIG", help="rig name or glob ('*' for all)")
-    p.add_argument("duration", metavar="FOR", help="2h, 30m, 1d, or 'resolved'")
-    p.add_argument("--rule", default="*", metavar="GLOB", help="only rules matching (default *)")
+    p = sub.add_parser("mute", help="hold back a rig's messages for a while",
+                       description="Hold back the messages of a rig (glob) for a duration, or "
+                                   "until its open alerts resolve. Alerts keep being evaluated; "
+                                   "one still open when the mute ends is announced then. "
+                                   "Without arguments: list the active mutes.",
+                       epilog="Example: qcd mute rig-b 2h --reason 'replacing headstage'; "
+                              "lift it early with: qcd mute --end 3")
+    p.add_argument("rig", nargs="?", metavar="RIG", help="rig name or glob ('*' for all)")
+    p.add_argument("duration", nargs="?", metavar="FOR",
+                   help="2h, 30m, 1d, or 'resolved' (until its open alerts resolve)")
+    p.add_argument("--rule", default="*", metavar="GLOB",
+                   help="only rules whose name matches (default *)")
     p.add_argument("--reason", default="", help="why (shown in qcd alerts and the report)")
+    p.add_argument("--end", type=int, metavar="ID",
+                   help="lift the active mute ID now (IDs: qcd mute, or qcd alerts)")
     _common(p)
 
     p = sub.add_parser("init", help="write a commented starter qcd.toml",
@@ -455,7 +462,7 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
     return EXIT_FAILED if alerts.open or alerts.stuck else EXIT_OK
 
 
-def _cmd_silence(args: argparse.Namespace) -> int:
+def _cmd_mute(args: argparse.Namespace) -> int:
     import fnmatch
     import time
 
@@ -463,25 +470,60 @@ def _cmd_silence(args: argparse.Namespace) -> int:
     from qcd.store import Store
 
     cfg = load_config(find_config(args.config))
+    now = time.time()
+    if args.end is not None:
+        if args.rig or args.duration:
+            raise ConfigError(None, "--end", "give either RIG FOR (a new mute) or --end ID, "
+                                             "not both")
+        with Store(cfg.database) as store:
+            mute = next((m for m in store.active_mutes(now) if m.id == args.end), None)
+            if mute is None or not store.end_mute(args.end, now):
+                ids = ", ".join(str(m.id) for m in store.active_mutes(now)) or "none"
+                raise ConfigError(None, "--end", f"no active mute with ID {args.end} "
+                                                 f"(active: {ids})")
+        print(f"lifted mute {mute.id} ({_mute_scope(mute.rig_glob, mute.rule_glob)}); alerts "
+              f"still open are announced by the running service within a minute")
+        return EXIT_OK
+    if not args.rig:
+        with Store(cfg.database) as store:
+            active = store.active_mutes(now)
+        if not active:
+            print("no active mutes")
+        for m in active:
+            print(f"mute {m.id}: {_mute_scope(m.rig_glob, m.rule_glob)} until "
+                  f"{'its alerts resolve' if m.end_at is None else _local_time(m.end_at)}"
+                  + (f" ({m.reason})" if m.reason else ""))
+        return EXIT_OK
+    if not args.duration:
+        raise ConfigError(None, "FOR", "say for how long: 2h, 30m, 1d, or 'resolved'")
     until_resolved = args.duration.strip().lower() == "resolved"
     seconds = None if until_resolved else parse_duration(args.duration, "FOR")
     if not any(fnmatch.fnmatchcase(r.name, args.rig) for r in cfg.rigs):
         known = ", ".join(r.name for r in cfg.rigs) or "none"
         raise ConfigError(cfg.path, "RIG", f"no configured rig matches {args.rig!r} "
                           f"(configured: {known})")
-    now = time.time()
+    if args.rule != "*":
+        from qcd.ruleset import load_rules, rule_names
+        names = rule_names(load_rules(cfg.rules))
+        if not any(fnmatch.fnmatchcase(n, args.rule) for n in names):
+            raise ConfigError(None, "--rule", f"no rule matches {args.rule!r} (rules: "
+                                              f"{', '.join(names)})")
     end_at = None if seconds is None else now + seconds
     with Store(cfg.database) as store:
-        sid = store.add_silence(args.rig, args.rule, now, end_at, args.reason, now)
-    if end_at is None:
-        until = "its open alerts resolve"
-    else:
-        from datetime import datetime
-        until = datetime.fromtimestamp(end_at).astimezone().strftime("%Y-%m-%d %H:%M %Z")
-    rules = "" if args.rule == "*" else f" (rules {args.rule})"
-    print(f"silenced {args.rig}{rules} until {until} (silence {sid}); alerts are still "
-          f"evaluated and shown by 'qcd alerts'")
+        mid = store.add_mute(args.rig, args.rule, now, end_at, args.reason, now)
+    until = "its open alerts resolve" if end_at is None else _local_time(end_at)
+    print(f"muted {_mute_scope(args.rig, args.rule)} until {until} (mute {mid}; lift it early "
+          f"with 'qcd mute --end {mid}'); alerts are still evaluated and shown by 'qcd alerts'")
     return EXIT_OK
+
+
+def _mute_scope(rig_glob: str, rule_glob: str) -> str:
+    return f"rig {rig_glob}" + ("" if rule_glob == "*" else f", rules {rule_glob}")
+
+
+def _local_time(t: float) -> str:
+    from datetime import datetime
+    return datetime.fromtimestamp(t).astimezone().strftime("%Y-%m-%d %H:%M %Z")
 
 
 def _cmd_init(args: argparse.Namespace) -> int:
@@ -526,7 +568,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 _COMMANDS = {
     "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
     "trend": _cmd_trend, "compare": _cmd_compare, "alerts": _cmd_alerts,
-    "silence": _cmd_silence, "init": _cmd_init, "notify-test": _cmd_notify_test,
+    "mute": _cmd_mute, "init": _cmd_init, "notify-test": _cmd_notify_test,
     "demo": _cmd_demo,
 }
 

@@ -482,11 +482,15 @@ _DURATION_S = {"s": 1.0, "sec": 1.0, "m": 60.0, "min": 60.0, "h": 3600.0, "d": 8
 
 
 def parse_duration(text: str, key: str = "duration") -> float:
-    """'90m', '2h', '1.5d', '45s', '1w' -> seconds (> 0); a bare number is hours."""
+    """'90m', '2h', '1.5d', '45s', '1w' -> seconds (> 0). A bare number is refused: '2' could
+    mean minutes or hours, so the error asks for the unit."""
     m = _DURATION.match(str(text))
     if not m:
         raise ConfigError(None, key, f"expected a duration like 30m, 2h or 1d, got {text!r}")
-    seconds = float(m.group(1)) * _DURATION_S[(m.group(2) or "h").lower()]
+    if m.group(2) is None:
+        raise ConfigError(None, key, f"{text.strip()!r} has no unit: say {text.strip()}h "
+                                     f"(or {text.strip()}m, {text.strip()}d)")
+    seconds = float(m.group(1)) * _DURATION_S[m.group(2).lower()]
     if seconds <= 0:
         raise ConfigError(None, key, f"expected a duration above zero, got {text!r}")
     return seconds

@@ -15,7 +15,7 @@ import numpy as np
 
 from qcd.measures.noise import MAD_SCALE
 from qcd.results import HINTS, MEASURES, SAFETY_NOTE, ChannelMeasures, FileMeasures, Measure
-from qcd.ruleset import HistoryRule, LimitRule, Rules
+from qcd.ruleset import INTAKE_RULE, HistoryRule, LimitRule, Rules
 from qcd.units import DIMENSION, FACTORS
 
 __all__ = ["Finding", "Chart", "CusumChart", "judge", "robust_z", "baseline", "ewma",
@@ -47,9 +47,9 @@ class Finding:
     limit_text: str
     hint: str = ""
     clear: bool = True
-    for_files: int = 2
-    clear_files: int = 3
-    repeat_h: float = 24.0
+    open_after_files: int = 2
+    resolve_after_files: int = 3
+    remind_h: float = 24.0
     learning: bool = False
     path: str = ""
     headline: str = ""           # a few words for a message title: 'below 1 GOhm', '3.1x its normal'
@@ -411,9 +411,10 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
     """
     st = rules.settings
     path = str(fm.path)
-    intake = dict(rig=rig_name, mode="*", channel=-1, measure="file", rule="intake_error",
-                  kind="rig", severity="warning", unit="", for_files=st.intake_for_files,
-                  clear_files=st.clear_files, repeat_h=st.repeat_h, path=path)
+    intake = dict(rig=rig_name, mode="*", channel=-1, measure="file", rule=INTAKE_RULE,
+                  kind="rig", severity="warning", unit="",
+                  open_after_files=st.intake_open_after_files,
+                  resolve_after_files=st.resolve_after_files, remind_h=st.remind_h, path=path)
     if fm.status != "ok":
         return [Finding(bad=True, value=None, clear=False,
                         limit_text=f"file not measured ({fm.error_kind or 'error'})",
@@ -444,8 +445,9 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     severity=rule.severity,
                     value=float(m.value),
                     unit=m.unit, limit_text=rule.text, hint=hint, clear=clear_ok,
-                    for_files=rule.for_files, clear_files=rule.clear_files,
-                    repeat_h=rule.repeat_h, path=path, headline=rule.text))
+                    open_after_files=rule.open_after_files,
+                    resolve_after_files=rule.resolve_after_files,
+                    remind_h=rule.remind_h, path=path, headline=rule.text))
             hist_rules = [r for r in rules.history
                           if r.measure == m.name and _matches(r.modes, mode)]
             if not hist_rules or _number(m.value) is None:
@@ -486,9 +488,10 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                 out.append(Finding(
                     rig=rig_name, mode=mode, channel=ch.index, measure=m.name, rule=rule.name,
                     kind="drift", bad=bad, severity=rule.severity, value=value, unit=m.unit,
-                    limit_text=text, hint=hint, clear=clear_ok, for_files=rule.for_files,
-                    clear_files=rule.clear_files, repeat_h=rule.repeat_h, learning=learning,
-                    path=path, headline=headline))
+                    limit_text=text, hint=hint, clear=clear_ok,
+                    open_after_files=rule.open_after_files,
+                    resolve_after_files=rule.resolve_after_files, remind_h=rule.remind_h,
+                    learning=learning, path=path, headline=headline))
     if rules.history and seen < st.learning_files:
         out.append(Finding(rig=rig_name, mode=mode, channel=-1, measure="files", rule="learning",
                            kind="rig", bad=False, severity="info", value=float(seen), unit="",

@@ -2,7 +2,7 @@
 
 ``measure`` is the one measuring path (the service's workers, ``qcd scan`` with or without
 ``--store``); ``commit`` judges and stores what it measured; ``process`` = ``commit(measure())``.
-``flush_digest`` ends a backlog with one message; ``tick`` announces alerts whose silence
+``flush_digest`` ends a backlog with one message; ``tick`` announces alerts whose mute
 ended. Only here are unexpected errors caught: a bad file becomes an error row, a bug becomes
 error_kind 'internal' (logged with its traceback). Imports qcd.analyze, qcd.results,
 qcd.recording and qcd.intake (headers for ordering), qcd.judge, qcd.alerts, qcd.workers,
@@ -117,18 +117,18 @@ def _deliver(store: Store, sender: Sender | None, now: float) -> None:
         log.exception("delivering notifications")
 
 
-def _end_resolved_silences(store: Store, now: float) -> None:
-    """End 'until resolved' silences once every alert they muted has resolved."""
-    open_ended = [s for s in store.active_silences(now) if s.end_at is None]
+def _end_resolved_mutes(store: Store, now: float) -> None:
+    """End 'until resolved' mutes once every alert they muted has resolved."""
+    open_ended = [s for s in store.active_mutes(now) if s.end_at is None]
     if not open_ended:
         return
     states = store.alert_states().values()
-    for sil in open_ended:
-        used = any(sil.id in (st.get("spent") or []) for st in states)
-        live = any(sil.id in (st.get("silences") or []) for st in states)
+    for mute in open_ended:
+        used = any(mute.id in (st.get("spent") or []) for st in states)
+        live = any(mute.id in (st.get("mutes") or []) for st in states)
         if used and not live:
-            store.end_silence(sil.id, now)
-            log.info("silence %s (%s) ended: its alerts resolved", sil.id, sil.reason)
+            store.end_mute(mute.id, now)
+            log.info("mute %s (%s) ended: its alerts resolved", mute.id, mute.reason)
 
 
 def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float,
@@ -142,7 +142,7 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
     try:
         findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)
-        states, messages = alerts.advance(before, findings, store.active_silences(now), now,
+        states, messages = alerts.advance(before, findings, store.active_mutes(now), now,
                                           rules.settings, batch=batch)
         changed = _changed(before, states)
     except StoreError:
@@ -155,7 +155,7 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
     store.commit_file(name, fm, analysed_at=now, findings=findings, alert_states=changed,
                       messages=messages)
     if changed:
-        _end_resolved_silences(store, now)
+        _end_resolved_mutes(store, now)
     _deliver(store, sender, now)             # also retries rows still pending
     return fm
 
@@ -170,7 +170,7 @@ def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None =
                  ) -> alerts.Message | None:
     """After a backlog: one digest of what opened and resolved, queued with its states."""
     before = store.alert_states()
-    states, message = alerts.flush_digest(before, store.active_silences(now), now,
+    states, message = alerts.flush_digest(before, store.active_mutes(now), now,
                                           rules.settings)
     changed = _changed(before, states)
     if changed or message is not None:
@@ -182,9 +182,9 @@ def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None =
 
 def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None
          ) -> list[alerts.Message]:
-    """No new file: one message per rig for open alerts whose silence has just ended."""
+    """No new file: one message per rig for open alerts whose mute has just ended."""
     before = store.alert_states()
-    states, messages = alerts.tick(before, store.active_silences(now), now, rules.settings)
+    states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings)
     changed = _changed(before, states)
     if changed or messages:
         store.commit_alerts(changed, messages, now=now)

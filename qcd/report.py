@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Any, Iterable
 
 import numpy as np
 
-from qcd.alerts import Silence
+from qcd.alerts import Mute
 from qcd.config import parse_duration, redact_text
 from qcd.errors import ConfigError
 from qcd.html import Curve, Panel, page, spectra_figure, trend_figure
@@ -126,7 +126,7 @@ class RigReport:
     open_alerts: tuple[dict, ...]
     hints: tuple[str, ...]
     safety_note: str | None
-    silences: tuple[dict, ...] = ()      # active silences matching the rig
+    mutes: tuple[dict, ...] = ()         # active mutes matching the rig
     resolved_alerts: tuple[dict, ...] = ()   # alerts that resolved within the period
     trends: tuple[Trend, ...] = ()       # the plotted key measures (at most six)
     spectrum: LatestSpectrum | None = None
@@ -263,9 +263,9 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
         alerts = tuple(store.open_alerts(rig=rig))
         lines, trends = _key_measures(store, rig, now, list(alerts) + list(
             store.recent_alerts(now - HISTORY_DAYS * 86400.0, rig=rig)))
-        silences = tuple({"rig_glob": x.rig_glob, "rule_glob": x.rule_glob,
+        mutes = tuple({"rig_glob": x.rig_glob, "rule_glob": x.rule_glob,
                           "start_at": x.start_at, "end_at": x.end_at, "reason": x.reason}
-                         for x in store.active_silences(now) if fnmatch.fnmatchcase(rig, x.rig_glob))
+                         for x in store.active_mutes(now) if fnmatch.fnmatchcase(rig, x.rig_glob))
         slim = tuple(dict({k: f.get(k) for k in ("id", "path", "recorded_at", "mtime", "status",
                                                  "error_kind", "error", "mode", "flagged")},
                           flags=tuple(dict.fromkeys(flags.get(f["id"], ()))))
@@ -276,7 +276,7 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
             sum(f.get("status") == "error" for f in files),
             sum(bool(f.get("flagged")) for f in files), slim, tuple(lines),
             tuple(dict(a) for a in alerts), tuple(hints),
-            SAFETY_NOTE if any(_is_grounding(h) for h in hints) else None, silences,
+            SAFETY_NOTE if any(_is_grounding(h) for h in hints) else None, mutes,
             resolved, tuple(trends), _latest_spectrum(store, rig, files, now)))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
@@ -303,11 +303,11 @@ def _alert_text(a: dict) -> str:
     return f"{' / '.join(parts) or a.get('key', '?')}{chs} since {_when(a.get('opened_at'))}"
 
 
-def _silence_text(x: dict) -> str:
+def _mute_text(x: dict) -> str:
     until = "its alerts resolve" if x.get("end_at") is None else _when(x["end_at"]) + " UTC"
     rules = "" if x.get("rule_glob") in (None, "*") else f" (rules {x['rule_glob']})"
     why = f": {x['reason']}" if x.get("reason") else ""
-    return f"silenced until {until}{rules}{why}"
+    return f"muted until {until}{rules}{why}"
 
 
 def render_text(r: Report) -> str:
@@ -348,8 +348,8 @@ def render_text(r: Report) -> str:
         if rig.resolved_alerts:
             out.append(_wrap("   resolved in the period: " + ", ".join(
                 f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts), 100))
-        for x in rig.silences:
-            out.append(_wrap(f"   {_silence_text(x)}", 100))
+        for x in rig.mutes:
+            out.append(_wrap(f"   {_mute_text(x)}", 100))
         for h in rig.hints:
             out.append(_wrap(f"   hint: {h}", 100))
         if rig.safety_note:
@@ -435,21 +435,21 @@ def render_trend_csv(rows: list[tuple]) -> str:
 
 @dataclass(frozen=True)
 class AlertList:
-    """What ``qcd alerts`` shows: open and recently resolved alerts, silences, the outbox."""
+    """What ``qcd alerts`` shows: open and recently resolved alerts, mutes, the outbox."""
     days: float
     open: tuple[dict, ...]
     resolved: tuple[dict, ...]
-    silences: tuple[Silence, ...]
+    mutes: tuple[Mute, ...]
     outbox: dict[str, int]
     stuck: tuple[dict, ...]
 
 
 def build_alerts(store: Store, now: float, *, days: float, rig: str | None = None) -> AlertList:
-    """Open alerts, those resolved in the last ``days``, active silences and the outbox (of one
+    """Open alerts, those resolved in the last ``days``, active mutes and the outbox (of one
     rig, or every rig when None)."""
     return AlertList(
         days, tuple(store.open_alerts(rig)), tuple(store.recent_alerts(now - days * 86400.0, rig)),
-        tuple(s for s in store.active_silences(now)
+        tuple(s for s in store.active_mutes(now)
               if rig is None or fnmatch.fnmatchcase(rig, s.rig_glob)),
         dict(store.outbox_counts()),
         tuple(r for r in store.stuck_rows() if rig is None or r["rig"] == rig))
@@ -484,10 +484,10 @@ def render_alerts(a: AlertList, *, secrets: Iterable[str] = ()) -> str:
                                                             "opened", "resolved"),
                   [(x["rig"], x["channel"], x["measure"], x["rule"], _local(x["opened_at"]),
                     _local(x["resolved_at"])) for x in a.resolved])
-    out += _table("active silences", ("id", "rig", "rules", "from", "until", "reason"),
+    out += _table("active mutes", ("id", "rig", "rules", "from", "until", "reason"),
                   [(x.id, x.rig_glob, x.rule_glob, _local(x.start_at),
                     "resolved" if x.end_at is None else _local(x.end_at), x.reason)
-                   for x in a.silences])
+                   for x in a.mutes])
     ob = a.outbox
     out.append(f"outbox: {ob['pending']} pending, {ob['sent']} sent, {ob['stuck']} stuck")
     out += _table("undeliverable messages", ("id", "rig", "title", "attempts", "created",
@@ -548,8 +548,8 @@ def render_html(r: Report) -> str:
         if rig.resolved_alerts:
             parts.append("<p class='meta'>resolved in the period: " + html.escape(", ".join(
                 f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts)) + "</p>")
-        for x in rig.silences:
-            parts.append(f"<p class='meta'>{html.escape(_silence_text(x))}</p>")
+        for x in rig.mutes:
+            parts.append(f"<p class='meta'>{html.escape(_mute_text(x))}</p>")
         for h in rig.hints:
             parts.append(f"<p class='hint'>{html.escape(h)}</p>")
         if rig.safety_note:

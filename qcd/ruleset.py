@@ -16,7 +16,11 @@ from qcd.config import default_rules_path, read_toml
 from qcd.errors import ConfigError
 from qcd.units import parse_quantity
 
-__all__ = ["RuleSettings", "LimitRule", "HistoryRule", "Rules", "load_rules"]
+__all__ = ["RuleSettings", "LimitRule", "HistoryRule", "Rules", "load_rules", "rule_names",
+           "INTAKE_RULE"]
+
+# The rig-level rule every file is judged by (a file that cannot be measured), besides the files'.
+INTAKE_RULE = "intake_error"
 
 
 @dataclass(frozen=True)
@@ -25,12 +29,12 @@ class RuleSettings:
     history_files: int = 30          # baseline: last N good files ...
     history_days: float = 30.0       # ... within D days
     learning_files: int = 10         # a rig/mode/channel/measure learns for its first N files
-    for_files: int = 2               # consecutive bad files to open (limits default to 1)
-    clear_files: int = 3             # good files beyond the clear level to resolve
-    repeat_h: float = 24.0           # reminders at most this often, only while bad files arrive
+    open_after_files: int = 2        # consecutive bad files to open (limits default to 1)
+    resolve_after_files: int = 3     # good files beyond the clear level to resolve
+    remind_h: float = 24.0           # reminders at most this often, only while bad files arrive
     flap_changes: int = 6            # >= this many open/resolve changes ...
     flap_window: int = 21            # ... in the last N files: one "unstable" message
-    intake_for_files: int = 1        # error files: open at once
+    intake_open_after_files: int = 1   # error files: open at once
 
 
 @dataclass(frozen=True)
@@ -50,9 +54,9 @@ class LimitRule:
     absolute: bool = False
     scope: str = "measure"
     severity: str = "critical"
-    for_files: int = 1
-    clear_files: int = 3
-    repeat_h: float = 24.0
+    open_after_files: int = 1
+    resolve_after_files: int = 3
+    remind_h: float = 24.0
     clear_margin: float = 0.1        # clears only beyond limit -/+ margin*|limit|
     text: str = ""                   # the limit as written: 'below 1 GOhm'
 
@@ -76,9 +80,9 @@ class HistoryRule:
     min_spread_abs: float | None = None   # or an absolute floor in SI ('min_spread = "12 pA"')
     spread_dimension: str = ""
     severity: str = "warning"
-    for_files: int = 2
-    clear_files: int = 3
-    repeat_h: float = 24.0
+    open_after_files: int = 2
+    resolve_after_files: int = 3
+    remind_h: float = 24.0
 
 
 @dataclass(frozen=True)
@@ -91,15 +95,32 @@ class Rules:
 
 _SEVERITIES = ("critical", "warning", "info")
 _SETTINGS_KEYS = {"history_files": ("history_files", int), "history_days": ("history_days", float),
-                  "learning_files": ("learning_files", int), "for_files": ("for_files", int),
-                  "clear_files": ("clear_files", int), "repeat_hours": ("repeat_h", float),
+                  "learning_files": ("learning_files", int),
+                  "open_after_files": ("open_after_files", int),
+                  "resolve_after_files": ("resolve_after_files", int),
+                  "remind_hours": ("remind_h", float),
                   "flap_changes": ("flap_changes", int), "flap_window": ("flap_window", int),
-                  "intake_for_files": ("intake_for_files", int)}
+                  "intake_open_after_files": ("intake_open_after_files", int)}
 _LIMIT_KEYS = {"name", "measure", "modes", "above", "below", "equals", "absolute", "scope",
-               "severity", "for_files", "clear_files", "repeat_hours", "clear_margin", "enabled"}
+               "severity", "open_after_files", "resolve_after_files", "remind_hours",
+               "clear_margin", "enabled"}
 _HISTORY_KEYS = {"name", "measure", "modes", "test", "side", "log", "z", "clear_z", "lambda", "L",
-                 "k", "h", "min_spread", "severity", "for_files", "clear_files", "repeat_hours",
-                 "enabled"}
+                 "k", "h", "min_spread", "severity", "open_after_files", "resolve_after_files",
+                 "remind_hours", "enabled"}
+# Keys of earlier rule files and the names they have now: a clear error, never a silent default.
+_RENAMED = {"for_files": "open_after_files", "clear_files": "resolve_after_files",
+            "repeat_hours": "remind_hours", "intake_for_files": "intake_open_after_files"}
+
+
+def _unknown_key(path: Path, where: str, key: str, known: Any) -> ConfigError:
+    """The error for a key a rule table does not take: the new name of a renamed one, else
+    the closest known key."""
+    if key in _RENAMED:
+        return ConfigError(path, f"{where}.{key}", f"renamed: write {_RENAMED[key]!r} instead "
+                                                   f"of {key!r}")
+    hint = difflib.get_close_matches(key, sorted(known), n=1)
+    return ConfigError(path, f"{where}.{key}", "unknown key"
+                       + (f" (did you mean {hint[0]!r}?)" if hint else ""))
 
 
 def _rule_number(path: Path, where: str, key: str, value: object, kind: type,
@@ -137,9 +158,7 @@ def _rule_common(path: Path, where: str, t: dict, known: set[str], settings: Rul
                  default_for: int) -> dict[str, Any]:
     unknown = sorted(set(t) - known)
     if unknown:
-        hint = difflib.get_close_matches(unknown[0], sorted(known), n=1)
-        raise ConfigError(path, f"{where}.{unknown[0]}", "unknown key"
-                          + (f" (did you mean {hint[0]!r}?)" if hint else ""))
+        raise _unknown_key(path, where, unknown[0], known)
     for key in ("name", "measure"):
         if not isinstance(t.get(key), str) or not t[key]:
             raise ConfigError(path, f"{where}.{key}", "required, a non-empty string")
@@ -148,12 +167,15 @@ def _rule_common(path: Path, where: str, t: dict, known: set[str], settings: Rul
         raise ConfigError(path, f"{where}.severity", f"expected one of {', '.join(_SEVERITIES)}, got {sev!r}")
     out: dict[str, Any] = {"name": t["name"], "measure": t["measure"],
                            "modes": _rule_modes(path, where, t.get("modes", "*")),
-                           "for_files": _rule_number(path, where, "for_files",
-                                                     t.get("for_files", default_for), int),
-                           "clear_files": _rule_number(path, where, "clear_files",
-                                                       t.get("clear_files", settings.clear_files), int),
-                           "repeat_h": _rule_number(path, where, "repeat_hours",
-                                                    t.get("repeat_hours", settings.repeat_h), float)}
+                           "open_after_files": _rule_number(
+                               path, where, "open_after_files",
+                               t.get("open_after_files", default_for), int),
+                           "resolve_after_files": _rule_number(
+                               path, where, "resolve_after_files",
+                               t.get("resolve_after_files", settings.resolve_after_files), int),
+                           "remind_h": _rule_number(path, where, "remind_hours",
+                                                    t.get("remind_hours", settings.remind_h),
+                                                    float)}
     if sev is not None:
         out["severity"] = sev
     return out
@@ -192,7 +214,7 @@ def _limit_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> Limi
 
 
 def _history_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> HistoryRule:
-    kw = _rule_common(path, where, t, _HISTORY_KEYS, settings, settings.for_files)
+    kw = _rule_common(path, where, t, _HISTORY_KEYS, settings, settings.open_after_files)
     test = t.get("test", "z")
     if test not in ("z", "ewma", "cusum"):
         raise ConfigError(path, f"{where}.test", f"expected 'z', 'ewma' or 'cusum', got {test!r}")
@@ -243,9 +265,7 @@ def load_rules(paths: Any = ()) -> Rules:
             raise ConfigError(path, "settings", "expected a table")
         for key, value in s.items():
             if key not in _SETTINGS_KEYS:
-                hint = difflib.get_close_matches(key, list(_SETTINGS_KEYS), n=1)
-                raise ConfigError(path, f"settings.{key}", "unknown key"
-                                  + (f" (did you mean {hint[0]!r}?)" if hint else ""))
+                raise _unknown_key(path, "settings", key, _SETTINGS_KEYS)
             attr, kind = _SETTINGS_KEYS[key]
             raw_settings[attr] = _rule_number(path, "settings", key, value, kind)
         for kind in ("limit", "history"):
@@ -269,3 +289,9 @@ def load_rules(paths: Any = ()) -> Rules:
     return Rules(limits=tuple(r for r in by_name.values() if isinstance(r, LimitRule)),
                  history=tuple(r for r in by_name.values() if isinstance(r, HistoryRule)),
                  settings=settings, sources=tuple(paths))
+
+
+def rule_names(rules: Rules) -> list[str]:
+    """Every rule name findings can carry (limits, history, the intake rule), sorted."""
+    return sorted({r.name for r in rules.limits} | {r.name for r in rules.history}
+                  | {INTAKE_RULE})

@@ -1,9 +1,9 @@
 """The SQLite store: schema and forward migrations, WAL, busy timeout; all of qcd's SQL.
 
-One writer process (the service); short writes from a second process (``qcd silence``) are
+One writer process (the service); short writes from a second process (``qcd mute``) are
 safe because every write transaction starts with BEGIN IMMEDIATE. Times are Unix seconds.
 Imports sqlite-utils, numpy, qcd.errors, qcd.results (what a measured file is) and
-qcd.alerts (Message, Silence); never qcd.analyze. Over 500 lines: one Store class holds every
+qcd.alerts (Message, Mute); never qcd.analyze. Over 500 lines: one Store class holds every
 query, so that no other module holds SQL.
 """
 from __future__ import annotations
@@ -25,7 +25,7 @@ import numpy as np
 from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
-from qcd.alerts import Message, Silence
+from qcd.alerts import Message, Mute
 from qcd.errors import StoreError
 from qcd.results import ChannelMeasures, FileMeasures, Spectrum, file_time
 
@@ -125,6 +125,26 @@ def _m002_indexes(db: Database) -> None:
         "CREATE INDEX silences_end ON silences (end_at)",
     ):
         db.execute(sql)
+
+
+# Lifecycle keys of an alert's stored state under their present names.
+_STATE_RENAMES = {"for_files": "open_after_files", "clear_files": "resolve_after_files",
+                  "repeat_h": "remind_h", "silences": "mutes"}
+
+
+@MIGRATIONS(name="m003_mutes")
+def _m003_mutes(db: Database) -> None:
+    """The mute table under its present name, and the alert states' renamed keys."""
+    db.execute("DROP INDEX IF EXISTS silences_end")
+    db.execute("ALTER TABLE silences RENAME TO mutes")
+    db.execute("CREATE INDEX mutes_end ON mutes (end_at)")
+    for key, text in db.execute("SELECT key, state_json FROM alerts").fetchall():
+        state = json.loads(text)
+        new = {_STATE_RENAMES.get(k, k): v for k, v in state.items()}
+        if new.get("muted") == "silence":
+            new["muted"] = "mute"
+        if new != state:
+            db.execute("UPDATE alerts SET state_json = ? WHERE key = ?", (_dumps(new), key))
 
 
 @dataclass(frozen=True)
@@ -513,7 +533,7 @@ class Store:
 
     def commit_alerts(self, alert_states: Iterable[dict] = (), messages: Iterable[Message] = (),
                       *, now: float | None = None) -> None:
-        """Alert states and outbox rows without a file (silence ends, digests), one transaction.
+        """Alert states and outbox rows without a file (mute ends, digests), one transaction.
 
         ``now`` (Unix seconds) stamps updated_at/created_at; None takes the current time.
         """
@@ -584,31 +604,31 @@ class Store:
     def stuck_rows(self) -> list[dict[str, Any]]:
         return self._rows("SELECT * FROM outbox WHERE status = 'stuck' ORDER BY created_at, id")
 
-    # --- silences --------------------------------------------------------------------------------
+    # --- mutes -----------------------------------------------------------------------------------
 
-    def add_silence(self, rig_glob: str, rule_glob: str, start_at: float, end_at: float | None,
-                    reason: str, now: float) -> int:
+    def add_mute(self, rig_glob: str, rule_glob: str, start_at: float, end_at: float | None,
+                 reason: str, now: float) -> int:
         """Mute messages of rigs/rules matching the globs; end_at None: until resolved."""
         if end_at is not None and end_at <= start_at:
-            raise StoreError(f"{self.path}: a silence must end after it starts")
+            raise StoreError(f"{self.path}: a mute must end after it starts")
         with self._write() as conn:
-            cur = conn.execute("INSERT INTO silences (rig_glob, rule_glob, start_at, end_at, "
+            cur = conn.execute("INSERT INTO mutes (rig_glob, rule_glob, start_at, end_at, "
                                "reason, created_at) VALUES (?,?,?,?,?,?)",
                                (rig_glob, rule_glob, float(start_at),
                                 None if end_at is None else float(end_at), reason or "",
                                 float(now)))
             return int(cur.lastrowid)
 
-    def active_silences(self, now: float) -> list[Silence]:
+    def active_mutes(self, now: float) -> list[Mute]:
         rows = self._one_all("SELECT id, rig_glob, rule_glob, start_at, end_at, reason FROM "
-                             "silences WHERE start_at <= ? AND (end_at IS NULL OR end_at > ?) "
+                             "mutes WHERE start_at <= ? AND (end_at IS NULL OR end_at > ?) "
                              "ORDER BY start_at, id", (now, now))
-        return [Silence(*r) for r in rows]
+        return [Mute(*r) for r in rows]
 
-    def end_silence(self, id: int, now: float) -> bool:
-        """End a silence now; False when it had already ended (or does not exist)."""
+    def end_mute(self, id: int, now: float) -> bool:
+        """End a mute now; False when it had already ended (or does not exist)."""
         with self._write() as conn:
-            cur = conn.execute("UPDATE silences SET end_at = ? WHERE id = ? AND "
+            cur = conn.execute("UPDATE mutes SET end_at = ? WHERE id = ? AND "
                                "(end_at IS NULL OR end_at > ?)", (now, id, now))
             return cur.rowcount == 1
 

@@ -220,11 +220,11 @@ class Service:
             except Exception:
                 log.exception("delivering notifications")
         if self._tick is not None and now - self._last_tick >= self.tick_s:
-            self._last_tick = now             # silences that ended with their alert still open
+            self._last_tick = now             # mutes that ended with their alert still open
             try:
                 self._tick(now)
             except Exception:
-                log.exception("checking ended silences")
+                log.exception("checking ended mutes")
         if now - self._last_beat >= self.beat_s:
             self._heartbeat(now)
             self._checkpoint()

@@ -9,7 +9,7 @@ import json
 from datetime import datetime, timezone
 from typing import Any
 
-from qcd.alerts import Silence
+from qcd.alerts import Mute
 from qcd.results import ChannelMeasures, FileMeasures, Measure
 from qcd.store import MIGRATIONS, Store
 
@@ -50,10 +50,10 @@ def has_content(store: Store, rig: str, sha256: str) -> bool:
                              "superseded = 0", (rig, sha256)))
 
 
-def recent_silences(store: Store, since: float) -> list[Silence]:
-    """Silences still open-ended or ending at or after ``since``."""
-    return [Silence(**r) for r in _rows(
-        store, "SELECT id, rig_glob, rule_glob, start_at, end_at, reason FROM silences "
+def recent_mutes(store: Store, since: float) -> list[Mute]:
+    """Mutes still open-ended or ending at or after ``since``."""
+    return [Mute(**r) for r in _rows(
+        store, "SELECT id, rig_glob, rule_glob, start_at, end_at, reason FROM mutes "
                "WHERE end_at IS NULL OR end_at >= ? ORDER BY start_at, id", (since,))]
 
 

@@ -1,5 +1,5 @@
-"""alerts: the lifecycle semantics (open after for_files, clear after clear_files, flap guard,
-reminders, silences, inhibition, learning, digest), checked file by file with chosen times."""
+"""alerts: the lifecycle semantics (open after open_after_files, clear after resolve_after_files, flap guard,
+reminders, mutes, inhibition, learning, digest), checked file by file with chosen times."""
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
@@ -15,16 +15,16 @@ H = 3600.0
 
 
 def F(bad: bool, *, rule="hum_jump", kind="drift", measure="hum_rms", rig="rig-a", clear=True,
-      for_files=2, clear_files=3, repeat_h=24.0, learning=False, value=1.0, channel=0):
+      open_after_files=2, resolve_after_files=3, remind_h=24.0, learning=False, value=1.0, channel=0):
     return Finding(rig=rig, mode="voltage_clamp", channel=channel, measure=measure, rule=rule,
                    kind=kind, bad=bad, severity="warning", value=value, unit="pA",
                    limit_text="normal 0.1-0.12 pA", hint="check grounding", clear=clear,
-                   for_files=for_files, clear_files=clear_files, repeat_h=repeat_h,
+                   open_after_files=open_after_files, resolve_after_files=resolve_after_files, remind_h=remind_h,
                    learning=learning, path=f"/data/{rig}/cell.abf")
 
 
 @dataclass
-class Sil:
+class MuteRow:
     id: int
     rig_glob: str
     rule_glob: str
@@ -33,14 +33,14 @@ class Sil:
     reason: str = ""
 
 
-def run(seq, *, states=None, silences=(), t0=0.0, dt=600.0, **kw):
+def run(seq, *, states=None, mutes=(), t0=0.0, dt=600.0, **kw):
     """Feed one finding per file; return states, all messages and per-file message lists."""
     states = dict(states or {})
     per_file = []
     now = t0
     for bad in seq:
         fs = bad if isinstance(bad, list) else [F(bad, **kw)]
-        states, msgs = advance(states, fs, silences, now, SET)
+        states, msgs = advance(states, fs, mutes, now, SET)
         states = {k: v.to_dict() for k, v in states.items()}     # round-trip as the store does
         per_file.append(msgs)
         now += dt
@@ -57,7 +57,7 @@ def test_opens_after_for_files_consecutive_bad_files_with_one_message():
 
 
 def test_hard_limit_with_for_files_1_opens_at_once():
-    _, msgs, per = run([True], for_files=1, kind="limit", rule="gigaseal")
+    _, msgs, per = run([True], open_after_files=1, kind="limit", rule="gigaseal")
     assert len(per[0]) == 1 and per[0][0].kind == "firing"
 
 
@@ -78,41 +78,41 @@ def test_good_values_short_of_the_clear_level_keep_it_open():
 
 
 def test_resolved_only_for_announced_alerts():
-    silence = [Sil(1, "rig-a", "*", 0.0, 1e4)]
-    states, msgs, _ = run([True, True], silences=silence)
+    mute = [MuteRow(1, "rig-a", "*", 0.0, 1e4)]
+    states, msgs, _ = run([True, True], mutes=mute)
     assert msgs == []
-    states, msgs, _ = run([False] * 3, states=states, silences=silence, t0=2e3)
+    states, msgs, _ = run([False] * 3, states=states, mutes=mute, t0=2e3)
     assert msgs == []                                    # never announced: no resolved message
 
 
-def test_silence_suppresses_messages_but_state_runs_and_end_sends_one_message():
-    silence = [Sil(1, "rig-*", "hum_*", 0.0, 5000.0)]
-    states, msgs, _ = run([True, True, True], silences=silence)
+def test_mute_suppresses_messages_but_state_runs_and_end_sends_one_message():
+    mute = [MuteRow(1, "rig-*", "hum_*", 0.0, 5000.0)]
+    states, msgs, _ = run([True, True, True], mutes=mute)
     assert msgs == []
     s = AlertState.from_dict(next(iter(states.values())))
-    assert s.state == "open" and not s.announced and s.muted == "silence"
-    states2, msgs = tick(states, silence, 4000.0, SET)        # still silenced
+    assert s.state == "open" and not s.announced and s.muted == "mute"
+    states2, msgs = tick(states, mute, 4000.0, SET)        # still muted
     assert msgs == []
-    states2, msgs = tick(states, silence, 6000.0, SET)        # silence over: one message
+    states2, msgs = tick(states, mute, 6000.0, SET)        # mute over: one message
     assert len(msgs) == 1 and msgs[0].kind == "firing" and "held back" in msgs[0].body
-    states3, msgs = tick({k: v.to_dict() for k, v in states2.items()}, silence, 7000.0, SET)
+    states3, msgs = tick({k: v.to_dict() for k, v in states2.items()}, mute, 7000.0, SET)
     assert msgs == []                                         # and only one
 
 
-def test_silence_for_other_rule_or_rig_does_not_mute():
-    _, msgs, _ = run([True, True], silences=[Sil(1, "rig-b", "*", 0, None), Sil(2, "*", "seal*", 0, None)])
+def test_mute_for_other_rule_or_rig_does_not_mute():
+    _, msgs, _ = run([True, True], mutes=[MuteRow(1, "rig-b", "*", 0, None), MuteRow(2, "*", "seal*", 0, None)])
     assert len(msgs) == 1
 
 
-def test_until_resolved_silence_covers_one_episode():
-    sil = [Sil(7, "rig-a", "*", 0.0, None)]
-    states, msgs, _ = run([True, True, True, False, False, False], silences=sil)
+def test_until_resolved_mute_covers_one_episode():
+    mute = [MuteRow(7, "rig-a", "*", 0.0, None)]
+    states, msgs, _ = run([True, True, True, False, False, False], mutes=mute)
     assert msgs == []
-    states, msgs, _ = run([True, True], states=states, silences=sil, t0=1e5)
+    states, msgs, _ = run([True, True], states=states, mutes=mute, t0=1e5)
     assert len(msgs) == 1                                     # next episode is announced
 
 
-def test_reminder_only_after_repeat_hours_and_only_while_bad_files_arrive():
+def test_reminder_only_after_remind_hours_and_only_while_bad_files_arrive():
     states, msgs, _ = run([True, True], dt=600.0)
     assert len(msgs) == 1
     # bad files every 2 h: reminders at most every 24 h
@@ -127,7 +127,7 @@ def test_reminder_only_after_repeat_hours_and_only_while_bad_files_arrive():
 
 def test_flap_guard_sends_one_unstable_message_then_quiet_until_stable():
     cycle = [True, False, False, False]                        # for 1 / clear 3: 2 changes per 4
-    states, msgs, per = run(cycle * 5, for_files=1)
+    states, msgs, per = run(cycle * 5, open_after_files=1)
     kinds = [m.kind for m in msgs]
     assert kinds.count("unstable") == 1
     first_unstable = kinds.index("unstable")
@@ -135,21 +135,21 @@ def test_flap_guard_sends_one_unstable_message_then_quiet_until_stable():
     s = AlertState.from_dict(next(iter(states.values())))
     assert s.flapping and s.to_dict()["state"] == "open"
     # stable (good) for 21 files: leaves the guard with one resolved message
-    states, msgs, _ = run([False] * 21, states=states, t0=1e6, for_files=1)
+    states, msgs, _ = run([False] * 21, states=states, t0=1e6, open_after_files=1)
     assert [m.kind for m in msgs] == ["resolved"]
     assert not AlertState.from_dict(next(iter(states.values()))).flapping
 
 
 def test_one_file_with_many_findings_gives_one_message():
-    fs = [F(True, for_files=1, measure=m, rule=m + "_jump") for m in ("hum_rms", "noise_rms", "noise_pp")]
+    fs = [F(True, open_after_files=1, measure=m, rule=m + "_jump") for m in ("hum_rms", "noise_rms", "noise_pp")]
     _, msgs = advance({}, fs, [], 0.0, SET)
     (m,) = msgs
     assert "3 alerts" in m.title and all(x in m.body for x in ("hum_rms", "noise_rms", "noise_pp"))
 
 
 def test_rig_level_finding_inhibits_measure_alerts_then_they_are_announced():
-    rigf = F(True, kind="rig", rule="clipping", measure="clipping_fraction", for_files=1)
-    hum = F(True, for_files=1)
+    rigf = F(True, kind="rig", rule="clipping", measure="clipping_fraction", open_after_files=1)
+    hum = F(True, open_after_files=1)
     states, msgs = advance({}, [rigf, hum], [], 0.0, SET)
     (m,) = msgs
     assert "clipping_fraction" in m.body and "hum_rms" not in m.body
@@ -163,8 +163,8 @@ def test_rig_level_finding_inhibits_measure_alerts_then_they_are_announced():
 
 
 def test_hard_limit_alert_mutes_drift_on_same_measure():
-    lim = F(True, kind="limit", rule="access_high", measure="access_resistance", for_files=1)
-    drift = F(True, kind="drift", rule="access_rise", measure="access_resistance", for_files=1)
+    lim = F(True, kind="limit", rule="access_high", measure="access_resistance", open_after_files=1)
+    drift = F(True, kind="drift", rule="access_rise", measure="access_resistance", open_after_files=1)
     _, msgs = advance({}, [lim, drift], [], 0.0, SET)
     (m,) = msgs
     assert "rule access_high" in m.body and "access_rise" not in m.body
@@ -173,8 +173,8 @@ def test_hard_limit_alert_mutes_drift_on_same_measure():
 def test_second_history_rule_on_an_announced_measure_stays_quiet_until_the_first_resolves():
     # one change at the rig, seen first by the slow EWMA rule and a file later by the z rule:
     # one alert message, not two (inhibition, OPERATIONS §1 semantics 7)
-    ewma = F(True, rule="noise_drift", measure="noise_rms", for_files=1)
-    jump = F(True, rule="noise_jump", measure="noise_rms", for_files=1)
+    ewma = F(True, rule="noise_drift", measure="noise_rms", open_after_files=1)
+    jump = F(True, rule="noise_jump", measure="noise_rms", open_after_files=1)
     states, msgs = advance({}, [ewma], [], 0.0, SET)
     assert len(msgs) == 1 and "noise_drift" in msgs[0].body
     states = {k: v.to_dict() for k, v in states.items()}
@@ -233,14 +233,14 @@ def test_state_dict_round_trips():
 @hsettings(max_examples=150, deadline=None)
 @given(st.lists(st.tuples(st.booleans(), st.booleans()), min_size=1, max_size=80),
        st.integers(1, 3), st.integers(1, 4))
-def test_alerts_never_open_a_key_twice_without_a_resolve_between(seq, for_files, clear_files):
-    # SEMANTICS: opens after for_files consecutive bad files, clears after clear_files clear files
+def test_alerts_never_open_a_key_twice_without_a_resolve_between(seq, open_after_files, resolve_after_files):
+    # SEMANTICS: opens after open_after_files consecutive bad files, clears after resolve_after_files clear files
     states: dict = {}
     opened = False
     bad_run = clear_run = 0
     sent_open = 0
     for i, (bad, clear) in enumerate(seq):
-        f = F(bad, clear=clear, for_files=for_files, clear_files=clear_files)
+        f = F(bad, clear=clear, open_after_files=open_after_files, resolve_after_files=resolve_after_files)
         before = AlertState.from_dict(states[f.key]).state if f.key in states else "ok"
         states, msgs = advance(states, [f], [], i * 60.0, SET)
         s = states[f.key] if f.key in states else None
@@ -250,12 +250,12 @@ def test_alerts_never_open_a_key_twice_without_a_resolve_between(seq, for_files,
         clear_run = (clear_run + 1 if (not bad and clear) else 0) if before == "open" else 0
         if before != "open" and after == "open":
             assert not opened, "opened twice without a resolve"
-            assert bad_run >= for_files
+            assert bad_run >= open_after_files
             opened = True
         if before == "open" and after != "open":
-            assert clear_run >= clear_files
+            assert clear_run >= resolve_after_files
             opened = False
-        if before != "open" and bad_run >= for_files:
+        if before != "open" and bad_run >= open_after_files:
             assert after == "open"
         for m in msgs:
             if m.kind == "firing":
@@ -269,17 +269,17 @@ _MACHINE = ("state", "bad_run", "clear_run", "opened_at", "resolved_at", "flappi
 @hsettings(max_examples=100, deadline=None)
 @given(st.lists(st.tuples(st.booleans(), st.booleans()), min_size=1, max_size=60),
        st.floats(0, 3e4))
-def test_silence_changes_messages_never_states(seq, silence_end):
-    # SEMANTICS 1: silences suppress messages only; the state machine keeps running
-    sil = [Sil(1, "rig-*", "*", 0.0, silence_end)]
+def test_mute_changes_messages_never_states(seq, mute_end):
+    # SEMANTICS 1: mutes suppress messages only; the state machine keeps running
+    mute = [MuteRow(1, "rig-*", "*", 0.0, mute_end)]
     a: dict = {}
     b: dict = {}
     for i, (bad, clear) in enumerate(seq):
         f = F(bad, clear=clear)
         now = i * 600.0
         a, ma = advance(a, [f], [], now, SET)
-        b, mb = advance(b, [f], sil, now, SET)
-        if now < silence_end:
+        b, mb = advance(b, [f], mute, now, SET)
+        if now < mute_end:
             assert mb == []
         for key in a:
             assert {n: getattr(a[key], n) for n in _MACHINE} == \
@@ -290,13 +290,13 @@ def test_silence_changes_messages_never_states(seq, silence_end):
 
 @hsettings(max_examples=100, deadline=None)
 @given(st.lists(st.tuples(st.booleans(), st.floats(60.0, 12 * H)), min_size=2, max_size=60))
-def test_reminders_only_on_bad_files_and_at_least_repeat_hours_apart(seq):
-    # SEMANTICS 6: remind at most every repeat_h, and only while bad files keep arriving
+def test_reminders_only_on_bad_files_and_at_least_remind_hours_apart(seq):
+    # SEMANTICS 6: remind at most every remind_h, and only while bad files keep arriving
     states: dict = {}
     now, last_sent = 0.0, None
     for bad, gap in seq:
         now += gap
-        f = F(bad, for_files=1)
+        f = F(bad, open_after_files=1)
         states, msgs = advance(states, [f], [], now, SET)
         states = {k: v.to_dict() for k, v in states.items()}
         for m in msgs:
@@ -307,7 +307,7 @@ def test_reminders_only_on_bad_files_and_at_least_repeat_hours_apart(seq):
 
 
 def test_many_channels_give_a_short_title():
-    fs = [F(True, for_files=1, channel=c, kind="limit", rule="alias_risk", measure="alias_risk")
+    fs = [F(True, open_after_files=1, channel=c, kind="limit", rule="alias_risk", measure="alias_risk")
           for c in range(16)]
     _, (m,) = advance({}, fs, [], 0.0, SET)
     assert m.title == "qcd rig-a: 16 alerts (alias_risk (16 channels))"
@@ -320,7 +320,7 @@ def test_backlog_flush_announces_each_open_key_once(rows):
     # SEMANTICS 5: a backlog produces one digest; nothing is announced twice
     states: dict = {}
     for i, bads in enumerate(rows):
-        fs = [F(b, measure=f"m{j}", rule=f"m{j}_x", for_files=1) for j, b in enumerate(bads)]
+        fs = [F(b, measure=f"m{j}", rule=f"m{j}_x", open_after_files=1) for j, b in enumerate(bads)]
         states, msgs = advance(states, fs, [], i * 60.0, SET, batch=True)
         assert msgs == []
         states = {k: v.to_dict() for k, v in states.items()}

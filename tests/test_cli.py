@@ -137,3 +137,46 @@ def test_scan_as_a_process_prints_no_traceback(tmp_path):
     doc = json.loads(proc.stdout)
     assert doc["status"] == "error" and doc["error_kind"] in ("bad_header", "truncated")
     assert "Traceback" not in proc.stderr + proc.stdout
+
+
+# --- qcd mute ------------------------------------------------------------------------------------
+
+def _mute_config(tmp_path):
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text('database = "qcd.sqlite"\n[[rig]]\nname = "rig-b"\nfolders = ["d"]\n')
+    return ["--config", str(cfg)]
+
+
+def test_mute_holds_a_rig_and_end_lifts_it_early(tmp_path, capsys):
+    from qcd.store import Store
+    c = _mute_config(tmp_path)
+    assert main(["mute", "rig-b", "2h", "--rule", "hum_*", "--reason", "new headstage"] + c) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("muted rig rig-b, rules hum_* until ") and "(mute 1;" in out
+    assert "qcd mute --end 1" in out
+    assert main(["mute"] + c) == 0                          # lists the active mutes by ID
+    assert "mute 1: rig rig-b, rules hum_* until" in capsys.readouterr().out
+    assert main(["mute", "--end", "1"] + c) == 0
+    assert capsys.readouterr().out.startswith("lifted mute 1 (rig rig-b, rules hum_*)")
+    with Store(tmp_path / "qcd.sqlite") as s:
+        import time
+        assert s.active_mutes(time.time()) == []
+    assert main(["mute", "--end", "1"] + c) == 2            # already lifted: said so
+    assert "no active mute with ID 1 (active: none)" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("args, said", [
+    (["rig-b", "2"], "'2' has no unit: say 2h"),
+    (["rig-b", "2h", "--rule", "hum_jmp*"], "no rule matches 'hum_jmp*' (rules: "),
+    (["rig-x", "2h"], "no configured rig matches 'rig-x' (configured: rig-b)"),
+    (["rig-b"], "say for how long: 2h, 30m, 1d, or 'resolved'"),
+    (["rig-b", "2h", "--end", "1"], "either RIG FOR (a new mute) or --end ID"),
+])
+def test_mute_refuses_what_it_cannot_honour(tmp_path, capsys, args, said):
+    c = _mute_config(tmp_path)
+    assert main(["mute"] + args + c) == 2
+    err = capsys.readouterr().err
+    assert said in err, err
+    assert "Traceback" not in err
+    if "--rule" in args:
+        assert "hum_jump" in err                            # the rule names it could have meant

@@ -215,9 +215,11 @@ def test_parse_duration():
     assert parse_duration("30m") == 1800.0
     assert parse_duration("1d") == 86400.0
     assert parse_duration("1.5h") == 5400.0
-    for bad in ("", "2x", "-1h", "0m", "h"):
+    for bad in ("", "2x", "-1h", "0m", "h", "2", "1.5"):
         with pytest.raises(ConfigError):
             parse_duration(bad)
+    with pytest.raises(ConfigError, match="'2' has no unit: say 2h"):   # minutes or hours?
+        parse_duration("2", "FOR")
 
 
 def test_starter_config_loads_and_explains_every_key(tmp_path):

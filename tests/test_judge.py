@@ -122,7 +122,7 @@ def test_seal_below_one_gigaohm_is_bad(rules):
     good = _by_rule(judge(_fm({"seal_resistance": (3.0, "GOhm")}), "rig-a", _no_history, rules, 0))
     assert bad["gigaseal"].bad and bad["gigaseal"].kind == "limit"
     assert not good["gigaseal"].bad and good["gigaseal"].clear
-    assert bad["gigaseal"].for_files == 1 and "1 GOhm" in bad["gigaseal"].limit_text
+    assert bad["gigaseal"].open_after_files == 1 and "1 GOhm" in bad["gigaseal"].limit_text
 
 
 def test_limits_compare_across_units(rules):
@@ -156,7 +156,7 @@ def test_limits_apply_only_to_their_mode(rules):
 def test_error_file_gives_a_rig_level_intake_finding(rules):
     fm = FileMeasures(path="x.abf", status="error", error="x.abf: truncated", error_kind="truncated")
     (f,) = judge(fm, "rig-a", _no_history, rules, 0)
-    assert f.kind == "rig" and f.bad and f.rule == "intake_error" and f.for_files == 1
+    assert f.kind == "rig" and f.bad and f.rule == "intake_error" and f.open_after_files == 1
     assert "truncated" in f.limit_text and f.hint == "x.abf: truncated"
 
 
@@ -239,7 +239,28 @@ def test_later_rule_file_overrides_and_disables(tmp_path: Path):
     r = load_rules([Path(load_rules().sources[0]), p])
     names = {x.name: x for x in r.limits}
     assert "gigaseal" not in names and names["access_high"].above == pytest.approx(20e6)
-    assert r.settings.learning_files == 5 and r.settings.clear_files == 3
+    assert r.settings.learning_files == 5 and r.settings.resolve_after_files == 3
+
+
+@pytest.mark.parametrize("table, old, new", [
+    ("settings", "for_files", "open_after_files"), ("settings", "clear_files", "resolve_after_files"),
+    ("settings", "repeat_hours", "remind_hours"),
+    ("settings", "intake_for_files", "intake_open_after_files"),
+    ("limit", "for_files", "open_after_files"), ("history", "repeat_hours", "remind_hours")])
+def test_a_renamed_lifecycle_key_is_refused_with_its_new_name(tmp_path: Path, table, old, new):
+    p = tmp_path / "lab.toml"
+    rule = '\nname = "x"\nmeasure = "noise_rms"\nabove = "3 pA"' if table == "limit" else \
+        '\nname = "x"\nmeasure = "noise_rms"' if table == "history" else ""
+    head = f"[{table}]" if table == "settings" else f"[[{table}]]"
+    p.write_text(f"{head}{rule}\n{old} = 2\n")
+    with pytest.raises(ConfigError) as ei:
+        load_rules([p])
+    assert f"lab.toml" in str(ei.value) and f"write {new!r} instead of {old!r}" in str(ei.value)
+    p.write_text(f"{head}{rule}\n{new} = 2\n")
+    r = load_rules([p])
+    got = r.settings if table == "settings" else (r.limits + r.history)[0]
+    attr = {"remind_hours": "remind_h"}.get(new, new)
+    assert getattr(got, attr) == 2
 
 
 def test_strong_non_mains_line_suggests_switching_supplies(rules):

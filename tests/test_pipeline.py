@@ -282,13 +282,13 @@ def test_backlog_gives_one_digest_instead_of_a_message_per_file(lab, rig, store,
     assert flush_digest(store, rules, times[31] + 20.0) is None  # announced once
 
 
-def test_silence_mutes_the_alert_and_its_end_sends_one_message(lab, rig, store, rules,
+def test_mute_mutes_the_alert_and_its_end_sends_one_message(lab, rig, store, rules,
                                                                http_sink):
     from qcd.pipeline import tick
     _, files, times = lab
     sender = Sender([http_sink.url])
     end = times[31] + 3600.0
-    store.add_silence("rig-e2e", "hum_*", times[0], end, "replacing the headstage", times[0])
+    store.add_mute("rig-e2e", "hum_*", times[0], end, "replacing the headstage", times[0])
     _run(files[:32], times[:32], rig, store, rules, sender)
     assert http_sink.received == [] and len(store.open_alerts("rig-e2e")) == 1
     assert tick(store, rules, end - 1.0, sender) == []
@@ -325,16 +325,16 @@ def test_a_bug_while_measuring_becomes_an_internal_error_row_with_the_file_facts
     assert row["status"] == "error" and row["error_kind"] == "internal"
 
 
-def test_until_resolved_silence_ends_when_its_alert_resolves(lab, rig, store, rules, http_sink):
+def test_until_resolved_mute_ends_when_its_alert_resolves(lab, rig, store, rules, http_sink):
     _, files, times = lab
     sender = Sender([http_sink.url])
     _run(files[:30], times[:30], rig, store, rules, sender)
-    sid = store.add_silence("rig-e2e", "*", times[29], None, "new ground lead on order",
+    sid = store.add_mute("rig-e2e", "*", times[29], None, "new ground lead on order",
                             times[29])
     _run(files[30:32], times[30:32], rig, store, rules, sender)      # opens, muted
-    assert [s.id for s in store.active_silences(times[31])] == [sid]
+    assert [s.id for s in store.active_mutes(times[31])] == [sid]
     _run(files[32:36], times[32:36], rig, store, rules, sender)      # resolves
-    assert store.active_silences(times[35] + 1) == []
+    assert store.active_mutes(times[35] + 1) == []
     assert http_sink.received == []                 # never announced, so no resolved message
 
 

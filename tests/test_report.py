@@ -175,11 +175,11 @@ def test_cli_report_and_trend(store, tmp_path, capsys):
     assert html_path.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
 
 
-def test_active_silence_is_shown_with_its_reason(store):
-    store.add_silence("rig-*", "*", NOW - 60, NOW + 7200, "replacing the bath ground", NOW - 60)
+def test_active_mute_is_shown_with_its_reason(store):
+    store.add_mute("rig-*", "*", NOW - 60, NOW + 7200, "replacing the bath ground", NOW - 60)
     r = build_report(store, NOW, parse_since("18h", NOW))
     text = render_text(r)
-    assert "silenced until" in text and "replacing the bath ground" in text
+    assert "muted until" in text and "replacing the bath ground" in text
     assert "replacing the bath ground" in render_html(r)
 
 
