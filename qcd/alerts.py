@@ -63,6 +63,7 @@ class AlertState:
     remind_h: float = 24.0
     learning: bool = False
     headline: str = ""
+    channel_name: str = ""
 
     def to_dict(self) -> dict[str, Any]:
         """Plain dict; ``state`` is 'open' while the flap guard holds the key open."""
@@ -177,7 +178,7 @@ def _mute_reason(s: AlertState, states: Mapping[str, AlertState], mutes: Iterabl
 def _step(s: AlertState, f: Finding, now: float, settings: RuleSettings) -> list[str]:
     """Advance one key by one file; the raw events ('opened', 'resolved', 'reminder', ...)."""
     for name in ("severity", "value", "unit", "limit_text", "hint", "path", "open_after_files",
-                 "resolve_after_files", "remind_h", "learning", "headline"):
+                 "resolve_after_files", "remind_h", "learning", "headline", "channel_name"):
         setattr(s, name, getattr(f, name))
     s.updated_at = now
     events: list[str] = []
@@ -358,7 +359,8 @@ def _value(s: AlertState) -> str:
 
 
 def _what(s: AlertState) -> str:
-    where = "" if s.channel < 0 else f" channel {s.channel}"
+    name = f" ({s.channel_name})" if s.channel_name else ""
+    where = "" if s.channel < 0 else f" channel {s.channel}{name}"
     return f"{s.measure}{where}" if s.measure != "file" else "file intake"
 
 

@@ -58,6 +58,18 @@ class RigConfig:
     test_pulse: TestPulse | None = None
     mains_hz: float | None = None        # 50 or 60 when the lab knows it; else found from data
     mode: str | None = None              # DECLARED_MODES, for headers that cannot tell
+    # Channels to watch (indices or header names); None: every current or voltage channel.
+    channels: tuple[int | str, ...] | None = None
+    # Display names for messages and the report, by channel index or header name.
+    channel_names: tuple[tuple[int | str, str], ...] = ()
+    cell_pattern: str | None = None      # regex on the file name whose match names the cell
+
+    def channel_name(self, index: int, header_name: str) -> str | None:
+        """The display name the rig gives this channel (by index, then header name), or None."""
+        for key, name in self.channel_names:
+            if key == index or key == header_name:
+                return name
+        return None
 
 
 @dataclass(frozen=True)
@@ -154,7 +166,8 @@ def find_config(explicit: Path | str | None = None, *, cwd: Path | None = None,
 
 _TOP_KEYS = ("database", "rules", "notify", "notify_config", "settle_seconds", "give_up_hours",
              "rig")
-_RIG_KEYS = ("name", "folders", "patterns", "polling", "test_pulse", "mains_hz", "mode")
+_RIG_KEYS = ("name", "folders", "patterns", "polling", "test_pulse", "mains_hz", "mode",
+             "channels", "channel_names", "cell_pattern")
 # Recording modes a rig may declare (qcd.results.MODES without 'unknown').
 DECLARED_MODES = ("voltage_clamp", "current_clamp", "extracellular")
 _PULSE_KEYS = ("amplitude", "start_ms", "length_ms")
@@ -291,7 +304,59 @@ def _rig(path: Path, base: Path, index: int, table: object) -> RigConfig:
         raise r.fail("mode", f"expected one of {', '.join(DECLARED_MODES)}, got {mode!r}")
     return RigConfig(name=name, folders=tuple(_resolve(base, f) for f in folders),
                      patterns=patterns, polling=polling, test_pulse=pulse, mains_hz=mains,
-                     mode=mode)
+                     mode=mode, channels=_channels(r, table.get("channels")),
+                     channel_names=_channel_names(r, table.get("channel_names")),
+                     cell_pattern=_cell_pattern(r, table.get("cell_pattern")))
+
+
+def _channel_key(text: str) -> int | str:
+    """'3' -> 3 (an index); any other text is a channel's header name."""
+    return int(text) if text.strip().isdigit() else text
+
+
+def _channels(r: _Reader, value: object) -> tuple[int | str, ...] | None:
+    if value is None:
+        return None
+    if not isinstance(value, list) or not value:
+        raise r.fail("channels", f"expected a list of channel indices or names, e.g. [0, "
+                                 f"\"IN 2\"], got {_kind(value)} {value!r}")
+    out: list[int | str] = []
+    for i, item in enumerate(value):
+        if isinstance(item, bool) or not isinstance(item, (int, str)) or \
+                (isinstance(item, int) and item < 0) or (isinstance(item, str) and not item.strip()):
+            raise r.fail(f"channels[{i}]", f"expected a channel index (0, 1, ...) or a channel "
+                                           f"name from the file header, got {item!r}")
+        out.append(_channel_key(item) if isinstance(item, str) else item)
+    return tuple(dict.fromkeys(out))
+
+
+def _channel_names(r: _Reader, value: object) -> tuple[tuple[int | str, str], ...]:
+    if value is None:
+        return ()
+    if not isinstance(value, dict):
+        raise r.fail("channel_names", f'expected a table such as {{ "0" = "cell", "IN 2" = '
+                                      f'"bath" }}, got {_kind(value)} {value!r}')
+    out = []
+    for key, name in value.items():
+        if not isinstance(name, str) or not name.strip():
+            raise r.fail(f"channel_names.{key}", f"expected a non-empty name, got {name!r}")
+        out.append((_channel_key(key), name.strip()))
+    return tuple(out)
+
+
+def _cell_pattern(r: _Reader, value: object) -> str | None:
+    if value is None:
+        return None
+    if not isinstance(value, str) or not value:
+        raise r.fail("cell_pattern", f"expected a regular expression, got {_kind(value)} "
+                                     f"{value!r}")
+    try:
+        rx = re.compile(value)
+    except re.error as e:
+        raise r.fail("cell_pattern", f"not a regular expression: {e}") from None
+    if rx.groups > 1 and "cell" not in rx.groupindex:
+        raise r.fail("cell_pattern", "with several groups, name the cell's one (?P<cell>...)")
+    return value
 
 
 def load_config(path: Path | str) -> Config:
@@ -471,6 +536,16 @@ polling = false
 # Recording mode when the file headers cannot tell (no command channel): "voltage_clamp",
 # "current_clamp" or "extracellular". Leave it out to take it from the headers.
 # mode = "current_clamp"
+# Channels to watch, by index (0, 1, ...) or by the name in the file header. Leave it out to
+# watch every current and voltage channel (temperature, pressure and other channels are then
+# skipped, with a note).
+# channels = [0, 1]
+# Names to show for the channels in messages and the report (keys: index or header name).
+# channel_names = { "0" = "cell", "1" = "bath" }
+# A regular expression on the file name whose match (or its group named "cell") says which
+# cell a file belongs to, so `qcd export` gives a verdict per cell as well as per file
+# (single quotes: TOML keeps the backslashes as written).
+# cell_pattern = '^\\d{8}_c\\d+'
 '''
 
 

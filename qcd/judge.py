@@ -19,7 +19,7 @@ from qcd.ruleset import INTAKE_RULE, HistoryRule, LimitRule, Rules
 from qcd.units import DIMENSION, FACTORS
 
 __all__ = ["Finding", "Chart", "CusumChart", "judge", "robust_z", "baseline", "ewma",
-           "ewma_limits", "cusum", "noise_hints"]
+           "ewma_limits", "cusum", "noise_hints", "channel_list"]
 
 log = logging.getLogger(__name__)
 
@@ -53,6 +53,8 @@ class Finding:
     learning: bool = False
     path: str = ""
     headline: str = ""           # a few words for a message title: 'below 1 GOhm', '3.1x its normal'
+    channel_name: str = ""       # the channel's name (the rig's display name, else the header's)
+    channels: tuple[int, ...] = ()   # file-level findings: the channels that broke the limit
 
     @property
     def key(self) -> str:
@@ -402,6 +404,48 @@ def _normal_range(past: list[float], unit: str) -> str:
     return f"normal {lo:.3g}-{hi:.3g} {unit} (median {np.median(past):.3g}, {len(past)} files)"
 
 
+def channel_list(channels: Sequence[tuple[int, str]], of: int | None = None) -> str:
+    """'channel 1 (Current 1)', 'channels 0 (V1), 3 (I2)', 'channels 0-6, 9 (8 of 16)'."""
+    items = sorted(channels)
+    if len(items) == 1:
+        i, name = items[0]
+        return f"channel {i}" + (f" ({name})" if name else "")
+    if len(items) <= 4:
+        return "channels " + ", ".join(f"{i} ({n})" if n else str(i) for i, n in items)
+    runs: list[list[int]] = []
+    for i, _ in items:
+        if runs and i == runs[-1][-1] + 1:
+            runs[-1].append(i)
+        else:
+            runs.append([i])
+    spans = ", ".join(f"{r[0]}-{r[-1]}" if len(r) > 1 else str(r[0]) for r in runs)
+    total = "" if of is None else f" of {of}" if of > len(items) else ", all watched"
+    return f"channels {spans} ({len(items)}{total})"
+
+
+def _file_finding(rule: LimitRule, results: list[tuple[ChannelMeasures, Measure, bool, bool]],
+                  rig_name: str, mode: str, path: str) -> Finding:
+    """One finding for a file-level limit: bad when any channel broke it, clear when all are
+    clear; the value is the worst channel's, the text names the channels that broke it."""
+    bad = [r for r in results if r[2]]
+    pool = bad or results
+
+    def worst(r: tuple[ChannelMeasures, Measure, bool, bool]) -> float:
+        v = float(r[1].value)
+        v = abs(v) if rule.absolute else v
+        return -v if rule.below is not None and rule.above is None else v
+    ch, m = max(pool, key=worst)[:2]
+    where = channel_list([(r[0].index, r[0].name) for r in bad], len(results)) if bad else ""
+    return Finding(
+        rig=rig_name, mode=mode, channel=-1, measure=rule.measure, rule=rule.name,
+        kind="rig" if rule.scope == "rig" else "limit", bad=bool(bad), severity=rule.severity,
+        value=float(m.value), unit=m.unit,
+        limit_text=f"{rule.text} on {where}" if bad else rule.text, clear=all(r[3] for r in results),
+        open_after_files=rule.open_after_files, resolve_after_files=rule.resolve_after_files,
+        remind_h=rule.remind_h, path=path, headline=f"{rule.text} on {where}" if bad else rule.text,
+        channels=tuple(sorted(r[0].index for r in bad)))
+
+
 def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: float
           ) -> list[Finding]:
     """Every evaluated (channel, measure, rule) of one file as a Finding, plus rig-level ones.
@@ -423,6 +467,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
     out = [Finding(bad=False, value=None, limit_text="file measured", **intake)]
     mode = fm.mode
     seen = 0
+    per_file: dict[str, list[tuple[ChannelMeasures, Measure, bool, bool]]] = {}
     for ch in fm.channels:
         groups = None
         for m in ch.measures.values():
@@ -434,6 +479,9 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                 if res is None:
                     continue
                 bad, clear_ok = res[:2]
+                if rule.scope != "measure":         # one finding per file, after the channels
+                    per_file.setdefault(rule.name, []).append((ch, m, bad, clear_ok))
+                    continue
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
                     groups = noise_hints(ch, mode, history, rules) if groups is None else groups
@@ -447,7 +495,8 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     unit=m.unit, limit_text=rule.text, hint=hint, clear=clear_ok,
                     open_after_files=rule.open_after_files,
                     resolve_after_files=rule.resolve_after_files,
-                    remind_h=rule.remind_h, path=path, headline=rule.text))
+                    remind_h=rule.remind_h, path=path, headline=rule.text,
+                    channel_name=ch.name))
             hist_rules = [r for r in rules.history
                           if r.measure == m.name and _matches(r.modes, mode)]
             if not hist_rules or _number(m.value) is None:
@@ -491,7 +540,10 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     limit_text=text, hint=hint, clear=clear_ok,
                     open_after_files=rule.open_after_files,
                     resolve_after_files=rule.resolve_after_files, remind_h=rule.remind_h,
-                    learning=learning, path=path, headline=headline))
+                    learning=learning, path=path, headline=headline, channel_name=ch.name))
+    for rule in rules.limits:
+        if rule.name in per_file:
+            out.append(_file_finding(rule, per_file[rule.name], rig_name, mode, path))
     if rules.history and seen < st.learning_files:
         out.append(Finding(rig=rig_name, mode=mode, channel=-1, measure="files", rule="learning",
                            kind="rig", bad=False, severity="info", value=float(seen), unit="",

@@ -21,7 +21,7 @@ from qcd import alerts
 from qcd.analyze import analyze_path
 from qcd.errors import StoreError
 from qcd.judge import Finding, judge
-from qcd.results import FileMeasures, file_time
+from qcd.results import ChannelMeasures, FileMeasures, file_time
 from qcd.workers import imap
 
 if TYPE_CHECKING:
@@ -31,7 +31,7 @@ if TYPE_CHECKING:
     from qcd.ruleset import Rules
     from qcd.store import Store
 
-__all__ = ["measure", "measure_all", "process", "commit", "error_file", "flush_digest", "tick",
+__all__ = ["measure", "measure_all", "watched_channels", "process", "commit", "error_file", "flush_digest", "tick",
            "judge_file", "scan", "ScanResult", "recording_order", "DIGEST_FILES"]
 
 # More files than this in one ``scan`` is a backlog: one digest instead of a message per file.
@@ -73,8 +73,8 @@ def measure(path: str | os.PathLike, rig: RigConfig, *, recording: Recording | N
     """
     pulse, mains_hz, mode = rig.test_pulse, rig.mains_hz, rig.mode
     try:
-        return analyze_path(path, pulse=pulse, mains_hz=mains_hz, mode=mode, digest=digest,
-                            recording=recording)
+        return watched_channels(analyze_path(path, pulse=pulse, mains_hz=mains_hz, mode=mode,
+                                             digest=digest, recording=recording), rig)
     except MemoryError as e:
         reason = f"{os.fspath(path)}: out of memory while measuring ({e})"
     except Exception as e:
@@ -82,6 +82,57 @@ def measure(path: str | os.PathLike, rig: RigConfig, *, recording: Recording | N
         reason = (f"{os.fspath(path)}: internal error while measuring "
                   f"({type(e).__name__}: {e})")
     return error_file(path, "internal", reason, **_facts(path, digest))
+
+
+def _label(ch: ChannelMeasures) -> str:
+    unit = f", {ch.unit}" if ch.unit and ch.unit != "?" else ""
+    return f"{ch.index} ({ch.name}{unit})" if ch.name else f"{ch.index}{unit}"
+
+
+def watched_channels(fm: FileMeasures, rig: RigConfig) -> FileMeasures:
+    """The file with only the channels the rig watches, each under its display name.
+
+    ``rig.channels`` lists indices or header names; without it every current or voltage
+    channel is watched and the others (temperature, pressure, position) are skipped. What was
+    left out, and why, becomes a note on the file.
+    """
+    if fm.status != "ok" or not fm.channels:
+        return fm
+    chosen = rig.channels
+    keep: list[ChannelMeasures] = []
+    not_listed: list[str] = []
+    not_electrical: list[str] = []
+    found: set[int | str] = set()
+    for ch in fm.channels:
+        if chosen is None:
+            watched = ch.dimension in ("A", "V")
+        else:
+            hits = {k for k in chosen if k == ch.index or k == ch.name}
+            found |= hits
+            watched = bool(hits)
+        if not watched:
+            (not_listed if chosen is not None else not_electrical).append(_label(ch))
+            continue
+        shown = rig.channel_name(ch.index, ch.name)
+        if shown and shown != ch.name:
+            ch = replace(ch, name=shown, notes=ch.notes + (
+                f"shown as {shown!r} (the rig's channel_names); header name {ch.name!r}",))
+        keep.append(ch)
+    notes = list(fm.notes)
+    if not_electrical:
+        notes.append(f"channel{'s' if len(not_electrical) > 1 else ''} "
+                     f"{', '.join(not_electrical)} not watched: the unit is neither a current "
+                     f"nor a voltage (list the channel in the rig's channels to watch it)")
+    if not_listed:
+        notes.append(f"channel{'s' if len(not_listed) > 1 else ''} {', '.join(not_listed)} "
+                     f"not watched: not in the rig's channels")
+    missing = [k for k in (chosen or ()) if k not in found]
+    if missing:
+        notes.append("the rig's channels list " + ", ".join(repr(k) for k in missing)
+                     + ", which this file does not have")
+    if tuple(keep) == fm.channels and len(notes) == len(fm.notes):
+        return fm
+    return replace(fm, channels=tuple(keep), notes=tuple(notes))
 
 
 def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float

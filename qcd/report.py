@@ -15,7 +15,7 @@ import html
 import io
 import math
 import re
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any, Iterable
 
@@ -91,6 +91,7 @@ class MeasureLine:
     high: float | None
     n_history: int
     state: str                 # 'normal' | 'high' | 'low' | 'no history'
+    channel_name: str = ""
 
 
 @dataclass(frozen=True)
@@ -101,6 +102,7 @@ class Trend:
     unit: str
     points: tuple[tuple[float, float, bool], ...]    # (recorded_at, value, flagged), oldest first
     alerts_opened: tuple[float, ...] = ()
+    channel_name: str = ""
 
 
 @dataclass(frozen=True)
@@ -130,6 +132,7 @@ class RigReport:
     resolved_alerts: tuple[dict, ...] = ()   # alerts that resolved within the period
     trends: tuple[Trend, ...] = ()       # the plotted key measures (at most six)
     spectrum: LatestSpectrum | None = None
+    channels: tuple[tuple[int, str], ...] = ()   # (channel, name) of the rig's recent files
 
 
 @dataclass(frozen=True)
@@ -197,25 +200,26 @@ def _add_hint(hints: list[str], hint: str) -> None:
     hints.append(hint)
 
 
-def _key_measures(store: Store, rig: str, now: float, opened: list[dict]
-                  ) -> tuple[list[MeasureLine], list[Trend]]:
-    """Each key measure per input channel (0-3) against its normal range, and the series of
-    the first six plotted ones with their alert openings."""
+def _key_measures(store: Store, rig: str, now: float, opened: list[dict],
+                  names: dict[int, str]) -> tuple[list[MeasureLine], list[Trend]]:
+    """Each key measure per watched channel (the first four) against its normal range, and
+    the series of the first six plotted ones with their alert openings."""
     t0 = now - HISTORY_DAYS * 86400.0
     lines, trends = [], []
     for measure in KEY_MEASURES:
-        for ch in range(4):
+        for ch in list(names)[:4]:
             rows = _series(store, rig, measure, ch, t0)
             if not rows:
                 continue
-            ml = _measure_line(rows, measure, ch)
+            ml = replace(_measure_line(rows, measure, ch), channel_name=names[ch])
             lines.append(ml)
             if measure in _PLOTTED and len(trends) < 6:
                 marks = sorted({a["opened_at"] for a in opened if a.get("opened_at")
                                 and a.get("measure") == measure
                                 and a.get("channel") in (None, ch)})
                 trends.append(Trend(measure, ch, ml.unit,
-                                    tuple((r[0], r[1], bool(r[3])) for r in rows), tuple(marks)))
+                                    tuple((r[0], r[1], bool(r[3])) for r in rows), tuple(marks),
+                                    names[ch]))
     return lines, trends
 
 
@@ -261,8 +265,9 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
                 if h:
                     _add_hint(hints, h.replace(SAFETY_NOTE, "").strip())
         alerts = tuple(store.open_alerts(rig=rig))
+        names = store.channel_names(rig, now - HISTORY_DAYS * 86400.0)
         lines, trends = _key_measures(store, rig, now, list(alerts) + list(
-            store.recent_alerts(now - HISTORY_DAYS * 86400.0, rig=rig)))
+            store.recent_alerts(now - HISTORY_DAYS * 86400.0, rig=rig)), names)
         mutes = tuple({"rig_glob": x.rig_glob, "rule_glob": x.rule_glob,
                           "start_at": x.start_at, "end_at": x.end_at, "reason": x.reason}
                          for x in store.active_mutes(now) if fnmatch.fnmatchcase(rig, x.rig_glob))
@@ -277,7 +282,8 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
             sum(bool(f.get("flagged")) for f in files), slim, tuple(lines),
             tuple(dict(a) for a in alerts), tuple(hints),
             SAFETY_NOTE if any(_is_grounding(h) for h in hints) else None, mutes,
-            resolved, tuple(trends), _latest_spectrum(store, rig, files, now)))
+            resolved, tuple(trends), _latest_spectrum(store, rig, files, now),
+            tuple(names.items())))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
 
@@ -319,6 +325,8 @@ def render_text(r: Report) -> str:
         out.append("")
         out.append(f"== {rig.rig}: {rig.n_files} file(s), {rig.n_ok} ok, {rig.n_error} error, "
                    f"{rig.n_flagged} flagged")
+        if rig.channels:
+            out.append(_wrap("   channels: " + _channels_text(rig.channels), 100))
         if rig.measures:
             out.append(f"   {'measure':<22}{'ch':>3} {'latest':>9} {'median':>9} "
                        f"{'normal range':>21} {'unit':<7}state")
@@ -360,6 +368,11 @@ def render_text(r: Report) -> str:
         if r.outbox.get("stuck"):
             out.append("   some messages could not be delivered for 24 h: see qcd alerts")
     return "\n".join(out)
+
+
+def _channels_text(channels: Iterable[tuple[int, str]]) -> str:
+    """'0 cell, 1 bath' (channel numbers with their names)."""
+    return ", ".join(f"{i} {name}".strip() for i, name in channels)
 
 
 def _wrap(text: str, width: int) -> str:
@@ -505,8 +518,9 @@ def _trend_image(rig: RigReport, now: float, since: float) -> str | None:
     for t in rig.trends:
         m = lines[(t.measure, t.channel)]
         info = MEASURES[t.measure]
+        name = f" {t.channel_name}" if t.channel_name else ""
         panels.append(Panel(
-            f"{info.label} ({t.measure}, ch {t.channel})", t.unit, [p[0] for p in t.points],
+            f"{info.label} ({t.measure}, ch {t.channel}{name})", t.unit, [p[0] for p in t.points],
             [p[1] for p in t.points], [p[2] for p in t.points],
             (m.low, m.median, m.high) if m.low is not None else None, t.alerts_opened,
             info.log_axis))
@@ -542,6 +556,9 @@ def render_html(r: Report) -> str:
                      f"<span class='pill {cls}'>{status}</span></h2>"
                      f"<p class='meta'>{rig.n_files} file(s) in the period: {rig.n_ok} ok, "
                      f"{rig.n_error} error, {rig.n_flagged} flagged</p>")
+        if rig.channels:
+            parts.append(f"<p class='meta'>channels: "
+                         f"{html.escape(_channels_text(rig.channels))}</p>")
         if rig.open_alerts:
             parts.append("<ul class='alerts'>" + "".join(
                 f"<li>{html.escape(_alert_text(a))}</li>" for a in rig.open_alerts) + "</ul>")

@@ -42,7 +42,9 @@ class LimitRule:
     """A fixed limit: bad when value < below, value > above, or bool(value) == equals.
 
     ``above``/``below`` are SI floats (``dimension`` says which quantity, '' for plain numbers).
-    ``scope`` 'rig' makes it a rig-level finding (mutes that rig's measure alerts).
+    ``scope`` 'measure' gives one finding per channel; 'file' one per file naming the channels
+    that broke it (acquisition settings: aliasing, sampling); 'rig' the same as a rig-level
+    finding, which mutes that rig's measure alerts while it lasts (clipping).
     """
     name: str
     measure: str
@@ -204,8 +206,9 @@ def _limit_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> Limi
         if not isinstance(t["absolute"], bool):
             raise ConfigError(path, f"{where}.absolute", f"expected true or false, got {t['absolute']!r}")
         kw["absolute"] = t["absolute"]
-    if t.get("scope", "measure") not in ("measure", "rig"):
-        raise ConfigError(path, f"{where}.scope", f"expected 'measure' or 'rig', got {t['scope']!r}")
+    if t.get("scope", "measure") not in ("measure", "file", "rig"):
+        raise ConfigError(path, f"{where}.scope",
+                          f"expected 'measure', 'file' or 'rig', got {t['scope']!r}")
     kw["scope"] = t.get("scope", "measure")
     if "clear_margin" in t:
         kw["clear_margin"] = _rule_number(path, where, "clear_margin", t["clear_margin"], float, False)

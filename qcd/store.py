@@ -223,6 +223,7 @@ def _bad_targets(findings: Iterable[Finding]) -> tuple[bool, set[tuple[int | Non
             any_bad = True
             if f.measure:
                 named.add((f.channel, f.measure))
+                named.update((c, f.measure) for c in getattr(f, "channels", ()))  # file-level
     return any_bad, named
 
 
@@ -704,6 +705,20 @@ class Store:
             params.append(since)
         rows = self._one_all(sql + " ORDER BY f.recorded_at, f.id, m.channel", params)
         return [(float(t), float(v), u, bool(fl), int(i), p) for t, v, u, fl, i, p in rows]
+
+    def channel_names(self, rig: str, since: float | None = None) -> dict[int, str]:
+        """{channel: its name in the rig's latest current file holding it} (files recorded at
+        or after ``since``), by channel number."""
+        sql = ("SELECT c.channel, c.name FROM channels c JOIN files f ON f.id = c.file_id "
+               "WHERE f.rig = ? AND f.superseded = 0")
+        params: list[Any] = [rig]
+        if since is not None:
+            sql += " AND f.recorded_at >= ?"
+            params.append(since)
+        names: dict[int, str] = {}
+        for ch, name in self._one_all(sql + " ORDER BY f.recorded_at, f.id", params):
+            names[int(ch)] = name or ""
+        return dict(sorted(names.items()))
 
     def spectrum(self, file_id: int, channel: int) -> Spectrum | None:
         row = self._one("SELECT unit, freqs, density FROM spectra WHERE file_id = ? AND "

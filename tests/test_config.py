@@ -1,6 +1,7 @@
 """qcd.toml loading and validation, config discovery, URL redaction, qcd init."""
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -102,6 +103,12 @@ MISTAKES = [
     (RIG + 'mains_hz = 55\n', "mains_hz", "expected 50 or 60, got 55"),
     (RIG + 'mains_hz = "50"\n', "mains_hz", "expected 50 or 60"),
     (RIG + 'polling = "yes"\n', "polling", "expected true or false"),
+    (RIG + 'channels = 0\n', "channels", "expected a list of channel indices or names"),
+    (RIG + 'channels = [0, -1]\n', "channels[1]", "expected a channel index"),
+    (RIG + 'channel_names = ["cell"]\n', "channel_names", "expected a table"),
+    (RIG + 'channel_names = { "0" = "" }\n', "channel_names.0", "a non-empty name"),
+    (RIG + 'cell_pattern = "(c\\\\d+"\n', "cell_pattern", "not a regular expression"),
+    (RIG + "cell_pattern = '(a)(b)'\n", "cell_pattern", "(?P<cell>...)"),
     ('notify = ["not a url"]\n', "notify[0]", "apprise URL"),
     ('notify = [1]\n', "notify[0]", "non-empty string"),
     ('database = 3\n', "database", "expected a string"),
@@ -230,8 +237,14 @@ def test_starter_config_loads_and_explains_every_key(tmp_path):
     text = starter_config()
     for key in ("database", "rules", "notify", "notify_config", "settle_seconds",
                 "give_up_hours", "name", "folders", "patterns", "polling", "test_pulse",
-                "mains_hz"):
+                "mains_hz", "channels", "channel_names", "cell_pattern"):
         assert f"{key} =" in text, key
+    # the rig's commented examples load as written once uncommented
+    for key in ("channels", "channel_names", "cell_pattern"):
+        text = text.replace(f"# {key} =", f"{key} =")
+    rig = load_config(write(tmp_path, text, "examples.toml")).rigs[0]
+    assert rig.channels == (0, 1) and rig.channel_name(1, "IN 1") == "bath"
+    assert re.match(rig.cell_pattern, "20261103_c2_0004.abf").group(0) == "20261103_c2"
 
 
 def test_init_writes_a_loadable_file_and_never_overwrites(tmp_path, capsys):
