@@ -154,6 +154,22 @@ def build_parser() -> argparse.ArgumentParser:
                    help="lift the active mute ID now (IDs: qcd mute, or qcd alerts)")
     _common(p)
 
+    p = sub.add_parser("note", help="write a note in a rig's logbook",
+                       description="Write what was done at a rig (a new headstage, a new bath "
+                                   "ground, a moved rig) in its logbook. Notes are marked on "
+                                   "the report's trend plots, listed in the report and shown "
+                                   "between the values of qcd trend. Without TEXT: list the "
+                                   "rig's notes.",
+                       epilog="Example: qcd note rig-b replaced the headstage --at 2h")
+    p.add_argument("rig", metavar="RIG", help="a configured rig")
+    p.add_argument("text", nargs="*", metavar="TEXT", help="what was done (no quotes needed)")
+    p.add_argument("--at", metavar="WHEN",
+                   help="when it was done: an age (2h, 1d: that long ago) or an ISO date and "
+                        "time (default: now)")
+    p.add_argument("--days", type=float, default=30.0, metavar="D",
+                   help="without TEXT: the notes of the last D days (30)")
+    _common(p)
+
     p = sub.add_parser("init", help="write a commented starter qcd.toml",
                        description="Write a starter config with one example rig to edit.",
                        epilog="Example: qcd init qcd.toml")
@@ -408,9 +424,18 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
 
 def _cmd_trend(args: argparse.Namespace) -> int:
+    import difflib
     import time
 
     from qcd.report import render_trend_csv, render_trend_text, trend_rows
+    from qcd.results import MEASURES
+    if not args.days > 0:
+        raise ConfigError(None, "--days", f"expected a number of days above 0, got {args.days:g}")
+    if args.measure not in MEASURES:
+        close = difflib.get_close_matches(args.measure.lower(), list(MEASURES), n=3, cutoff=0.5)
+        raise ConfigError(None, "MEASURE", f"unknown measure {args.measure!r}" + (
+            f"; did you mean {' or '.join(close)}?" if close else
+            " (the measure names are listed in the README's Measures table)"))
     store = _report_store(args, "trend")
     if store is None:
         return EXIT_FAILED
@@ -418,12 +443,14 @@ def _cmd_trend(args: argparse.Namespace) -> int:
         if args.rig not in store.rigs():
             raise ConfigError(None, "RIG", f"no files stored for rig {args.rig!r} "
                               f"(known: {', '.join(store.rigs()) or 'none'})")
+        now = time.time()
         rows = trend_rows(store, args.rig, args.measure, channel=args.channel, days=args.days,
-                          now=time.time())
+                          now=now)
+        notes = store.notes(args.rig, since=now - args.days * 86400.0)
     if args.csv:
         sys.stdout.write(render_trend_csv(rows))
     else:
-        print(render_trend_text(args.rig, args.measure, rows))
+        print(render_trend_text(args.rig, args.measure, rows, notes))
     return EXIT_OK if rows else EXIT_FAILED
 
 
@@ -526,6 +553,34 @@ def _local_time(t: float) -> str:
     return datetime.fromtimestamp(t).astimezone().strftime("%Y-%m-%d %H:%M %Z")
 
 
+def _cmd_note(args: argparse.Namespace) -> int:
+    import time
+
+    from qcd.config import find_config, load_config
+    from qcd.report import note_line, parse_since
+    from qcd.store import Store
+    cfg = load_config(find_config(args.config))
+    cfg.rig(args.rig)                                 # ConfigError naming the known rigs
+    now = time.time()
+    if args.days <= 0:
+        raise ConfigError(None, "--days", f"expected a number of days above 0, got {args.days:g}")
+    with Store(cfg.database) as store:
+        if not args.text:
+            notes = store.notes(args.rig, since=now - args.days * 86400.0)
+            print(f"{args.rig}: {len(notes) or 'no'} note(s) in the last {args.days:g} days")
+            for n in notes:
+                print(f"  {note_line(n)}")
+            return EXIT_OK
+        at = now if args.at is None else parse_since(args.at, now)
+        if at > now + 60.0:
+            raise ConfigError(None, "--at", f"{args.at!r} is in the future")
+        text = " ".join(" ".join(args.text).split())
+        nid = store.add_note(args.rig, text, at, now=now)
+    print(f"noted for {args.rig}: {note_line({'at': at, 'text': text, 'kind': 'note'})} "
+          f"(note {nid})")
+    return EXIT_OK
+
+
 def _cmd_init(args: argparse.Namespace) -> int:
     from qcd.config import starter_config
 
@@ -568,7 +623,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 _COMMANDS = {
     "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
     "trend": _cmd_trend, "compare": _cmd_compare, "alerts": _cmd_alerts,
-    "mute": _cmd_mute, "init": _cmd_init, "notify-test": _cmd_notify_test,
+    "mute": _cmd_mute, "note": _cmd_note, "init": _cmd_init, "notify-test": _cmd_notify_test,
     "demo": _cmd_demo,
 }
 

@@ -75,7 +75,8 @@ def _utc(t: float) -> datetime:
 
 @dataclass(frozen=True)
 class Panel:
-    """One trend plot: values over time, the normal band, flagged points, alert openings."""
+    """One trend plot: values over time, the normal band, flagged points, alert openings and
+    logbook notes."""
     title: str
     unit: str
     times: Sequence[float]              # Unix seconds
@@ -84,6 +85,7 @@ class Panel:
     band: tuple[float, float, float] | None = None    # (low, median, high) of the normal range
     marks: Sequence[float] = ()         # alert openings, Unix seconds
     log_axis: bool = False              # a log axis when the values span more than 20x
+    notes: Sequence[tuple[float, str]] = ()   # logbook notes (Unix seconds, text)
 
 
 def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str | None:
@@ -113,6 +115,13 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str 
         for i, t in enumerate(p.marks):
             ax.axvline(_utc(t), color="#c8553d", lw=1.0, ls="--",
                        label="alert opened" if i == 0 else None)
+        for i, (t, text) in enumerate(p.notes):
+            ax.axvline(_utc(t), color="#6b4fa0", lw=1.0, ls="-.",
+                       label="logbook note" if i == 0 else None)
+            ax.annotate(text if len(text) <= 28 else text[:27] + "\u2026", (_utc(t), 1.0),
+                        xycoords=("data", "axes fraction"), xytext=(2, -3),
+                        textcoords="offset points", rotation=90, va="top", ha="left",
+                        fontsize=6.5, color="#6b4fa0")
         ax.axvspan(_utc(shade[0]), _utc(shade[1]), color="#999999", alpha=0.08, lw=0)
         ax.set_title(p.title, fontsize=9.5, loc="left")
         ax.set_ylabel(p.unit or "value", fontsize=9)
@@ -122,7 +131,7 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str 
         ax.grid(True, alpha=0.25)
         if p.log_axis and vs.size and np.all(vs > 0) and vs.max() / vs.min() > 20:
             ax.set_yscale("log")
-        if fl.any() or p.band is not None or p.marks:
+        if fl.any() or p.band is not None or p.marks or p.notes:
             ax.legend(fontsize=7, loc="best", framealpha=0.75)
     for ax in list(axes.flat)[len(panels):]:
         ax.axis("off")

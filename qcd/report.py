@@ -34,7 +34,7 @@ if TYPE_CHECKING:
 __all__ = ["KEY_MEASURES", "MeasureLine", "Trend", "LatestSpectrum", "RigReport", "Report",
            "parse_since", "normal_range", "build_report", "render_text", "render_html",
            "trend_rows", "render_trend_text", "render_trend_csv", "sparkline", "AlertList",
-           "build_alerts", "render_alerts"]
+           "build_alerts", "render_alerts", "note_line"]
 
 # The measures the morning report shows, in this order, when a rig has them, and the ones plotted.
 KEY_MEASURES = shown("report")
@@ -133,6 +133,7 @@ class RigReport:
     trends: tuple[Trend, ...] = ()       # the plotted key measures (at most six)
     spectrum: LatestSpectrum | None = None
     channels: tuple[tuple[int, str], ...] = ()   # (channel, name) of the rig's recent files
+    notes: tuple[dict, ...] = ()         # logbook notes (at, text, kind) of the trend window
 
 
 @dataclass(frozen=True)
@@ -283,7 +284,9 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
             tuple(dict(a) for a in alerts), tuple(hints),
             SAFETY_NOTE if any(_is_grounding(h) for h in hints) else None, mutes,
             resolved, tuple(trends), _latest_spectrum(store, rig, files, now),
-            tuple(names.items())))
+            tuple(names.items()), tuple({k: n[k] for k in ("at", "text", "kind")} for n in
+                                        store.notes(rig, since=now - HISTORY_DAYS * 86400.0,
+                                                    until=now))))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
 
@@ -358,6 +361,10 @@ def render_text(r: Report) -> str:
                 f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts), 100))
         for x in rig.mutes:
             out.append(_wrap(f"   {_mute_text(x)}", 100))
+        if len(rig.notes) > 5:
+            out.append(f"   logbook: {len(rig.notes)} notes in {HISTORY_DAYS:g} days; the last 5:")
+        for n in rig.notes[-5:]:
+            out.append(_wrap(f"   {note_line(n)}", 100))
         for h in rig.hints:
             out.append(_wrap(f"   hint: {h}", 100))
         if rig.safety_note:
@@ -368,6 +375,12 @@ def render_text(r: Report) -> str:
         if r.outbox.get("stuck"):
             out.append("   some messages could not be delivered for 24 h: see qcd alerts")
     return "\n".join(out)
+
+
+def note_line(n: dict) -> str:
+    """'logbook 2026-11-03 14:20: replaced the headstage' (UTC) for one ``store.notes`` row."""
+    what = "re-learned" if n.get("kind") == "relearn" else "logbook"
+    return f"{what} {_when(n.get('at'))} UTC: {n.get('text')}"
 
 
 def _channels_text(channels: Iterable[tuple[int, str]]) -> str:
@@ -407,7 +420,10 @@ def sparkline(values: list[float], width: int = 60) -> str:
     return "".join(_SPARKS[i] for i in k)
 
 
-def render_trend_text(rig: str, measure: str, rows: list[tuple]) -> str:
+def render_trend_text(rig: str, measure: str, rows: list[tuple],
+                      notes: Iterable[dict] = ()) -> str:
+    """The series as lines, the rig's logbook notes (``store.notes``) between them where they
+    happened."""
     if not rows:
         return f"{rig} {measure}: no stored values in that period"
     unit = rows[-1][2]
@@ -418,8 +434,14 @@ def render_trend_text(rig: str, measure: str, rows: list[tuple]) -> str:
     if nr:
         head.append(f"  median {_num(nr[0]).strip()}, robust SD {_num(nr[1]).strip()} "
                     f"(unflagged files)")
-    body = [f"  {_when(r[0])}  {_num(r[1], 11)} {unit:<7}{'flagged' if r[3] else '':<8}"
-            f" {_short(r[5])}" for r in rows]
+    pending = sorted(notes, key=lambda n: n["at"])
+    body = []
+    for r in rows:
+        while pending and pending[0]["at"] <= r[0]:
+            body.append(f"  -- {note_line(pending.pop(0))}")
+        body.append(f"  {_when(r[0])}  {_num(r[1], 11)} {unit:<7}{'flagged' if r[3] else '':<8}"
+                    f" {_short(r[5])}")
+    body += [f"  -- {note_line(n)}" for n in pending]
     return "\n".join(head + [""] + body)
 
 
@@ -523,7 +545,7 @@ def _trend_image(rig: RigReport, now: float, since: float) -> str | None:
             f"{info.label} ({t.measure}, ch {t.channel}{name})", t.unit, [p[0] for p in t.points],
             [p[1] for p in t.points], [p[2] for p in t.points],
             (m.low, m.median, m.high) if m.low is not None else None, t.alerts_opened,
-            info.log_axis))
+            info.log_axis, tuple((n["at"], n["text"]) for n in rig.notes)))
     return trend_figure(panels, shade=(since, now))
 
 
@@ -567,6 +589,9 @@ def render_html(r: Report) -> str:
                 f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts)) + "</p>")
         for x in rig.mutes:
             parts.append(f"<p class='meta'>{html.escape(_mute_text(x))}</p>")
+        if rig.notes:
+            parts.append("<ul class='notes'>" + "".join(
+                f"<li>{html.escape(note_line(n))}</li>" for n in rig.notes) + "</ul>")
         for h in rig.hints:
             parts.append(f"<p class='hint'>{html.escape(h)}</p>")
         if rig.safety_note:

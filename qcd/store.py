@@ -147,6 +147,19 @@ def _m003_mutes(db: Database) -> None:
             db.execute("UPDATE alerts SET state_json = ? WHERE key = ?", (_dumps(new), key))
 
 
+@MIGRATIONS(name="m004_notes")
+def _m004_notes(db: Database) -> None:
+    """The rig logbook: what people (or qcd's own re-learning) did at the rig, and when."""
+    db.execute("""CREATE TABLE notes (
+        id INTEGER PRIMARY KEY,
+        rig TEXT NOT NULL,
+        at REAL NOT NULL,          -- when it happened at the rig
+        text TEXT NOT NULL,
+        kind TEXT NOT NULL DEFAULT 'note',   -- 'note' (qcd note) or what wrote it ('relearn')
+        created_at REAL NOT NULL)""")
+    db.execute("CREATE INDEX notes_rig_at ON notes (rig, at)")
+
+
 @dataclass(frozen=True)
 class FileState:
     """What the store knows of a path: enough for the watcher to skip unchanged files."""
@@ -633,6 +646,34 @@ class Store:
                                "(end_at IS NULL OR end_at > ?)", (now, id, now))
             return cur.rowcount == 1
 
+    # --- logbook -------------------------------------------------------------------------------
+
+    def add_note(self, rig: str, text: str, at: float, *, kind: str = "note",
+                 now: float | None = None) -> int:
+        """Write a logbook note for ``rig`` about something done at ``at`` (Unix seconds);
+        ``kind`` says what wrote it ('note' for ``qcd note``, 'relearn' for a re-learn)."""
+        import time
+        text = " ".join(str(text).split())
+        if not text or not rig:
+            raise StoreError(f"{self.path}: a note needs a rig and a text")
+        with self._write() as conn:
+            cur = conn.execute("INSERT INTO notes (rig, at, text, kind, created_at) "
+                               "VALUES (?,?,?,?,?)", (rig, float(at), text, kind,
+                                                      time.time() if now is None else float(now)))
+            return int(cur.lastrowid)
+
+    def notes(self, rig: str | None = None, since: float | None = None,
+              until: float | None = None) -> list[dict[str, Any]]:
+        """Logbook notes (id, rig, at, text, kind, created_at) with since <= at < until,
+        oldest first."""
+        where, params = [], []
+        for clause, value in (("rig = ?", rig), ("at >= ?", since), ("at < ?", until)):
+            if value is not None:
+                where.append(clause)
+                params.append(value)
+        sql = "SELECT * FROM notes" + (" WHERE " + " AND ".join(where) if where else "")
+        return self._rows(sql + " ORDER BY at, id", params)
+
     # --- heartbeat -------------------------------------------------------------------------------
 
     def beat(self, pid: int, host: str, started_at: float, now: float, queue_len: int,
@@ -659,10 +700,10 @@ class Store:
     # --- reads for the report --------------------------------------------------------------------
 
     def rigs(self) -> list[str]:
-        """Names of the rigs with stored files or alerts, sorted."""
+        """Names of the rigs with stored files, alerts or notes, sorted."""
         return [r[0] for r in self._one_all(
             "SELECT rig FROM files UNION SELECT rig FROM alerts WHERE rig IS NOT NULL "
-            "ORDER BY 1")]
+            "UNION SELECT rig FROM notes ORDER BY 1")]
 
     def files(self, rig: str | None = None, since: float | None = None,
               until: float | None = None, *, include_superseded: bool = False
