@@ -103,6 +103,24 @@ def build_parser() -> argparse.ArgumentParser:
                    help="also write one self-contained HTML file with plots")
     _common(p)
 
+    p = sub.add_parser("export", help="per-file verdicts and measures for analysis",
+                       description="One row per stored file and channel with its measures and a "
+                                   "verdict: pass, or fail with the limits it broke, by the "
+                                   "rules the alerts use (fixed limits judged now, with the "
+                                   "rules as they are; drift findings as the rig's history gave "
+                                   "them when the file came in). With the rig's cell_pattern, "
+                                   "files are grouped by cell with a verdict per cell. JSON "
+                                   "Lines on stdout, or CSV with --csv FILE.",
+                       epilog="Example: qcd export --since 7d --rig rig-b --csv rig-b.csv")
+    p.add_argument("--since", metavar="AGE",
+                   help="files recorded since: 7d, 18h, or an ISO date (default: all)")
+    p.add_argument("--rig", metavar="NAME", action="append", help="only this rig (repeatable)")
+    p.add_argument("--csv", type=Path, metavar="FILE", help="write CSV to FILE")
+    p.add_argument("--rules", type=Path, metavar="FILE", action="append",
+                   help="a rule file of inclusion criteria ([[limit]] tables) applied on top "
+                        "of the config's rules (repeatable)")
+    _common(p)
+
     p = sub.add_parser("trend", help="one measure's series for one rig",
                        description="Print a rig's values of one measure over time, with a "
                                    "terminal sparkline, or as CSV.",
@@ -423,6 +441,45 @@ def _cmd_report(args: argparse.Namespace) -> int:
     return EXIT_FAILED if bad else EXIT_OK
 
 
+def _cmd_export(args: argparse.Namespace) -> int:
+    import time
+
+    from qcd.config import find_config, load_config
+    from qcd.export import render_csv, render_jsonl, summary, verdicts
+    from qcd.report import parse_since
+    from qcd.ruleset import load_rules
+    from qcd.store import Store
+    cfg = load_config(find_config(args.config))
+    now = time.time()
+    since = None if args.since is None else parse_since(args.since, now)
+    extra = list(args.rules or ())
+    for path in extra:
+        if load_rules([path]).history:
+            raise ConfigError(path, "history", "a history rule judges a file against the rig's "
+                                               "history as it was when the file came in, so it "
+                                               "cannot be applied afterwards: give only [[limit]] "
+                                               "tables here")
+    rules = load_rules(list(cfg.rules) + extra)
+    if not cfg.database.exists():
+        print(f"qcd export: no database yet at {cfg.database} (start 'qcd watch' first)",
+              file=sys.stderr)
+        return EXIT_FAILED
+    with Store(cfg.database) as store:
+        known = store.rigs()
+        for rig in args.rig or ():
+            if rig not in known:
+                raise ConfigError(None, "--rig", f"no files stored for rig {rig!r} "
+                                  f"(known: {', '.join(known) or 'none'})")
+        rows = verdicts(store, rules, rigs=args.rig, since=since, config_rigs=cfg.rigs, now=now)
+    if args.csv:
+        args.csv.write_text(render_csv(rows), encoding="utf-8")
+        print(f"wrote {args.csv}: {summary(rows)}")
+    else:
+        sys.stdout.write(render_jsonl(rows))
+        print(f"qcd export: {summary(rows)}", file=sys.stderr)
+    return EXIT_OK
+
+
 def _cmd_trend(args: argparse.Namespace) -> int:
     import difflib
     import time
@@ -622,7 +679,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 
 _COMMANDS = {
     "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
-    "trend": _cmd_trend, "compare": _cmd_compare, "alerts": _cmd_alerts,
+    "trend": _cmd_trend, "export": _cmd_export, "compare": _cmd_compare, "alerts": _cmd_alerts,
     "mute": _cmd_mute, "note": _cmd_note, "init": _cmd_init, "notify-test": _cmd_notify_test,
     "demo": _cmd_demo,
 }

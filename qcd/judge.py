@@ -404,6 +404,11 @@ def _normal_range(past: list[float], unit: str) -> str:
     return f"normal {lo:.3g}-{hi:.3g} {unit} (median {np.median(past):.3g}, {len(past)} files)"
 
 
+def _named(ch: ChannelMeasures) -> str:
+    """The channel's name, '' when the header gives none ('?')."""
+    return "" if ch.name in ("", "?") else ch.name
+
+
 def channel_list(channels: Sequence[tuple[int, str]], of: int | None = None) -> str:
     """'channel 1 (Current 1)', 'channels 0 (V1), 3 (I2)', 'channels 0-6, 9 (8 of 16)'."""
     items = sorted(channels)
@@ -435,7 +440,7 @@ def _file_finding(rule: LimitRule, results: list[tuple[ChannelMeasures, Measure,
         v = abs(v) if rule.absolute else v
         return -v if rule.below is not None and rule.above is None else v
     ch, m = max(pool, key=worst)[:2]
-    where = channel_list([(r[0].index, r[0].name) for r in bad], len(results)) if bad else ""
+    where = channel_list([(r[0].index, _named(r[0])) for r in bad], len(results)) if bad else ""
     return Finding(
         rig=rig_name, mode=mode, channel=-1, measure=rule.measure, rule=rule.name,
         kind="rig" if rule.scope == "rig" else "limit", bad=bool(bad), severity=rule.severity,
@@ -496,7 +501,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     open_after_files=rule.open_after_files,
                     resolve_after_files=rule.resolve_after_files,
                     remind_h=rule.remind_h, path=path, headline=rule.text,
-                    channel_name=ch.name))
+                    channel_name=_named(ch)))
             hist_rules = [r for r in rules.history
                           if r.measure == m.name and _matches(r.modes, mode)]
             if not hist_rules or _number(m.value) is None:
@@ -540,7 +545,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     limit_text=text, hint=hint, clear=clear_ok,
                     open_after_files=rule.open_after_files,
                     resolve_after_files=rule.resolve_after_files, remind_h=rule.remind_h,
-                    learning=learning, path=path, headline=headline, channel_name=ch.name))
+                    learning=learning, path=path, headline=headline, channel_name=_named(ch)))
     for rule in rules.limits:
         if rule.name in per_file:
             out.append(_file_finding(rule, per_file[rule.name], rig_name, mode, path))

@@ -86,7 +86,8 @@ def measure(path: str | os.PathLike, rig: RigConfig, *, recording: Recording | N
 
 def _label(ch: ChannelMeasures) -> str:
     unit = f", {ch.unit}" if ch.unit and ch.unit != "?" else ""
-    return f"{ch.index} ({ch.name}{unit})" if ch.name else f"{ch.index}{unit}"
+    return f"{ch.index} ({ch.name}{unit})" if ch.name not in ("", "?") else \
+        f"{ch.index} ({ch.unit})" if unit else str(ch.index)
 
 
 def watched_channels(fm: FileMeasures, rig: RigConfig) -> FileMeasures:

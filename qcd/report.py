@@ -328,7 +328,7 @@ def render_text(r: Report) -> str:
         out.append("")
         out.append(f"== {rig.rig}: {rig.n_files} file(s), {rig.n_ok} ok, {rig.n_error} error, "
                    f"{rig.n_flagged} flagged")
-        if rig.channels:
+        if any(name for _, name in rig.channels):
             out.append(_wrap("   channels: " + _channels_text(rig.channels), 100))
         if rig.measures:
             out.append(f"   {'measure':<22}{'ch':>3} {'latest':>9} {'median':>9} "
@@ -578,7 +578,7 @@ def render_html(r: Report) -> str:
                      f"<span class='pill {cls}'>{status}</span></h2>"
                      f"<p class='meta'>{rig.n_files} file(s) in the period: {rig.n_ok} ok, "
                      f"{rig.n_error} error, {rig.n_flagged} flagged</p>")
-        if rig.channels:
+        if any(name for _, name in rig.channels):
             parts.append(f"<p class='meta'>channels: "
                          f"{html.escape(_channels_text(rig.channels))}</p>")
         if rig.open_alerts:

@@ -17,7 +17,7 @@ import threading
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -27,7 +27,7 @@ from sqlite_utils.migrations import Migrations
 
 from qcd.alerts import Message, Mute
 from qcd.errors import StoreError
-from qcd.results import ChannelMeasures, FileMeasures, Spectrum, file_time
+from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum, file_time
 
 if TYPE_CHECKING:
     from qcd.judge import Finding
@@ -218,6 +218,17 @@ def _encode_value(value: Any) -> tuple[float | None, str, str | None]:
             return value, "float", None
         return None, "float", repr(value)
     return None, "json", _dumps(value)
+
+
+def _decode_value(value: float | None, kind: str, text: str | None) -> Any:
+    """Inverse of ``_encode_value``."""
+    if kind == "bool":
+        return bool(value)
+    if kind == "int":
+        return int(text) if text is not None else int(value)
+    if kind == "float":
+        return float(text) if text is not None else float(value)
+    return json.loads(text) if text is not None else None
 
 
 def _f32(values: Iterable[float]) -> bytes:
@@ -758,7 +769,7 @@ class Store:
             params.append(since)
         names: dict[int, str] = {}
         for ch, name in self._one_all(sql + " ORDER BY f.recorded_at, f.id", params):
-            names[int(ch)] = name or ""
+            names[int(ch)] = "" if name in (None, "?") else name       # '?': the header has none
         return dict(sorted(names.items()))
 
     def spectrum(self, file_id: int, channel: int) -> Spectrum | None:
@@ -773,6 +784,37 @@ class Store:
         for r in rows:
             r["bad"] = bool(r["bad"])
         return rows
+
+    def measured(self, file_id: int) -> FileMeasures | None:
+        """A stored file as the FileMeasures it was committed from (values exactly as they
+        were; without spectra, whose store is float32), or None."""
+        rows = self._rows("SELECT * FROM files WHERE id = ?", (file_id,))
+        if not rows:
+            return None
+        f = rows[0]
+        values: dict[int, dict[str, Measure]] = {}
+        for ch, name, value, unit, kind, text in self._one_all(
+                "SELECT channel, name, value, unit, kind, json FROM measures WHERE file_id = ? "
+                "ORDER BY rowid", (file_id,)):
+            values.setdefault(int(ch), {})[name] = Measure(name, _decode_value(value, kind, text),
+                                                           unit)
+        channels = tuple(
+            ChannelMeasures(index=int(c), name=name or "", unit=unit or "", dimension=dim or "",
+                            measures=values.get(int(c), {}), notes=tuple(json.loads(notes)))
+            for c, name, unit, dim, notes in self._one_all(
+                "SELECT channel, name, unit, dimension, notes FROM channels WHERE file_id = ? "
+                "ORDER BY channel", (file_id,)))
+        recorded = None
+        if f["time_source"] in ("header", "header_tz") and f["recorded_at"] is not None:
+            recorded = datetime.fromtimestamp(f["recorded_at"], timezone.utc)
+            recorded = recorded if f["time_source"] == "header_tz" else recorded.replace(tzinfo=None)
+        return FileMeasures(
+            path=f["path"], status=f["status"], error=f["error"], error_kind=f["error_kind"],
+            mode=f["mode"] or "unknown", format=f["format"] or "", fs_hz=f["fs_hz"],
+            duration_s=f["duration_s"], n_sweeps=f["n_sweeps"],
+            gap_free=None if f["gap_free"] is None else bool(f["gap_free"]), recorded_at=recorded,
+            size=f["size"], mtime=f["mtime"], sha256=f["sha256"], channels=channels,
+            notes=tuple(json.loads(f["notes"])), extra=json.loads(f["extra"]))
 
 
 def _alert_row(r: dict[str, Any]) -> dict[str, Any]:

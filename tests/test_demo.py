@@ -314,3 +314,30 @@ def test_demo_command_rejects_too_few_days(capsys):
     from qcd.cli import main
     assert main(["demo", "--days", "3"]) == 2
     assert "6 to 120" in capsys.readouterr().err
+
+
+@pytest.mark.slow
+def test_export_verdicts_equal_the_alert_rules_judgement_for_every_file(lab):
+    # the export judges the fixed limits again (qcd.judge, the packaged rules the demo ran
+    # with) and takes the drift findings stored with each file; every verdict must equal what
+    # the service's judge decided when the file came in (its stored findings)
+    from qcd.export import verdicts
+    from qcd.ruleset import load_rules
+    result, store, _ = lab
+    rows = verdicts(store, load_rules(), now=result.plan.files[-1].recorded_at + 86400.0)
+    files = {f["id"]: f for f in store.files()}
+    assert {r.file_id for r in rows} == set(files) and len(files) == result.n_files
+    failing = 0
+    for fid in files:
+        stored = [f for f in store.findings(fid) if f["bad"]]
+        mine = [r for r in rows if r.file_id == fid]
+        assert len(mine) == len(store.measured(fid).channels)
+        for r in mine:
+            expect = sorted(f["rule"] for f in stored if f["channel"] in (r.channel, -1))
+            got = sorted(x.split(":")[0] for x in r.reasons)
+            assert got == expect, (files[fid]["path"], r.channel, got, expect)
+            assert r.verdict == ("fail" if expect else "pass")
+            failing += r.verdict == "fail"
+    # the scripted faults (ground, headstage, seal) make some files fail, the healthy rig none
+    assert failing > 0
+    assert all(r.verdict == "pass" for r in rows if r.rig == "patch-1")
