@@ -331,7 +331,8 @@ def flush_digest(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute],
     rigs = sorted({e.state.rig for e in events})
     n_open = sum(e.what != "resolved" for e in events)
     n_res = len(events) - n_open
-    title = f"qcd digest: {n_open} open, {n_res} resolved ({', '.join(rigs)})"
+    title = (f"qcd digest of the files caught up on: {n_open} open, {n_res} resolved "
+             f"({', '.join(rigs)})")
     body = "\n\n".join(_describe(e) for e in sorted(events, key=lambda e: (e.what == "resolved",
                                                                             e.state.key)))
     return out, Message(alert_key=f"digest:{first.state.key}", transition=first.seq,
@@ -388,35 +389,58 @@ def _describe(e: _Event) -> str:
     return "\n".join(lines)
 
 
+def _subject(s: AlertState) -> str:
+    """'hum_rms on channel 0 (IN 0)', 'alias_risk', or 'a file' for the intake rule."""
+    if s.measure == "file":
+        return "a file"
+    name = f" ({s.channel_name})" if s.channel_name else ""
+    return s.measure + ("" if s.channel < 0 else f" on channel {s.channel}{name}")
+
+
+def _predicate(s: AlertState, still: bool = False) -> str:
+    """'is below 1 GOhm', 'is 1.9x its normal', 'is true on channels 0-14', or the intake's
+    'could not be read: bad signature'; with ``still``: 'is still ...'."""
+    head = s.headline or s.limit_text.split(";")[0]
+    if s.measure == "file":
+        return head + (" (again)" if still else "")
+    head = head[3:] if head.startswith("is ") else head
+    return f"is {'still ' if still else ''}{head}"
+
+
 def _title(rig: str, events: list[_Event]) -> str:
+    """A sentence: 'qcd rig-b: seal_resistance on channel 0 is below 1 GOhm'."""
     if len(events) == 1:
         e = events[0]
         s = e.state
-        what = _what(s)
-        head = s.headline or s.limit_text.split(";")[0]
-        text = {"opened": f"{what} {head}", "late": f"{what} {head}",
-                "backlog": f"{what} {head}",
-                "reminder": f"still: {what} {head}", "resolved": f"resolved: {what}",
-                "unstable": f"unstable: {what}"}[e.what]
-        return f"qcd {rig}: {text}"[:120]
+        back = "read again" if s.measure == "file" else \
+            "back to its normal" if s.kind == "drift" else "back within its limit"
+        text = {"opened": f"{_subject(s)} {_predicate(s)}",
+                "late": f"{_subject(s)} {_predicate(s)}",
+                "backlog": f"{_subject(s)} {_predicate(s)}",
+                "reminder": f"{_subject(s)} {_predicate(s, still=True)}",
+                "resolved": f"{_subject(s)} resolved: {'files are ' if s.measure == 'file' else ''}"
+                            f"{back}",
+                "unstable": f"{_subject(s)} keeps going bad and good again (the alert stays "
+                            f"open, quietly)"}[e.what]
+        return f"qcd {rig}: {text}"[:160]
     by_measure: dict[str, set[int]] = {}
     for e in events:
         by_measure.setdefault(e.state.measure, set()).add(e.state.channel)
     names = []
     for measure, chans in sorted(by_measure.items()):
-        label = "file intake" if measure == "file" else measure
+        label = "unreadable files" if measure == "file" else measure
         chans.discard(-1)
         if len(chans) > 1:
-            label += f" ({len(chans)} channels)"
+            label += f" on {len(chans)} channels"
         elif chans:
-            label += f" channel {min(chans)}"
+            label += f" on channel {min(chans)}"
         names.append(label)
     n_res = sum(e.what == "resolved" for e in events)
     n_rem = sum(e.what == "reminder" for e in events)
     n_new = len(events) - n_res - n_rem
-    parts = [f"{n} {label}" for n, label in ((n_new, "alerts" if n_new > 1 else "alert"),
-                                             (n_rem, "still bad"), (n_res, "resolved")) if n]
-    return f"qcd {rig}: {', '.join(parts)} ({', '.join(names)})"[:120]
+    parts = [f"{n} {label}" for n, label in ((n_new, "new alerts" if n_new > 1 else "new alert"),
+                                             (n_rem, "still open"), (n_res, "resolved")) if n]
+    return f"qcd {rig}: {', '.join(parts)}: {', '.join(names)}"[:160]
 
 
 def _group(events: list[_Event], now: float) -> list[Message]:

@@ -40,13 +40,19 @@ def _common(p: argparse.ArgumentParser) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     """The whole command surface; every command's --help explains itself."""
+    import textwrap
     parser = _Parser(
         prog="qcd",
-        description="Quality control for electrophysiology rigs: measures every finished "
-                    "recording (noise, mains hum, test-pulse resistances, drift), keeps each "
-                    "rig's history in SQLite, alerts the lab when a rig drifts, and writes a "
-                    "morning report.",
-        epilog="Example: qcd scan --json recordings/  |  qcd demo  |  qcd watch --config qcd.toml")
+        description=textwrap.fill(
+            "Quality control for electrophysiology rigs: measures every finished recording "
+            "(noise, mains hum, test-pulse resistances, drift), keeps each rig's history in "
+            "SQLite, alerts the lab when a rig drifts, and writes a morning report.", 79),
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog="Examples (each line one command):\n"
+               "  qcd demo                        # the whole pipeline on an invented lab\n"
+               "  qcd scan --json recordings/     # measure files now\n"
+               "  qcd watch --config qcd.toml     # run the service\n"
+               "  qcd <command> --help            # what each command does")
     parser.add_argument("--version", action="version", version=f"qcd {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
@@ -55,7 +61,7 @@ def build_parser() -> argparse.ArgumentParser:
                                    "row per file, or one JSON object per file per line with "
                                    "--json. With --store, also store, judge and alert as the "
                                    "service would.",
-                       epilog="Example: qcd scan --json --pulse=-5,10,20 cell01.abf")
+                       epilog="Example: qcd scan --json --pulse -5,10,20 cell01.abf")
     p.add_argument("paths", nargs="+", type=Path, metavar="PATH", help="files or folders")
     p.add_argument("--json", action="store_true", help="one JSON object per file per line")
     p.add_argument("--pulse", metavar="AMP,START_MS,LENGTH_MS",
@@ -86,8 +92,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("status", help="is the service alive; queue, last file per rig",
                        description="Read the heartbeat the running service leaves in the "
-                                   "database: alive or not, queue length, last file per rig, "
-                                   "open alerts, undelivered messages.",
+                                   "database: alive or not, queue length, the last file "
+                                   "recorded per rig, open alerts, undelivered messages.",
                        epilog="Example: qcd status")
     _common(p)
 
@@ -233,43 +239,71 @@ def _scan_files(paths: list[Path]) -> list[Path]:
 
 _SCAN_MODES = {"voltage_clamp": "VC", "current_clamp": "CC", "extracellular": "EXT",
                "unknown": "?"}
+# (header over, header, width, measure): the scan table's number columns, values in the units
+# the headers name ('unit' is the channel's own: pA in voltage clamp, mV otherwise)
+_SCAN_COLUMNS = (("noise", "rms", 8, "noise_rms"), ("noise", "rms_1k", 8, "noise_rms_1k"),
+                 ("mains", "hum", 8, "hum_rms"), ("mains", "Hz", 5, "line_hz"),
+                 ("access", "MOhm", 7, "access_resistance"),
+                 ("membrane", "MOhm", 8, "membrane_resistance"),
+                 ("capacitance", "pF", 11, "membrane_capacitance"),
+                 ("seal", "GOhm", 6, "seal_resistance"), ("input", "MOhm", 6, "input_resistance"))
+_SCAN_NAME_MAX = 27          # the table then fits 120 columns
 
 
-def _scan_value(ms: dict[str, Measure], name: str, digits: int = 3) -> str:
-    m = ms.get(name)
-    if m is None:
-        return "-"
-    return f"{m.value:.{digits}g} {m.unit}".strip()
+def _short_name(name: str, width: int) -> str:
+    """``name`` cut from the middle to ``width`` characters, keeping more of its end (where
+    names of one series differ: cell01_0003.abf)."""
+    if len(name) <= width:
+        return name
+    tail = (2 * (width - 3) + 2) // 3
+    return name[:width - 3 - tail] + "..." + name[len(name) - tail:]
 
 
-def _scan_row(fm: FileMeasures, width: int = 22) -> str:
-    """One line of the scan table (fits 100 columns)."""
-    name = Path(fm.path).name
-    name = name if len(name) <= width else name[:width - 1] + "~"
+def _scan_width(files: list[Path]) -> int:
+    return max(8, min(_SCAN_NAME_MAX, max((len(f.name) for f in files), default=8)))
+
+
+def _scan_header(width: int) -> str:
+    top = " " * (width + 10)
+    low = f"{'file':<{width}} {'mode':<4} {'unit':<4}"
+    for over, head, w, _ in _SCAN_COLUMNS:
+        top += f" {over if head != 'Hz' and (over, head) != ('noise', 'rms_1k') else '':>{w}}"
+        low += f" {head:>{w}}"
+    return f"{top.rstrip()}\n{low} status"
+
+
+def _scan_number(m: Measure | None, width: int, digits: int = 3) -> str:
+    if m is None or isinstance(m.value, bool) or not isinstance(m.value, (int, float)):
+        return f"{'-':>{width}}"
+    text = f"{m.value:.{digits}g}"
+    if "e+" in text and abs(m.value) < 10 ** (width - 1):
+        text = f"{m.value:.0f}"                        # 1542, not 1.54e+03
+    return f"{text:>{width}}"
+
+
+def _scan_row(fm: FileMeasures, width: int, mains_hz: float | None = None) -> str:
+    """One row of the scan table; an error row says the whole reason."""
+    name = _short_name(Path(fm.path).name, width)
     if fm.status != "ok":
         err = (fm.error or "").replace(str(fm.path) + ": ", "")
-        return f"{name:<{width}} {'':4} error: {err}"[:100]
+        return f"{name:<{width}} {'':4} {'':4} error ({fm.error_kind}): {err}"
     prim = fm.extra.get("primary_channel")
     chans = {c.index: c for c in fm.channels}
     ch = chans.get(prim) or (fm.channels[0] if fm.channels else None)
-    ms = ch.measures if ch else {}
-    hum = "-"
-    if "hum_rms" in ms and "line_hz" in ms:
-        hum = f"{_scan_value(ms, 'hum_rms')}@{ms['line_hz'].value:.4g}"
-    if "access_resistance" in ms:
-        rm = ms["membrane_resistance"].value if "membrane_resistance" in ms else 0.0
-        tp = (f"Ra {ms['access_resistance'].value:.3g}/Rm {rm:.{4 if rm >= 1e3 else 3}g}"
-              f" MOhm Cm {_scan_value(ms, 'membrane_capacitance')}"
-              if "membrane_resistance" in ms else f"Ra {_scan_value(ms, 'access_resistance')}")
-    elif "seal_resistance" in ms:
-        tp = f"seal {_scan_value(ms, 'seal_resistance')}"
-    elif "input_resistance" in ms:
-        tp = f"Rin {_scan_value(ms, 'input_resistance')}"
-    else:
-        tp = "-"
-    return (f"{name:<{width}} {_SCAN_MODES.get(fm.mode, '?'):<4}"
-            f"{_scan_value(ms, 'noise_rms'):>10} {_scan_value(ms, 'noise_rms_1k'):>10} "
-            f"{hum:>15} {tp:<28} ok")[:100]
+    ms = dict(ch.measures) if ch else {}
+    unit = next((ms[k].unit for k in ("noise_rms", "holding", "hum_rms") if k in ms),
+                ch.unit if ch else "")                # the unit the values are given in
+    if "line_hz" not in ms and mains_hz and "hum_rms" in ms:
+        from qcd.results import Measure as _M
+        ms["line_hz"] = _M("line_hz", mains_hz, "Hz")          # the declared frequency
+    cells = []
+    for _, _, w, measure in _SCAN_COLUMNS:
+        if measure == "hum_rms" and "hum_rms" not in ms and "hum_rms_max" in ms:
+            cells.append(f"{'<' + _scan_number(ms['hum_rms_max'], w - 1).strip():>{w}}")
+        else:
+            cells.append(_scan_number(ms.get(measure), w, 4 if measure == "line_hz" else 3))
+    return (f"{name:<{width}} {_SCAN_MODES.get(fm.mode, '?'):<4} {unit[:4]:<4} "
+            + " ".join(cells) + " ok")
 
 
 def _cmd_scan(args: argparse.Namespace) -> int:
@@ -310,8 +344,9 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         with Store(cfg.database) as store:
             res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
                        workers=args.workers)
-        failed = sum(fm.status != "ok" for fm in res.files)
-        print(f"qcd scan: {len(res.files)} files stored for rig {rig.name}, {failed} failed")
+        failed = [fm for fm in res.files if fm.status != "ok"]
+        print(f"qcd scan: rig {rig.name}: {len(res.files) - len(failed)} of {len(res.files)} "
+              f"file(s) measured and stored" + _failed_text(failed))
         for a in res.opened:
             print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "
                   f"mode {a['mode']})")
@@ -335,9 +370,9 @@ def _cmd_scan(args: argparse.Namespace) -> int:
                     mains_hz=args.mains, mode=args.mode)
     files = _scan_files(list(args.paths))
     progress = sys.stderr.isatty() and len(files) > 1
+    width = _scan_width(files)
     if not args.json:
-        print(f"{'file':<22} {'mode':<4}{'noise_rms':>10} {'rms_1k':>10} {'hum@line_hz':>15} "
-              f"{'test pulse':<28} status")
+        print(_scan_header(width))
     failed = 0
     results = measure_all(files, rig, args.workers, digest=False)
     try:
@@ -348,7 +383,7 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             if args.json:
                 print(json.dumps(fm.to_json()), flush=True)
             else:
-                print(_scan_row(fm), flush=True)
+                print(_scan_row(fm, width, args.mains), flush=True)
             if progress and i < len(files):
                 print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
                       file=sys.stderr, flush=True)
@@ -359,6 +394,19 @@ def _cmd_scan(args: argparse.Namespace) -> int:
     if not files:
         print("qcd scan: no *.abf files found", file=sys.stderr)
     return EXIT_FAILED if failed else EXIT_OK
+
+
+def _failed_text(failed: list[FileMeasures]) -> str:
+    """'; 3 could not be read (bad signature 2, truncated 1) and are stored with the reason'."""
+    if not failed:
+        return ""
+    kinds: dict[str, int] = {}
+    for fm in failed:
+        k = (fm.error_kind or "error").replace("_", " ")
+        kinds[k] = kinds.get(k, 0) + 1
+    detail = ", ".join(f"{k} {n}" for k, n in sorted(kinds.items()))
+    return (f"; {len(failed)} could not be read ({detail}) and are stored with the reason "
+            f"(qcd report lists them)")
 
 
 def _cmd_watch(args: argparse.Namespace) -> int:
@@ -655,16 +703,17 @@ def _cmd_init(args: argparse.Namespace) -> int:
 
 def _cmd_notify_test(args: argparse.Namespace) -> int:
     from qcd.config import find_config, load_config
-    from qcd.notify import Sender
+    from qcd.notify import test_targets
     cfg = load_config(find_config(args.config))
     if not cfg.notify and cfg.notify_config is None:
         raise ConfigError(cfg.path, "notify", "no notification targets configured")
-    results = Sender.from_config(cfg).test()
-    for target, ok in results:              # targets are redacted by the Sender
-        print(f"{'accepted' if ok else 'FAILED  '}  {target}")
-    failed = sum(not ok for _, ok in results)
-    print(f"{len(results) - failed} of {len(results)} targets accepted the test message")
-    return EXIT_FAILED if failed else EXIT_OK
+    results = test_targets(cfg.notify, cfg.notify_config)      # every target, each on its own
+    for target, state, reason in results:                     # targets come back redacted
+        print(f"{state.upper() if state != 'accepted' else state:<10}  {target}"
+              + (f": {reason}" if reason else ""))
+    ok = sum(state == "accepted" for _, state, _ in results)
+    print(f"{ok} of {len(results)} targets accepted the test message")
+    return EXIT_OK if ok == len(results) else EXIT_FAILED
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
@@ -685,10 +734,30 @@ _COMMANDS = {
 }
 
 
+# Options whose value may start with '-' (a negative pulse amplitude): argparse would take
+# '--pulse -5,10,20' for two options, so the value is joined to its option first.
+_SIGNED_VALUES = ("--pulse",)
+
+
+def _join_signed(argv: list[str]) -> list[str]:
+    out: list[str] = []
+    i = 0
+    while i < len(argv):
+        a = argv[i]
+        if a in _SIGNED_VALUES and i + 1 < len(argv) and argv[i + 1][:1] == "-" and \
+                argv[i + 1][1:2].isdigit():
+            out.append(f"{a}={argv[i + 1]}")
+            i += 2
+            continue
+        out.append(a)
+        i += 1
+    return out
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``qcd`` command."""
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_args(_join_signed(list(sys.argv[1:] if argv is None else argv)))
     if not args.command:
         parser.print_help()
         return EXIT_USAGE

@@ -404,6 +404,13 @@ def _normal_range(past: list[float], unit: str) -> str:
     return f"normal {lo:.3g}-{hi:.3g} {unit} (median {np.median(past):.3g}, {len(past)} files)"
 
 
+def _headline(rule: LimitRule) -> str:
+    """The limit in a few words for a title: 'below 1 GOhm', 'more than 200 pA from zero'."""
+    if rule.absolute and rule.text.startswith("|value| above "):
+        return f"more than {rule.text[len('|value| above '):]} from zero"
+    return rule.text
+
+
 def _named(ch: ChannelMeasures) -> str:
     """The channel's name, '' when the header gives none ('?')."""
     return "" if ch.name in ("", "?") else ch.name
@@ -447,7 +454,8 @@ def _file_finding(rule: LimitRule, results: list[tuple[ChannelMeasures, Measure,
         value=float(m.value), unit=m.unit,
         limit_text=f"{rule.text} on {where}" if bad else rule.text, clear=all(r[3] for r in results),
         open_after_files=rule.open_after_files, resolve_after_files=rule.resolve_after_files,
-        remind_h=rule.remind_h, path=path, headline=f"{rule.text} on {where}" if bad else rule.text,
+        remind_h=rule.remind_h, path=path,
+        headline=f"{_headline(rule)} on {where}" if bad else _headline(rule),
         channels=tuple(sorted(r[0].index for r in bad)))
 
 
@@ -465,9 +473,11 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                   open_after_files=st.intake_open_after_files,
                   resolve_after_files=st.resolve_after_files, remind_h=st.remind_h, path=path)
     if fm.status != "ok":
+        kind = fm.error_kind or "error"
+        said = "could not be measured" if kind == "internal" else "could not be read"
         return [Finding(bad=True, value=None, clear=False,
-                        limit_text=f"file not measured ({fm.error_kind or 'error'})",
-                        headline=f"a file could not be measured ({fm.error_kind or 'error'})",
+                        limit_text=f"file not measured ({kind})",
+                        headline=f"{said}: {kind.replace('_', ' ')}",
                         hint=fm.error or "", **intake)]
     out = [Finding(bad=False, value=None, limit_text="file measured", **intake)]
     mode = fm.mode
@@ -500,7 +510,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     unit=m.unit, limit_text=rule.text, hint=hint, clear=clear_ok,
                     open_after_files=rule.open_after_files,
                     resolve_after_files=rule.resolve_after_files,
-                    remind_h=rule.remind_h, path=path, headline=rule.text,
+                    remind_h=rule.remind_h, path=path, headline=_headline(rule),
                     channel_name=_named(ch)))
             hist_rules = [r for r in rules.history
                           if r.measure == m.name and _matches(r.modes, mode)]

@@ -23,7 +23,7 @@ if TYPE_CHECKING:
     from qcd.store import Store
 
 __all__ = ["Sender", "SendResult", "Delivery", "deliver_due", "backoff_s", "BACKOFF_START_S",
-           "BACKOFF_CAP_S", "STUCK_AFTER_S"]
+           "BACKOFF_CAP_S", "STUCK_AFTER_S", "test_targets"]
 
 log = logging.getLogger(__name__)
 
@@ -172,3 +172,57 @@ def deliver_due(store: Store, sender: Sender, now: float, *, limit: int = 50) ->
             retried += 1
         break
     return Delivery(sent, retried, stuck)
+
+
+_TEST_TITLE = "qcd test message"
+_TEST_BODY = "This is a test message from qcd: the target is reachable."
+
+
+def _try(service: Any) -> tuple[bool, str]:
+    """Send the test message through one loaded target: (accepted, redacted reason)."""
+    with apprise.LogCapture(level=logging.WARNING, fmt="%(message)s") as cap:
+        try:
+            ok = bool(service.notify(body=_TEST_BODY, title=_TEST_TITLE,
+                                     notify_type=apprise.NotifyType.INFO))
+        except Exception as e:               # a plugin bug is one failed target
+            log.exception("test message to %s", redact(service.url(privacy=True)))
+            ok, reason = False, f"internal error in the target's plugin: {type(e).__name__}"
+        else:
+            reason = "" if ok else (" ".join(cap.getvalue().split()) or "not accepted")
+    return ok, reason
+
+
+def test_targets(urls: Iterable[str] = (), config_path: Any = None
+                 ) -> list[tuple[str, str, str]]:
+    """Send a test message to every target on its own, also when another cannot be loaded:
+    [(redacted target, 'accepted' | 'failed' | 'not loaded', reason)]."""
+    urls = tuple(str(u) for u in urls)
+    out: list[tuple[str, str, str]] = []
+    services: list[Any] = []
+    for url in urls:
+        one = apprise.Apprise()
+        if not one.add(url):
+            out.append((redact(url), "not loaded", "apprise does not understand this URL "
+                                                    "(check its scheme and form)"))
+            continue
+        services.append(one[0])
+        out.append((redact(url), "", ""))
+    if config_path is not None:
+        cfg = apprise.AppriseConfig()
+        one = apprise.Apprise()
+        if not cfg.add(str(config_path)) or not one.add(cfg) or not len(one):
+            out.append((str(config_path), "not loaded", "the apprise config file cannot be "
+                                                        "read or holds no valid URL"))
+        else:
+            for service in one:
+                services.append(service)
+                out.append((redact(service.url(privacy=True)), "", ""))
+    it = iter(services)
+    tested = []
+    for target, state, reason in out:
+        if state:
+            tested.append((target, state, reason))
+            continue
+        ok, why = _try(next(it))
+        tested.append((target, "accepted" if ok else "failed", redact_text(why, list(urls))))
+    return tested

@@ -29,21 +29,24 @@ def status(store: Any, now: float, *, host: str | None = None) -> dict:
         if alive:
             reason = f"alive (pid {hb.get('pid')} on {hb.get('host')}, last beat {age:.1f} s ago)"
         elif st.get("stopped"):
-            reason = f"stopped cleanly {age:.0f} s ago"
+            reason = f"stopped cleanly {_ago(now, hb['beat_at'])}"
         elif not pid_ok:
-            reason = f"not running: pid {hb.get('pid')} is gone (last beat {age:.0f} s ago)"
+            reason = (f"not running: pid {hb.get('pid')} is gone (last beat "
+                      f"{_ago(now, hb['beat_at'])})")
         else:
-            reason = f"not responding: last beat {age:.0f} s ago (expected every {beat_s:g} s)"
+            reason = (f"not responding: last beat {_ago(now, hb['beat_at'])} (expected every "
+                      f"{beat_s:g} s)")
         out.update(alive=alive, reason=reason, heartbeat=hb, beat_age_s=age,
                    queue_len=hb.get("queue_len"), intake=st.get("intake"),
                    measuring=st.get("measuring"), folders=st.get("folders", {}),
                    catch_up=st.get("catch_up"), counts=st.get("counts"))
     last: dict[str, Any] = {}
     for rig in store.rigs():
-        files = store.files(rig=rig)
+        files = store.files(rig=rig)           # oldest recording first
         if files:
-            f = max(files, key=lambda r: r.get("analysed_at") or 0)
+            f = files[-1]                        # the last one recorded, whenever it was measured
             last[rig] = {"path": f.get("path"), "status": f.get("status"),
+                         "recorded_at": f.get("recorded_at"),
                          "analysed_at": f.get("analysed_at"), "error": f.get("error")}
     out["last_file"] = last
     out["open_alerts"] = list(store.open_alerts())
@@ -52,16 +55,19 @@ def status(store: Any, now: float, *, host: str | None = None) -> dict:
 
 
 def _ago(now: float, t: float | None) -> str:
+    """'45 s ago', '12 min ago', '17 h ago', '3 days ago'."""
     if t is None:
         return "-"
     s = now - t
+    if s < 0:
+        return "in the future (check the clock)"
     if s < 120:
         return f"{s:.0f} s ago"
     if s < 7200:
         return f"{s / 60:.0f} min ago"
     if s < 172800:
-        return f"{s / 3600:.1f} h ago"
-    return f"{s / 86400:.1f} days ago"
+        return f"{s / 3600:.0f} h ago"
+    return f"{s / 86400:.0f} days ago"
 
 
 def format_status(st: dict, now: float) -> str:
@@ -78,10 +84,11 @@ def format_status(st: dict, now: float) -> str:
         for folder, state in (st.get("folders") or {}).items():
             lines.append(f"folder {folder}: {state}")
     if st["last_file"]:
-        lines.append("last file per rig:")
+        lines.append("last file recorded, per rig:")
         for rig, f in sorted(st["last_file"].items()):
             extra = f" ({f['error']})" if f.get("status") != "ok" and f.get("error") else ""
-            lines.append(f"  {rig}: {f['path']}  {f['status']}{extra}, "
+            lines.append(f"  {rig}: {f['path']}  {f['status']}{extra}, recorded "
+                         f"{_ago(now, f.get('recorded_at'))}, measured "
                          f"{_ago(now, f.get('analysed_at'))}")
     else:
         lines.append("no files stored yet")

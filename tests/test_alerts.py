@@ -144,7 +144,9 @@ def test_one_file_with_many_findings_gives_one_message():
     fs = [F(True, open_after_files=1, measure=m, rule=m + "_jump") for m in ("hum_rms", "noise_rms", "noise_pp")]
     _, msgs = advance({}, fs, [], 0.0, SET)
     (m,) = msgs
-    assert "3 alerts" in m.title and all(x in m.body for x in ("hum_rms", "noise_rms", "noise_pp"))
+    assert m.title == ("qcd rig-a: 3 new alerts: hum_rms on channel 0, noise_pp on channel 0, "
+                       "noise_rms on channel 0")
+    assert all(x in m.body for x in ("hum_rms", "noise_rms", "noise_pp"))
 
 
 def test_rig_level_finding_inhibits_measure_alerts_then_they_are_announced():
@@ -310,7 +312,7 @@ def test_many_channels_give_a_short_title():
     fs = [F(True, open_after_files=1, channel=c, kind="limit", rule="alias_risk", measure="alias_risk")
           for c in range(16)]
     _, (m,) = advance({}, fs, [], 0.0, SET)
-    assert m.title == "qcd rig-a: 16 alerts (alias_risk (16 channels))"
+    assert m.title == "qcd rig-a: 16 new alerts: alias_risk on 16 channels"
     assert m.body.count("OPEN: alias_risk") == 16
 
 
@@ -334,3 +336,30 @@ def test_backlog_flush_announces_each_open_key_once(rows):
         assert digest is None
     _, again = flush_digest({k: v.to_dict() for k, v in out.items()}, [], 1e6 + 1, SET)
     assert again is None
+
+
+def test_titles_read_as_sentences():
+    from qcd.judge import judge
+    from qcd.results import FileMeasures
+    from qcd.ruleset import load_rules
+    rules = load_rules()
+    # an unreadable file, as the judge reports it
+    (f,) = judge(FileMeasures("/d/x.abf", "error", error="/d/x.abf: bad signature",
+                              error_kind="bad_signature"), "rig-b", lambda *a: [], rules, 0.0)
+    _, (m,) = advance({}, [f], [], 0.0, SET)
+    assert m.title == "qcd rig-b: a file could not be read: bad signature"
+    # a fixed limit: opened, still bad a day later, resolved
+    seal = F(True, rule="gigaseal", kind="limit", measure="seal_resistance",
+             open_after_files=1, resolve_after_files=1)
+    seal = replace(seal, headline="below 1 GOhm", channel_name="IN 0")
+    states, (m,) = advance({}, [seal], [], 0.0, SET)
+    assert m.title == "qcd rig-a: seal_resistance on channel 0 (IN 0) is below 1 GOhm"
+    states, (m,) = advance(states, [seal], [], 25 * H, SET)
+    assert m.title == "qcd rig-a: seal_resistance on channel 0 (IN 0) is still below 1 GOhm"
+    states, (m,) = advance(states, [replace(seal, bad=False)], [], 26 * H, SET)
+    assert m.title == "qcd rig-a: seal_resistance on channel 0 (IN 0) resolved: back within " \
+                      "its limit"
+    # a drift finding
+    hum = replace(F(True, open_after_files=1), headline="1.9x its normal")
+    _, (m,) = advance({}, [hum], [], 0.0, SET)
+    assert m.title == "qcd rig-a: hum_rms on channel 0 is 1.9x its normal"

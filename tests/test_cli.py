@@ -108,18 +108,58 @@ def test_scan_workers_give_the_same_output(tmp_path, capsys):
     assert one == two and len(one.splitlines()) == 5
 
 
-def test_scan_table_fits_100_columns(tmp_path, capsys):
+def test_scan_table_has_labelled_columns_and_whole_names_and_errors(tmp_path, capsys):
     folder, _ = _good(tmp_path, "vc_model_cell_step.abf", "cc_steps.abf",
-                      "fast_100khz_temperature.abf", "vc_tight_seal_noisy.abf")
-    (folder / "a_very_long_file_name_of_a_broken_recording.abf").write_bytes(b"x" * 10)
+                      "fast_100khz_temperature.abf", "vc_tight_seal_noisy.abf",
+                      "vc_units_A_no_protocol.abf")
+    long = "2026-11-03_rig-b_slice04_cell02_0007.abf"
+    (folder / long).write_bytes(b"x" * 10)
     assert main(["scan", str(folder)]) == 1
     lines = capsys.readouterr().out.splitlines()
-    assert len(lines) == 6                           # header + one row per file
-    assert all(len(line) <= 100 for line in lines)
-    assert "noise_rms" in lines[0]
-    row = next(line for line in lines if line.startswith("vc_model_cell_step"))
-    assert "VC" in row and "Ra" in row and "pA" in row
-    assert any("@60" in line for line in lines if line.startswith("fast_100khz"))
+    assert len(lines) == 8                           # two header lines + one row per file
+    top, head = lines[0], lines[1]
+    for over, label in (("access", "MOhm"), ("membrane", "MOhm"), ("capacitance", "pF"),
+                        ("seal", "GOhm"), ("input", "MOhm")):
+        col = top.index(over) + len(over)            # each label right-aligned under its name
+        assert head[col - len(label):col] == label, (over, label)
+    rows = {line.split()[0]: line for line in lines[2:]}
+    assert all(len(line) <= 120 for line in lines if "error" not in line)
+
+    def cell(name: str, over: str) -> str:
+        end = top.index(over) + len(over)
+        return rows[name][:end].split()[-1]
+    vc = "vc_model_cell_step.abf"                    # a model cell: 10 MOhm, 500 MOhm, 33 pF
+    assert rows[vc].split()[1:3] == ["VC", "pA"]
+    assert (cell(vc, "access"), cell(vc, "membrane"), cell(vc, "capacitance")) == \
+        ("11", "500", "32.5")
+    assert cell("vc_tight_seal_noisy.abf", "membrane") == "1542"      # not 1.54e+03
+    assert cell("vc_units_A_no_protocol.abf", "seal") == "20.2"       # stored in A, shown pA
+    assert rows["vc_units_A_no_protocol.abf"].split()[2] == "pA"
+    assert cell("cc_steps.abf", "input") == "148"
+    assert cell("fast_100khz_temperature.abf", "mains") == "4.6"      # hum at its 60 Hz line
+    # a long name keeps its distinguishing end, and an error row says the whole reason
+    short = next(k for k in rows if k.startswith("2026-11-"))
+    assert short.endswith("cell02_0007.abf") and "..." in short and len(short) == 27
+    err = rows[short]
+    assert "error (" in err and err.rstrip().endswith(")") and len(err) > 120
+
+
+def test_scan_takes_a_negative_pulse_as_a_separate_argument_and_declared_mains(tmp_path,
+                                                                                capsys):
+    folder, _ = _good(tmp_path, "vc_units_A_no_protocol.abf", "vc_cell_step.abf")
+    assert main(["scan", "--json", "--pulse", "-5,10,20", str(folder)]) == 0
+    docs = {d["path"].rsplit("/", 1)[-1]: d for d in _json_lines(capsys.readouterr().out)}
+    seal = docs["vc_units_A_no_protocol.abf"]["channels"][0]["measures"]["seal_resistance"]
+    assert seal["unit"] == "GOhm" and seal["value"] > 1.0
+    assert main(["scan", "--pulse=-5,10,20", str(folder)]) == 0      # the = form still works
+    capsys.readouterr()
+    # a short episodic baseline: hum only with the building's declared mains frequency
+    assert main(["scan", str(folder / "sub" / "vc_cell_step.abf")]) == 0
+    plain = capsys.readouterr().out.splitlines()[2].split()
+    assert main(["scan", "--mains", "60", str(folder / "sub" / "vc_cell_step.abf")]) == 0
+    declared = capsys.readouterr().out.splitlines()[2].split()
+    assert plain[5:7] == ["-", "-"]
+    assert float(declared[5]) > 0 and declared[6] == "60"
 
 
 def test_scan_store_needs_rig_and_config(tmp_path, capsys):
@@ -180,3 +220,43 @@ def test_mute_refuses_what_it_cannot_honour(tmp_path, capsys, args, said):
     assert "Traceback" not in err
     if "--rule" in args:
         assert "hum_jump" in err                            # the rule names it could have meant
+
+
+def test_scan_store_says_what_happened_to_each_file(tmp_path, capsys):
+    folder, files = _good(tmp_path, "cc_steps.abf")
+    data = files[0].read_bytes()
+    for i in range(2):
+        (folder / f"bad{i}.abf").write_bytes(b"NOPE" + data[4:])     # a wrong signature
+    (folder / "cut.abf").write_bytes(data[:len(data) // 3])         # cut short
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "qcd.sqlite"\n[[rig]]\nname = "rigB"\nfolders = ["{folder}"]\n')
+    assert main(["scan", "--store", "--rig", "rigB", "--config", str(cfg), str(folder)]) == 1
+    out = capsys.readouterr().out
+    assert ("qcd scan: rig rigB: 1 of 4 file(s) measured and stored; 3 could not be read (bad "
+            "signature 2, truncated 1) and are stored with the reason") in out
+
+
+def test_status_says_when_the_service_stopped_and_names_the_last_file_recorded(store):
+    import os
+
+    from qcd.results import FileMeasures
+    from qcd.status import format_status, status
+    now = 1_790_000_000.0
+    store.beat(os.getpid(), "acq-pc", now - 20 * 3600, now - 17 * 3600, 0, {"stopped": True})
+    for name, recorded, measured in (("late.abf", now - 3600, now - 7200),     # backfilled
+                                     ("early.abf", now - 9000, now - 60)):
+        store.commit_file("rig-b", FileMeasures(f"/d/{name}", "ok", mtime=recorded,
+                                                sha256=name * 8), analysed_at=measured)
+    text = format_status(status(store, now, host="acq-pc"), now)
+    assert "service: stopped cleanly 17 h ago" in text
+    assert "rig-b: /d/late.abf  ok, recorded 60 min ago, measured 2 h ago" in text
+
+
+def test_top_level_help_gives_one_example_command_per_line(capsys):
+    with pytest.raises(SystemExit):
+        main(["--help"])
+    out = capsys.readouterr().out
+    examples = out.split("Examples (each line one command):\n", 1)[1].splitlines()
+    assert [x.split()[:2] for x in examples] == [["qcd", "demo"], ["qcd", "scan"],
+                                                 ["qcd", "watch"], ["qcd", "<command>"]]
+    assert not any(" | " in x for x in examples)

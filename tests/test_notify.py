@@ -149,6 +149,21 @@ def test_notify_test_command_reports_each_target(tmp_path, http_sink, capsys):
     assert got["title"] == "qcd test message"
 
 
+def test_notify_test_tests_every_target_even_when_one_cannot_be_loaded(tmp_path, http_sink,
+                                                                       capsys):
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "q.sqlite"\nnotify = ["nosuchscheme://lab-pager/secret-token-1",'
+                   f' "{http_sink.url}"]\n')
+    assert main(["notify-test", "--config", str(cfg)]) == 1
+    lines = capsys.readouterr().out.strip().splitlines()
+    assert lines[0].startswith("NOT LOADED  nosuchscheme://") and "does not understand" in lines[0]
+    assert "secret-token-1" not in lines[0]
+    assert lines[1].startswith("accepted") and f"127.0.0.1:{http_sink.port}" in lines[1]
+    assert lines[2] == "1 of 2 targets accepted the test message"
+    (got,) = http_sink.wait_for(1)                       # the loadable target still got it
+    assert got["title"] == "qcd test message"
+
+
 def test_one_dead_target_does_not_make_the_others_receive_it_twice(store, http_sink):
     dead = HttpSink()                                   # down for a while
     try:
