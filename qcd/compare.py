@@ -182,7 +182,8 @@ def _mains(freqs: np.ndarray, psd: np.ndarray, k: int) -> float:
 def _analyze_measures(paths: list[Path], channel: int, line: float | None) -> dict[str, float]:
     """Median of analyze's numeric measures of channel ``channel`` over the side's files."""
     vals: dict[str, list[float]] = {}
-    rig = RigConfig("", (), mains_hz=line)      # no rig: only the mains frequency is known
+    rig = RigConfig("", (), mains_hz=line, channels=(channel,))   # no rig: the channel asked
+                                                                  # for and the mains frequency
     for p in paths:
         fm = measure(p, rig, digest=False)
         for ch in fm.channels:
