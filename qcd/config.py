@@ -322,8 +322,9 @@ def _channels(r: _Reader, value: object) -> tuple[int | str, ...] | None:
                                  f"\"IN 2\"], got {_kind(value)} {value!r}")
     out: list[int | str] = []
     for i, item in enumerate(value):
-        if isinstance(item, bool) or not isinstance(item, (int, str)) or \
-                (isinstance(item, int) and item < 0) or (isinstance(item, str) and not item.strip()):
+        bad = isinstance(item, bool) or not isinstance(item, (int, str)) or \
+            (isinstance(item, int) and item < 0) or (isinstance(item, str) and not item.strip())
+        if bad:
             raise r.fail(f"channels[{i}]", f"expected a channel index (0, 1, ...) or a channel "
                                            f"name from the file header, got {item!r}")
         out.append(_channel_key(item) if isinstance(item, str) else item)

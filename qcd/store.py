@@ -807,7 +807,8 @@ class Store:
         recorded = None
         if f["time_source"] in ("header", "header_tz") and f["recorded_at"] is not None:
             recorded = datetime.fromtimestamp(f["recorded_at"], timezone.utc)
-            recorded = recorded if f["time_source"] == "header_tz" else recorded.replace(tzinfo=None)
+            if f["time_source"] == "header":
+                recorded = recorded.replace(tzinfo=None)      # naive, as the header gave it
         return FileMeasures(
             path=f["path"], status=f["status"], error=f["error"], error_kind=f["error_kind"],
             mode=f["mode"] or "unknown", format=f["format"] or "", fs_hz=f["fs_hz"],

@@ -1,5 +1,6 @@
-"""alerts: the lifecycle semantics (open after open_after_files, clear after resolve_after_files, flap guard,
-reminders, mutes, inhibition, learning, digest), checked file by file with chosen times."""
+"""alerts: the lifecycle semantics (open after open_after_files, clear after
+resolve_after_files, flap guard, reminders, mutes, inhibition, learning, digest), checked file
+by file with chosen times."""
 from __future__ import annotations
 
 from dataclasses import dataclass, replace

@@ -8,7 +8,8 @@ import pytest
 
 from conftest import abf
 from qcd.config import RigConfig
-from qcd.pipeline import process
+from qcd.analyze import analyze_path
+from qcd.pipeline import commit, process, watched_channels
 from qcd.report import build_report, render_text
 from qcd.ruleset import load_rules
 from stored import outbox_rows
@@ -56,15 +57,21 @@ def test_holding_current_ignores_a_flat_offset_channel_the_rig_does_not_watch(st
     ref.setSweep(0, channel=1)
     offset = float(np.mean(ref.sweepY))                          # pyabf's reading: ~11.6 nA
     assert abs(offset) > 10_000 and float(np.std(ref.sweepY)) < 0.01 * abs(offset)
+    # measured once; each rig then keeps its channels (pipeline.measure = watched_channels of
+    # analyze's result) and commits as the service does
+    measured = analyze_path(path, digest=True)
+
+    def run(rig: RigConfig) -> None:
+        commit(watched_channels(measured, rig), rig, store, rules, NOW)
     # watching every current channel, the offset channel breaks the 200 pA holding limit ...
-    process(path, RigConfig("rig-all", ()), store, rules, NOW)
+    run(RigConfig("rig-all", ()))
     _, findings = _file(store, "rig-all")
     bad = [(x["channel"], x["rule"]) for x in findings if x["bad"]]
     assert (1, "holding_current") in bad
     hold = next(x for x in findings if x["rule"] == "holding_current" and x["channel"] == 1)
     assert hold["value"] == pytest.approx(offset, rel=0.01)
     # ... and a rig that watches channel 0 only never judges it
-    process(path, RigConfig("rig-0", (), channels=(0,)), store, rules, NOW)
+    run(RigConfig("rig-0", (), channels=(0,)))
     f, findings = _file(store, "rig-0")
     assert not [x for x in findings if x["rule"] == "holding_current" and x["bad"]]
     assert {x["channel"] for x in findings} <= {-1, 0}
