@@ -29,7 +29,7 @@ LAYERS = (
     "errors", "units", "measures",
     "measures.noise", "measures.drift", "measures.spectrum", "measures.transient",
     "measures.mains", "measures.humfit", "measures.zoom",
-    "measures.testpulse",
+    "measures.steps", "measures.wholecell", "measures.testpulse",
     "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "ruleset",
     "judge", "alerts", "store", "notify", "analyze", "intake", "workers", "pipeline", "watch",
     "status",
