@@ -12,8 +12,9 @@ from __future__ import annotations
 
 import fnmatch
 from dataclasses import asdict, dataclass, field, fields
-from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
+
+from qcd.zones import local_text
 
 if TYPE_CHECKING:
     from qcd.ruleset import RuleSettings
@@ -229,11 +230,14 @@ def _load(states: Mapping[str, AlertState | dict]) -> dict[str, AlertState]:
 
 def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding],
             mutes: Iterable[Mute], now: float, settings: RuleSettings, *,
-            batch: bool = False) -> tuple[dict[str, AlertState], list[Message]]:
+            batch: bool = False, zones: Mapping[str, str | None] | None = None
+            ) -> tuple[dict[str, AlertState], list[Message]]:
     """One file's findings -> (all states, messages: at most one per rig).
 
     ``states`` maps key -> AlertState or its dict. With ``batch`` no message is made: openings
-    stay unannounced and announced resolutions are kept for ``flush_digest``.
+    stay unannounced and announced resolutions are kept for ``flush_digest``. ``zones``
+    (rig -> IANA zone, None: this computer's) says in which zone a rig's messages give times
+    (UTC for a rig it does not name).
     """
     out = _load(states)
     mutes = list(mutes)
@@ -286,7 +290,7 @@ def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding]
     if not batch:
         done = {e.state.key for e in events}
         events += _late(out, mutes, rig_bad, now, skip=done)
-    return out, _group(events, now)
+    return out, _group(events, now, zones)
 
 
 def _late(out: dict[str, AlertState], mutes: list[Mute], rig_bad: set[str], now: float,
@@ -306,14 +310,16 @@ def _late(out: dict[str, AlertState], mutes: list[Mute], rig_bad: set[str], now:
 
 
 def tick(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute], now: float,
-         settings: RuleSettings) -> tuple[dict[str, AlertState], list[Message]]:
+         settings: RuleSettings, *, zones: Mapping[str, str | None] | None = None
+         ) -> tuple[dict[str, AlertState], list[Message]]:
     """No new file: announce open alerts whose mute has ended (one message per rig)."""
     out = _load(states)
-    return out, _group(_late(out, list(mutes), set(), now), now)
+    return out, _group(_late(out, list(mutes), set(), now), now, zones)
 
 
 def flush_digest(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute],
-                 now: float, settings: RuleSettings
+                 now: float, settings: RuleSettings, *,
+                 zones: Mapping[str, str | None] | None = None
                  ) -> tuple[dict[str, AlertState], Message | None]:
     """After a backlog: ONE message listing what opened and what resolved, or None."""
     out = _load(states)
@@ -333,8 +339,8 @@ def flush_digest(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute],
     n_res = len(events) - n_open
     title = (f"qcd digest of the files caught up on: {n_open} open, {n_res} resolved "
              f"({', '.join(rigs)})")
-    body = "\n\n".join(_describe(e) for e in sorted(events, key=lambda e: (e.what == "resolved",
-                                                                            e.state.key)))
+    body = "\n\n".join(_describe(e, zones) for e in sorted(
+        events, key=lambda e: (e.what == "resolved", e.state.key)))
     return out, Message(alert_key=f"digest:{first.state.key}", transition=first.seq,
                         kind="digest", priority=PRIORITY["digest"] if n_open else
                         PRIORITY["resolved"], rig=rigs[0] if len(rigs) == 1 else "*",
@@ -349,10 +355,9 @@ _KIND = {"opened": "firing", "late": "firing", "backlog": "firing", "reminder": 
          "resolved": "resolved", "unstable": "unstable"}
 
 
-def _when(t: float | None) -> str:
-    if t is None:
-        return "-"
-    return datetime.fromtimestamp(t, tz=timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+def _when(t: float | None, zone: str | None = "UTC") -> str:
+    """'2026-11-03 08:00 PST': the time in the rig's zone, the zone named."""
+    return local_text(t, zone)
 
 
 def _value(s: AlertState) -> str:
@@ -365,24 +370,25 @@ def _what(s: AlertState) -> str:
     return f"{s.measure}{where}" if s.measure != "file" else "file intake"
 
 
-def _describe(e: _Event) -> str:
+def _describe(e: _Event, zones: Mapping[str, str | None] | None = None) -> str:
     s = e.state
+    zone = (zones or {}).get(s.rig, "UTC")
     lines = [f"{_HEAD[e.what]}: {_what(s)} on rig {s.rig} ({s.mode}; rule {s.rule}, {s.severity})",
              f"  file: {s.path}",
              f"  value: {_value(s)}; {'' if s.kind == 'drift' else 'limit: '}{s.limit_text}"]
     if e.what == "resolved":
         lines.append(f"  resolved after {s.resolve_after_files} good files; open since "
-                     f"{_when(s.opened_at)}")
+                     f"{_when(s.opened_at, zone)}")
     elif e.what == "unstable":
         lines.append("  this alert keeps opening and resolving: it stays open and quiet until "
                      "it has been stable for a while")
     elif e.what == "reminder":
-        lines.append(f"  open since {_when(s.opened_at)}, {s.bad_files} bad files so far")
+        lines.append(f"  open since {_when(s.opened_at, zone)}, {s.bad_files} bad files so far")
     elif e.what == "late":
-        lines.append(f"  open since {_when(s.opened_at)} (messages were held back: mute, "
+        lines.append(f"  open since {_when(s.opened_at, zone)} (messages were held back: mute, "
                      f"learning phase or a rig-level alert)")
     elif e.what == "backlog":
-        lines.append(f"  open since {_when(s.opened_at)} (found while catching up on files "
+        lines.append(f"  open since {_when(s.opened_at, zone)} (found while catching up on files "
                      f"recorded earlier)")
     if s.hint and e.what != "resolved":
         lines.append(f"  {s.hint}")
@@ -443,7 +449,8 @@ def _title(rig: str, events: list[_Event]) -> str:
     return f"qcd {rig}: {', '.join(parts)}: {', '.join(names)}"[:160]
 
 
-def _group(events: list[_Event], now: float) -> list[Message]:
+def _group(events: list[_Event], now: float,
+           zones: Mapping[str, str | None] | None = None) -> list[Message]:
     """One message per rig for one file's events."""
     by_rig: dict[str, list[_Event]] = {}
     for e in events:
@@ -454,7 +461,7 @@ def _group(events: list[_Event], now: float) -> list[Message]:
         first = min(evs, key=lambda e: (e.state.key, e.seq))
         kinds = [_KIND[e.what] for e in evs]
         kind = max(kinds, key=lambda k: PRIORITY[k])
-        body = "\n\n".join(_describe(e) for e in evs)
+        body = "\n\n".join(_describe(e, zones) for e in evs)
         out.append(Message(alert_key=first.state.key, transition=first.seq, kind=kind,
                            priority=PRIORITY[kind], rig=rig, title=_title(rig, evs), body=body))
     return out

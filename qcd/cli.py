@@ -443,8 +443,16 @@ def _cmd_status(args: argparse.Namespace) -> int:
     with Store(cfg.database) as store:
         now = time.time()
         st = status(store, now)
-    print(format_status(st, now))
+    print(format_status(st, now, zones={r.name: r.timezone for r in cfg.rigs},
+                        lab_zone=cfg.timezone))
     return EXIT_OK if st["alive"] else EXIT_FAILED
+
+
+def _zones(args: argparse.Namespace) -> tuple[dict[str, str | None], str | None]:
+    """({rig: its time zone}, the lab's zone) of the config (None: this computer's zone)."""
+    from qcd.config import find_config, load_config
+    cfg = load_config(find_config(args.config))
+    return {r.name: r.timezone for r in cfg.rigs}, cfg.timezone
 
 
 def _report_store(args: argparse.Namespace, name: str):
@@ -465,7 +473,8 @@ def _cmd_report(args: argparse.Namespace) -> int:
 
     from qcd.report import build_report, parse_since, render_html, render_text
     now = time.time()
-    since = parse_since(args.since, now)
+    zones, lab_zone = _zones(args)
+    since = parse_since(args.since, now, lab_zone)
     store = _report_store(args, "report")
     if store is None:
         return EXIT_FAILED
@@ -475,7 +484,7 @@ def _cmd_report(args: argparse.Namespace) -> int:
             if rig not in known:
                 raise ConfigError(None, "--rig", f"no files stored for rig {rig!r} "
                                   f"(known: {', '.join(known) or 'none'})")
-        report = build_report(store, now, since, args.rig)
+        report = build_report(store, now, since, args.rig, zones=zones, lab_zone=lab_zone)
         if args.html:
             args.html.write_text(render_html(report), encoding="utf-8")
     if args.json:
@@ -541,6 +550,8 @@ def _cmd_trend(args: argparse.Namespace) -> int:
         raise ConfigError(None, "MEASURE", f"unknown measure {args.measure!r}" + (
             f"; did you mean {' or '.join(close)}?" if close else
             " (the measure names are listed in the README's Measures table)"))
+    zones, lab_zone = _zones(args)
+    zone = zones.get(args.rig, lab_zone)
     store = _report_store(args, "trend")
     if store is None:
         return EXIT_FAILED
@@ -553,9 +564,9 @@ def _cmd_trend(args: argparse.Namespace) -> int:
                           now=now)
         notes = store.notes(args.rig, since=now - args.days * 86400.0)
     if args.csv:
-        sys.stdout.write(render_trend_csv(rows))
+        sys.stdout.write(render_trend_csv(rows, zone))
     else:
-        print(render_trend_text(args.rig, args.measure, rows, notes))
+        print(render_trend_text(args.rig, args.measure, rows, notes, zone))
     return EXIT_OK if rows else EXIT_FAILED
 
 
@@ -590,7 +601,8 @@ def _cmd_alerts(args: argparse.Namespace) -> int:
         return EXIT_FAILED
     with Store(cfg.database) as store:
         alerts = build_alerts(store, time.time(), days=args.days, rig=args.rig)
-    print(render_alerts(alerts, secrets=cfg.notify))
+    print(render_alerts(alerts, secrets=cfg.notify,
+                        zones={r.name: r.timezone for r in cfg.rigs}, lab_zone=cfg.timezone))
     return EXIT_FAILED if alerts.open or alerts.stuck else EXIT_OK
 
 
@@ -665,7 +677,7 @@ def _cmd_note(args: argparse.Namespace) -> int:
     from qcd.report import note_line, parse_since
     from qcd.store import Store
     cfg = load_config(find_config(args.config))
-    cfg.rig(args.rig)                                 # ConfigError naming the known rigs
+    zone = cfg.rig(args.rig).timezone                 # ConfigError naming the known rigs
     now = time.time()
     if args.days <= 0:
         raise ConfigError(None, "--days", f"expected a number of days above 0, got {args.days:g}")
@@ -674,14 +686,14 @@ def _cmd_note(args: argparse.Namespace) -> int:
             notes = store.notes(args.rig, since=now - args.days * 86400.0)
             print(f"{args.rig}: {len(notes) or 'no'} note(s) in the last {args.days:g} days")
             for n in notes:
-                print(f"  {note_line(n)}")
+                print(f"  {note_line(n, zone)}")
             return EXIT_OK
-        at = now if args.at is None else parse_since(args.at, now)
+        at = now if args.at is None else parse_since(args.at, now, zone)
         if at > now + 60.0:
             raise ConfigError(None, "--at", f"{args.at!r} is in the future")
         text = " ".join(" ".join(args.text).split())
         nid = store.add_note(args.rig, text, at, now=now)
-    print(f"noted for {args.rig}: {note_line({'at': at, 'text': text, 'kind': 'note'})} "
+    print(f"noted for {args.rig}: {note_line({'at': at, 'text': text, 'kind': 'note'}, zone)} "
           f"(note {nid})")
     return EXIT_OK
 

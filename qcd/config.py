@@ -16,6 +16,7 @@ from typing import Any
 from urllib.parse import unquote, urlsplit
 
 from qcd.errors import ConfigError
+from qcd.zones import check_zone
 
 if sys.version_info >= (3, 11):
     import tomllib as _toml
@@ -63,6 +64,8 @@ class RigConfig:
     # Display names for messages and the report, by channel index or header name.
     channel_names: tuple[tuple[int | str, str], ...] = ()
     cell_pattern: str | None = None      # regex on the file name whose match names the cell
+    timezone: str | None = None          # IANA zone of the rig's clock (the lab's when unset;
+                                         # None: this computer's zone)
 
     def channel_name(self, index: int, header_name: str) -> str | None:
         """The display name the rig gives this channel (by index, then header name), or None."""
@@ -82,6 +85,7 @@ class Config:
     settle_seconds: float = 5.0
     give_up_hours: float = 6.0
     rigs: tuple[RigConfig, ...] = field(default_factory=tuple)
+    timezone: str | None = None          # the lab's IANA zone (None: this computer's zone)
 
     def __repr__(self) -> str:           # URLs carry secrets: never show them whole
         return (f"Config(path={self.path!r}, database={self.database!r}, rules={self.rules!r}, "
@@ -165,9 +169,9 @@ def find_config(explicit: Path | str | None = None, *, cwd: Path | None = None,
 
 
 _TOP_KEYS = ("database", "rules", "notify", "notify_config", "settle_seconds", "give_up_hours",
-             "rig")
+             "timezone", "rig")
 _RIG_KEYS = ("name", "folders", "patterns", "polling", "test_pulse", "mains_hz", "mode",
-             "channels", "channel_names", "cell_pattern")
+             "channels", "channel_names", "cell_pattern", "timezone")
 # Recording modes a rig may declare (qcd.results.MODES without 'unknown').
 DECLARED_MODES = ("voltage_clamp", "current_clamp", "extracellular")
 _PULSE_KEYS = ("amplitude", "start_ms", "length_ms")
@@ -268,7 +272,18 @@ def _pulse(r: _Reader, value: object) -> TestPulse:
                  f"{{amplitude, start_ms, length_ms}}, got {_kind(value)} {value!r}")
 
 
-def _rig(path: Path, base: Path, index: int, table: object) -> RigConfig:
+def _zone(r: _Reader, table: dict, default: str | None = None) -> str | None:
+    if "timezone" not in table:
+        return default
+    name = r.string(table, "timezone")
+    try:
+        return check_zone(name)
+    except ValueError as e:
+        raise r.fail("timezone", str(e)) from None
+
+
+def _rig(path: Path, base: Path, index: int, table: object,
+         lab_zone: str | None = None) -> RigConfig:
     if not isinstance(table, dict):
         raise ConfigError(path, f"rig[{index}]", f"expected a [[rig]] table, got {_kind(table)}")
     name = table.get("name")
@@ -306,7 +321,8 @@ def _rig(path: Path, base: Path, index: int, table: object) -> RigConfig:
                      patterns=patterns, polling=polling, test_pulse=pulse, mains_hz=mains,
                      mode=mode, channels=_channels(r, table.get("channels")),
                      channel_names=_channel_names(r, table.get("channel_names")),
-                     cell_pattern=_cell_pattern(r, table.get("cell_pattern")))
+                     cell_pattern=_cell_pattern(r, table.get("cell_pattern")),
+                     timezone=_zone(r, table, lab_zone))
 
 
 def _channel_key(text: str) -> int | str:
@@ -394,12 +410,13 @@ def load_config(path: Path | str) -> Config:
     if give_up * 3600.0 <= settle:
         raise r.fail("give_up_hours", f"must be longer than settle_seconds ({settle:g} s)")
 
+    lab_zone = _zone(r, data)
     rig_tables = data.get("rig", [])
     if isinstance(rig_tables, dict):
         rig_tables = [rig_tables]
     if not isinstance(rig_tables, list):
         raise r.fail("rig", f"expected [[rig]] tables, got {_kind(rig_tables)}")
-    rigs = tuple(_rig(path, base, i, t) for i, t in enumerate(rig_tables))
+    rigs = tuple(_rig(path, base, i, t, lab_zone) for i, t in enumerate(rig_tables))
     seen: dict[str, int] = {}
     for i, rig in enumerate(rigs):
         if rig.name in seen:
@@ -409,7 +426,7 @@ def load_config(path: Path | str) -> Config:
         seen[rig.name] = i
     return Config(path=path, database=database, rules=rules, notify=notify,
                   notify_config=notify_config, settle_seconds=settle, give_up_hours=give_up,
-                  rigs=rigs)
+                  rigs=rigs, timezone=lab_zone)
 
 
 # --- secrets in notification URLs ------------------------------------------------------------
@@ -518,6 +535,11 @@ settle_seconds = 5
 # A file still changing after this many hours is stored as an error ("never settled").
 give_up_hours = 6
 
+# Time zone of the acquisition PCs' clocks (an IANA name such as "Europe/Berlin"), used to
+# read file header times and to show times. Leave it out for this computer's zone; a rig
+# may set its own.
+# timezone = "Europe/Berlin"
+
 # One [[rig]] table per rig. Copy the block for each further rig.
 [[rig]]
 # Unique name: letters, digits, '_', '.' and '-'.
@@ -547,6 +569,8 @@ polling = false
 # cell a file belongs to, so `qcd export` gives a verdict per cell as well as per file
 # (single quotes: TOML keeps the backslashes as written).
 # cell_pattern = '^\\d{8}_c\\d+'
+# This rig's clock, when it differs from the lab's timezone.
+# timezone = "America/Los_Angeles"
 '''
 
 

@@ -242,6 +242,8 @@ database = "qcd.sqlite"
 notify = ["{_SCHEMA}://{log}"]
 settle_seconds = 2
 give_up_hours = 6
+# the acquisition PCs' clocks (header times are read in this zone)
+timezone = "UTC"
 
 [[rig]]
 name = "patch-1"

@@ -11,7 +11,7 @@ import html
 import io
 import math
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import datetime, timezone, tzinfo
 from typing import Any, Sequence
 
 import numpy as np
@@ -67,8 +67,11 @@ def pyplot() -> Any:
     return plt
 
 
-def _utc(t: float) -> datetime:
-    return datetime.fromtimestamp(t, tz=timezone.utc)
+def _utc(t: float, zone: tzinfo | None = timezone.utc) -> datetime:
+    """Unix seconds as a datetime in ``zone`` (None: this computer's zone)."""
+    if zone is None:
+        return datetime.fromtimestamp(t).astimezone()
+    return datetime.fromtimestamp(t, tz=zone)
 
 
 # ------------------------------------------------------------------------------ trends
@@ -88,11 +91,18 @@ class Panel:
     notes: Sequence[tuple[float, str]] = ()   # logbook notes (Unix seconds, text)
 
 
-def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str | None:
-    """Trend plots two per row as one PNG data: URI; ``shade`` marks the report's period."""
-    from matplotlib.dates import AutoDateLocator, DateFormatter
+def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
+                 zone: tzinfo | None = timezone.utc, zone_label: str = "UTC") -> str | None:
+    """Trend plots two per row as one PNG data: URI; ``shade`` marks the report's period.
+    Dates are shown in ``zone`` (None: this computer's), named ``zone_label`` on the axis;
+    the date axis labels each tick once (days, then hours within a day when zoomed in)."""
+    from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
     if not panels:
         return None
+    if zone is None:
+        zone = datetime.now().astimezone().tzinfo
+    def _utc(t: float) -> datetime:                # noqa: F811 - the zone of this figure
+        return datetime.fromtimestamp(t, tz=zone)
     plt = pyplot()
     ncol = 2
     nrow = math.ceil(len(panels) / ncol)
@@ -126,8 +136,9 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str 
         ax.set_title(p.title, fontsize=9.5, loc="left")
         ax.set_ylabel(p.unit or "value", fontsize=9)
         ax.tick_params(labelsize=8)
-        ax.xaxis.set_major_locator(AutoDateLocator(minticks=3, maxticks=7))
-        ax.xaxis.set_major_formatter(DateFormatter("%m-%d"))
+        loc = AutoDateLocator(minticks=3, maxticks=7, tz=zone)
+        ax.xaxis.set_major_locator(loc)
+        ax.xaxis.set_major_formatter(ConciseDateFormatter(loc, tz=zone))
         ax.grid(True, alpha=0.25)
         if p.log_axis and vs.size and np.all(vs > 0) and vs.max() / vs.min() > 20:
             ax.set_yscale("log")
@@ -137,7 +148,7 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str 
         ax.axis("off")
     for ax in axes[-1]:
         if ax.has_data():
-            ax.set_xlabel("date (UTC)", fontsize=9)
+            ax.set_xlabel(f"date ({zone_label})", fontsize=9)
     uri = figure_data_uri(fig)
     plt.close(fig)
     return uri

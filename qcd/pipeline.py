@@ -14,6 +14,7 @@ import hashlib
 import logging
 import os
 from dataclasses import dataclass, field, replace
+from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
@@ -23,6 +24,7 @@ from qcd.errors import StoreError
 from qcd.judge import Finding, judge
 from qcd.results import ChannelMeasures, FileMeasures, file_time
 from qcd.workers import imap
+from qcd.zones import localize
 
 if TYPE_CHECKING:
     from qcd.config import RigConfig
@@ -33,7 +35,7 @@ if TYPE_CHECKING:
 
 __all__ = ["measure", "measure_all", "watched_channels", "process", "commit", "error_file",
            "flush_digest", "tick", "judge_file", "scan", "ScanResult", "recording_order",
-           "DIGEST_FILES"]
+           "DIGEST_FILES", "in_rig_zone"]
 
 # More files than this in one ``scan`` is a backlog: one digest instead of a message per file.
 DIGEST_FILES = 20
@@ -137,6 +139,15 @@ def watched_channels(fm: FileMeasures, rig: RigConfig) -> FileMeasures:
     return replace(fm, channels=tuple(keep), notes=tuple(notes))
 
 
+def in_rig_zone(fm: FileMeasures, rig: RigConfig) -> FileMeasures:
+    """A header time without a zone is the acquisition PC's clock: read it in the rig's zone
+    (``RigConfig.timezone``, else this computer's), so the store holds true UTC."""
+    t = fm.recorded_at
+    if isinstance(t, datetime) and t.tzinfo is None:
+        return replace(fm, recorded_at=localize(t, rig.timezone))
+    return fm
+
+
 def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float
                ) -> list[Finding]:
     """The judge with the rig's history bound to the store (files recorded before this one)."""
@@ -192,11 +203,13 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
     With ``batch`` no message is queued per file (see ``flush_digest``).
     """
     name = rig.name
+    fm = in_rig_zone(fm, rig)
     try:
         findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)
         states, messages = alerts.advance(before, findings, store.active_mutes(now), now,
-                                          rules.settings, batch=batch)
+                                          rules.settings, batch=batch,
+                                          zones={name: rig.timezone})
         changed = _changed(before, states)
     except StoreError:
         raise
@@ -219,12 +232,12 @@ def process(path: str | os.PathLike, rig: RigConfig, store: Store, rules: Rules,
     return commit(measure(path, rig), rig, store, rules, now, sender, batch=batch)
 
 
-def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None = None
-                 ) -> alerts.Message | None:
+def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None = None, *,
+                 zones: dict[str, str | None] | None = None) -> alerts.Message | None:
     """After a backlog: one digest of what opened and resolved, queued with its states."""
     before = store.alert_states()
     states, message = alerts.flush_digest(before, store.active_mutes(now), now,
-                                          rules.settings)
+                                          rules.settings, zones=zones)
     changed = _changed(before, states)
     if changed or message is not None:
         store.commit_alerts(changed, [message] if message is not None else [], now=now)
@@ -233,11 +246,12 @@ def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None =
     return message
 
 
-def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None
-         ) -> list[alerts.Message]:
+def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None, *,
+         zones: dict[str, str | None] | None = None) -> list[alerts.Message]:
     """No new file: one message per rig for open alerts whose mute has just ended."""
     before = store.alert_states()
-    states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings)
+    states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings,
+                                   zones=zones)
     changed = _changed(before, states)
     if changed or messages:
         store.commit_alerts(changed, messages, now=now)

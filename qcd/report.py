@@ -27,6 +27,7 @@ from qcd.errors import ConfigError
 from qcd.html import Curve, Panel, page, spectra_figure, trend_figure
 from qcd.measures.noise import MAD_SCALE
 from qcd.results import MEASURES, SAFETY_NOTE, Spectrum, file_time, shown
+from qcd.zones import get_zone, local_text, local_time, zone_name
 
 if TYPE_CHECKING:
     from qcd.store import Store
@@ -48,9 +49,9 @@ def _is_grounding(hint: str) -> bool:
     return bool(re.search(r"ground|earth|mains|hum", hint, re.I))
 
 
-def parse_since(text: str, now: float) -> float:
-    """'18h', '3d', '90m', '2w' (``parse_duration``) or an ISO date/time (UTC when no zone)
-    -> Unix seconds."""
+def parse_since(text: str, now: float, zone: str | None = None) -> float:
+    """'18h', '3d', '90m', '2w' (``parse_duration``) or an ISO date/time (in ``zone``, the
+    lab's, when it names none; None: this computer's zone) -> Unix seconds."""
     t = str(text).strip()
     try:
         return now - parse_duration(t, "--since")
@@ -62,7 +63,8 @@ def parse_since(text: str, now: float) -> float:
         raise ConfigError(None, "--since", f"expected an age such as 18h, 3d, 90m or an ISO "
                                            f"date such as 2026-11-03, got {text!r}") from None
     if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
+        z = get_zone(zone)
+        dt = dt.astimezone() if z is None else dt.replace(tzinfo=z)
     return dt.timestamp()
 
 
@@ -134,6 +136,8 @@ class RigReport:
     spectrum: LatestSpectrum | None = None
     channels: tuple[tuple[int, str], ...] = ()   # (channel, name) of the rig's recent files
     notes: tuple[dict, ...] = ()         # logbook notes (at, text, kind) of the trend window
+    timezone: str | None = None          # the rig's IANA zone (None: this computer's)
+    zone_label: str = ""                 # the zone as shown ('America/Los_Angeles')
 
 
 @dataclass(frozen=True)
@@ -142,6 +146,8 @@ class Report:
     since: float
     rigs: tuple[RigReport, ...]
     outbox: dict = field(default_factory=dict)
+    timezone: str | None = None          # the lab's IANA zone (None: this computer's)
+    zone_label: str = ""
 
     def to_json(self) -> dict[str, Any]:
         return asdict(self)
@@ -246,10 +252,15 @@ def _latest_spectrum(store: Store, rig: str, files: list[dict], now: float
                           float(line[-1][1]) if line else None)
 
 
-def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | None = None
+def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | None = None,
+                 *, zones: dict[str, str | None] | None = None, lab_zone: str | None = None
                  ) -> Report:
     """Per rig: the period's files, each key measure against its normal range, open alerts,
-    the noise-source hints of the period's findings, and what the page plots."""
+    the noise-source hints of the period's findings, and what the page plots.
+
+    Times stay Unix seconds; ``zones`` (rig -> IANA zone) and ``lab_zone`` (the rest; None:
+    this computer's zone) say in which zone the text and page show them."""
+    zones = zones or {}
     names = list(rigs) if rigs else list(store.rigs())
     out = []
     for rig in names:
@@ -286,8 +297,10 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
             resolved, tuple(trends), _latest_spectrum(store, rig, files, now),
             tuple(names.items()), tuple({k: n[k] for k in ("at", "text", "kind")} for n in
                                         store.notes(rig, since=now - HISTORY_DAYS * 86400.0,
-                                                    until=now))))
-    return Report(now, since, tuple(out), dict(store.outbox_counts()))
+                                                    until=now)),
+            zones.get(rig, lab_zone), zone_name(zones.get(rig, lab_zone), now)))
+    return Report(now, since, tuple(out), dict(store.outbox_counts()), lab_zone,
+                  zone_name(lab_zone, now))
 
 
 # ----------------------------------------------------------------------------- terminal
@@ -299,21 +312,21 @@ def _num(v: float | None, width: int = 9) -> str:
     return f"{s:>{width}}"
 
 
-def _when(t: float | None) -> str:
-    if t is None:
-        return "-"
-    return datetime.fromtimestamp(t, tz=timezone.utc).strftime("%Y-%m-%d %H:%M")
+def _when(t: float | None, zone: str | None = "UTC") -> str:
+    """'2026-11-03 08:00 PST': the time in ``zone`` with the zone's abbreviation."""
+    return local_text(t, zone)
 
 
-def _alert_text(a: dict) -> str:
+def _alert_text(a: dict, zone: str | None = "UTC") -> str:
     parts = [str(a.get(k)) for k in ("measure", "rule") if a.get(k)]
     ch = a.get("channel")
     chs = f" ch{ch}" if ch not in (None, "", -1) else ""
-    return f"{' / '.join(parts) or a.get('key', '?')}{chs} since {_when(a.get('opened_at'))}"
+    return (f"{' / '.join(parts) or a.get('key', '?')}{chs} since "
+            f"{_when(a.get('opened_at'), zone)}")
 
 
-def _mute_text(x: dict) -> str:
-    until = "its alerts resolve" if x.get("end_at") is None else _when(x["end_at"]) + " UTC"
+def _mute_text(x: dict, zone: str | None = "UTC") -> str:
+    until = "its alerts resolve" if x.get("end_at") is None else _when(x["end_at"], zone)
     rules = "" if x.get("rule_glob") in (None, "*") else f" (rules {x['rule_glob']})"
     why = f": {x['reason']}" if x.get("reason") else ""
     return f"muted until {until}{rules}{why}"
@@ -321,13 +334,17 @@ def _mute_text(x: dict) -> str:
 
 def render_text(r: Report) -> str:
     """The compact terminal report; every line fits 100 columns."""
-    out = [f"qcd morning report, {_when(r.since)} to {_when(r.generated_at)} UTC"]
+    out = [f"qcd morning report, {_when(r.since, r.timezone)} to "
+           f"{_when(r.generated_at, r.timezone)}", f"times in {r.zone_label or 'UTC'}"]
     if not r.rigs:
         out.append("No rigs in the store yet.")
     for rig in r.rigs:
+        z = rig.timezone
         out.append("")
         out.append(f"== {rig.rig}: {rig.n_files} file(s), {rig.n_ok} ok, {rig.n_error} error, "
                    f"{rig.n_flagged} flagged")
+        if rig.zone_label and rig.zone_label != r.zone_label:
+            out.append(f"   times in {rig.zone_label}")
         if any(name for _, name in rig.channels):
             out.append(_wrap("   channels: " + _channels_text(rig.channels), 100))
         if rig.measures:
@@ -349,22 +366,22 @@ def render_text(r: Report) -> str:
             out.append(f"   {len(flagged)} flagged files; the last 3:")
         for f in flagged[-3:]:
             short = dict.fromkeys(x.split(" (")[0] for x in f["flags"])
-            out.append(_wrap(f"   flagged {_when(_file_time(f))} {_name(f.get('path'))}: "
+            out.append(_wrap(f"   flagged {_when(_file_time(f), z)} {_name(f.get('path'))}: "
                              + ", ".join(short), 100))
         if rig.open_alerts:
             out.append("   open alerts:")
-            out += [_wrap(f"     - {_alert_text(a)}", 100) for a in rig.open_alerts]
+            out += [_wrap(f"     - {_alert_text(a, z)}", 100) for a in rig.open_alerts]
         else:
             out.append("   open alerts: none")
         if rig.resolved_alerts:
             out.append(_wrap("   resolved in the period: " + ", ".join(
                 f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts), 100))
         for x in rig.mutes:
-            out.append(_wrap(f"   {_mute_text(x)}", 100))
+            out.append(_wrap(f"   {_mute_text(x, z)}", 100))
         if len(rig.notes) > 5:
             out.append(f"   logbook: {len(rig.notes)} notes in {HISTORY_DAYS:g} days; the last 5:")
         for n in rig.notes[-5:]:
-            out.append(_wrap(f"   {note_line(n)}", 100))
+            out.append(_wrap(f"   {note_line(n, z)}", 100))
         for h in rig.hints:
             out.append(_wrap(f"   hint: {h}", 100))
         if rig.safety_note:
@@ -377,10 +394,11 @@ def render_text(r: Report) -> str:
     return "\n".join(out)
 
 
-def note_line(n: dict) -> str:
-    """'logbook 2026-11-03 14:20: replaced the headstage' (UTC) for one ``store.notes`` row."""
+def note_line(n: dict, zone: str | None = "UTC") -> str:
+    """'logbook 2026-11-03 14:20 CET: replaced the headstage' for one ``store.notes`` row, the
+    time in ``zone`` (the rig's)."""
     what = "re-learned" if n.get("kind") == "relearn" else "logbook"
-    return f"{what} {_when(n.get('at'))} UTC: {n.get('text')}"
+    return f"{what} {_when(n.get('at'), zone)}: {n.get('text')}"
 
 
 def _channels_text(channels: Iterable[tuple[int, str]]) -> str:
@@ -421,15 +439,16 @@ def sparkline(values: list[float], width: int = 60) -> str:
 
 
 def render_trend_text(rig: str, measure: str, rows: list[tuple],
-                      notes: Iterable[dict] = ()) -> str:
+                      notes: Iterable[dict] = (), zone: str | None = "UTC") -> str:
     """The series as lines, the rig's logbook notes (``store.notes``) between them where they
-    happened."""
+    happened; times in ``zone`` (the rig's)."""
     if not rows:
         return f"{rig} {measure}: no stored values in that period"
     unit = rows[-1][2]
     vals = [r[1] for r in rows]
     nr = normal_range([r[1] for r in rows if not r[3]])
-    head = [f"{rig} {measure}{f' ({unit})' if unit else ''}, {len(rows)} file(s)",
+    head = [f"{rig} {measure}{f' ({unit})' if unit else ''}, {len(rows)} file(s), times in "
+            f"{zone_name(zone, rows[-1][0])}",
             f"  {sparkline(vals)}  min {_num(min(vals)).strip()} max {_num(max(vals)).strip()}"]
     if nr:
         head.append(f"  median {_num(nr[0]).strip()}, robust SD {_num(nr[1]).strip()} "
@@ -438,10 +457,10 @@ def render_trend_text(rig: str, measure: str, rows: list[tuple],
     body = []
     for r in rows:
         while pending and pending[0]["at"] <= r[0]:
-            body.append(f"  -- {note_line(pending.pop(0))}")
-        body.append(f"  {_when(r[0])}  {_num(r[1], 11)} {unit:<7}{'flagged' if r[3] else '':<8}"
+            body.append(f"  -- {note_line(pending.pop(0), zone)}")
+        body.append(f"  {local_time(r[0], zone):%Y-%m-%d %H:%M}  {_num(r[1], 11)} {unit:<7}{'flagged' if r[3] else '':<8}"
                     f" {_short(r[5])}")
-    body += [f"  -- {note_line(n)}" for n in pending]
+    body += [f"  -- {note_line(n, zone)}" for n in pending]
     return "\n".join(head + [""] + body)
 
 
@@ -455,14 +474,16 @@ def _short(path: Any, width: int = 48) -> str:
     return s if len(s) <= width else "..." + s[-(width - 3):]
 
 
-def render_trend_csv(rows: list[tuple]) -> str:
+def render_trend_csv(rows: list[tuple], zone: str | None = "UTC") -> str:
+    """CSV with both times: UTC and the rig's local time (ISO 8601 with its offset)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["recorded_at_utc", "recorded_at_unix", "value", "unit", "flagged", "file_id",
-                "path"])
+    w.writerow(["recorded_at_utc", "recorded_at_local", "recorded_at_unix", "value", "unit",
+                "flagged", "file_id", "path"])
     for t, v, unit, flagged, fid, path in rows:
         iso = datetime.fromtimestamp(t, tz=timezone.utc).isoformat() if t is not None else ""
-        w.writerow([iso, t, repr(float(v)), unit, int(bool(flagged)), fid, path])
+        loc = local_time(t, zone).isoformat() if t is not None else ""
+        w.writerow([iso, loc, t, repr(float(v)), unit, int(bool(flagged)), fid, path])
     return buf.getvalue()
 
 
@@ -490,12 +511,6 @@ def build_alerts(store: Store, now: float, *, days: float, rig: str | None = Non
         tuple(r for r in store.stuck_rows() if rig is None or r["rig"] == rig))
 
 
-def _local(t: float | None) -> str:
-    if t is None:
-        return "-"
-    return datetime.fromtimestamp(t).astimezone().strftime("%Y-%m-%d %H:%M %Z")
-
-
 def _table(title: str, head: tuple[str, ...], rows: list[tuple]) -> list[str]:
     out = [f"{title}: {len(rows) or 'none'}"]
     if not rows:
@@ -507,18 +522,27 @@ def _table(title: str, head: tuple[str, ...], rows: list[tuple]) -> list[str]:
     return out
 
 
-def render_alerts(a: AlertList, *, secrets: Iterable[str] = ()) -> str:
-    """Plain text tables (times in the local zone); ``secrets`` (notification URLs) are
-    redacted from delivery errors."""
+def render_alerts(a: AlertList, *, secrets: Iterable[str] = (),
+                  zones: dict[str, str | None] | None = None, lab_zone: str | None = None
+                  ) -> str:
+    """Plain text tables, times in each rig's zone (``zones``; else ``lab_zone``, None: this
+    computer's), the zone named; ``secrets`` (notification URLs) are redacted from delivery
+    errors."""
     secrets = tuple(secrets)
+    zones = zones or {}
+
+    def _local(t: float | None, rig: str | None = None) -> str:
+        return local_text(t, zones.get(rig, lab_zone) if rig else lab_zone)
     out = _table("open alerts", ("rig", "channel", "measure", "rule", "state", "opened",
                                  "announced"),
                  [(x["rig"], x["channel"], x["measure"], x["rule"], x["state"],
-                   _local(x["opened_at"]), "yes" if x["announced"] else "no") for x in a.open])
+                   _local(x["opened_at"], x["rig"]), "yes" if x["announced"] else "no")
+                  for x in a.open])
     out += _table(f"resolved in the last {a.days:g} days", ("rig", "channel", "measure", "rule",
                                                             "opened", "resolved"),
-                  [(x["rig"], x["channel"], x["measure"], x["rule"], _local(x["opened_at"]),
-                    _local(x["resolved_at"])) for x in a.resolved])
+                  [(x["rig"], x["channel"], x["measure"], x["rule"],
+                    _local(x["opened_at"], x["rig"]), _local(x["resolved_at"], x["rig"]))
+                   for x in a.resolved])
     out += _table("active mutes", ("id", "rig", "rules", "from", "until", "reason"),
                   [(x.id, x.rig_glob, x.rule_glob, _local(x.start_at),
                     "resolved" if x.end_at is None else _local(x.end_at), x.reason)
@@ -527,7 +551,8 @@ def render_alerts(a: AlertList, *, secrets: Iterable[str] = ()) -> str:
     out.append(f"outbox: {ob['pending']} pending, {ob['sent']} sent, {ob['stuck']} stuck")
     out += _table("undeliverable messages", ("id", "rig", "title", "attempts", "created",
                                              "last error"),
-                  [(r["id"], r["rig"], r["title"], r["attempts"], _local(r["created_at"]),
+                  [(r["id"], r["rig"], r["title"], r["attempts"],
+                    _local(r["created_at"], r["rig"]),
                     redact_text(r["last_error"] or "", secrets)) for r in a.stuck])
     return "\n".join(out)
 
@@ -546,7 +571,8 @@ def _trend_image(rig: RigReport, now: float, since: float) -> str | None:
             [p[1] for p in t.points], [p[2] for p in t.points],
             (m.low, m.median, m.high) if m.low is not None else None, t.alerts_opened,
             info.log_axis, tuple((n["at"], n["text"]) for n in rig.notes)))
-    return trend_figure(panels, shade=(since, now))
+    return trend_figure(panels, shade=(since, now), zone=get_zone(rig.timezone),
+                        zone_label=rig.zone_label or "UTC")
 
 
 def _spectrum_image(s: LatestSpectrum) -> str:
@@ -563,14 +589,16 @@ def _spectrum_image(s: LatestSpectrum) -> str:
 
 def render_html(r: Report) -> str:
     """The morning report as one self-contained HTML page (plots as data: URIs)."""
-    parts = [f"<h1>qcd morning report</h1><p class='sub'>{_when(r.since)} to "
-             f"{_when(r.generated_at)} UTC &middot; {len(r.rigs)} rig(s) &middot; trends over "
+    parts = [f"<h1>qcd morning report</h1><p class='sub'>{_when(r.since, r.timezone)} to "
+             f"{_when(r.generated_at, r.timezone)} (times in "
+             f"{html.escape(r.zone_label or 'UTC')}) &middot; {len(r.rigs)} rig(s) &middot; trends over "
              f"the last {HISTORY_DAYS:g} days, normal range = median &plusmn; "
              f"{NORMAL_SPREADS:g} robust SD of the rig's unflagged files</p>"]
     if r.outbox.get("stuck"):
         parts.append(f"<p class='safety'>{r.outbox['stuck']} message(s) could not be delivered "
                      f"for 24 h; see <code>qcd alerts</code>.</p>")
     for rig in r.rigs:
+        z = rig.timezone
         cls = "bad" if rig.open_alerts else ("warn" if rig.n_error or rig.n_flagged else "")
         status = (f"{len(rig.open_alerts)} open alert(s)" if rig.open_alerts else
                   "no open alerts")
@@ -578,20 +606,23 @@ def render_html(r: Report) -> str:
                      f"<span class='pill {cls}'>{status}</span></h2>"
                      f"<p class='meta'>{rig.n_files} file(s) in the period: {rig.n_ok} ok, "
                      f"{rig.n_error} error, {rig.n_flagged} flagged</p>")
+        if rig.zone_label and rig.zone_label != r.zone_label:
+            parts.append(f"<p class='meta'>times in {html.escape(rig.zone_label)}</p>")
         if any(name for _, name in rig.channels):
             parts.append(f"<p class='meta'>channels: "
                          f"{html.escape(_channels_text(rig.channels))}</p>")
         if rig.open_alerts:
             parts.append("<ul class='alerts'>" + "".join(
-                f"<li>{html.escape(_alert_text(a))}</li>" for a in rig.open_alerts) + "</ul>")
+                f"<li>{html.escape(_alert_text(a, z))}</li>" for a in rig.open_alerts)
+                + "</ul>")
         if rig.resolved_alerts:
             parts.append("<p class='meta'>resolved in the period: " + html.escape(", ".join(
                 f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts)) + "</p>")
         for x in rig.mutes:
-            parts.append(f"<p class='meta'>{html.escape(_mute_text(x))}</p>")
+            parts.append(f"<p class='meta'>{html.escape(_mute_text(x, z))}</p>")
         if rig.notes:
             parts.append("<ul class='notes'>" + "".join(
-                f"<li>{html.escape(note_line(n))}</li>" for n in rig.notes) + "</ul>")
+                f"<li>{html.escape(note_line(n, z))}</li>" for n in rig.notes) + "</ul>")
         for h in rig.hints:
             parts.append(f"<p class='hint'>{html.escape(h)}</p>")
         if rig.safety_note:
@@ -630,9 +661,9 @@ def _files_table(rig: RigReport) -> str:
                 if f.get("status") == "error" else
                 ("<br>".join(html.escape(x) for x in f.get("flags") or ()) or "flagged")
                 if f.get("flagged") else "ok")
-        rows.append(f"<tr class='{cls}'><td>{_when(_file_time(f))}</td>"
+        rows.append(f"<tr class='{cls}'><td>{_when(_file_time(f), rig.timezone)}</td>"
                     f"<td>{html.escape(_short(f.get('path'), 70))}</td>"
                     f"<td>{html.escape(str(f.get('mode') or ''))}</td><td>{flag}</td></tr>")
-    table = ("<table><thead><tr><th>recorded (UTC)</th><th>file</th><th>mode</th><th>flags</th>"
+    table = ("<table><thead><tr><th>recorded</th><th>file</th><th>mode</th><th>flags</th>"
              "</tr></thead><tbody>" + "".join(rows) + "</tbody></table>")
     return f"<details open><summary>files of the period ({len(rig.files)})</summary>{table}</details>"

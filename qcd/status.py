@@ -1,7 +1,7 @@
 """What `qcd status` shows: is the service alive (heartbeat age, pid), its queue, the last
 file per rig, open alerts and the outbox, as a dict and as plain text.
 
-Reads the store only. Imports qcd.workers (pid checks).
+Reads the store only. Imports qcd.workers (pid checks) and qcd.zones (local times).
 """
 from __future__ import annotations
 
@@ -9,6 +9,7 @@ import socket
 from typing import Any
 
 from qcd.workers import pid_alive
+from qcd.zones import local_text
 
 __all__ = ["status", "format_status"]
 
@@ -54,6 +55,10 @@ def status(store: Any, now: float, *, host: str | None = None) -> dict:
     return out
 
 
+def _when(t: float | None, zone: str | None) -> str:
+    return "-" if t is None else local_text(float(t), zone)
+
+
 def _ago(now: float, t: float | None) -> str:
     """'45 s ago', '12 min ago', '17 h ago', '3 days ago'."""
     if t is None:
@@ -70,8 +75,11 @@ def _ago(now: float, t: float | None) -> str:
     return f"{s / 86400:.0f} days ago"
 
 
-def format_status(st: dict, now: float) -> str:
-    """Plain text for the terminal."""
+def format_status(st: dict, now: float, *, zones: dict[str, str | None] | None = None,
+                  lab_zone: str | None = None) -> str:
+    """Plain text for the terminal; clock times in each rig's zone (``zones``, else
+    ``lab_zone``; None: this computer's), the zone named."""
+    zones = zones or {}
     lines = [f"service: {st['reason']}"]
     if st.get("alive"):
         intake = st.get("intake") or {}
@@ -88,7 +96,8 @@ def format_status(st: dict, now: float) -> str:
         for rig, f in sorted(st["last_file"].items()):
             extra = f" ({f['error']})" if f.get("status") != "ok" and f.get("error") else ""
             lines.append(f"  {rig}: {f['path']}  {f['status']}{extra}, recorded "
-                         f"{_ago(now, f.get('recorded_at'))}, measured "
+                         f"{_when(f.get('recorded_at'), zones.get(rig, lab_zone))} "
+                         f"({_ago(now, f.get('recorded_at'))}), measured "
                          f"{_ago(now, f.get('analysed_at'))}")
     else:
         lines.append("no files stored yet")
@@ -98,7 +107,9 @@ def format_status(st: dict, now: float) -> str:
         ch = a.get("channel")
         where = f" (channel {ch})" if isinstance(ch, int) and ch >= 0 else ""
         lines.append(f"  {a.get('rig')}: {a.get('measure') or ''} {a.get('rule') or ''}{where}, "
-                     f"{a.get('state')} since {_ago(now, a.get('opened_at'))}")
+                     f"{a.get('state')} since "
+                     f"{_when(a.get('opened_at'), zones.get(a.get('rig'), lab_zone))} "
+                     f"({_ago(now, a.get('opened_at'))})")
     ob = st["outbox"]
     lines.append(f"messages: {ob.get('pending', 0)} pending, {ob.get('stuck', 0)} stuck, "
                  f"{ob.get('sent', 0)} sent")

@@ -12,6 +12,7 @@ import math
 import os
 import struct
 from datetime import datetime, timezone
+from typing import Any
 from pathlib import Path
 
 import numpy as np
@@ -146,12 +147,13 @@ def field_trace(rng: np.random.Generator, *, fs: float, fc: float, duration_s: f
 # ----------------------------------------------------------------------------- ABF writing
 
 def write_abf1(path: Path, sweeps: np.ndarray, fs: float, unit: str, recorded_at: float,
-               gap_free: bool = False) -> None:
+               gap_free: bool = False, zone: Any = timezone.utc) -> None:
     """Write sweeps (display unit, one row per sweep) as ABF1 with pyabf's writer.
 
     pyabf's writer leaves the start date at zero (readers then fall back to the file's creation
     time), so the ABF1 header's lFileStartDate (offset 20, YYYYMMDD), lFileStartTime (24,
-    seconds since midnight) and nFileStartMillisecs (366) are filled in afterwards, in UTC.
+    seconds since midnight) and nFileStartMillisecs (366) are filled in afterwards as the
+    wall clock of ``zone`` (a tzinfo; UTC by default), as an acquisition PC writes its own.
     A gap-free file gets nOperationMode 3 (offset 8). The file mtime is set to the end of the
     simulated acquisition.
     """
@@ -159,7 +161,7 @@ def write_abf1(path: Path, sweeps: np.ndarray, fs: float, unit: str, recorded_at
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(path.name + ".part")
     pyabf.abfWriter.writeABF1(np.ascontiguousarray(sweeps, dtype=float), str(tmp), fs, unit)
-    when = datetime.fromtimestamp(recorded_at, tz=timezone.utc)
+    when = datetime.fromtimestamp(recorded_at, tz=zone)
     with open(tmp, "r+b") as f:
         if gap_free:
             f.seek(8)

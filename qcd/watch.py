@@ -42,12 +42,13 @@ def make_sender(config: Any):
     return notify.Sender.from_config(config)
 
 
-def _pipeline_steps(store, rules) -> tuple[Callable, Callable, Callable]:
-    """The one writer's commit, the backlog digest and the periodic tick, bound to the store."""
+def _pipeline_steps(store, rules, zones=None) -> tuple[Callable, Callable, Callable]:
+    """The one writer's commit, the backlog digest and the periodic tick, bound to the store
+    (``zones``: rig -> its time zone, for the times in messages)."""
     def commit(fm, rig, now, batch=False):
         return pipeline.commit(fm, rig, store, rules, now, batch=batch)
-    return (commit, lambda now: pipeline.flush_digest(store, rules, now),
-            lambda now: pipeline.tick(store, rules, now))
+    return (commit, lambda now: pipeline.flush_digest(store, rules, now, zones=zones),
+            lambda now: pipeline.tick(store, rules, now, zones=zones))
 
 
 @dataclass
@@ -112,7 +113,8 @@ class Service:
                                       poll_interval_s=poll_interval_s)
                          for r in config.rigs for f in r.folders]
         if commit is None:
-            self._commit, self._digest, self._tick = _pipeline_steps(store, rules)
+            self._commit, self._digest, self._tick = _pipeline_steps(
+                store, rules, {r.name: getattr(r, "timezone", None) for r in config.rigs})
         else:
             self._commit, self._digest, self._tick = commit, None, None
         self.tick_s = 60.0

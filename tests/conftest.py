@@ -14,6 +14,13 @@ import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
 
+# Header times without a zone are read in the rig's zone, by default this computer's: the
+# suite runs in UTC (worker processes inherit it) so its expected times do not depend on
+# the machine it runs on. Tests of other zones name them.
+os.environ["TZ"] = "UTC"
+if hasattr(time, "tzset"):
+    time.tzset()
+
 
 def _abf_dir() -> Path:
     env = os.environ.get("QCD_ABF_DATA")

@@ -248,7 +248,9 @@ def test_status_says_when_the_service_stopped_and_names_the_last_file_recorded(s
                                                 sha256=name * 8), analysed_at=measured)
     text = format_status(status(store, now, host="acq-pc"), now)
     assert "service: stopped cleanly 17 h ago" in text
-    assert "rig-b: /d/late.abf  ok, recorded 60 min ago, measured 2 h ago" in text
+    # the clock time in the machine's zone (the suite runs in UTC: conftest), zone named
+    assert "rig-b: /d/late.abf  ok, recorded 2026-09-21 13:13 UTC (60 min ago), measured 2 h ago" \
+        in text
 
 
 def test_top_level_help_gives_one_example_command_per_line(capsys):
