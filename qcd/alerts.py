@@ -104,6 +104,9 @@ class Message:
     rig: str
     title: str
     body: str
+    attachment_name: str | None = None   # a file sent along where the target takes one
+    attachment: str | None = None        # its text (the daily report's HTML page)
+    targets: tuple[str, ...] = ()        # apprise URLs or tags to send to; () = every target
 
 
 @dataclass(frozen=True)

@@ -194,6 +194,18 @@ def build_parser() -> argparse.ArgumentParser:
                    help="without TEXT: the notes of the last D days (30)")
     _common(p)
 
+    p = sub.add_parser("digest", help="send or print the daily report now",
+                       description="The daily report that 'qcd watch' sends once a day at "
+                                   "[digest] at: the rigs ranked by severity, one line each, "
+                                   "with the HTML page attached where the target takes "
+                                   "attachments. --now queues and sends one by hand (it does "
+                                   "not replace the day's); --dry-run prints it instead.",
+                       epilog="Example: qcd digest --dry-run --html today.html")
+    p.add_argument("--now", action="store_true", help="send one now through the outbox")
+    p.add_argument("--dry-run", action="store_true", help="print it; send nothing")
+    p.add_argument("--html", type=Path, metavar="FILE", help="also write the page it attaches")
+    _common(p)
+
     p = sub.add_parser("init", help="write a commented starter qcd.toml",
                        description="Write a starter config with one example rig to edit.",
                        epilog="Example: qcd init qcd.toml")
@@ -422,11 +434,13 @@ def _cmd_watch(args: argparse.Namespace) -> int:
     rules = load_rules(cfg.rules)
     log_path = watch.setup_logging(cfg.database, debug=args.debug)
     sender = watch.make_sender(cfg)
+    from qcd import digest
     with Store(cfg.database) as store:
         service = watch.Service(cfg, store, rules, sender=sender,
-                                workers=args.workers or None, catch_up=not args.no_catch_up)
-        print(f"qcd watch: {len(cfg.rigs)} rig(s), database {cfg.database}, log {log_path}; "
-              f"stop with Ctrl-C", file=sys.stderr)
+                                workers=args.workers or None, catch_up=not args.no_catch_up,
+                                daily=digest.scheduler(cfg, store))
+        print(f"qcd watch: {len(cfg.rigs)} rig(s), database {cfg.database}, log {log_path}, "
+              f"{digest.describe(cfg)}; stop with Ctrl-C", file=sys.stderr)
         return service.run()
 
 
@@ -698,6 +712,43 @@ def _cmd_note(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_digest(args: argparse.Namespace) -> int:
+    import time
+
+    from qcd import digest
+    from qcd.config import find_config, load_config
+    from qcd.store import Store
+    if args.now == args.dry_run:
+        raise ConfigError(None, "--now", "say --now (send one) or --dry-run (print it)")
+    cfg = load_config(find_config(args.config))
+    if not cfg.database.exists():
+        print(f"qcd digest: no database yet at {cfg.database} (start 'qcd watch' first)",
+              file=sys.stderr)
+        return EXIT_FAILED
+    now = time.time()
+    with Store(cfg.database) as store:
+        if args.dry_run:
+            d = digest.build_digest(store, cfg, now)
+        else:
+            from qcd import notify, watch
+            sender = watch.make_sender(cfg)
+            if sender is None:
+                raise ConfigError(cfg.path, "notify", "no targets to send the report to")
+            d = digest.queue_now(store, cfg, now)
+            res = notify.deliver_due(store, sender, now)
+    if args.html:
+        args.html.write_text(d.html, encoding="utf-8")
+    print(d.title)
+    print(d.body)
+    if args.html:
+        print(f"HTML page written to {args.html}")
+    if args.now:
+        print(f"sent: {res.sent} message(s)" + (f", {res.retried} to retry (see qcd alerts)"
+                                                if res.retried else ""))
+        return EXIT_OK if not res.retried and not res.stuck else EXIT_FAILED
+    return EXIT_OK
+
+
 def _cmd_init(args: argparse.Namespace) -> int:
     from qcd.config import starter_config
 
@@ -741,7 +792,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 _COMMANDS = {
     "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
     "trend": _cmd_trend, "export": _cmd_export, "compare": _cmd_compare, "alerts": _cmd_alerts,
-    "mute": _cmd_mute, "note": _cmd_note, "init": _cmd_init, "notify-test": _cmd_notify_test,
+    "mute": _cmd_mute, "note": _cmd_note, "digest": _cmd_digest, "init": _cmd_init,
+    "notify-test": _cmd_notify_test,
     "demo": _cmd_demo,
 }
 

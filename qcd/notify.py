@@ -9,8 +9,11 @@ Imports apprise, qcd.config (redact), qcd.errors; the Store it is given as a typ
 """
 from __future__ import annotations
 
+import json
 import logging
+import tempfile
 from dataclasses import dataclass
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable
 
 import apprise
@@ -33,6 +36,7 @@ STUCK_AFTER_S = 24 * 3600.0
 
 _TYPE = {"firing": apprise.NotifyType.WARNING, "unstable": apprise.NotifyType.WARNING,
          "digest": apprise.NotifyType.WARNING, "reminder": apprise.NotifyType.INFO,
+         "report": apprise.NotifyType.INFO,
          "resolved": apprise.NotifyType.SUCCESS, "test": apprise.NotifyType.INFO}
 
 
@@ -59,18 +63,26 @@ class Delivery:
 class Sender:
     """All configured apprise targets as one: URLs and/or an apprise config file."""
 
-    def __init__(self, urls: Iterable[str] = (), config_path: Any = None) -> None:
-        self._urls = tuple(str(u) for u in urls)
+    def __init__(self, urls: Iterable[str] = (), config_path: Any = None, *,
+                 named_only: Iterable[str] = ()) -> None:
+        """``named_only``: further URLs sent to only by messages that name them (a daily
+        report's own targets), never by alerts."""
+        named_only = tuple(str(u) for u in named_only if str(u) not in tuple(map(str, urls)))
+        self._urls = tuple(str(u) for u in urls) + named_only
         self._apprise = apprise.Apprise()
+        self._origin: list[str | None] = []         # the URL each service came from
         for url in self._urls:
             if not self._apprise.add(url):
                 raise DeliveryError(f"notification target not understood by apprise: {redact(url)}")
+            self._origin += [url] * (len(self._apprise) - len(self._origin))
         if config_path is not None:
             cfg = apprise.AppriseConfig()
             if not cfg.add(str(config_path)):
                 raise DeliveryError(f"{config_path}: apprise config file cannot be read")
             self._apprise.add(cfg)
         self._services = list(self._apprise)       # plugin instances, kept (mail throttle)
+        self._origin += [None] * (len(self._services) - len(self._origin))
+        self._named_only = set(named_only)
         self._delivered: dict[Any, set[int]] = {}
         if not self._services:
             where = f" (config file {config_path} has no valid URL)" if config_path else ""
@@ -78,8 +90,11 @@ class Sender:
 
     @classmethod
     def from_config(cls, config: Config) -> "Sender":
-        """From ``Config.notify`` URLs and ``Config.notify_config``."""
-        return cls(config.notify, config.notify_config)
+        """From ``Config.notify`` URLs and ``Config.notify_config`` (and the daily report's
+        own target URLs, sent to only by the daily report)."""
+        digest = getattr(config, "digest", None)
+        extra = [t for t in (digest.targets if digest else ()) if "://" in t]
+        return cls(config.notify, config.notify_config, named_only=extra)
 
     def targets(self) -> list[str]:
         """The targets, redacted (safe to print)."""
@@ -88,31 +103,48 @@ class Sender:
     def _clean(self, text: str) -> str:
         return redact_text(text, list(self._urls))
 
-    def send(self, title: str, body: str, kind: str = "firing", *, key: Any = None
+    def chosen(self, targets: Iterable[str] = ()) -> list[int]:
+        """Indices of the services a message goes to: every target (not the named-only ones)
+        for no ``targets``, else those whose URL is listed or that carry a listed tag.
+        DeliveryError when ``targets`` match none."""
+        targets = tuple(targets)
+        if not targets:
+            return [i for i, o in enumerate(self._origin) if o not in self._named_only]
+        want = set(targets)
+        out = [i for i, (svc, o) in enumerate(zip(self._services, self._origin))
+               if o in want or want & set(getattr(svc, "tags", ()) or ())]
+        if not out:
+            raise DeliveryError("the message's targets match no configured target: "
+                                + ", ".join(redact(t) if "://" in t else t for t in targets))
+        return out
+
+    def send(self, title: str, body: str, kind: str = "firing", *, key: Any = None,
+             targets: Iterable[str] = (), attachment: tuple[str, str] | None = None
              ) -> SendResult:
-        """Send to every target; ``ok`` only when all accepted.
+        """Send to every target (or those ``targets`` name); ``ok`` only when all accepted.
 
         With ``key`` (an outbox row id) targets that already accepted this message are skipped
         on the next try, so one dead target does not make the others receive it again and
         again (remembered for the life of this Sender; after a restart all targets are tried).
+        ``attachment`` (file name, text) goes along to targets that take attachments.
         """
         done = self._delivered.get(key, set()) if key is not None else set()
         failures = []
-        for i, service in enumerate(self._services):
-            if i in done:
-                continue
-            with apprise.LogCapture(level=logging.WARNING, fmt="%(message)s") as cap:
-                try:
-                    ok = bool(service.notify(body=body, title=title,
-                                             notify_type=_TYPE.get(kind, apprise.NotifyType.INFO)))
-                except Exception:            # a plugin bug is one failed target, not a crash
-                    log.exception("sending to %s", redact(service.url(privacy=True)))
-                    ok = False
-            if ok:
-                done.add(i)
-            else:
-                reason = " ".join(cap.getvalue().split()) or "not accepted"
-                failures.append(f"{redact(service.url(privacy=True))}: {reason}")
+        chosen = set(self.chosen(targets))
+        with tempfile.TemporaryDirectory(prefix="qcd-attach-") as tmp:
+            attach = None
+            if attachment is not None:
+                path = Path(tmp) / Path(attachment[0]).name
+                path.write_text(attachment[1], encoding="utf-8")
+                attach = str(path)
+            for i, service in enumerate(self._services):
+                if i in done or i not in chosen:
+                    continue
+                ok, reason = self._send_one(service, title, body, kind, attach)
+                if ok:
+                    done.add(i)
+                else:
+                    failures.append(f"{redact(service.url(privacy=True))}: {reason}")
         if key is not None:
             if failures:
                 self._delivered[key] = done
@@ -120,6 +152,21 @@ class Sender:
                 self._delivered.pop(key, None)
         status = "SUCCESS" if not failures else "PARTIAL" if done else "FAILURE"
         return SendResult(not failures, status, self._clean("; ".join(failures)))
+
+    @staticmethod
+    def _send_one(service: Any, title: str, body: str, kind: str, attach: str | None
+                  ) -> tuple[bool, str]:
+        extra = {"attach": attach} if attach and getattr(service, "attachment_support",
+                                                         False) else {}
+        with apprise.LogCapture(level=logging.WARNING, fmt="%(message)s") as cap:
+            try:
+                ok = bool(service.notify(body=body, title=title,
+                                         notify_type=_TYPE.get(kind, apprise.NotifyType.INFO),
+                                         **extra))
+            except Exception:                # a plugin bug is one failed target, not a crash
+                log.exception("sending to %s", redact(service.url(privacy=True)))
+                ok = False
+        return ok, ("" if ok else " ".join(cap.getvalue().split()) or "not accepted")
 
     def test(self, title: str = "qcd test message",
              body: str = "This is a test message from qcd: the target is reachable.") -> list[tuple[str, bool]]:
@@ -146,8 +193,11 @@ def deliver_due(store: Store, sender: Sender, now: float, *, limit: int = 50) ->
     for row in store.outbox_due(now, limit=limit):
         rid = row["id"]
         try:
+            att = row.get("attachment")
             res = sender.send(row["title"] or "", row["body"] or "", row["kind"] or "firing",
-                              key=rid)
+                              key=rid, targets=json.loads(row.get("targets") or "[]"),
+                              attachment=(row.get("attachment_name") or "report.html", att)
+                              if att is not None else None)
             ok, error = res.ok, res.detail
         except DeliveryError as e:
             ok, error = False, str(e)

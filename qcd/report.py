@@ -27,6 +27,7 @@ from qcd.errors import ConfigError
 from qcd.html import Curve, Panel, page, spectra_figure, trend_figure
 from qcd.measures.noise import MAD_SCALE
 from qcd.results import MEASURES, SAFETY_NOTE, Spectrum, file_time, shown
+from qcd.units import readable
 from qcd.zones import get_zone, local_text, local_time, zone_name
 
 if TYPE_CHECKING:
@@ -141,6 +142,17 @@ class RigReport:
 
 
 @dataclass(frozen=True)
+class RigSummary:
+    """One line of the report's summary: a rig's state, what moved and the hint."""
+    rig: str
+    state: str                 # 'alert' | 'errors' | 'flagged' | 'out of normal' | 'ok' | 'idle'
+    severity: int              # higher is worse; the summary is sorted by it
+    changes: tuple[str, ...]   # 'mains hum RMS up 3.1x its normal, channel 0 (IN 0)'
+    hint: str
+    n_files: int
+
+
+@dataclass(frozen=True)
 class Report:
     generated_at: float
     since: float
@@ -148,6 +160,7 @@ class Report:
     outbox: dict = field(default_factory=dict)
     timezone: str | None = None          # the lab's IANA zone (None: this computer's)
     zone_label: str = ""
+    summary: tuple[RigSummary, ...] = ()     # one per rig, worst first (rigs in this order)
 
     def to_json(self) -> dict[str, Any]:
         return asdict(self)
@@ -264,7 +277,8 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
     names = list(rigs) if rigs else list(store.rigs())
     out = []
     for rig in names:
-        files = sorted(store.files(rig=rig, since=since, until=None), key=_file_time)
+        files = sorted(store.files(rig=rig, since=since, until=None, or_analysed=True),
+                       key=_file_time)          # recorded or measured in the period
         files = [f for f in files if not f.get("superseded")]
         hints: list[str] = []
         flags: dict[int, list[str]] = {}
@@ -299,8 +313,79 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
                                         store.notes(rig, since=now - HISTORY_DAYS * 86400.0,
                                                     until=now)),
             zones.get(rig, lab_zone), zone_name(zones.get(rig, lab_zone), now)))
-    return Report(now, since, tuple(out), dict(store.outbox_counts()), lab_zone,
-                  zone_name(lab_zone, now))
+    ranked = sorted(((summarize(x), x) for x in out), key=lambda p: (-p[0].severity, p[0].rig))
+    return Report(now, since, tuple(x for _, x in ranked), dict(store.outbox_counts()),
+                  lab_zone, zone_name(lab_zone, now), tuple(sm for sm, _ in ranked))
+
+
+_SEVERITY = {"critical": 6, "warning": 5, "info": 4}
+
+
+def alert_meaning(a: dict) -> str:
+    """An alert by what it means: 'mains hum RMS up 3.1x its normal, channel 0 (IN 0)',
+    'seal resistance below 1 GOhm, channel 0', 'files could not be read'."""
+    d = a.get("details") or a
+    measure = a.get("measure") or d.get("measure") or ""
+    if measure == "file":
+        return "files could not be read"
+    info = MEASURES.get(measure)
+    label = info.label if info else measure
+    head = str(d.get("headline") or "")
+    if d.get("kind") == "drift" or a.get("kind") == "drift":
+        m = re.match(r"([0-9.eE+-]+)x its normal", head)
+        if m:
+            ratio = float(m.group(1))
+            what = f"{'up' if ratio >= 1 else 'down'} {head}"
+        elif head.startswith(("+", "-")):
+            what = f"{'up' if head.startswith('+') else 'down'} {head.lstrip('+-')}"
+        else:
+            what = head or "away from its normal"
+    else:
+        what = head or str(d.get("limit_text") or a.get("rule") or "")
+        what = what[3:] if what.startswith("is ") else what
+    ch = a.get("channel")
+    name = d.get("channel_name") or ""
+    where = "" if ch in (None, "", -1) or " on channel" in what else \
+        f", channel {ch}" + (f" ({name})" if name else "")
+    return f"{label} {what}{where}".strip()
+
+
+def summarize(rig: RigReport) -> RigSummary:
+    """A rig's line of the summary: the worst of its open alerts (by severity), error files,
+    flagged files and measures outside the normal band, in that order."""
+    changes: list[str] = []
+    sev = 0
+    for a in rig.open_alerts:
+        d = a.get("details") or {}
+        sev = max(sev, _SEVERITY.get(str(d.get("severity") or "warning"), 5))
+        changes.append(alert_meaning(a))
+    state = "alert" if rig.open_alerts else ""
+    if rig.n_error:
+        sev = max(sev, 3)
+        state = state or "errors"
+        changes.append(f"{rig.n_error} file(s) could not be measured")
+    if rig.n_flagged:
+        sev = max(sev, 2)
+        state = state or "flagged"
+        if not rig.open_alerts:
+            changes.append(f"{rig.n_flagged} flagged file(s)")
+    moved = [m for m in rig.measures if m.state in ("high", "low")]
+    if moved:
+        sev = max(sev, 1)
+        state = state or "out of normal"
+        for m in moved:
+            info = MEASURES.get(m.measure)
+            by = (f"{m.latest / m.median:.2g}x its median" if m.median and m.latest
+                  and m.median > 0 and m.latest > 0 else f"{readable(m.latest, m.unit)}")
+            name = f" ({m.channel_name})" if m.channel_name else ""
+            text = (f"{info.label if info else m.measure} {m.state} ({by}), channel "
+                    f"{m.channel}{name}")
+            if not any(text.split(" (")[0] in c for c in changes):
+                changes.append(text)
+    if not state:
+        state = "ok" if rig.n_files else "idle"
+    hint = rig.hints[0] if rig.hints else ""
+    return RigSummary(rig.rig, state, sev, tuple(dict.fromkeys(changes)), hint, rig.n_files)
 
 
 # ----------------------------------------------------------------------------- terminal

@@ -160,6 +160,14 @@ def _m004_notes(db: Database) -> None:
     db.execute("CREATE INDEX notes_rig_at ON notes (rig, at)")
 
 
+@MIGRATIONS(name="m007_outbox_attachment")
+def _m007_outbox_attachment(db: Database) -> None:
+    """Outbox rows that carry a file (the daily report's page) and name their targets."""
+    db.execute("ALTER TABLE outbox ADD COLUMN attachment_name TEXT")
+    db.execute("ALTER TABLE outbox ADD COLUMN attachment TEXT")
+    db.execute("ALTER TABLE outbox ADD COLUMN targets TEXT")     # JSON list; NULL: every target
+
+
 @dataclass(frozen=True)
 class FileState:
     """What the store knows of a path: enough for the watcher to skip unchanged files."""
@@ -551,10 +559,12 @@ class Store:
         for m in messages:
             conn.execute(
                 "INSERT OR IGNORE INTO outbox (alert_key, transition, kind, priority, rig, title, "
-                "body, created_at, status, attempts, next_at) "
-                "VALUES (?,?,?,?,?,?,?,?,'pending',0,?)",
+                "body, created_at, status, attempts, next_at, attachment_name, attachment, "
+                "targets) VALUES (?,?,?,?,?,?,?,?,'pending',0,?,?,?,?)",
                 (m.alert_key, int(m.transition), m.kind, int(m.priority), m.rig, m.title,
-                 m.body, float(now), float(now)))
+                 m.body, float(now), float(now), getattr(m, "attachment_name", None),
+                 getattr(m, "attachment", None),
+                 _dumps(list(m.targets)) if getattr(m, "targets", ()) else None))
 
     def commit_alerts(self, alert_states: Iterable[dict] = (), messages: Iterable[Message] = (),
                       *, now: float | None = None) -> None:
@@ -619,6 +629,18 @@ class Store:
             conn.execute("UPDATE outbox SET status = 'stuck', attempts = attempts + 1, "
                          "last_error = ?, next_at = ? WHERE id = ? AND status = 'pending'",
                          (error, now, id))
+
+    def outbox_row(self, alert_key: str, transition: int = 0) -> dict[str, Any] | None:
+        """The outbox row of (alert_key, transition), whatever its status, or None."""
+        rows = self._rows("SELECT * FROM outbox WHERE alert_key = ? AND transition = ?",
+                          (alert_key, int(transition)))
+        return rows[0] if rows else None
+
+    def last_outbox(self, kind: str) -> dict[str, Any] | None:
+        """The newest outbox row of ``kind`` (by created_at), or None."""
+        rows = self._rows("SELECT * FROM outbox WHERE kind = ? ORDER BY created_at DESC, id DESC "
+                          "LIMIT 1", (kind,))
+        return rows[0] if rows else None
 
     def outbox_counts(self) -> dict[str, int]:
         counts = {"pending": 0, "sent": 0, "stuck": 0}
@@ -717,16 +739,20 @@ class Store:
             "UNION SELECT rig FROM notes ORDER BY 1")]
 
     def files(self, rig: str | None = None, since: float | None = None,
-              until: float | None = None, *, include_superseded: bool = False
-              ) -> list[dict[str, Any]]:
-        """File rows (notes/extra decoded) with since <= recorded_at < until, oldest first."""
+              until: float | None = None, *, include_superseded: bool = False,
+              or_analysed: bool = False) -> list[dict[str, Any]]:
+        """File rows (notes/extra decoded) with since <= recorded_at < until, oldest first;
+        ``or_analysed``: also those measured since ``since`` (a copied-in old recording)."""
         where, params = [], []
         if not include_superseded:
             where.append("superseded = 0")
         if rig is not None:
             where.append("rig = ?")
             params.append(rig)
-        if since is not None:
+        if since is not None and or_analysed:
+            where.append("(recorded_at >= ? OR analysed_at >= ?)")
+            params += [since, since]
+        elif since is not None:
             where.append("recorded_at >= ?")
             params.append(since)
         if until is not None:

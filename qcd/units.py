@@ -8,7 +8,7 @@ from __future__ import annotations
 import re
 
 __all__ = ["FACTORS", "DIMENSION", "DISPLAY", "to_si", "from_si", "parse_quantity",
-           "channel_quantity"]
+           "channel_quantity", "readable"]
 
 # ASCII unit -> factor to SI. Dimension names are SI base spellings.
 FACTORS: dict[str, float] = {
@@ -106,3 +106,40 @@ def channel_quantity(unit: str) -> tuple[str, float]:
     if dim not in ("A", "V"):
         return "", 1.0
     return dim, FACTORS[canon]
+
+
+# --- readable values for people -------------------------------------------------------------
+
+# Per dimension, the units a reader may see, smallest first (all in FACTORS).
+_LADDER = {"A": ("fA", "pA", "nA", "uA", "mA", "A"), "V": ("uV", "mV", "V"),
+           "Ohm": ("Ohm", "kOhm", "MOhm", "GOhm"), "F": ("pF", "nF", "F"),
+           "A/s": ("pA/min", "nA/min"), "V/s": ("uV/min", "mV/min", "V/min")}
+_PRETTY = (("Ohm", "\u03a9"), ("u", "\u00b5"))
+
+
+def readable(value: float | None, unit: str, *, pretty: bool = False, digits: int = 3) -> str:
+    """A value with the unit that puts it between 1 and 1000 where its dimension has one:
+    ``readable(0.00215, 'mV')`` -> '2.15 uV'; with ``pretty`` the symbols people read
+    ('2.15 \u00b5V', '25 M\u03a9'). Times stay in their unit (us for tau, ms). '-' for None or
+    not finite."""
+    import math
+    if value is None or isinstance(value, bool) or not math.isfinite(float(value)):
+        return "-"
+    value = float(value)
+    try:
+        canon = _canonical(unit)
+    except ValueError:
+        canon = None
+    ladder = _LADDER.get(DIMENSION.get(canon, "")) if canon else None
+    if ladder and value != 0.0:
+        si = value * FACTORS[canon]
+        pick = ladder[0]
+        for u in ladder:
+            if abs(si) / FACTORS[u] >= 1.0 - 1e-12:
+                pick = u
+        value, unit = si / FACTORS[pick], pick
+    text = f"{value:.{digits}g}"
+    if pretty:
+        for a, b in _PRETTY:
+            unit = unit.replace(a, b) if a != "u" or unit.startswith("u") else unit
+    return f"{text} {unit}".strip()

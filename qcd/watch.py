@@ -35,7 +35,9 @@ LOG_NAME = "qcd.log"
 
 def make_sender(config: Any):
     """The notification sender for the config's targets, or None when there are none."""
-    if not config.notify and config.notify_config is None:
+    digest = getattr(config, "digest", None)
+    if not config.notify and config.notify_config is None and not (
+            digest and any("://" in t for t in digest.targets)):
         log.warning("no notification targets configured: alerts are stored but not sent")
         return None
     from qcd import notify
@@ -97,7 +99,7 @@ class Service:
                  workers: int | None = None, catch_up: bool = True, poll_s: float = 0.25,
                  beat_s: float = 5.0, rescan_s: float = 300.0, folder_check_s: float = 2.0,
                  poll_interval_s: float = 1.0, stat=os.stat, commit: Callable | None = None,
-                 progress_tty: bool | None = None) -> None:
+                 progress_tty: bool | None = None, daily: Callable | None = None) -> None:
         self.config, self.store, self.rules, self.sender = config, store, rules, sender
         self.workers = default_workers() if workers is None else max(0, int(workers))
         self.catch_up = catch_up
@@ -118,6 +120,9 @@ class Service:
         else:
             self._commit, self._digest, self._tick = commit, None, None
         self.tick_s = 60.0
+        self._daily = daily                  # daily(now): queue the day's report when due
+        self.daily_s = 30.0
+        self._last_daily = -1e18
         self.wal_limit_bytes = 32 << 20
         self._last_tick = -1e18
         self._batch_pending = False         # backlog files were committed without messages
@@ -216,6 +221,13 @@ class Service:
             self._submit(r, now)
         busy |= self._collect(now)
         self._flush_digest(now)
+        if self._daily is not None and now - self._last_daily >= self.daily_s \
+                and not self._batch_pending:  # after the start-up backlog, so it is counted
+            self._last_daily = now
+            try:
+                self._daily(now)
+            except Exception:
+                log.exception("queueing the daily report")
         if self.sender is not None:
             try:
                 self._deliver_due(now)

@@ -33,7 +33,7 @@ LAYERS = (
     "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "ruleset",
     "judge", "alerts", "store", "notify", "analyze", "intake", "workers", "pipeline", "watch",
     "status",
-    "html", "report", "compare", "export", "synth", "demo", "cli", "__init__", "__main__",
+    "html", "report", "compare", "export", "digest", "synth", "demo", "cli", "__init__", "__main__",
 )
 
 

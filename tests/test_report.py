@@ -49,7 +49,8 @@ def store(store):
     """The shared empty store, filled: rig-a's history with one flagged file, rig-b's one file."""
     s = store
     for i, ra in enumerate(RA):
-        s.commit_file("rig-a", _fm(i, NOW - (12 - i) * 86400.0, ra, 0.3), analysed_at=NOW)
+        t = NOW - (12 - i) * 86400.0                   # measured as it was recorded
+        s.commit_file("rig-a", _fm(i, t, ra, 0.3), analysed_at=t + 60.0)
     hint = "mains hum rose against the reference: check the grounding of the rig"
     fid = s.commit_file(
         "rig-a", _fm(10, NOW - 3600.0, 18.0, 3.0), analysed_at=NOW,
@@ -77,7 +78,7 @@ def test_normal_range_matches_the_published_robust_z_example():
 def test_report_numbers_equal_the_store(store):
     r = build_report(store, NOW, parse_since("18h", NOW))
     rig = {x.rig: x for x in r.rigs}["rig-a"]
-    files = store.files(rig="rig-a", since=NOW - 18 * 3600.0)
+    files = store.files(rig="rig-a", since=NOW - 18 * 3600.0, or_analysed=True)
     assert rig.n_files == len(files) == 2
     assert rig.n_ok == 1 and rig.n_error == 1 and rig.n_flagged == 1
     lines = {m.measure: m for m in rig.measures}
@@ -189,3 +190,12 @@ def test_sparkline_keeps_a_single_dip_when_it_downsamples():
     line = sparkline(v, width=60)
     assert len(line) == 60
     assert line.count("\u2581") == 1 and line.count("\u2588") == 1   # lowest and highest bar
+
+
+def test_the_period_counts_files_measured_in_it_even_when_recorded_before(store):
+    # ten old recordings copied in and measured now (a backlog): stored in the period
+    for i in range(10):
+        store.commit_file("rig-c", _fm(40 + i, NOW - 30 * 86400.0 + i * 60, 9.0, 0.3),
+                          analysed_at=NOW - 600.0)
+    r = build_report(store, NOW, parse_since("18h", NOW), ["rig-c"])
+    assert r.rigs[0].n_files == 10

@@ -70,8 +70,8 @@ def test_two_rigs_in_two_zones_share_one_report_in_local_time(tmp_path, store):
              ("east",) + _write(east, "e1.abf", datetime(2026, 11, 2, 9, 0), TOKYO),
              ("east",) + _write(east, "e2.abf", datetime(2026, 11, 3, 9, 0), TOKYO)]
     now = datetime(2026, 11, 3, 8, 0, tzinfo=ZoneInfo(LA)).timestamp()
-    for rig, path, _ in files:
-        process(path, rigs[rig], store, rules, now)
+    for rig, path, t in files:                 # each measured a minute after it was recorded
+        process(path, rigs[rig], store, rules, t + 60.0)
     stored = {f["path"]: f["recorded_at"] for r in rigs for f in store.files(rig=r)}
     for _, path, t in files:                 # the header's wall time read in the rig's zone
         assert stored[str(path)] == pytest.approx(t, abs=1e-3)
