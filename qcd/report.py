@@ -41,7 +41,11 @@ __all__ = ["KEY_MEASURES", "MeasureLine", "Trend", "LatestSpectrum", "RigReport"
 # The measures the morning report shows, in this order, when a rig has them, and the ones plotted.
 KEY_MEASURES = shown("report")
 _PLOTTED = shown("plot")
-NORMAL_SPREADS = 3.0        # normal range = median +- 3 robust SD (1.4826 MAD)
+NORMAL_SPREADS = 3.0        # reference band = median +- 3 robust SD (1.4826 MAD)
+# What the reference band is, said in the report's header (keep with reference_band()).
+BAND_TEXT = (f"reference band = median \u00b1 {NORMAL_SPREADS:g} robust SD (1.4826 MAD) of the "
+             f"rig's unflagged files of the last 30 days; a value is high or low when qcd's "
+             f"rules flagged it")
 HISTORY_DAYS = 30.0
 _SPARKS = "\u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588"
 
@@ -176,19 +180,40 @@ def _series(store: Store, rig: str, measure: str, channel: int | None, since: fl
     return sorted(rows, key=lambda r: (r[0] if r[0] is not None else 0.0))
 
 
-def _measure_line(rows: list[tuple], measure: str, channel: int) -> MeasureLine:
-    """The latest of ``rows`` (a measure's series, oldest first) against the ones before."""
-    t, value, unit = rows[-1][0], rows[-1][1], rows[-1][2]
-    history = [r[1] for r in rows[:-1] if not r[3]]       # unflagged, before the latest
+def reference_band(history: list[float]) -> tuple[float, float, float, float, int] | None:
+    """THE source of the report's band (table column, trend-plot shading, BAND_TEXT):
+    (low, median, high, robust SD, n) of a measure's unflagged history, None below 3 values.
+
+    Only the band's drawing comes from here; high/low comes from the judge's stored flag.
+    """
     nr = normal_range(history)
     if nr is None or nr[2] < 3:
-        return MeasureLine(measure, channel, unit, value, t, nr[0] if nr else None,
-                           nr[1] if nr else None, None, None, nr[2] if nr else 0, "no history")
+        return None
     med, sd, n = nr
     lo, hi = med - NORMAL_SPREADS * sd, med + NORMAL_SPREADS * sd
     if min(history) >= 0.0:               # a measure that cannot be negative
         lo = max(lo, 0.0)
-    state = "high" if value > hi else "low" if value < lo else "normal"
+    return lo, med, hi, sd, n
+
+
+def _measure_line(rows: list[tuple], measure: str, channel: int) -> MeasureLine:
+    """The latest of ``rows`` (a measure's series, oldest first) against the ones before.
+
+    Its state is the judge's: 'high'/'low' (by side of the median) exactly when the stored
+    file flagged this measure, else 'normal' ('no history' before there is a band)."""
+    t, value, unit, flagged = rows[-1][0], rows[-1][1], rows[-1][2], bool(rows[-1][3])
+    history = [r[1] for r in rows[:-1] if not r[3]]       # unflagged, before the latest
+    band = reference_band(history)
+    nr = normal_range(history)
+    med = band[1] if band else (nr[0] if nr else None)
+    if flagged:
+        state = "low" if med is not None and value < med else "high"
+    else:
+        state = "normal" if band is not None else "no history"
+    if band is None:
+        return MeasureLine(measure, channel, unit, value, t, med, nr[1] if nr else None,
+                           None, None, nr[2] if nr else 0, state)
+    lo, med, hi, sd, n = band
     return MeasureLine(measure, channel, unit, value, t, med, sd, lo, hi, n, state)
 
 

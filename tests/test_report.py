@@ -199,3 +199,24 @@ def test_the_period_counts_files_measured_in_it_even_when_recorded_before(store)
                           analysed_at=NOW - 600.0)
     r = build_report(store, NOW, parse_since("18h", NOW), ["rig-c"])
     assert r.rigs[0].n_files == 10
+
+
+def test_high_or_low_is_the_judges_stored_flag_not_the_band(store):
+    """One meaning of normal: a row is high/low exactly when the stored file flagged that
+    measure; a value beyond the drawn band that no rule flagged stays normal."""
+    for i, ra in enumerate(RA):
+        t = NOW - (12 - i) * 86400.0
+        store.commit_file("rig-d", _fm(60 + i, t, ra, 0.3), analysed_at=t)
+    # 30 MOhm is far beyond median + 3 robust SD (9.5 + 2.2) but no finding flags it
+    store.commit_file("rig-d", _fm(70, NOW - 60.0, 30.0, 0.3), analysed_at=NOW)
+    r = build_report(store, NOW, parse_since("18h", NOW))
+    for rig in r.rigs:
+        for m in rig.measures:
+            rows = store.measure_series(rig.rig, m.measure, channel=m.channel,
+                                        since=NOW - 30 * 86400.0)
+            assert (m.state in ("high", "low")) == bool(rows[-1][3]), (rig.rig, m)
+    d = {m.measure: m for m in {x.rig: x for x in r.rigs}["rig-d"].measures}
+    assert d["access_resistance"].latest > d["access_resistance"].high
+    assert d["access_resistance"].state == "normal"
+    a = {m.measure: m for m in {x.rig: x for x in r.rigs}["rig-a"].measures}
+    assert a["access_resistance"].state == "high"          # flagged by access_high
