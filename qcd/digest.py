@@ -18,7 +18,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable
 
 from qcd.alerts import PRIORITY, Message
-from qcd.report import Report, build_report, render_html
+from qcd.report import Report, build_report, render_html, summary_line
 from qcd.zones import local_date, local_day_start, local_text, zone_name
 
 if TYPE_CHECKING:
@@ -74,11 +74,7 @@ def digest_text(report: Report, *, late_note: str = "", attachment: str = "") ->
     out.append(f"{len(report.summary)} rig(s); " + (f"{len(bad)} need attention:" if bad else
                                                    "none needs attention."))
     for i, s in enumerate(report.summary, start=1):
-        what = "; ".join(s.changes) or f"{s.n_files} file(s), nothing changed"
-        line = f"{i}. {s.rig}: {s.state.upper() if s.severity >= 2 else s.state} - {what}"
-        if s.hint:
-            line += f" | hint: {s.hint}"
-        out.append(line)
+        out.append(f"{i}. {summary_line(s)}")
     if report.outbox.get("stuck"):
         out.append(f"{report.outbox['stuck']} message(s) could not be delivered: see qcd alerts")
     if attachment:

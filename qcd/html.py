@@ -41,6 +41,15 @@ margin:6px 0}
 .safety{background:#fff6e0;border-left:4px solid #c98a00;padding:6px 10px;margin:6px 0;
 font-size:13px}
 .meta{color:#5a6472}details summary{cursor:pointer;color:#4a6fa5;margin:6px 0}
+.key{font-size:13px}.sw{display:inline-block;width:12px;height:12px;border-radius:2px;
+vertical-align:-1px;margin:0 5px 0 2px}.sw.band{background:rgba(74,157,91,.28)}
+.sw.period{background:rgba(153,153,153,.3);margin-left:8px}
+table.summary td:nth-child(4){min-width:14em}a{color:#2f5288}
+tr.better td{background:#eef7ef}
+@media (max-width:600px){main{padding:12px 10px 40px}h1{font-size:20px}
+section.rig{padding:12px 10px}h2{flex-wrap:wrap;gap:6px}
+table{font-size:12px}th,td{padding:3px 4px}.opt{display:none}
+td{overflow-wrap:anywhere}table.summary td:nth-child(4){min-width:0}}
 """
 
 
@@ -116,7 +125,7 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
         fl = np.asarray(p.flagged, dtype=bool)
         if p.band is not None:
             low, median, high = p.band
-            ax.axhspan(low, high, color="#4a9d5b", alpha=0.13, lw=0, label="normal range")
+            ax.axhspan(low, high, color="#4a9d5b", alpha=0.13, lw=0, label="reference band")
             ax.axhline(median, color="#4a9d5b", lw=0.8, alpha=0.7)
         ax.plot(ts, vs, color="#4a6fa5", lw=0.9, marker="o", ms=2.6)
         if fl.any():
@@ -132,7 +141,8 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
                         xycoords=("data", "axes fraction"), xytext=(2, -3),
                         textcoords="offset points", rotation=90, va="top", ha="left",
                         fontsize=6.5, color="#6b4fa0")
-        ax.axvspan(_utc(shade[0]), _utc(shade[1]), color="#999999", alpha=0.08, lw=0)
+        ax.axvspan(_utc(shade[0]), _utc(shade[1]), color="#999999", alpha=0.14, lw=0,
+                   label="report period")
         ax.set_title(p.title, fontsize=9.5, loc="left")
         ax.set_ylabel(p.unit or "value", fontsize=9)
         ax.tick_params(labelsize=8)
@@ -142,8 +152,7 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
         ax.grid(True, alpha=0.25)
         if p.log_axis and vs.size and np.all(vs > 0) and vs.max() / vs.min() > 20:
             ax.set_yscale("log")
-        if fl.any() or p.band is not None or p.marks or p.notes:
-            ax.legend(fontsize=7, loc="best", framealpha=0.75)
+        ax.legend(fontsize=7, loc="best", framealpha=0.75)
     for ax in list(axes.flat)[len(panels):]:
         ax.axis("off")
     for ax in axes[-1]:

@@ -27,7 +27,7 @@ from qcd.errors import ConfigError
 from qcd.html import Curve, Panel, page, spectra_figure, trend_figure
 from qcd.measures.noise import MAD_SCALE
 from qcd.results import MEASURES, SAFETY_NOTE, Spectrum, file_time, shown
-from qcd.units import readable
+from qcd.units import pretty_unit, readable, readable_unit
 from qcd.zones import get_zone, local_text, local_time, zone_name
 
 if TYPE_CHECKING:
@@ -36,7 +36,8 @@ if TYPE_CHECKING:
 __all__ = ["KEY_MEASURES", "MeasureLine", "Trend", "LatestSpectrum", "RigReport", "Report",
            "parse_since", "normal_range", "build_report", "render_text", "render_html",
            "trend_rows", "render_trend_text", "render_trend_csv", "sparkline", "AlertList",
-           "build_alerts", "render_alerts", "note_line"]
+           "build_alerts", "render_alerts", "note_line", "RigSummary", "summarize",
+           "summary_line", "alert_meaning", "reference_band", "BAND_TEXT"]
 
 # The measures the morning report shows, in this order, when a rig has them, and the ones plotted.
 KEY_MEASURES = shown("report")
@@ -445,9 +446,15 @@ def _mute_text(x: dict, zone: str | None = "UTC") -> str:
 def render_text(r: Report) -> str:
     """The compact terminal report; every line fits 100 columns."""
     out = [f"qcd morning report, {_when(r.since, r.timezone)} to "
-           f"{_when(r.generated_at, r.timezone)}", f"times in {r.zone_label or 'UTC'}"]
+           f"{_when(r.generated_at, r.timezone)}", f"times in {r.zone_label or 'UTC'}",
+           _wrap(BAND_TEXT, 100)]
     if not r.rigs:
         out.append("No rigs in the store yet.")
+    if r.summary:
+        out.append("")
+        out.append("summary, worst first:")
+        for i, sm in enumerate(r.summary, start=1):
+            out.append(_wrap(f"  {i}. {summary_line(sm)}", 100))
     for rig in r.rigs:
         z = rig.timezone
         out.append("")
@@ -459,13 +466,14 @@ def render_text(r: Report) -> str:
             out.append(_wrap("   channels: " + _channels_text(rig.channels), 100))
         if rig.measures:
             out.append(f"   {'measure':<22}{'ch':>3} {'latest':>9} {'median':>9} "
-                       f"{'normal range':>21} {'unit':<7}state")
+                       f"{'reference band':>21} {'unit':<7}state")
             for m in rig.measures:
-                rng = (f"{_num(m.low, 9).strip()} .. {_num(m.high, 9).strip()}"
-                       if m.low is not None else "-")
+                unit, k = _line_unit(m)
+                rng = (f"{_num(_times(m.low, k), 9).strip()} .. "
+                       f"{_num(_times(m.high, k), 9).strip()}" if m.low is not None else "-")
                 mark = {"high": "HIGH", "low": "LOW"}.get(m.state, m.state)
-                out.append(f"   {m.measure:<22}{m.channel:>3} {_num(m.latest)} {_num(m.median)} "
-                           f"{rng:>21} {m.unit:<7}{mark}")
+                out.append(f"   {m.measure:<22}{m.channel:>3} {_num(_times(m.latest, k))} "
+                           f"{_num(_times(m.median, k))} {rng:>21} {unit:<7}{mark}")
         errs = [f for f in rig.files if f.get("status") == "error"]
         for f in errs[:5]:
             out.append(_wrap(f"   error: {f.get('error') or f.get('error_kind')}", 100))
@@ -480,12 +488,13 @@ def render_text(r: Report) -> str:
                              + ", ".join(short), 100))
         if rig.open_alerts:
             out.append("   open alerts:")
-            out += [_wrap(f"     - {_alert_text(a, z)}", 100) for a in rig.open_alerts]
+            out += [_wrap(f"     - {alert_meaning(a)} since {_when(a.get('opened_at'), z)} "
+                          f"(rule {a.get('rule')})", 100) for a in rig.open_alerts]
         else:
             out.append("   open alerts: none")
         if rig.resolved_alerts:
             out.append(_wrap("   resolved in the period: " + ", ".join(
-                f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts), 100))
+                alert_meaning(a) for a in rig.resolved_alerts), 100))
         for x in rig.mutes:
             out.append(_wrap(f"   {_mute_text(x, z)}", 100))
         if len(rig.notes) > 5:
@@ -502,6 +511,24 @@ def render_text(r: Report) -> str:
         if r.outbox.get("stuck"):
             out.append("   some messages could not be delivered for 24 h: see qcd alerts")
     return "\n".join(out)
+
+
+def summary_line(sm: RigSummary) -> str:
+    """'rig-b: ALERT - mains hum RMS up 3.1x its normal, channel 0 (IN 0) | hint: ...'."""
+    what = "; ".join(sm.changes) or (f"{sm.n_files} file(s), nothing moved" if sm.n_files
+                                      else "no files in the period")
+    line = f"{sm.rig}: {sm.state.upper() if sm.severity >= 2 else sm.state} - {what}"
+    return line + (f" | hint: {sm.hint}" if sm.hint else "")
+
+
+def _line_unit(m: MeasureLine) -> tuple[str, float]:
+    """A readable unit for a table row (from its median, else its latest value)."""
+    ref = m.median if m.median not in (None, 0.0) else m.latest
+    return readable_unit(ref, m.unit)
+
+
+def _times(v: float | None, k: float) -> float | None:
+    return None if v is None else v * k
 
 
 def note_line(n: dict, zone: str | None = "UTC") -> str:
@@ -691,7 +718,7 @@ def _spectrum_image(s: LatestSpectrum) -> str:
         curves.append(Curve(s.reference.freqs_hz, s.reference.density,
                             "rig reference (median of recent good files)", "#7a8494", 1.4))
     curves.append(Curve(s.spectrum.freqs_hz, s.spectrum.density,
-                        f"latest: {_short(s.path, 40)}", "#c8553d"))
+                        f"latest: {_name(s.path)}", "#c8553d"))
     return spectra_figure(curves, unit=s.spectrum.unit, line_hz=s.line_hz,
                           title=f"latest baseline spectrum against the rig's reference, "
                                 f"channel {s.channel}")
@@ -701,18 +728,32 @@ def render_html(r: Report) -> str:
     """The morning report as one self-contained HTML page (plots as data: URIs)."""
     parts = [f"<h1>qcd morning report</h1><p class='sub'>{_when(r.since, r.timezone)} to "
              f"{_when(r.generated_at, r.timezone)} (times in "
-             f"{html.escape(r.zone_label or 'UTC')}) &middot; {len(r.rigs)} rig(s) &middot; trends over "
-             f"the last {HISTORY_DAYS:g} days, normal range = median &plusmn; "
-             f"{NORMAL_SPREADS:g} robust SD of the rig's unflagged files</p>"]
+             f"{html.escape(r.zone_label or 'UTC')}) &middot; {len(r.rigs)} rig(s)</p>"
+             f"<p class='sub key'><span class='sw band'></span>{html.escape(BAND_TEXT)}. "
+             f"<span class='sw period'></span>The grey shading on the {HISTORY_DAYS:g}-day trend "
+             f"plots is this report's period.</p>"]
     if r.outbox.get("stuck"):
         parts.append(f"<p class='safety'>{r.outbox['stuck']} message(s) could not be delivered "
                      f"for 24 h; see <code>qcd alerts</code>.</p>")
+    if r.summary:
+        rows = []
+        for i, sm in enumerate(r.summary, start=1):
+            cls = "bad" if sm.severity >= 4 else "warn" if sm.severity >= 1 else ""
+            what = "; ".join(sm.changes) or (f"{sm.n_files} file(s), nothing moved"
+                                              if sm.n_files else "no files in the period")
+            rows.append(f"<tr><td class='num'>{i}</td><td><a href='#{_anchor(sm.rig)}'>"
+                        f"{html.escape(sm.rig)}</a></td><td><span class='pill {cls}'>"
+                        f"{html.escape(sm.state)}</span></td><td>{html.escape(what)}</td>"
+                        f"<td class='opt'>{html.escape(sm.hint)}</td></tr>")
+        parts.append("<table class='summary'><thead><tr><th>#</th><th>rig</th><th>state</th>"
+                     "<th>what changed</th><th class='opt'>hint</th></tr></thead><tbody>"
+                     + "".join(rows) + "</tbody></table>")
     for rig in r.rigs:
         z = rig.timezone
         cls = "bad" if rig.open_alerts else ("warn" if rig.n_error or rig.n_flagged else "")
         status = (f"{len(rig.open_alerts)} open alert(s)" if rig.open_alerts else
                   "no open alerts")
-        parts.append(f"<section class='rig'><h2>{html.escape(rig.rig)} "
+        parts.append(f"<section class='rig' id='{_anchor(rig.rig)}'><h2>{html.escape(rig.rig)} "
                      f"<span class='pill {cls}'>{status}</span></h2>"
                      f"<p class='meta'>{rig.n_files} file(s) in the period: {rig.n_ok} ok, "
                      f"{rig.n_error} error, {rig.n_flagged} flagged</p>")
@@ -723,11 +764,13 @@ def render_html(r: Report) -> str:
                          f"{html.escape(_channels_text(rig.channels))}</p>")
         if rig.open_alerts:
             parts.append("<ul class='alerts'>" + "".join(
-                f"<li>{html.escape(_alert_text(a, z))}</li>" for a in rig.open_alerts)
+                f"<li><b>{html.escape(alert_meaning(a))}</b> since "
+                f"{html.escape(_when(a.get('opened_at'), z))} <span class='meta'>(rule "
+                f"{html.escape(str(a.get('rule')))})</span></li>" for a in rig.open_alerts)
                 + "</ul>")
         if rig.resolved_alerts:
             parts.append("<p class='meta'>resolved in the period: " + html.escape(", ".join(
-                f"{a.get('measure')} / {a.get('rule')}" for a in rig.resolved_alerts)) + "</p>")
+                alert_meaning(a) for a in rig.resolved_alerts)) + "</p>")
         for x in rig.mutes:
             parts.append(f"<p class='meta'>{html.escape(_mute_text(x, z))}</p>")
         if rig.notes:
@@ -738,17 +781,21 @@ def render_html(r: Report) -> str:
         if rig.safety_note:
             parts.append(f"<p class='safety'>{html.escape(rig.safety_note)}</p>")
         if rig.measures:
-            parts.append("<table><thead><tr><th>measure</th><th>ch</th><th>latest</th>"
-                         "<th>median</th><th>normal range</th><th>unit</th><th>state</th>"
-                         "</tr></thead><tbody>")
+            parts.append("<table class='measures'><thead><tr><th>measure</th><th>ch</th>"
+                         "<th>latest</th><th class='opt'>median</th><th>reference band</th>"
+                         "<th>unit</th><th>state</th></tr></thead><tbody>")
             for m in rig.measures:
-                rng = (f"{_num(m.low).strip()} &ndash; {_num(m.high).strip()}"
-                       if m.low is not None else "&ndash;")
-                parts.append(f"<tr class='{m.state}'><td>{m.measure}</td><td>{m.channel}</td>"
-                             f"<td class='num'>{_num(m.latest).strip()}</td>"
-                             f"<td class='num'>{_num(m.median).strip()}</td>"
-                             f"<td class='num'>{rng}</td><td>{html.escape(m.unit)}</td>"
-                             f"<td>{m.state}</td></tr>")
+                unit, k = _line_unit(m)
+                rng = (f"{_num(_times(m.low, k)).strip()} &ndash; "
+                       f"{_num(_times(m.high, k)).strip()}" if m.low is not None else "&ndash;")
+                info = MEASURES.get(m.measure)
+                label = html.escape(info.label if info else m.measure)
+                parts.append(f"<tr class='{m.state}'><td title='{m.measure}'>{label}</td>"
+                             f"<td>{m.channel}</td>"
+                             f"<td class='num'>{_num(_times(m.latest, k)).strip()}</td>"
+                             f"<td class='num opt'>{_num(_times(m.median, k)).strip()}</td>"
+                             f"<td class='num'>{rng}</td><td>{html.escape(pretty_unit(unit))}"
+                             f"</td><td class='state'>{m.state}</td></tr>")
             parts.append("</tbody></table>")
         img = _trend_image(rig, r.generated_at, r.since)
         if img:
@@ -759,6 +806,10 @@ def render_html(r: Report) -> str:
         parts.append(_files_table(rig))
         parts.append("</section>")
     return page("qcd morning report", "".join(parts))
+
+
+def _anchor(rig: str) -> str:
+    return "rig-" + re.sub(r"[^A-Za-z0-9_.-]", "-", rig)
 
 
 def _files_table(rig: RigReport) -> str:

@@ -8,7 +8,7 @@ from __future__ import annotations
 import re
 
 __all__ = ["FACTORS", "DIMENSION", "DISPLAY", "to_si", "from_si", "parse_quantity",
-           "channel_quantity", "readable"]
+           "channel_quantity", "readable", "readable_unit", "pretty_unit"]
 
 # ASCII unit -> factor to SI. Dimension names are SI base spellings.
 FACTORS: dict[str, float] = {
@@ -114,7 +114,32 @@ def channel_quantity(unit: str) -> tuple[str, float]:
 _LADDER = {"A": ("fA", "pA", "nA", "uA", "mA", "A"), "V": ("uV", "mV", "V"),
            "Ohm": ("Ohm", "kOhm", "MOhm", "GOhm"), "F": ("pF", "nF", "F"),
            "A/s": ("pA/min", "nA/min"), "V/s": ("uV/min", "mV/min", "V/min")}
-_PRETTY = (("Ohm", "\u03a9"), ("u", "\u00b5"))
+
+
+def readable_unit(value: float | None, unit: str) -> tuple[str, float]:
+    """(unit, factor): the unit of ``unit``'s dimension that puts ``value`` between 1 and 1000
+    (``value * factor`` is in it); ``(unit, 1.0)`` when the dimension has no ladder."""
+    import math
+    try:
+        canon = _canonical(unit)
+    except ValueError:
+        return unit, 1.0
+    ladder = _LADDER.get(DIMENSION.get(canon, ""))
+    if not ladder or value is None or isinstance(value, bool) or not math.isfinite(value) \
+            or value == 0.0:
+        return unit, 1.0
+    si = float(value) * FACTORS[canon]
+    pick = ladder[0]
+    for u in ladder:
+        if abs(si) / FACTORS[u] >= 1.0 - 1e-12:
+            pick = u
+    return pick, FACTORS[canon] / FACTORS[pick]
+
+
+def pretty_unit(unit: str) -> str:
+    """The symbols people read: 'uV' -> '\u00b5V', 'MOhm' -> 'M\u03a9' (ASCII stays in JSON)."""
+    unit = unit.replace("Ohm", "\u03a9")
+    return "\u00b5" + unit[1:] if unit.startswith("u") else unit
 
 
 def readable(value: float | None, unit: str, *, pretty: bool = False, digits: int = 3) -> str:
@@ -125,21 +150,6 @@ def readable(value: float | None, unit: str, *, pretty: bool = False, digits: in
     import math
     if value is None or isinstance(value, bool) or not math.isfinite(float(value)):
         return "-"
-    value = float(value)
-    try:
-        canon = _canonical(unit)
-    except ValueError:
-        canon = None
-    ladder = _LADDER.get(DIMENSION.get(canon, "")) if canon else None
-    if ladder and value != 0.0:
-        si = value * FACTORS[canon]
-        pick = ladder[0]
-        for u in ladder:
-            if abs(si) / FACTORS[u] >= 1.0 - 1e-12:
-                pick = u
-        value, unit = si / FACTORS[pick], pick
-    text = f"{value:.{digits}g}"
-    if pretty:
-        for a, b in _PRETTY:
-            unit = unit.replace(a, b) if a != "u" or unit.startswith("u") else unit
-    return f"{text} {unit}".strip()
+    unit, factor = readable_unit(float(value), unit)
+    text = f"{float(value) * factor:.{digits}g}"
+    return f"{text} {pretty_unit(unit) if pretty else unit}".strip()
