@@ -334,6 +334,20 @@ def render_compare_text(c: Comparison) -> str:
     return "\n".join(head + lines[1:])
 
 
+def _row_class(ch: Change) -> str:
+    """Noise and hum are better lower: a clear fall is shaded as an improvement ('better'),
+    a clear rise like an alarm ('sig')."""
+    if not ch.significant:
+        return ""
+    return "better" if ch.change_db < 0 else "sig"
+
+
+def _verdict(ch: Change) -> str:
+    if not ch.significant:
+        return "no"
+    return "yes, lower (better)" if ch.change_db < 0 else "yes, higher (worse)"
+
+
 def render_compare_html(c: Comparison) -> str:
     """One self-contained HTML page: the two spectra overlaid, and the table."""
     img = spectra_figure(
@@ -342,10 +356,10 @@ def render_compare_html(c: Comparison) -> str:
         unit=c.before.unit, line_hz=c.before.line_hz,
         title=f"baseline spectra before and after, channel {c.channel}")
     rows = "".join(
-        f"<tr class='{'sig' if ch.significant else ''}'><td>{html.escape(ch.label)}</td>"
+        f"<tr class='{_row_class(ch)}'><td>{html.escape(ch.label)}</td>"
         f"<td>{_fmt(ch.before)}</td><td>{_fmt(ch.after)}</td><td>{_fmt(ch.change)}</td>"
         f"<td>{_db(ch.change_db)}</td>"
-        f"<td>{_db(ch.se_db, '.2f')}</td><td>{'yes' if ch.significant else 'no'}</td></tr>"
+        f"<td>{_db(ch.se_db, '.2f')}</td><td>{_verdict(ch)}</td></tr>"
         for ch in c.changes)
     safety = (f"<p class='safety'>{html.escape(c.safety_note)}</p>" if c.safety_note else "")
     shared = _shared_measures(c)

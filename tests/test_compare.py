@@ -98,6 +98,10 @@ def test_outputs_json_text_and_self_contained_html(tmp_path):
     page = render_compare_html(c)
     assert "data:image/png;base64," in page
     assert "http://" not in page and "https://" not in page
+    # the hum fell 12 dB: an improvement, shaded as one and not like an alarm
+    assert "<tr class='better'>" in page
+    assert page.count("<tr class='sig'>") == sum(x.significant and x.change_db > 0
+                                                  for x in c.changes)
 
 
 def test_cli_compare_json(tmp_path, capsys):
