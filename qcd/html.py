@@ -17,7 +17,7 @@ from typing import Any, Sequence
 import numpy as np
 
 __all__ = ["page", "figure_data_uri", "pyplot", "Panel", "trend_figure", "Curve",
-           "spectra_figure"]
+           "spectra_figure", "date_axis"]
 
 _CSS = """
 body{font:14px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;color:#1d2430;margin:0;
@@ -46,10 +46,13 @@ vertical-align:-1px;margin:0 5px 0 2px}.sw.band{background:rgba(74,157,91,.28)}
 .sw.period{background:rgba(153,153,153,.3);margin-left:8px}
 table.summary td:nth-child(4){min-width:14em}a{color:#2f5288}
 tr.better td{background:#eef7ef}
+.nw,td.state{white-space:nowrap}
+.trends{display:grid;grid-template-columns:1fr 1fr;gap:2px 8px}.trends img{margin:2px 0}
 @media (max-width:600px){main{padding:12px 10px 40px}h1{font-size:20px}
 section.rig{padding:12px 10px}h2{flex-wrap:wrap;gap:6px}
 table{font-size:12px}th,td{padding:3px 4px}.opt{display:none}
-td{overflow-wrap:anywhere}table.summary td:nth-child(4){min-width:0}}
+td.path{overflow-wrap:anywhere}table.summary td:nth-child(4){min-width:0}
+.trends{grid-template-columns:1fr}}
 """
 
 
@@ -100,12 +103,23 @@ class Panel:
     notes: Sequence[tuple[float, str]] = ()   # logbook notes (Unix seconds, text)
 
 
+def date_axis(ax: Any, zone: tzinfo) -> None:
+    """Date ticks in ``zone``: every label names its day ('Nov 13'); within a day hours, the
+    day named at midnight; so no two ticks carry the same label at any zoom."""
+    from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
+    loc = AutoDateLocator(minticks=3, maxticks=7, tz=zone, interval_multiples=False)
+    ax.xaxis.set_major_locator(loc)
+    ax.xaxis.set_major_formatter(ConciseDateFormatter(
+        loc, tz=zone, show_offset=False,
+        formats=["%Y", "%b %Y", "%b %d", "%b %d %H:%M", "%H:%M", "%H:%M:%S"],
+        zero_formats=["", "%Y", "%b %d", "%b %d", "%b %d %H:%M", "%H:%M"]))
+
+
 def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
                  zone: tzinfo | None = timezone.utc, zone_label: str = "UTC") -> str | None:
     """Trend plots two per row as one PNG data: URI; ``shade`` marks the report's period.
     Dates are shown in ``zone`` (None: this computer's), named ``zone_label`` on the axis;
     the date axis labels each tick once (days, then hours within a day when zoomed in)."""
-    from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
     if not panels:
         return None
     if zone is None:
@@ -113,12 +127,13 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
     def _utc(t: float) -> datetime:                # noqa: F811 - the zone of this figure
         return datetime.fromtimestamp(t, tz=zone)
     plt = pyplot()
-    ncol = 2
+    ncol = min(2, len(panels))
     nrow = math.ceil(len(panels) / ncol)
     height = 2.25 * nrow + 0.45
-    fig, axes = plt.subplots(nrow, ncol, figsize=(11.4, height), dpi=96, squeeze=False)
-    fig.subplots_adjust(left=0.065, right=0.99, top=1 - 0.3 / height, bottom=0.5 / height,
-                        hspace=0.5, wspace=0.14)
+    width = 5.7 * ncol
+    fig, axes = plt.subplots(nrow, ncol, figsize=(width, height), dpi=96, squeeze=False)
+    fig.subplots_adjust(left=0.75 / width, right=1 - 0.1 / width, top=1 - 0.3 / height,
+                        bottom=0.5 / height, hspace=0.5, wspace=0.14 * 2 / ncol)
     for ax, p in zip(axes.flat, panels):
         ts = [_utc(t) for t in p.times]
         vs = np.asarray(p.values, dtype=float)
@@ -146,9 +161,7 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
         ax.set_title(p.title, fontsize=9.5, loc="left")
         ax.set_ylabel(p.unit or "value", fontsize=9)
         ax.tick_params(labelsize=8)
-        loc = AutoDateLocator(minticks=3, maxticks=7, tz=zone)
-        ax.xaxis.set_major_locator(loc)
-        ax.xaxis.set_major_formatter(ConciseDateFormatter(loc, tz=zone))
+        date_axis(ax, zone)
         ax.grid(True, alpha=0.25)
         if p.log_axis and vs.size and np.all(vs > 0) and vs.max() / vs.min() > 20:
             ax.set_yscale("log")

@@ -37,7 +37,7 @@ __all__ = ["KEY_MEASURES", "MeasureLine", "Trend", "LatestSpectrum", "RigReport"
            "parse_since", "normal_range", "build_report", "render_text", "render_html",
            "trend_rows", "render_trend_text", "render_trend_csv", "sparkline", "AlertList",
            "build_alerts", "render_alerts", "note_line", "RigSummary", "summarize",
-           "summary_line", "alert_meaning", "reference_band", "BAND_TEXT"]
+           "summary_line", "alert_meaning", "reference_band", "BAND_TEXT", "short_hint"]
 
 # The measures the morning report shows, in this order, when a rig has them, and the ones plotted.
 KEY_MEASURES = shown("report")
@@ -221,7 +221,7 @@ def _measure_line(rows: list[tuple], measure: str, channel: int) -> MeasureLine:
 def _flag_text(fd: dict) -> str:
     """'seal_resistance 0.274 GOhm (gigaseal: below 1 GOhm)' for one bad finding."""
     v = fd.get("value")
-    value = f" {v:.3g} {fd.get('unit') or ''}".rstrip() if isinstance(v, (int, float)) else ""
+    value = f" {readable(v, fd.get('unit') or '')}" if isinstance(v, (int, float)) else ""
     limit = fd.get("limit_text") or ""
     limit = limit.split(";")[0] if fd.get("kind") != "limit" else limit
     return f"{fd.get('measure')}{value} ({fd.get('rule')}: {limit})" if limit else \
@@ -376,15 +376,27 @@ def alert_meaning(a: dict) -> str:
     return f"{label} {what}{where}".strip()
 
 
+def short_hint(hint: str) -> str:
+    """The check a hint suggests, in a few words: 'check the grounding' (the whole hint is in
+    the rig's section)."""
+    m = re.search(r"(?:^|[:;]\s*)check ([^;(.:]+)", hint)
+    if m:
+        return "check " + m.group(1).strip().rstrip(",")
+    return hint if len(hint) <= 80 else hint[:79].rstrip() + "\u2026"
+
+
 def summarize(rig: RigReport) -> RigSummary:
     """A rig's line of the summary: the worst of its open alerts (by severity), error files,
     flagged files and measures outside the normal band, in that order."""
     changes: list[str] = []
     sev = 0
+    said: set[tuple] = set()               # (measure, channel) already named by an alert
     for a in rig.open_alerts:
         d = a.get("details") or {}
         sev = max(sev, _SEVERITY.get(str(d.get("severity") or "warning"), 5))
-        changes.append(alert_meaning(a))
+        if (a.get("measure"), a.get("channel")) not in said:
+            changes.append(alert_meaning(a))
+        said.add((a.get("measure"), a.get("channel")))
     state = "alert" if rig.open_alerts else ""
     if rig.n_error:
         sev = max(sev, 3)
@@ -400,17 +412,18 @@ def summarize(rig: RigReport) -> RigSummary:
         sev = max(sev, 1)
         state = state or "out of normal"
         for m in moved:
+            if (m.measure, m.channel) in said:
+                continue
             info = MEASURES.get(m.measure)
             by = (f"{m.latest / m.median:.2g}x its median" if m.median and m.latest
                   and m.median > 0 and m.latest > 0 else f"{readable(m.latest, m.unit)}")
             name = f" ({m.channel_name})" if m.channel_name else ""
             text = (f"{info.label if info else m.measure} {m.state} ({by}), channel "
                     f"{m.channel}{name}")
-            if not any(text.split(" (")[0] in c for c in changes):
-                changes.append(text)
+            changes.append(text)
     if not state:
         state = "ok" if rig.n_files else "idle"
-    hint = rig.hints[0] if rig.hints else ""
+    hint = short_hint(rig.hints[0]) if rig.hints else ""
     return RigSummary(rig.rig, state, sev, tuple(dict.fromkeys(changes)), hint, rig.n_files)
 
 
@@ -522,9 +535,9 @@ def summary_line(sm: RigSummary) -> str:
 
 
 def _line_unit(m: MeasureLine) -> tuple[str, float]:
-    """A readable unit for a table row (from its median, else its latest value)."""
-    ref = m.median if m.median not in (None, 0.0) else m.latest
-    return readable_unit(ref, m.unit)
+    """A readable unit for a table row: the one its largest number reads best in."""
+    vals = [abs(v) for v in (m.latest, m.median, m.high) if v is not None and math.isfinite(v)]
+    return readable_unit(max(vals) if vals else None, m.unit)
 
 
 def _times(v: float | None, k: float) -> float | None:
@@ -696,20 +709,24 @@ def render_alerts(a: AlertList, *, secrets: Iterable[str] = (),
 
 # ----------------------------------------------------------------------------- HTML
 
-def _trend_image(rig: RigReport, now: float, since: float) -> str | None:
+def _trend_images(rig: RigReport, now: float, since: float) -> list[str]:
+    """One image per trend plot, so the page lays them out two per row on a wide screen and
+    one per row on a phone."""
     lines = {(m.measure, m.channel): m for m in rig.measures}
     panels = []
     for t in rig.trends:
         m = lines[(t.measure, t.channel)]
         info = MEASURES[t.measure]
         name = f" {t.channel_name}" if t.channel_name else ""
+        unit, k = _line_unit(m)                  # the table's readable unit
         panels.append(Panel(
-            f"{info.label} ({t.measure}, ch {t.channel}{name})", t.unit, [p[0] for p in t.points],
-            [p[1] for p in t.points], [p[2] for p in t.points],
-            (m.low, m.median, m.high) if m.low is not None else None, t.alerts_opened,
-            info.log_axis, tuple((n["at"], n["text"]) for n in rig.notes)))
-    return trend_figure(panels, shade=(since, now), zone=get_zone(rig.timezone),
-                        zone_label=rig.zone_label or "UTC")
+            f"{info.label} ({t.measure}, ch {t.channel}{name})", pretty_unit(unit),
+            [p[0] for p in t.points], [p[1] * k for p in t.points], [p[2] for p in t.points],
+            (m.low * k, m.median * k, m.high * k) if m.low is not None else None,
+            t.alerts_opened, info.log_axis, tuple((n["at"], n["text"]) for n in rig.notes)))
+    out = [trend_figure([p], shade=(since, now), zone=get_zone(rig.timezone),
+                        zone_label=rig.zone_label or "UTC") for p in panels]
+    return [u for u in out if u]
 
 
 def _spectrum_image(s: LatestSpectrum) -> str:
@@ -741,8 +758,8 @@ def render_html(r: Report) -> str:
             cls = "bad" if sm.severity >= 4 else "warn" if sm.severity >= 1 else ""
             what = "; ".join(sm.changes) or (f"{sm.n_files} file(s), nothing moved"
                                               if sm.n_files else "no files in the period")
-            rows.append(f"<tr><td class='num'>{i}</td><td><a href='#{_anchor(sm.rig)}'>"
-                        f"{html.escape(sm.rig)}</a></td><td><span class='pill {cls}'>"
+            rows.append(f"<tr><td class='num'>{i}</td><td class='nw'><a href='#{_anchor(sm.rig)}'>"
+                        f"{html.escape(sm.rig)}</a></td><td class='nw'><span class='pill {cls}'>"
                         f"{html.escape(sm.state)}</span></td><td>{html.escape(what)}</td>"
                         f"<td class='opt'>{html.escape(sm.hint)}</td></tr>")
         parts.append("<table class='summary'><thead><tr><th>#</th><th>rig</th><th>state</th>"
@@ -797,9 +814,11 @@ def render_html(r: Report) -> str:
                              f"<td class='num'>{rng}</td><td>{html.escape(pretty_unit(unit))}"
                              f"</td><td class='state'>{m.state}</td></tr>")
             parts.append("</tbody></table>")
-        img = _trend_image(rig, r.generated_at, r.since)
-        if img:
-            parts.append(f"<img alt='trends of {html.escape(rig.rig)}' src='{img}'>")
+        imgs = _trend_images(rig, r.generated_at, r.since)
+        if imgs:
+            parts.append("<div class='trends'>" + "".join(
+                f"<img alt='trend of {html.escape(rig.rig)}' src='{u}'>" for u in imgs)
+                + "</div>")
         if rig.spectrum is not None:
             parts.append(f"<img alt='latest spectrum of {html.escape(rig.rig)}' "
                          f"src='{_spectrum_image(rig.spectrum)}'>")
@@ -823,8 +842,11 @@ def _files_table(rig: RigReport) -> str:
                 ("<br>".join(html.escape(x) for x in f.get("flags") or ()) or "flagged")
                 if f.get("flagged") else "ok")
         rows.append(f"<tr class='{cls}'><td>{_when(_file_time(f), rig.timezone)}</td>"
-                    f"<td>{html.escape(_short(f.get('path'), 70))}</td>"
-                    f"<td>{html.escape(str(f.get('mode') or ''))}</td><td>{flag}</td></tr>")
-    table = ("<table><thead><tr><th>recorded</th><th>file</th><th>mode</th><th>flags</th>"
+                    f"<td class='path' title='{html.escape(str(f.get('path') or ''))}'>"
+                    f"{html.escape(_name(f.get('path')))}</td>"
+                    f"<td class='opt'>{html.escape(str(f.get('mode') or ''))}</td>"
+                    f"<td>{flag}</td></tr>")
+    table = ("<table class='files'><thead><tr><th>recorded</th><th>file</th>"
+             "<th class='opt'>mode</th><th>flags</th>"
              "</tr></thead><tbody>" + "".join(rows) + "</tbody></table>")
     return f"<details open><summary>files of the period ({len(rig.files)})</summary>{table}</details>"

@@ -220,3 +220,25 @@ def test_high_or_low_is_the_judges_stored_flag_not_the_band(store):
     assert d["access_resistance"].state == "normal"
     a = {m.measure: m for m in {x.rig: x for x in r.rigs}["rig-a"].measures}
     assert a["access_resistance"].state == "high"          # flagged by access_high
+
+
+@pytest.mark.parametrize("hours", [3, 20, 50, 24 * 9, 24 * 30, 24 * 75])
+def test_the_date_axis_never_repeats_a_label(hours):
+    # matplotlib draws the ticks; every label it shows must differ from the others
+    from zoneinfo import ZoneInfo
+
+    from qcd.html import date_axis, pyplot
+    plt = pyplot()
+    zone = ZoneInfo("America/Los_Angeles")
+    t0 = datetime(2026, 10, 30, 5, 0, tzinfo=zone)     # spans the 2026-11-01 DST change
+    fig, ax = plt.subplots(figsize=(5.7, 2.7), dpi=96)
+    try:
+        ts = [datetime.fromtimestamp(t0.timestamp() + h * 3600.0 * hours / 40, tz=zone)
+              for h in range(41)]
+        ax.plot(ts, np.arange(41.0))
+        date_axis(ax, zone)
+        fig.canvas.draw()
+        labels = [x.get_text() for x in ax.get_xticklabels() if x.get_text()]
+        assert len(labels) >= 3 and len(set(labels)) == len(labels), labels
+    finally:
+        plt.close(fig)
