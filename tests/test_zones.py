@@ -110,3 +110,35 @@ def test_two_rigs_in_two_zones_share_one_report_in_local_time(tmp_path, store):
     assert got[0]["recorded_at_utc"] == "2026-11-01T00:00:00+00:00"
     assert got[0]["recorded_at_local"] == "2026-10-31T17:00:00-07:00"
     assert got[1]["recorded_at_local"] == "2026-11-02T17:00:00-08:00"
+
+
+def test_messages_give_times_in_the_rig_zone_with_the_zone_named():
+    from qcd import alerts
+    from qcd.ruleset import load_rules
+    opened = datetime(2026, 11, 3, 0, 0, tzinfo=timezone.utc).timestamp()   # 09:00 in Tokyo
+    key = "east|voltage_clamp|0|hum_rms|hum_jump"
+    states = {key: {"key": key, "rig": "east", "mode": "voltage_clamp", "channel": 0,
+                    "measure": "hum_rms", "rule": "hum_jump", "kind": "drift", "state": "open",
+                    "opened_at": opened, "announced": False, "value": 3.0, "unit": "pA"}}
+    _, (msg,) = alerts.tick(states, [], opened + 3600.0, load_rules().settings,
+                            zones={"east": TOKYO})
+    assert "open since 2026-11-03 09:00 JST" in msg.body        # zoneinfo: Tokyo is UTC+9
+    _, (msg,) = alerts.tick(states, [], opened + 3600.0, load_rules().settings)
+    assert "open since 2026-11-03 00:00 UTC" in msg.body        # a rig of no known zone: UTC
+
+
+def test_alerts_and_status_show_each_rigs_local_time(store):
+    from qcd.report import build_alerts, render_alerts
+    from qcd.status import format_status, status
+    opened = datetime(2026, 11, 3, 0, 0, tzinfo=timezone.utc).timestamp()
+    for rig in ("west", "east"):
+        store.commit_alerts([{"key": f"{rig}|voltage_clamp|0|hum_rms|hum_jump", "rig": rig,
+                              "mode": "voltage_clamp", "channel": 0, "measure": "hum_rms",
+                              "rule": "hum_jump", "state": "open", "opened_at": opened,
+                              "resolved_at": None, "announced": True}], now=opened)
+    zones = {"west": LA, "east": TOKYO}
+    text = render_alerts(build_alerts(store, opened + 60, days=7), zones=zones)
+    # zoneinfo: 00:00 UTC is 16:00 the day before in Los Angeles (PST), 09:00 in Tokyo
+    assert "2026-11-02 16:00 PST" in text and "2026-11-03 09:00 JST" in text
+    text = format_status(status(store, opened + 60, host="h"), opened + 60, zones=zones)
+    assert "since 2026-11-02 16:00 PST" in text and "since 2026-11-03 09:00 JST" in text
