@@ -14,6 +14,7 @@ import pytest
 import references as ref
 import stored
 from qcd import demo, synth
+from qcd.units import to_si
 
 
 def test_cell_model_equals_the_closed_form_reference():
@@ -205,8 +206,10 @@ def test_messages_went_through_apprise_to_the_log_and_the_report_matches_the_sto
     log = result.alerts_log.read_text(encoding="utf-8")
     assert log.count("--- ") == store.outbox_counts()["sent"]
     latest = store.measure_series("field-1", "hum_rms", channel=0)[-1]
-    line = next(ln for ln in result.report_text.splitlines() if ln.strip().startswith("hum_rms"))
-    assert float(line.split()[2]) == pytest.approx(latest[1], rel=5e-3)   # 3 digits shown
+    section = result.report_text.split("== field-1")[1].split("\n== ")[0]   # rigs: worst first
+    line = next(ln for ln in section.splitlines() if ln.strip().startswith("hum_rms"))
+    shown, unit = float(line.split()[2]), line.split()[-2]       # in a readable unit
+    assert to_si(shown, unit) == pytest.approx(to_si(latest[1], latest[2]), rel=5e-3)
     assert "HTML report:" in text and result.html.is_file()
 
 
@@ -226,7 +229,8 @@ def test_demo_html_report_is_self_contained(lab):
                 refs.append(a)
     P().feed(page)
     assert len(srcs) >= 8 and all(s.startswith("data:image/png;base64,") for s in srcs)
-    assert not refs and "http://" not in page and "https://" not in page
+    assert all(a.get("href", "").startswith("#") for a in refs)      # in-page links only
+    assert "http://" not in page and "https://" not in page
 
 
 def test_committed_sample_is_what_qcd_demo_writes(tmp_path):
@@ -299,7 +303,8 @@ def test_morning_report_and_first_alert_name_each_scripted_source(lab):
 
     seal, msg = rigs["patch-3"], first["patch-3"]
     assert any(a["rule"] == "gigaseal" for a in seal.open_alerts)
-    assert "seal_resistance / gigaseal" in text["patch-3"]
+    assert "seal resistance below 1 GOhm, channel 0" in text["patch-3"]
+    assert "(rule gigaseal)" in text["patch-3"]
     assert any("gigaseal: below 1 GOhm" in flag for f in seal.files for flag in f["flags"])
     assert not seal.hints and seal.safety_note is None
     assert "seal_resistance" in msg["title"] and "below 1 GOhm" in msg["title"]
