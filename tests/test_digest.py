@@ -186,3 +186,19 @@ def test_a_bad_digest_time_is_refused_naming_the_key(tmp_path):
     from qcd.errors import ConfigError
     with pytest.raises(ConfigError, match=r"digest\.at.*HH:MM"):
         _config(tmp_path, [], at="7.30")
+
+
+def test_digest_now_sends_one_by_hand_that_does_not_replace_the_days(tmp_path, http_sink,
+                                                                      capsys):
+    from qcd.cli import main
+    cfg = _config(tmp_path, [http_sink.url])
+    with Store(cfg.database) as store:
+        _fill(store, 3)
+    assert main(["digest", "--now", "--config", str(cfg.path)]) == 0
+    (got,) = http_sink.wait_for(1)
+    assert got["title"].startswith("qcd daily report ") and got["attachments"]
+    assert "sent: 1 message(s)" in capsys.readouterr().out
+    with Store(cfg.database) as store:
+        row = store.last_outbox(digest.KIND)
+        assert row["alert_key"].startswith("daily-report-by-hand|") and row["status"] == "sent"
+    assert main(["digest", "--config", str(cfg.path)]) == 2       # --now or --dry-run
