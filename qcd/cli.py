@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from qcd import __version__
-from qcd.errors import ConfigError, QcdError
+from qcd.errors import ConfigError, QcdError, printable
 
 if TYPE_CHECKING:
     from qcd.results import FileMeasures, Measure
@@ -340,7 +340,7 @@ def _cmd_scan(args: argparse.Namespace) -> int:
 
         def said(fm) -> None:
             what = "ok" if fm.status == "ok" else f"error ({fm.error_kind}): {fm.error}"
-            print(f"stored  {fm.path}  {what}", flush=True)
+            print(printable(f"stored  {fm.path}  {what}"), flush=True)
         with Store(cfg.database) as store:
             res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
                        workers=args.workers)
@@ -383,7 +383,7 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             if args.json:
                 print(json.dumps(fm.to_json()), flush=True)
             else:
-                print(_scan_row(fm, width, args.mains), flush=True)
+                print(printable(_scan_row(fm, width, args.mains)), flush=True)
             if progress and i < len(files):
                 print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
                       file=sys.stderr, flush=True)

@@ -26,7 +26,7 @@ from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
 from qcd.alerts import Message, Mute
-from qcd.errors import StoreError
+from qcd.errors import StoreError, path_bytes, printable
 from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum, file_time
 
 if TYPE_CHECKING:
@@ -158,6 +158,18 @@ def _m004_notes(db: Database) -> None:
         kind TEXT NOT NULL DEFAULT 'note',   -- 'note' (qcd note) or what wrote it ('relearn')
         created_at REAL NOT NULL)""")
     db.execute("CREATE INDEX notes_rig_at ON notes (rig, at)")
+
+
+@MIGRATIONS(name="m006_path_bytes")
+def _m006_path_bytes(db: Database) -> None:
+    """A file name that is not valid UTF-8 kept exactly: files.path holds it shown escaped
+    (``caf\\xe9.abf``), files.path_bytes its bytes (NULL for every valid name)."""
+    db.execute("ALTER TABLE files ADD COLUMN path_bytes BLOB")
+
+
+def _path_key(path: Any) -> tuple[str, bytes | None]:
+    """(text stored in files.path, bytes stored in files.path_bytes) of a path."""
+    return printable(path), path_bytes(path)
 
 
 @dataclass(frozen=True)
@@ -376,10 +388,18 @@ class Store:
 
     def file_state(self, rig: str, path: Path | str) -> FileState | None:
         """The latest non-superseded row of ``rig``/``path``, or None."""
+        text, raw = _path_key(path)
         row = self._one("SELECT id, size, mtime, sha256, status FROM files WHERE rig = ? AND "
-                        "path = ? AND superseded = 0 ORDER BY id DESC LIMIT 1",
-                        (rig, os.fspath(path)))
+                        "path = ? AND path_bytes IS ? AND superseded = 0 ORDER BY id DESC "
+                        "LIMIT 1", (rig, text, raw))
         return FileState(*row) if row else None
+
+    def file_bytes(self, file_id: int) -> bytes | None:
+        """The exact file-system name of a stored file (its path as bytes), or None."""
+        row = self._one("SELECT path, path_bytes FROM files WHERE id = ?", (file_id,))
+        if row is None:
+            return None
+        return bytes(row[1]) if row[1] is not None else os.fsencode(row[0])
 
     # --- history for the judge ----------------------------------------------------------------
 
@@ -447,7 +467,7 @@ class Store:
         alert_states = list(alert_states)
         messages = list(messages)
         any_bad, named = _bad_targets(findings)
-        path = os.fspath(fm.path)
+        path, raw = _path_key(fm.path)
         with self._write() as conn:
             replaces: list[int] = []
             if fm.sha256:
@@ -459,10 +479,12 @@ class Store:
                         return int(row[0])
                     replaces.append(int(row[0]))
             conn.execute("UPDATE files SET superseded = 1 WHERE rig = ? AND path = ? AND "
-                         "superseded = 0", (rig, path))
+                         "path_bytes IS ? AND superseded = 0", (rig, path, raw))
             for old in replaces:
                 conn.execute("UPDATE files SET superseded = 1 WHERE id = ?", (old,))
             file_id = self._insert_file(conn, rig, fm, path, analysed_at, any_bad)
+            if raw is not None:
+                conn.execute("UPDATE files SET path_bytes = ? WHERE id = ?", (raw, file_id))
             for ch in fm.channels:
                 self._insert_channel(conn, file_id, ch, named)
             for f in findings:
@@ -488,10 +510,12 @@ class Store:
             "gap_free, notes, extra, flagged, superseded) "
             "VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,0)",
             (rig, path, _plain(fm.size), _plain(fm.mtime), fm.sha256, recorded_at, source,
-             float(analysed_at), fm.status, fm.error_kind, fm.error, fm.mode, fm.format,
+             float(analysed_at), fm.status, fm.error_kind,
+             None if fm.error is None else printable(fm.error), fm.mode, fm.format,
              _plain(fm.fs_hz), _plain(fm.duration_s), _plain(fm.n_sweeps),
              None if fm.gap_free is None else int(bool(fm.gap_free)),
-             _dumps(list(fm.notes)), _dumps(fm.extra or {}), int(flagged)))
+             _dumps([printable(n) if isinstance(n, str) else n for n in fm.notes]),
+             _dumps(fm.extra or {}), int(flagged)))
         return int(cur.lastrowid)
 
     @staticmethod
@@ -541,7 +565,7 @@ class Store:
                 "resolved_at = excluded.resolved_at, announced = excluded.announced",
                 (str(st["key"]), st.get("rig"), st.get("mode"),
                  None if ch is None else int(ch), st.get("measure"), st.get("rule"),
-                 st.get("state"), _dumps(st), _real(st.get("opened_at")),
+                 st.get("state"), _dumps(_printable_path(st)), _real(st.get("opened_at")),
                  float(now), _real(st.get("resolved_at")),
                  int(announced) if isinstance(announced, (bool, int)) else
                  (None if announced is None else int(bool(announced)))))
@@ -553,8 +577,9 @@ class Store:
                 "INSERT OR IGNORE INTO outbox (alert_key, transition, kind, priority, rig, title, "
                 "body, created_at, status, attempts, next_at) "
                 "VALUES (?,?,?,?,?,?,?,?,'pending',0,?)",
-                (m.alert_key, int(m.transition), m.kind, int(m.priority), m.rig, m.title,
-                 m.body, float(now), float(now)))
+                (m.alert_key, int(m.transition), m.kind, int(m.priority), m.rig,
+                 None if m.title is None else printable(m.title),
+                 None if m.body is None else printable(m.body), float(now), float(now)))
 
     def commit_alerts(self, alert_states: Iterable[dict] = (), messages: Iterable[Message] = (),
                       *, now: float | None = None) -> None:
@@ -816,6 +841,14 @@ class Store:
             gap_free=None if f["gap_free"] is None else bool(f["gap_free"]), recorded_at=recorded,
             size=f["size"], mtime=f["mtime"], sha256=f["sha256"], channels=channels,
             notes=tuple(json.loads(f["notes"])), extra=json.loads(f["extra"]))
+
+
+def _printable_path(st: dict) -> dict:
+    """An alert state whose file path is shown escaped when its name is not UTF-8."""
+    p = st.get("path")
+    if isinstance(p, str) and path_bytes(p) is not None:
+        return {**st, "path": printable(p)}
+    return st
 
 
 def _alert_row(r: dict[str, Any]) -> dict[str, Any]:

@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from qcd import pipeline
+from qcd.errors import printable
 from qcd.intake import (GaveUp, Hint, Intake, Ready, is_candidate_name, is_network_path,
                         scan_folder, _FolderWatch)
 from qcd.workers import Jobs, default_workers
@@ -359,7 +360,7 @@ class Service:
         else:
             self.counts["errors"] += 1
             log.warning("%s", fm.error or f"{r.path}: error")
-        self._last_file[r.rig] = {"path": os.fspath(r.path), "at": now,
+        self._last_file[r.rig] = {"path": printable(r.path), "at": now,
                                   "status": fm.status}
 
     def _give_up(self, g: GaveUp, now: float) -> None:
@@ -372,7 +373,7 @@ class Service:
                                  mtime=g.mtime if g.mtime >= 0 else None)
         try:
             self._call_commit(fm, self._rigs[g.rig], now, (g.rig, g.path) in self._backlog_keys)
-            self._last_file[g.rig] = {"path": os.fspath(g.path), "at": now, "status": "error"}
+            self._last_file[g.rig] = {"path": printable(g.path), "at": now, "status": "error"}
             self._backlog_done(Ready(g.rig, g.path, g.size, g.mtime, False))
         except Exception:
             log.exception("storing the never_settled error of %s", g.path)
@@ -438,7 +439,8 @@ def setup_logging(database: Path, *, debug: bool = False, max_bytes: int = 5 << 
     path = Path(database).parent / LOG_NAME
     path.parent.mkdir(parents=True, exist_ok=True)
     handler = logging.handlers.RotatingFileHandler(path, maxBytes=max_bytes,
-                                                   backupCount=backups, encoding="utf-8")
+                                                   backupCount=backups, encoding="utf-8",
+                                                   errors="backslashreplace")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
     root = logging.getLogger("qcd")
     root.addHandler(handler)

@@ -1,0 +1,127 @@
+"""What labs' machines do to a service: odd file names, slow targets, preallocated copies,
+identical files, relative paths, permissions fixed later, two services on one database, broken
+or read-only databases, full disks, user errors. Each test reproduces the failure first.
+
+Real folders, a real SQLite file, real watchdog events; network only on 127.0.0.1, bounded.
+"""
+from __future__ import annotations
+
+import contextlib
+import os
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from qcd import pipeline
+from qcd.config import Config, RigConfig
+from qcd.ruleset import load_rules
+from qcd.store import Store
+from qcd.watch import Service
+
+RIG = "rig-a"
+
+
+def wait_until(cond, timeout: float, step=None, interval: float = 0.02):
+    deadline = time.monotonic() + timeout
+    while True:
+        if step is not None:
+            step()
+        if cond():
+            return
+        if time.monotonic() > deadline:
+            raise AssertionError(f"condition not met within {timeout} s")
+        time.sleep(interval)
+
+
+def _config(tmp_path: Path, folders, *, settle_s=0.3, give_up_h=1.0) -> Config:
+    return Config(path=None, database=tmp_path / "qcd.sqlite", rules=(), settle_seconds=settle_s,
+                  give_up_hours=give_up_h,
+                  rigs=(RigConfig(RIG, tuple(folders), patterns=("*.abf",)),))
+
+
+class Recorder:
+    def __init__(self, store: Store) -> None:
+        self.store, self.committed, self.rules = store, [], load_rules()
+
+    def commit(self, fm, rig, now):
+        self.committed.append(fm)
+        return pipeline.commit(fm, rig, self.store, self.rules, now)
+
+
+@contextlib.contextmanager
+def _running(cfg, store, **kw):
+    rec = Recorder(store)
+    kw.setdefault("workers", 0)
+    svc = Service(cfg, store, commit=rec.commit, poll_s=0.02, folder_check_s=0.2,
+                  progress_tty=False, **kw)
+    svc.start(time.time())
+    try:
+        yield svc, rec, lambda: svc.step(time.time())
+    finally:
+        svc.close()
+
+
+def _tiny_abf(path, seed: int) -> None:
+    """A small, distinct ABF1 file written with pyabf's own writer."""
+    import pyabf.abfWriter
+    rng = np.random.default_rng(seed)
+    sweeps = rng.normal(0.0, 5.0, size=(1, 2000)).astype(np.float32)
+    pyabf.abfWriter.writeABF1(sweeps, os.fsdecode(path), 10000.0, units="pA")
+
+
+def _toml(tmp_path: Path, folder: Path, extra: str = "") -> Path:
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "qcd.sqlite"\nsettle_seconds = 0.3\n{extra}\n[[rig]]\n'
+                   f'name = "{RIG}"\nfolders = ["{folder.as_posix()}"]\n')
+    return cfg
+
+
+def _idle(step, seconds: float) -> None:
+    end = time.monotonic() + seconds
+    while time.monotonic() < end:
+        step()
+        time.sleep(0.02)
+
+
+# ---------------------------------------------------------------- 1. names that are not UTF-8
+
+needs_bytes_names = pytest.mark.skipif(sys.platform == "win32" or sys.platform == "darwin",
+                                       reason="this file system takes only valid Unicode names")
+
+
+@needs_bytes_names
+def test_a_name_that_is_not_utf8_is_stored_losslessly_and_not_measured_again(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    raw = os.fsencode(folder) + b"/caf\xe9.abf"     # a legacy (Latin-1) encoded name
+    _tiny_abf(raw, 1)
+    _tiny_abf(folder / "plain.abf", 2)
+    cfg = _config(tmp_path, [folder])
+    with _running(cfg, store) as (svc, rec, step):
+        wait_until(lambda: len(rec.committed) == 2, 20.0, step)
+    rows = {r["path"]: r for r in store.files(rig=RIG)}
+    shown = os.fspath(folder) + "/caf\\xe9.abf"      # shown escaped, printable everywhere
+    assert shown in rows and rows[shown]["status"] == "ok"
+    assert store.file_bytes(rows[shown]["id"]) == raw              # the name kept exactly
+    # the next start finds it stored: nothing is measured again
+    with _running(cfg, store) as (svc, rec, step):
+        _idle(step, 1.0)
+        assert rec.committed == []
+
+
+@needs_bytes_names
+def test_scan_store_takes_a_name_that_is_not_utf8(tmp_path, capsys):
+    from qcd.cli import main
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    _tiny_abf(os.fsencode(folder) + b"/\xff\xfe.abf", 3)
+    db = tmp_path / "qcd.sqlite"
+    cfg = _toml(tmp_path, folder)
+    code = main(["scan", "--store", "--config", str(cfg), "--rig", RIG, str(folder)])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    with Store(db) as st:
+        assert [r["path"] for r in st.files()] == [os.fspath(folder) + "/\\xff\\xfe.abf"]
