@@ -130,12 +130,17 @@ class Service:
         self.progress = _Progress(tty=sys.stderr.isatty() if progress_tty is None
                                   else progress_tty)
         self._backlog_keys: set[tuple[str, Path]] = set()
+        self._now = 0.0                     # the clock of the last step (the courier's clock)
+        self._courier: Any = None
 
     # -- lifecycle
 
     def start(self, now: float) -> None:
         """Start observers, then queue every file not yet stored (oldest first)."""
-        self._started_at = now
+        self._started_at = self._now = now
+        if self.sender is not None and self._courier is None:
+            from qcd.notify import Courier     # delivery off the measuring path
+            self._courier = Courier(self.store, self.sender, lambda: self._now).start()
         for fw in self._folders:
             fw.ensure()
         self._last_folder_check = now
@@ -155,6 +160,11 @@ class Service:
         for fw in self._folders:
             fw.stop()
         self._jobs.close()                   # abandon a long measurement: restart re-measures
+        if self._courier is not None:        # a send under way is not waited for long
+            if not self._courier.stop(wait_s=2.0):
+                log.warning("stopping while a notification is being sent; an unmarked "
+                            "message is sent again at the next start")
+            self._courier = None
         try:
             self._heartbeat(time.time() if now is None else now, stopped=True)
         except Exception:
@@ -195,6 +205,7 @@ class Service:
 
         Returns True when there is more work right away (the loop then skips its wait).
         """
+        self._now = max(self._now, now)
         self._drain_events(now)
         if now - self._last_folder_check >= self.folder_check_s:
             self._last_folder_check = now
@@ -215,11 +226,8 @@ class Service:
             self._submit(r, now)
         busy |= self._collect(now)
         self._flush_digest(now)
-        if self.sender is not None:
-            try:
-                self._deliver_due(now)
-            except Exception:
-                log.exception("delivering notifications")
+        if self._courier is not None and busy:
+            self._courier.wake()              # new messages may be queued
         if self._tick is not None and now - self._last_tick >= self.tick_s:
             self._last_tick = now             # mutes that ended with their alert still open
             try:
@@ -243,10 +251,6 @@ class Service:
             self._jobs.wait(self.poll_s)
         else:
             self.stop_event.wait(self.poll_s)
-
-    def _deliver_due(self, now: float) -> None:
-        from qcd import notify
-        notify.deliver_due(self.store, self.sender, now)
 
     def queue_len(self) -> int:
         return len(self.intake) + len(self._jobs)

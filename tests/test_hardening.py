@@ -125,3 +125,65 @@ def test_scan_store_takes_a_name_that_is_not_utf8(tmp_path, capsys):
     assert code == 0, out.err
     with Store(db) as st:
         assert [r["path"] for r in st.files()] == [os.fspath(folder) + "/\\xff\\xfe.abf"]
+
+
+# ---------------------------------------------------------------- 2. a slow notification target
+
+def _queue_message(store: Store, n: int, now: float) -> None:
+    from qcd.alerts import Message
+    store.commit_alerts(messages=[Message(f"k{i}", 1, "firing", 2, RIG, f"title {i}", "body")
+                                  for i in range(n)], now=now)
+
+
+def test_a_trickling_target_costs_one_deadline_and_gets_the_message_once(store):
+    from sinks import HttpSink
+    from qcd.notify import Sender, deliver_due
+    # the answer takes 41 bytes x 0.1 s = 4 s, one byte at a time: no per-read timeout fires
+    sink = HttpSink(trickle_s=0.1).start()
+    try:
+        sender = Sender([sink.url], attempt_s=1.0)
+        _queue_message(store, 1, 1000.0)
+        t0 = time.monotonic()
+        d = deliver_due(store, sender, 1001.0)
+        took = time.monotonic() - t0
+        assert d.retried == 1 and d.sent == 0
+        assert took < 2.0                       # the deadline, not the target, sets the cost
+        assert "no answer within 1 s" in outbox_error(store)
+        wait_until(lambda: sender._late[(1, 0)].done.is_set(), 10.0)
+        # the late attempt ended in success: counted as accepted, not sent again
+        d = deliver_due(store, sender, 5000.0)
+        assert d.sent == 1
+        assert sink.attempts == 1 and len(sink.received) == 1
+    finally:
+        sink.stop()
+
+
+def outbox_error(store: Store) -> str:
+    return store._rows("SELECT last_error FROM outbox")[0]["last_error"] or ""
+
+
+@pytest.mark.slow
+def test_a_hung_target_neither_slows_measuring_nor_holds_up_stopping(tmp_path, store):
+    from sinks import HttpSink
+    from qcd.notify import Sender
+    sink = HttpSink(trickle_s=2.0).start()   # 41 bytes x 2 s: an answer that takes 80 s
+    try:
+        folder = tmp_path / "rig"
+        folder.mkdir()
+        _queue_message(store, 3, time.time() - 10)
+        cfg = _config(tmp_path, [folder])
+        with _running(cfg, store, sender=Sender([sink.url], attempt_s=30.0)) as (svc, rec,
+                                                                                step):
+            wait_until(lambda: sink.attempts >= 1, 10.0, step)   # a send is under way
+            t0 = time.monotonic()
+            for i in range(10):
+                _tiny_abf(folder / f"f{i}.abf", 100 + i)
+            wait_until(lambda: len(rec.committed) == 10, 15.0, step)
+            stored_in = time.monotonic() - t0
+            t1 = time.monotonic()
+        stopped_in = time.monotonic() - t1
+        assert stored_in < 10.0
+        assert stopped_in < 4.0                  # stop waits 2 s at most for the courier
+        assert store.outbox_counts()["sent"] == 0
+    finally:
+        sink.stop()
