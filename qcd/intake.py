@@ -72,6 +72,9 @@ def read_header(path: Path, size: int) -> tuple[str | None, Recording | None]:
     """
     if size == 0:
         return "empty so far", None
+    why = _preallocated(path, size)
+    if why is not None:
+        return why, None
     from qcd.recording import not_finished, open_recording
     try:
         why = not_finished(path, size)        # HDF5: superblock end-of-file address vs size
@@ -86,6 +89,33 @@ def read_header(path: Path, size: int) -> tuple[str | None, Recording | None]:
         return None, None
     except Exception:                         # the pipeline will record what is wrong
         return None, None
+
+
+# Copy tools and some acquisition programs set a file's final size first and fill it in later:
+# until then the header (the first block) or the end of the data is all zeros. Real
+# recordings end in at most one 512-byte block of padding zeros (every file of the sample set),
+# so 4 KiB and more of zeros at the end mean the data is not there yet. Such a file waits (up
+# to give_up_hours, after which it is measured as it is).
+_HEAD_BYTES = 512
+_ZERO_TAIL_BYTES = 4096
+
+
+def _preallocated(path: Path, size: int) -> str | None:
+    """Why the file looks set aside but not yet written (blank header, zeros at its end)."""
+    try:
+        with open(path, "rb") as f:
+            head = f.read(min(size, _HEAD_BYTES))
+            if head and not head.strip(b"\0"):
+                return "the header is all zeros so far (space set aside, not written yet)"
+            tail = min(4 * _ZERO_TAIL_BYTES, size // 2)
+            if tail >= _ZERO_TAIL_BYTES:
+                f.seek(size - tail)
+                if not f.read(tail).strip(b"\0"):
+                    return (f"the last {tail} bytes are all zeros so far (space set aside, "
+                            f"data not written yet)")
+    except OSError:
+        return None                           # the pipeline stores why it cannot be read
+    return None
 
 
 def header_fits(path: Path, size: int) -> str | None:

@@ -187,3 +187,30 @@ def test_a_hung_target_neither_slows_measuring_nor_holds_up_stopping(tmp_path, s
         assert store.outbox_counts()["sent"] == 0
     finally:
         sink.stop()
+
+
+# ---------------------------------------------------------------- 3. preallocated files
+
+@pytest.mark.parametrize("written", [0, 8192])
+def test_a_preallocated_file_is_measured_only_when_its_data_is_there(tmp_path, store, written):
+    from conftest import abf
+    src = abf("vc_cell_step.abf").read_bytes()
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _config(tmp_path, [folder], settle_s=0.3)
+    with _running(cfg, store) as (svc, rec, step):
+        target = folder / "copy.abf"
+        with open(target, "wb") as f:
+            f.truncate(len(src))              # the final size first, as copy tools do
+            f.write(src[:written])            # then the header (or nothing) and a stall
+            f.flush()
+            _idle(step, 1.5)                  # five times the settle time
+            assert rec.committed == []        # neither an all-zero 'ok' row nor an error
+            f.write(src[written:])
+        wait_until(lambda: len(rec.committed) == 1, 15.0, step)
+    fm = rec.committed[0]
+    assert fm.status == "ok"
+    reference = pipeline.measure(abf("vc_cell_step.abf"), cfg.rigs[0])
+    # the same values as the original file measured on its own (measured twice, same code)
+    got = fm.channels[0].measures["noise_rms"].value
+    assert got == reference.channels[0].measures["noise_rms"].value and got > 0
