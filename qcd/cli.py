@@ -339,12 +339,13 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         files = _scan_files(list(args.paths))
 
         def said(fm) -> None:
-            what = "ok" if fm.status == "ok" else f"error ({fm.error_kind}): {fm.error}"
+            what = ("ok" if fm.status == "ok" else f"copy: {fm.error}" if fm.status == "skipped"
+                    else f"error ({fm.error_kind}): {fm.error}")
             print(printable(f"stored  {fm.path}  {what}"), flush=True)
         with Store(cfg.database) as store:
             res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
                        workers=args.workers)
-        failed = [fm for fm in res.files if fm.status != "ok"]
+        failed = [fm for fm in res.files if fm.status == "error"]
         print(f"qcd scan: rig {rig.name}: {len(res.files) - len(failed)} of {len(res.files)} "
               f"file(s) measured and stored" + _failed_text(failed))
         for a in res.opened:

@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
 from qcd import alerts
 from qcd.analyze import analyze_path
-from qcd.errors import StoreError
+from qcd.errors import StoreError, printable
 from qcd.judge import Finding, judge
 from qcd.results import ChannelMeasures, FileMeasures, file_time
 from qcd.workers import imap
@@ -192,6 +192,15 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
     With ``batch`` no message is queued per file (see ``flush_digest``).
     """
     name = rig.name
+    first = store.same_content(name, fm.sha256)
+    if first is not None and not (first["status"] == "error" and fm.status == "ok"):
+        # content already stored (a copy, or the same file touched): not judged again
+        store.commit_file(name, fm, analysed_at=now)
+        if first["status"] == "ok" and store.file_state(name, fm.path).id != first["id"]:
+            return replace(fm, status="skipped", error_kind=None,
+                           error=f"{printable(fm.path)}: same content as {first['path']}, "
+                                 f"not measured again")
+        return fm
     try:
         findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)

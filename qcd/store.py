@@ -394,6 +394,15 @@ class Store:
                         "LIMIT 1", (rig, text, raw))
         return FileState(*row) if row else None
 
+    def same_content(self, rig: str, sha256: str | None) -> dict[str, Any] | None:
+        """The current row (id, path, status) holding this content for the rig, or None."""
+        if not sha256:
+            return None
+        rows = self._rows("SELECT id, path, path_bytes, status FROM files WHERE rig = ? AND "
+                          "sha256 = ? AND superseded = 0 AND status != 'skipped' "
+                          "ORDER BY id DESC LIMIT 1", (rig, sha256))
+        return rows[0] if rows else None
+
     def file_bytes(self, file_id: int) -> bytes | None:
         """The exact file-system name of a stored file (its path as bytes), or None."""
         row = self._one("SELECT path, path_bytes FROM files WHERE id = ?", (file_id,))
@@ -458,10 +467,12 @@ class Store:
                     messages: Iterable[Message] = ()) -> int:
         """Store everything of one processed file in ONE transaction; returns the file id.
 
-        Content already stored for the rig (same sha256, current row) is not stored again:
-        the existing id is returned and nothing is written (unless the old row was an error
-        and this one is ok, which re-measures it). Otherwise an older row of the same
-        rig/path is marked superseded.
+        Content already stored for the rig (same sha256, current row) is not stored again
+        (unless the old row was an error and this one is ok, which re-measures it): for the
+        same path the row's size and mtime are brought up to date and its id returned; another
+        path gets a row of its own, status 'skipped' pointing to the first (``extra.same_as``,
+        no measures, so history counts the content once), or an error row like the first's.
+        Otherwise an older row of the same rig/path is marked superseded.
         """
         findings = list(findings)
         alert_states = list(alert_states)
@@ -471,13 +482,25 @@ class Store:
         with self._write() as conn:
             replaces: list[int] = []
             if fm.sha256:
+                same = conn.execute("SELECT id, status FROM files WHERE rig = ? AND sha256 = ? "
+                                    "AND path = ? AND path_bytes IS ? AND superseded = 0",
+                                    (rig, fm.sha256, path, raw)).fetchone()
+                if same is not None and not (same[1] == "error" and fm.status == "ok"):
+                    conn.execute("UPDATE files SET size = ?, mtime = ? WHERE id = ?",
+                                 (_plain(fm.size), _plain(fm.mtime), same[0]))
+                    return int(same[0])               # touched, or committed again
                 row = conn.execute("SELECT id, status FROM files WHERE rig = ? AND sha256 = ? "
-                                   "AND superseded = 0 ORDER BY id DESC LIMIT 1",
-                                   (rig, fm.sha256)).fetchone()
+                                   "AND superseded = 0 AND status != 'skipped' "
+                                   "ORDER BY id DESC LIMIT 1", (rig, fm.sha256)).fetchone()
                 if row is not None:
                     if not (row[1] == "error" and fm.status == "ok"):
-                        return int(row[0])
-                    replaces.append(int(row[0]))
+                        first = int(row[0])
+                        if row[1] == "ok":            # a copy: its own row, pointing to the first
+                            fm = _copy_of(fm, first, conn)
+                            findings, alert_states, messages, any_bad = [], [], [], False
+                            named = set()
+                    else:
+                        replaces.append(int(row[0]))
             conn.execute("UPDATE files SET superseded = 1 WHERE rig = ? AND path = ? AND "
                          "path_bytes IS ? AND superseded = 0", (rig, path, raw))
             for old in replaces:
@@ -841,6 +864,16 @@ class Store:
             gap_free=None if f["gap_free"] is None else bool(f["gap_free"]), recorded_at=recorded,
             size=f["size"], mtime=f["mtime"], sha256=f["sha256"], channels=channels,
             notes=tuple(json.loads(f["notes"])), extra=json.loads(f["extra"]))
+
+
+def _copy_of(fm: FileMeasures, first: int, conn: sqlite3.Connection) -> FileMeasures:
+    """The row of a file whose content is already stored as file ``first``: 'skipped'."""
+    from dataclasses import replace
+    where = conn.execute("SELECT path FROM files WHERE id = ?", (first,)).fetchone()[0]
+    return replace(fm, status="skipped", error_kind=None, channels=(),
+                   error=f"{printable(fm.path)}: same content as {where} (file {first}), "
+                         f"not measured again",
+                   extra={**(fm.extra or {}), "same_as": first})
 
 
 def _printable_path(st: dict) -> dict:

@@ -350,14 +350,19 @@ class Service:
         rig = self._rigs[r.rig]
         batch = (r.rig, r.path) in self._backlog_keys
         try:
-            self._call_commit(fm, rig, now, batch)
+            stored = self._call_commit(fm, rig, now, batch)
         except Exception:
             log.exception("storing %s failed; it will be measured again", r.path)
             self.intake.offer(r.rig, r.path, now + 30.0, live=r.live)
             return
         self._seen[(r.rig, r.path)] = (r.size, r.mtime)
         self._backlog_done(r)
-        if fm.status == "ok":
+        if getattr(stored, "status", None) is not None:
+            fm = stored                       # what was stored ('skipped': a copy)
+        if fm.status == "skipped":           # a copy of content already stored
+            self.counts["skipped"] += 1
+            log.info("%s", fm.error)
+        elif fm.status == "ok":
             self.counts["measured"] += 1
             if not batch:                     # the backlog logs progress lines instead
                 log.info("%s: measured and stored (rig %s)", r.path, r.rig)
@@ -383,12 +388,11 @@ class Service:
             log.exception("storing the never_settled error of %s", g.path)
         log.warning("%s", g.reason)
 
-    def _call_commit(self, fm: Any, rig: Any, now: float, batch: bool) -> None:
+    def _call_commit(self, fm: Any, rig: Any, now: float, batch: bool) -> Any:
         if batch and self._digest is not None:
             self._batch_pending = True
-            self._commit(fm, rig, now, batch=True)
-        else:
-            self._commit(fm, rig, now)
+            return self._commit(fm, rig, now, batch=True)
+        return self._commit(fm, rig, now)
 
     def _backlog_done(self, r: Ready) -> None:
         key = (r.rig, r.path)

@@ -214,3 +214,37 @@ def test_a_preallocated_file_is_measured_only_when_its_data_is_there(tmp_path, s
     # the same values as the original file measured on its own (measured twice, same code)
     got = fm.channels[0].measures["noise_rms"].value
     assert got == reference.channels[0].measures["noise_rms"].value and got > 0
+
+
+# ---------------------------------------------------------------- 4. identical files
+
+def test_every_identical_file_gets_its_row_and_none_is_measured_again(tmp_path, store, caplog):
+    import logging
+    import shutil
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for i in range(5):
+        (folder / f"empty{i}.abf").write_bytes(b"")
+    _tiny_abf(folder / "a.abf", 7)
+    shutil.copy(folder / "a.abf", folder / "a_copy.abf")
+    old = time.time() - 7200                  # written two hours ago: an empty file is final
+    for p in folder.iterdir():
+        os.utime(p, (old, old))
+    cfg = _config(tmp_path, [folder])
+    with caplog.at_level(logging.INFO, logger="qcd"):
+        with _running(cfg, store) as (svc, rec, step):
+            wait_until(lambda: len(rec.committed) == 7, 20.0, step)
+    rows = {Path(r["path"]).name: r for r in store.files(rig=RIG)}
+    assert sorted(rows) == sorted([f"empty{i}.abf" for i in range(5)] + ["a.abf", "a_copy.abf"])
+    assert all(rows[f"empty{i}.abf"]["error_kind"] == "empty" for i in range(5))
+    first, copy = sorted([rows["a.abf"], rows["a_copy.abf"]], key=lambda r: r["id"])
+    assert first["status"] == "ok"
+    assert copy["status"] == "skipped" and copy["extra"]["same_as"] == first["id"]
+    copy_name = Path(copy["path"]).name
+    said = [r.getMessage() for r in caplog.records if copy_name in r.getMessage()]
+    assert said and not any("measured and stored" in m for m in said), said
+    # the content is counted once in the history the judge learns from
+    assert store.good_file_count(RIG, first["mode"]) == 1
+    with _running(cfg, store) as (svc, rec, step):          # a restart measures nothing
+        _idle(step, 1.0)
+        assert rec.committed == []
