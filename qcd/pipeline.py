@@ -328,7 +328,8 @@ def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules
     recording order, through this one writer. ``batch`` (default: more than DIGEST_FILES
     files) ends with one digest instead of one message per file.
     """
-    ordered = _in_order(paths)
+    # stored as absolute, resolved paths: the service finds them under its (resolved) folders
+    ordered = _in_order(Path(os.path.realpath(p)) for p in paths)
     files = [p for p, _ in ordered]
     batch = len(files) > DIGEST_FILES if batch is None else batch
     name = rig.name

@@ -109,7 +109,7 @@ class Service:
         self._stat = stat
         self._rigs = {r.name: r for r in config.rigs}
         self._events: "queue.Queue[Hint]" = queue.Queue()
-        self._folders = [_FolderWatch(r, Path(os.path.abspath(f)), self._events,
+        self._folders = [_FolderWatch(r, Path(os.path.realpath(f)), self._events,
                                       poll_interval_s=poll_interval_s)
                          for r in config.rigs for f in r.folders]
         if commit is None:

@@ -248,3 +248,24 @@ def test_every_identical_file_gets_its_row_and_none_is_measured_again(tmp_path, 
     with _running(cfg, store) as (svc, rec, step):          # a restart measures nothing
         _idle(step, 1.0)
         assert rec.committed == []
+
+
+# ---------------------------------------------------------------- 5. relative paths
+
+def test_scan_store_with_a_relative_path_stores_absolute_ones_the_service_knows(
+        tmp_path, monkeypatch, capsys):
+    from qcd.cli import main
+    data = tmp_path / "data" / "rig1"
+    data.mkdir(parents=True)
+    _tiny_abf(data / "a.abf", 11)
+    os.symlink(tmp_path / "data", tmp_path / "link")      # a folder reached through a link
+    cfg = _toml(tmp_path, tmp_path / "link" / "rig1")
+    monkeypatch.chdir(tmp_path)
+    assert main(["scan", "--store", "--config", str(cfg), "--rig", RIG, "data/rig1"]) == 0, \
+        capsys.readouterr().err
+    with Store(tmp_path / "qcd.sqlite") as st:
+        assert [r["path"] for r in st.files()] == [os.fspath(data.resolve() / "a.abf")]
+        from qcd.config import load_config
+        with _running(load_config(cfg), st) as (svc, rec, step):
+            _idle(step, 1.0)
+            assert rec.committed == []                         # known: not measured again
