@@ -17,7 +17,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable
 
-from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
+from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileAttribEvent,
+                             FileClosedEvent, FileCreatedEvent,
                              FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
                              FileSystemEventHandler)
 from watchdog.observers import Observer
@@ -447,6 +448,8 @@ class _Inbox(FileSystemEventHandler):
     def on_any_event(self, event) -> None:
         t = type(event)
         if t in (FileCreatedEvent, FileModifiedEvent):
+            self._put(event.src_path, "written")
+        elif t is FileAttribEvent:           # permissions changed: an unreadable file may read
             self._put(event.src_path, "written")
         elif t is FileClosedEvent:                      # close after write (Linux)
             self._put(event.src_path, "closed")

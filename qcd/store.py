@@ -16,7 +16,7 @@ import sqlite3
 import threading
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -180,6 +180,7 @@ class FileState:
     mtime: float | None
     sha256: str | None
     status: str
+    error_kind: str | None = field(default=None, compare=False)
 
 
 def _plain(value: Any) -> Any:
@@ -389,8 +390,8 @@ class Store:
     def file_state(self, rig: str, path: Path | str) -> FileState | None:
         """The latest non-superseded row of ``rig``/``path``, or None."""
         text, raw = _path_key(path)
-        row = self._one("SELECT id, size, mtime, sha256, status FROM files WHERE rig = ? AND "
-                        "path = ? AND path_bytes IS ? AND superseded = 0 ORDER BY id DESC "
+        row = self._one("SELECT id, size, mtime, sha256, status, error_kind FROM files WHERE "
+                        "rig = ? AND path = ? AND path_bytes IS ? AND superseded = 0 ORDER BY id DESC "
                         "LIMIT 1", (rig, text, raw))
         return FileState(*row) if row else None
 

@@ -130,6 +130,7 @@ class Service:
         self.progress = _Progress(tty=sys.stderr.isatty() if progress_tty is None
                                   else progress_tty)
         self._backlog_keys: set[tuple[str, Path]] = set()
+        self._unreadable: set[tuple[str, Path]] = set()   # stored as unreadable in this run
         self._now = 0.0                     # the clock of the last step (the courier's clock)
         self._courier: Any = None
 
@@ -289,11 +290,14 @@ class Service:
         return None
 
     def _needs_measuring(self, rig: str, path: Path, st: os.stat_result) -> bool:
-        # files committed in this run (a copy of content already stored has no row of its own)
-        if self._seen.get((rig, path)) == (st.st_size, st.st_mtime):
+        # files committed in this run; an unreadable one is tried again (its permissions may
+        # have been fixed, which changes neither its size nor its mtime)
+        if self._seen.get((rig, path)) == (st.st_size, st.st_mtime) and \
+                (rig, path) not in self._unreadable:
             return False
         state = self.store.file_state(rig, os.fspath(path))
-        return state is None or state.size != st.st_size or state.mtime != st.st_mtime
+        return (state is None or state.size != st.st_size or state.mtime != st.st_mtime
+                or state.error_kind == "unreadable")
 
     def _scan_root(self, fw: _FolderWatch, now: float, *, live: bool) -> int:
         n = 0
@@ -349,6 +353,16 @@ class Service:
             return
         rig = self._rigs[r.rig]
         batch = (r.rig, r.path) in self._backlog_keys
+        if fm.error_kind == "unreadable":
+            self._unreadable.add((r.rig, r.path))
+            state = self.store.file_state(r.rig, os.fspath(r.path))
+            if state is not None and state.error_kind == "unreadable" and \
+                    (state.size, state.mtime) == (r.size, r.mtime):
+                self._seen[(r.rig, r.path)] = (r.size, r.mtime)     # still unreadable: as stored
+                self._backlog_done(r)
+                return
+        else:
+            self._unreadable.discard((r.rig, r.path))
         try:
             stored = self._call_commit(fm, rig, now, batch)
         except Exception:

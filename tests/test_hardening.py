@@ -269,3 +269,49 @@ def test_scan_store_with_a_relative_path_stores_absolute_ones_the_service_knows(
         with _running(load_config(cfg), st) as (svc, rec, step):
             _idle(step, 1.0)
             assert rec.committed == []                         # known: not measured again
+
+
+# ---------------------------------------------------------------- 6. permissions fixed later
+
+def _stored_unreadable(store: Store, path: Path) -> None:
+    """The row an earlier run stored while the file's permissions kept qcd out."""
+    st = path.stat()
+    fm = pipeline.error_file(path, "unreadable", f"{path}: permission denied", size=st.st_size,
+                             mtime=st.st_mtime)
+    store.commit_file(RIG, fm, analysed_at=time.time() - 60)
+
+
+def test_a_file_stored_as_unreadable_is_measured_once_readable_at_start_and_rescan(
+        tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    a, b = folder / "a.abf", folder / "b.abf"
+    _tiny_abf(a, 21)
+    _stored_unreadable(store, a)              # then chmod 644: size and mtime unchanged
+    cfg = _config(tmp_path, [folder])
+    with _running(cfg, store) as (svc, rec, step):          # a restart
+        wait_until(lambda: len(rec.committed) == 1, 10.0, step)
+    assert store.file_state(RIG, a).status == "ok"
+    _tiny_abf(b, 22)
+    _stored_unreadable(store, b)
+    with _running(cfg, store, catch_up=False) as (svc, rec, step):
+        assert svc.rescan(time.time()) == 1   # the periodic rescan tries it again
+        wait_until(lambda: len(rec.committed) == 1, 10.0, step)
+    assert store.file_state(RIG, b).status == "ok"
+
+
+@pytest.mark.skipif(sys.platform == "win32" or os.geteuid() == 0,
+                    reason="permissions do not keep root (or this test's chmod on Windows) out")
+def test_chmod_of_an_unreadable_file_is_seen_through_its_event(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    a = folder / "a.abf"
+    _tiny_abf(a, 23)
+    a.chmod(0)
+    cfg = _config(tmp_path, [folder])
+    with _running(cfg, store) as (svc, rec, step):
+        wait_until(lambda: len(rec.committed) == 1, 10.0, step)
+        assert rec.committed[0].error_kind == "unreadable"
+        a.chmod(0o644)
+        wait_until(lambda: len(rec.committed) == 2, 10.0, step)
+    assert store.file_state(RIG, a).status == "ok"
