@@ -782,6 +782,24 @@ def main(argv: list[str] | None = None) -> int:
     except BrokenPipeError:   # ``qcd ... | head``: the reader left; stop quietly, as tools do
         _quiet_stdout()
         return EXIT_OK
+    except OSError as e:      # a file or folder the user named: one line, path and reason
+        if args.debug:
+            raise
+        print(f"qcd {args.command}: {_os_error_text(e)}", file=sys.stderr)
+        if e.filename is None:
+            _quiet_stdout()   # the output itself failed (a full disk): do not try it again
+        return EXIT_FAILED
+
+
+def _os_error_text(e: OSError) -> str:
+    """'PATH: No such file or directory' (or 'writing the output: No space left on device')."""
+    reason = e.strerror or str(e)
+    if e.filename is None:
+        return f"writing the output: {reason}"
+    where = printable(e.filename)
+    if e.filename2 is not None:
+        where += f" -> {printable(e.filename2)}"
+    return f"{where}: {reason}"
 
 
 def _quiet_stdout() -> None:

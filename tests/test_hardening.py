@@ -315,3 +315,41 @@ def test_chmod_of_an_unreadable_file_is_seen_through_its_event(tmp_path, store):
         a.chmod(0o644)
         wait_until(lambda: len(rec.committed) == 2, 10.0, step)
     assert store.file_state(RIG, a).status == "ok"
+
+
+# ---------------------------------------------------------------- 13. user errors, one line
+
+def _store_with_one_file(tmp_path: Path) -> Path:
+    folder = tmp_path / "rig"
+    folder.mkdir(exist_ok=True)
+    _tiny_abf(folder / "a.abf", 31)
+    cfg = _toml(tmp_path, folder)
+    from qcd.cli import main
+    assert main(["scan", "--store", "--config", str(cfg), "--rig", RIG, str(folder)]) == 0
+    return cfg
+
+
+def test_writing_to_a_missing_folder_is_one_line_naming_the_path(tmp_path, capsys):
+    from qcd.cli import main
+    cfg = _store_with_one_file(tmp_path)
+    a = tmp_path / "rig" / "a.abf"
+    capsys.readouterr()
+    for argv, path in [(["report", "--config", str(cfg), "--html"], "/nonexistent/dir/r.html"),
+                       (["compare", str(a), str(a), "--html"], "/nonexistent/x.html")]:
+        assert main(argv + [path]) == 1
+        err = capsys.readouterr().err.strip()
+        assert err.count("\n") == 0 and "Traceback" not in err, err
+        assert path in err and "No such file or directory" in err, err
+
+
+@pytest.mark.skipif(not os.path.exists("/dev/full"), reason="no /dev/full on this system")
+def test_output_to_a_full_device_is_one_line(tmp_path):
+    import subprocess
+    cfg = _store_with_one_file(tmp_path)
+    with open("/dev/full", "w") as full:
+        done = subprocess.run([sys.executable, "-m", "qcd", "trend", "--config", str(cfg),
+                               RIG, "noise_rms", "--csv"], stdout=full, stderr=subprocess.PIPE,
+                              timeout=60, text=True)
+    assert done.returncode == 1, done.stderr
+    assert done.stderr.strip() == "qcd trend: writing the output: No space left on device", \
+        done.stderr
