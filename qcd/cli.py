@@ -215,7 +215,8 @@ def build_parser() -> argparse.ArgumentParser:
                                    "the alerts to a local file, and print the morning report.",
                        epilog="Example: qcd demo --keep demo-lab")
     p.add_argument("--keep", type=Path, metavar="DIR",
-                   help="build the lab in DIR and keep it (default: a temporary folder)")
+                   help="build the lab in DIR and keep it (default: a temporary folder); DIR "
+                        "must be new, empty or an earlier demo's")
     p.add_argument("--days", type=int, default=21, metavar="N", help="days of recordings (21)")
     _common(p)
     return parser

@@ -353,3 +353,36 @@ def test_output_to_a_full_device_is_one_line(tmp_path):
     assert done.returncode == 1, done.stderr
     assert done.stderr.strip() == "qcd trend: writing the output: No space left on device", \
         done.stderr
+
+
+# ---------------------------------------------------------------- 14. demo --keep
+
+def test_demo_keep_refuses_a_folder_it_did_not_make_and_deletes_nothing(tmp_path, capsys):
+    from qcd.cli import main
+    lab = tmp_path / "data"
+    (lab / "patch-1").mkdir(parents=True)
+    precious = lab / "patch-1" / "precious_cell.abf"
+    _tiny_abf(precious, 41)
+    before = precious.read_bytes()
+    (lab / "qcd.toml").write_text("# the lab's own config\n")
+    (lab / "qcd.sqlite").write_bytes(b"the lab's database")
+    assert main(["demo", "--keep", str(lab), "--days", "6"]) == 2
+    err = capsys.readouterr().err
+    assert os.fspath(lab) in err and "not made by qcd demo" in err, err
+    assert precious.read_bytes() == before
+    assert (lab / "qcd.toml").read_text() == "# the lab's own config\n"
+    assert (lab / "qcd.sqlite").read_bytes() == b"the lab's database"
+
+
+def test_demo_folder_check_takes_new_empty_and_its_own_folders(tmp_path):
+    from qcd.demo import DEMO_MARKER, check_demo_folder
+    from qcd.errors import ConfigError
+    check_demo_folder(tmp_path / "new")
+    (tmp_path / "empty").mkdir()
+    check_demo_folder(tmp_path / "empty")
+    (tmp_path / "old").mkdir()
+    (tmp_path / "old" / "qcd.sqlite").write_bytes(b"x")
+    with pytest.raises(ConfigError):
+        check_demo_folder(tmp_path / "old")
+    (tmp_path / "old" / DEMO_MARKER).write_text("")
+    check_demo_folder(tmp_path / "old")
