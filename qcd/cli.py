@@ -219,6 +219,16 @@ def build_parser() -> argparse.ArgumentParser:
                         "must be new, empty or an earlier demo's")
     p.add_argument("--days", type=int, default=21, metavar="N", help="days of recordings (21)")
     _common(p)
+
+    p = sub.add_parser("rules", help="check rule files",
+                       description="Check rule files as the service loads them: known measures "
+                                   "and modes, limits in the measure's quantity. Each file is "
+                                   "checked after the packaged default rules, as qcd.toml's "
+                                   "'rules' list would load it.",
+                       epilog="Example: qcd rules --check rules/my-lab.toml")
+    p.add_argument("--check", nargs="+", type=Path, metavar="FILE",
+                   help="rule files to check (exit 2 at the first wrong rule)")
+    _common(p)
     return parser
 
 
@@ -718,6 +728,22 @@ def _cmd_notify_test(args: argparse.Namespace) -> int:
     return EXIT_OK if ok == len(results) else EXIT_FAILED
 
 
+def _cmd_rules(args: argparse.Namespace) -> int:
+    if args.check:
+        return _rules_check(args.check)
+    raise ConfigError(None, "rules", "name the rule files to check: qcd rules --check FILE")
+
+
+def _rules_check(paths: list[Path]) -> int:
+    """``qcd rules --check FILE...``: load each file as the service would; one line per file."""
+    from qcd.ruleset import load_rules
+    for path in paths:
+        rules = load_rules([path])           # ConfigError: file, rule, what was expected
+        print(f"{path}: ok, {len(rules.limits)} limit and {len(rules.history)} history "
+              f"rule(s)")
+    return EXIT_OK
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from qcd.demo import run_demo
     if not 6 <= args.days <= 120:
@@ -732,7 +758,7 @@ _COMMANDS = {
     "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
     "trend": _cmd_trend, "export": _cmd_export, "compare": _cmd_compare, "alerts": _cmd_alerts,
     "mute": _cmd_mute, "note": _cmd_note, "init": _cmd_init, "notify-test": _cmd_notify_test,
-    "demo": _cmd_demo,
+    "demo": _cmd_demo, "rules": _cmd_rules,
 }
 
 

@@ -386,3 +386,41 @@ def test_demo_folder_check_takes_new_empty_and_its_own_folders(tmp_path):
         check_demo_folder(tmp_path / "old")
     (tmp_path / "old" / DEMO_MARKER).write_text("")
     check_demo_folder(tmp_path / "old")
+
+
+# ---------------------------------------------------------------- 15. rules checked at load
+
+@pytest.mark.parametrize("table, expected", [
+    # a current limit on a resistance, a resistance on a noise, a misspelt measure, a mode
+    ('measure = "access_resistance"\nabove = "20 pA"', "access_resistance is in Ohm"),
+    ('measure = "noise_rms"\nabove = "0.1 MΩ"', "noise_rms is in A"),
+    ('measure = "acess_resistance"\nabove = "20 MOhm"', "did you mean 'access_resistance'"),
+    ('measure = "noise_rms"\nmodes = "voltage_clamps"\nabove = "5 pA"', "unknown mode"),
+    ('measure = "noise_rms"\nmodes = "current_clamp"\nabove = "5 pA"', "noise_rms is in V"),
+    ('measure = "oversampling"\nbelow = "5 Hz"', "plain number"),
+])
+def test_a_wrong_rule_stops_the_start_naming_file_rule_and_expectation(tmp_path, capsys,
+                                                                          table, expected):
+    from qcd.cli import main
+    from qcd.errors import ConfigError
+    from qcd.ruleset import load_rules
+    rules = tmp_path / "lab.toml"
+    rules.write_text(f'[[limit]]\nname = "lab_limit"\n{table}\n', encoding="utf-8")
+    with pytest.raises(ConfigError) as e:
+        load_rules([rules])
+    assert os.fspath(rules) in str(e.value) and "lab_limit" in str(e.value)
+    assert expected in str(e.value), str(e.value)
+    assert main(["rules", "--check", str(rules)]) == 2
+    assert expected in capsys.readouterr().err
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _toml(tmp_path, folder, extra=f'rules = ["{rules.as_posix()}"]')
+    assert main(["watch", "--config", str(cfg)]) == 2          # refuses to start
+    assert "lab_limit" in capsys.readouterr().err
+
+
+def test_rules_check_passes_the_packaged_rules(capsys):
+    from qcd.cli import main
+    from qcd.config import default_rules_path
+    assert main(["rules", "--check", str(default_rules_path())]) == 0
+    assert ": ok," in capsys.readouterr().out
