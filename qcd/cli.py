@@ -432,6 +432,13 @@ def _cmd_watch(args: argparse.Namespace) -> int:
     if args.workers < 0:
         raise ConfigError(None, "--workers", f"expected 0 (automatic) or more, got {args.workers}")
     rules = load_rules(cfg.rules)
+    with watch.ServiceLock(cfg.database):    # one service per database
+        return _run_service(args, cfg, rules)
+
+
+def _run_service(args: argparse.Namespace, cfg, rules) -> int:
+    from qcd import watch
+    from qcd.store import Store
     log_path = watch.setup_logging(cfg.database, debug=args.debug)
     sender = watch.make_sender(cfg)
     with Store(cfg.database) as store:

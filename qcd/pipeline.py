@@ -191,6 +191,14 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
     Never raises for a bad file; a StoreError (the database itself failing) propagates.
     With ``batch`` no message is queued per file (see ``flush_digest``).
     """
+    with store.transaction():     # alert states read and written with no other writer between
+        fm = _commit(fm, rig, store, rules, now, batch=batch)
+    _deliver(store, sender, now)             # also retries rows still pending
+    return fm
+
+
+def _commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float, *,
+            batch: bool = False) -> FileMeasures:
     name = rig.name
     first = store.same_content(name, fm.sha256)
     if first is not None and not (first["status"] == "error" and fm.status == "ok"):
@@ -218,7 +226,6 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
                       messages=messages)
     if changed:
         _end_resolved_mutes(store, now)
-    _deliver(store, sender, now)             # also retries rows still pending
     return fm
 
 
@@ -231,12 +238,13 @@ def process(path: str | os.PathLike, rig: RigConfig, store: Store, rules: Rules,
 def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None = None
                  ) -> alerts.Message | None:
     """After a backlog: one digest of what opened and resolved, queued with its states."""
-    before = store.alert_states()
-    states, message = alerts.flush_digest(before, store.active_mutes(now), now,
-                                          rules.settings)
-    changed = _changed(before, states)
-    if changed or message is not None:
-        store.commit_alerts(changed, [message] if message is not None else [], now=now)
+    with store.transaction():
+        before = store.alert_states()
+        states, message = alerts.flush_digest(before, store.active_mutes(now), now,
+                                              rules.settings)
+        changed = _changed(before, states)
+        if changed or message is not None:
+            store.commit_alerts(changed, [message] if message is not None else [], now=now)
     if message is not None:
         _deliver(store, sender, now)
     return message
@@ -245,11 +253,12 @@ def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None =
 def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None
          ) -> list[alerts.Message]:
     """No new file: one message per rig for open alerts whose mute has just ended."""
-    before = store.alert_states()
-    states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings)
-    changed = _changed(before, states)
-    if changed or messages:
-        store.commit_alerts(changed, messages, now=now)
+    with store.transaction():
+        before = store.alert_states()
+        states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings)
+        changed = _changed(before, states)
+        if changed or messages:
+            store.commit_alerts(changed, messages, now=now)
     if messages:
         _deliver(store, sender, now)
     return messages

@@ -277,6 +277,7 @@ class Store:
         self.timeout_s = float(timeout_s)
         self._before_commit = before_commit
         self._lock = threading.RLock()
+        self._depth = 0                      # nesting of _write() in this thread
         self._closed = True
         if not self.path.parent.is_dir():
             raise StoreError(f"{self.path}: folder {self.path.parent} does not exist")
@@ -356,15 +357,31 @@ class Store:
             return 0
 
     @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """One write transaction around reads and writes that belong together (read alert
+        states, judge, commit): no other process writes in between. Store calls inside it
+        join it instead of starting their own."""
+        with self._write():
+            yield
+
+    @contextmanager
     def _write(self) -> Iterator[sqlite3.Connection]:
         """One write transaction, BEGIN IMMEDIATE (waits up to timeout_s for another writer)."""
         with self._lock:
             conn = self.db.conn
+            if self._depth:                  # inside transaction(): one COMMIT at its end
+                self._depth += 1
+                try:
+                    yield conn
+                finally:
+                    self._depth -= 1
+                return
             try:
                 conn.execute("BEGIN IMMEDIATE")
             except sqlite3.OperationalError as e:
                 raise StoreError(f"{self.path}: cannot start a write ({e}); another process "
                                  f"held the database longer than {self.timeout_s:g} s") from e
+            self._depth = 1
             try:
                 yield conn
                 conn.execute("COMMIT")
@@ -374,6 +391,8 @@ class Store:
                 if isinstance(e, sqlite3.Error):
                     raise StoreError(f"{self.path}: write failed: {e}") from e
                 raise
+            finally:
+                self._depth = 0
 
     def _rows(self, sql: str, params: Iterable[Any] = ()) -> list[dict[str, Any]]:
         with self._lock:

@@ -21,13 +21,13 @@ from pathlib import Path
 from typing import Any, Callable
 
 from qcd import pipeline
-from qcd.errors import printable
+from qcd.errors import StoreError, printable
 from qcd.intake import (GaveUp, Hint, Intake, Ready, is_candidate_name, is_network_path,
                         scan_folder, _FolderWatch)
 from qcd.workers import Jobs, default_workers
 
 __all__ = ["Service", "setup_logging", "is_network_path", "scan_folder", "make_sender",
-           "LOG_NAME"]
+           "LOG_NAME", "ServiceLock"]
 
 log = logging.getLogger("qcd.watch")
 
@@ -451,6 +451,64 @@ class _StatLike:
 
     def __init__(self, size: int, mtime: float) -> None:
         self.st_size, self.st_mtime = size, mtime
+
+
+# ---------------------------------------------------------------- one service per database
+
+class ServiceLock:
+    """One service per database: an OS lock on ``DATABASE.lock`` beside it (flock on POSIX,
+    msvcrt on Windows), which the OS releases when the process ends, however it ends.
+    ``acquire()`` raises StoreError naming the process that holds it."""
+
+    _WIN_OFFSET = 1 << 20                    # Windows: lock a byte past the pid text
+
+    def __init__(self, database: Path | str) -> None:
+        self.path = Path(f"{os.fspath(database)}.lock")
+        self._f: Any = None
+
+    def acquire(self) -> "ServiceLock":
+        try:
+            f = open(self.path, "a+", encoding="utf-8")
+        except OSError as e:
+            raise StoreError(f"{self.path}: cannot open the service lock file: "
+                             f"{e.strerror or e}") from e
+        try:
+            if sys.platform == "win32":
+                import msvcrt
+                f.seek(self._WIN_OFFSET)
+                msvcrt.locking(f.fileno(), msvcrt.LK_NBLCK, 1)
+            else:
+                import fcntl
+                fcntl.flock(f.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            f.seek(0)
+            holder = f.read(200).strip() or "another process"
+            f.close()
+            raise StoreError(f"{self.path.with_suffix('')}: another qcd watch is using this "
+                             f"database ({holder}); one service per database: stop it first, "
+                             f"or give this one a database of its own") from None
+        f.seek(0)
+        f.truncate()
+        f.write(f"pid {os.getpid()} on {socket.gethostname()}")
+        f.flush()
+        self._f = f
+        return self
+
+    def release(self) -> None:
+        if self._f is not None:
+            try:
+                self._f.seek(0)
+                self._f.truncate()
+            except OSError:
+                pass
+            self._f.close()                  # closing drops the lock
+            self._f = None
+
+    def __enter__(self) -> "ServiceLock":
+        return self.acquire()
+
+    def __exit__(self, *exc: object) -> None:
+        self.release()
 
 
 # ---------------------------------------------------------------- logging

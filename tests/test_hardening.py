@@ -424,3 +424,67 @@ def test_rules_check_passes_the_packaged_rules(capsys):
     from qcd.config import default_rules_path
     assert main(["rules", "--check", str(default_rules_path())]) == 0
     assert ": ok," in capsys.readouterr().out
+
+
+# ---------------------------------------------------------------- 8. two writers
+
+def test_a_second_service_on_one_database_is_refused_until_the_first_dies(tmp_path):
+    import signal
+    import subprocess
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _toml(tmp_path, folder)
+    db = tmp_path / "qcd.sqlite"
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, time; from qcd.watch import ServiceLock; "
+         "lock = ServiceLock(sys.argv[1]).acquire(); print('held', flush=True); time.sleep(60)",
+         os.fspath(db)], stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        second = subprocess.run([sys.executable, "-m", "qcd", "watch", "--config", str(cfg)],
+                                capture_output=True, text=True, timeout=60)
+        assert second.returncode == 1, second.stderr
+        err = second.stderr
+        assert err.count("\n") == 1, err            # one line
+        assert "another qcd watch is using this database" in err
+        assert f"pid {holder.pid}" in err, err
+    finally:
+        holder.send_signal(signal.SIGKILL)    # kill -9: the OS drops the lock
+        holder.wait(10)
+        holder.stdout.close()
+    from qcd.watch import ServiceLock
+    with ServiceLock(db):
+        pass
+
+
+def test_scan_store_beside_a_service_loses_no_alert_count(tmp_path):
+    """Two writers commit bad files at once: each reads the alert state inside its own write
+    transaction, so the second sees the first's count (without it, both read 0, both write 1)."""
+    import threading
+    from qcd.ruleset import load_rules
+    rules_file = tmp_path / "rules.toml"
+    rules_file.write_text('[[limit]]\nname = "noisy"\nmeasure = "noise_rms"\nabove = "0.001 pA"\n'
+                          'open_after_files = 2\n', encoding="utf-8")
+    rules = load_rules([rules_file])
+    rig = RigConfig(RIG, (), patterns=("*.abf",))
+    fms = []
+    for i in range(2):
+        _tiny_abf(tmp_path / f"f{i}.abf", 50 + i)
+        fms.append(pipeline.measure(tmp_path / f"f{i}.abf", rig))
+    db = tmp_path / "qcd.sqlite"
+    first_in = threading.Event()
+
+    def hold():                               # the first writer, just before its COMMIT
+        first_in.set()
+        time.sleep(0.5)
+    with Store(db, before_commit=hold) as a, Store(db) as b:
+        t = threading.Thread(target=pipeline.commit, args=(fms[0], rig, a, rules, 1000.0))
+        t.start()
+        assert first_in.wait(10)
+        a._before_commit = None
+        pipeline.commit(fms[1], rig, b, rules, 1001.0)
+        t.join(10)
+        states = b.alert_states(RIG)
+    assert len(states) == 1
+    (state,) = states.values()
+    assert state["state"] not in ("ok", "suspect"), state      # two bad files: open
