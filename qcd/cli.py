@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from qcd import __version__
-from qcd.errors import ConfigError, QcdError, printable
+from qcd.errors import ConfigError, QcdError, StoreError, printable
 
 if TYPE_CHECKING:
     from qcd.results import FileMeasures, Measure
@@ -462,8 +462,11 @@ def _cmd_status(args: argparse.Namespace) -> int:
     with Store(cfg.database) as store:
         now = time.time()
         st = status(store, now)
+    if st.get("read_error") and not st.get("heartbeat"):
+        raise StoreError(st["read_error"])       # nothing to show: one line
     print(format_status(st, now))
-    return EXIT_OK if st["alive"] else EXIT_FAILED
+    return EXIT_OK if st["alive"] and not (st.get("storing_failed") or st.get("read_error")) \
+        else EXIT_FAILED
 
 
 def _report_store(args: argparse.Namespace, name: str):

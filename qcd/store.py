@@ -167,6 +167,20 @@ def _m006_path_bytes(db: Database) -> None:
     db.execute("ALTER TABLE files ADD COLUMN path_bytes BLOB")
 
 
+def describe_error(e: BaseException) -> str:
+    """What an SQLite error means for the lab, with the driver's own words."""
+    text = str(e)
+    low = text.lower()
+    if "malformed" in low or "not a database" in low or "corrupt" in low:
+        return (f"the database file is damaged ({text}); stop qcd, keep a copy, and restore a "
+                f"backup or move the file aside (qcd then starts a new one)")
+    if "disk is full" in low or "disk i/o" in low:
+        return f"the disk is full or failing ({text}); free space on it"
+    if "readonly" in low or "read-only" in low:
+        return f"the database cannot be written ({text}): check its folder's permissions"
+    return text
+
+
 def _path_key(path: Any) -> tuple[str, bytes | None]:
     """(text stored in files.path, bytes stored in files.path_bytes) of a path."""
     return printable(path), path_bytes(path)
@@ -389,20 +403,30 @@ class Store:
                 if conn.in_transaction:
                     conn.execute("ROLLBACK")
                 if isinstance(e, sqlite3.Error):
-                    raise StoreError(f"{self.path}: write failed: {e}") from e
+                    raise StoreError(f"{self.path}: write failed: {describe_error(e)}") from e
                 raise
             finally:
                 self._depth = 0
 
     def _rows(self, sql: str, params: Iterable[Any] = ()) -> list[dict[str, Any]]:
-        with self._lock:
+        with self._lock, self._reading():
             cur = self.db.conn.execute(sql, tuple(params))
             names = [d[0] for d in cur.description]
             return [dict(zip(names, row)) for row in cur.fetchall()]
 
     def _one(self, sql: str, params: Iterable[Any] = ()) -> Any:
-        with self._lock:
+        with self._lock, self._reading():
             return self.db.conn.execute(sql, tuple(params)).fetchone()
+
+    @contextmanager
+    def _reading(self) -> Iterator[None]:
+        """A failed read is a StoreError saying what is wrong, not a driver traceback."""
+        try:
+            yield
+        except sqlite3.DatabaseError as e:
+            if self._depth:                  # inside a write: _write() names it
+                raise
+            raise StoreError(f"{self.path}: reading failed: {describe_error(e)}") from e
 
     # --- intake ---------------------------------------------------------------------------------
 
@@ -450,7 +474,7 @@ class Store:
         return [(float(t), float(v)) for t, v in rows]
 
     def _one_all(self, sql: str, params: Iterable[Any] = ()) -> list[tuple]:
-        with self._lock:
+        with self._lock, self._reading():
             return self.db.conn.execute(sql, tuple(params)).fetchall()
 
     def reference_spectrum(self, rig: str, mode: str, channel: int, *, limit: int = 30,

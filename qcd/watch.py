@@ -131,6 +131,7 @@ class Service:
                                   else progress_tty)
         self._backlog_keys: set[tuple[str, Path]] = set()
         self._unreadable: set[tuple[str, Path]] = set()   # stored as unreadable in this run
+        self._store_trouble: dict | None = None   # {reason, since, failures} while storing fails
         self._now = 0.0                     # the clock of the last step (the courier's clock)
         self._courier: Any = None
 
@@ -236,8 +237,13 @@ class Service:
             except Exception:
                 log.exception("checking ended mutes")
         if now - self._last_beat >= self.beat_s:
-            self._heartbeat(now)
-            self._checkpoint()
+            try:
+                self._heartbeat(now)
+            except Exception as e:
+                self._last_beat = now
+                self._store_failed(e, now, "writing the heartbeat")
+            else:
+                self._checkpoint()
         self.progress.tick(now)
         return busy or (self.workers == 0 and len(self._jobs) > 0)
 
@@ -278,7 +284,7 @@ class Service:
                 if root is None or not is_candidate_name(p / "x", ("x",), root):
                     continue                         # a hidden folder
                 for fp, st in scan_folder(p, rig.patterns):
-                    if self._needs_measuring(rig_name, fp, st):
+                    if self._needs(rig_name, fp, st, default=True):
                         self.intake.offer(rig_name, fp, now, live=True)
             elif is_candidate_name(p, rig.patterns, self._root_of(rig, p)):
                 self.intake.offer(rig_name, p, now, live=True, closed=hint.what == "closed")
@@ -288,6 +294,14 @@ class Service:
             if fw.rig.name == rig.name and (fw.root == p or fw.root in p.parents):
                 return fw.root
         return None
+
+    def _needs(self, rig: str, path: Path, st: Any, *, default: bool) -> bool:
+        """``_needs_measuring``, or ``default`` when the store cannot be read."""
+        try:
+            return self._needs_measuring(rig, path, st)
+        except Exception as e:
+            self._store_failed(e, self._now, f"looking up {printable(path)}")
+            return default
 
     def _needs_measuring(self, rig: str, path: Path, st: os.stat_result) -> bool:
         # files committed in this run; an unreadable one is tried again (its permissions may
@@ -302,8 +316,8 @@ class Service:
     def _scan_root(self, fw: _FolderWatch, now: float, *, live: bool) -> int:
         n = 0
         for p, st in scan_folder(fw.root, fw.rig.patterns):
-            if (fw.rig.name, p) in self.intake._items or not self._needs_measuring(
-                    fw.rig.name, p, st):
+            if (fw.rig.name, p) in self.intake._items or not self._needs(
+                    fw.rig.name, p, st, default=False):        # the next rescan tries again
                 continue
             self.intake.offer(fw.rig.name, p, now, live=live, mtime=st.st_mtime)
             if not live:
@@ -321,7 +335,7 @@ class Service:
     # -- measuring and committing
 
     def _submit(self, r: Ready, now: float) -> None:
-        if not self._needs_measuring(r.rig, r.path, _StatLike(r.size, r.mtime)):
+        if not self._needs(r.rig, r.path, _StatLike(r.size, r.mtime), default=True):
             self.counts["skipped"] += 1
             self._backlog_done(r)
             return
@@ -365,10 +379,11 @@ class Service:
             self._unreadable.discard((r.rig, r.path))
         try:
             stored = self._call_commit(fm, rig, now, batch)
-        except Exception:
-            log.exception("storing %s failed; it will be measured again", r.path)
-            self.intake.offer(r.rig, r.path, now + 30.0, live=r.live)
+        except Exception as e:
+            wait = self._store_failed(e, now, f"storing {printable(r.path)}")
+            self.intake.offer(r.rig, r.path, now + wait, live=r.live)
             return
+        self._store_ok(now)
         self._seen[(r.rig, r.path)] = (r.size, r.mtime)
         self._backlog_done(r)
         if getattr(stored, "status", None) is not None:
@@ -398,8 +413,9 @@ class Service:
             self._call_commit(fm, self._rigs[g.rig], now, (g.rig, g.path) in self._backlog_keys)
             self._last_file[g.rig] = {"path": printable(g.path), "at": now, "status": "error"}
             self._backlog_done(Ready(g.rig, g.path, g.size, g.mtime, False))
-        except Exception:
-            log.exception("storing the never_settled error of %s", g.path)
+            self._store_ok(now)
+        except Exception as e:
+            self._store_failed(e, now, f"storing the never_settled error of {printable(g.path)}")
         log.warning("%s", g.reason)
 
     def _call_commit(self, fm: Any, rig: Any, now: float, batch: bool) -> Any:
@@ -424,6 +440,52 @@ class Service:
             except Exception:
                 log.exception("writing the catch-up digest")
 
+    # -- storing trouble: said once, backed off
+
+    def _store_failed(self, e: BaseException, now: float, what: str) -> float:
+        """Record a failed store; returns how long the file waits before it is tried again
+        (30 s doubling to 10 min). The first failure of a run of them is logged with its
+        reason and told to the lab directly (not through the outbox, which may be what
+        fails); the rest only at debug level."""
+        from qcd.errors import QcdError
+        reason = str(e) if isinstance(e, QcdError) else f"{type(e).__name__}: {e}"
+        t = self._store_trouble
+        if t is None:
+            self._store_trouble = t = {"reason": reason, "since": now, "failures": 0}
+            log.error("storing is failing: %s (%s); files stay queued and are tried again, "
+                      "backing off to every 10 min", reason, what,
+                      exc_info=not isinstance(e, QcdError))
+            self._alarm(reason)
+        else:
+            log.debug("still failing (%s): %s", what, reason)
+        t["failures"] += 1
+        t["reason"] = reason
+        return min(600.0, 30.0 * 2.0 ** min(t["failures"] - 1, 10))
+
+    def _store_ok(self, now: float) -> None:
+        if self._store_trouble is not None:
+            log.warning("storing works again after %d failure(s)", self._store_trouble["failures"])
+            self._store_trouble = None
+
+    def _alarm(self, reason: str) -> None:
+        """Tell the lab that results are not being stored, straight to the targets."""
+        if self.sender is None:
+            return
+        title = f"qcd on {self._host}: results are not being stored"
+        body = (f"Storing measured recordings in the database is failing: {reason}\n"
+                f"Files stay queued and are tried again; qcd status shows the state. This "
+                f"message is sent once for this failure.")
+        sender = self.sender
+
+        def send() -> None:
+            try:
+                res = sender.send(title, body, "firing")
+                if not res.ok:
+                    log.error("could not tell the lab that storing fails: %s", res.detail)
+            except Exception:
+                log.exception("telling the lab that storing fails")
+        threading.Thread(target=send, name="qcd-alarm", daemon=True).start()
+
     # -- heartbeat
 
     def _checkpoint(self) -> None:
@@ -442,7 +504,8 @@ class Service:
                  "intake": self.intake.counts(), "measuring": len(self._jobs),
                  "counts": dict(self.counts), "last_file": dict(self._last_file),
                  "folders": {os.fspath(fw.root): fw.state for fw in self._folders},
-                 "catch_up": {"total": self.progress.total, "done": self.progress.done}}
+                 "catch_up": {"total": self.progress.total, "done": self.progress.done},
+                 "storing_failed": self._store_trouble}
         self.store.beat(os.getpid(), self._host, self._started_at, now, self.queue_len(), state)
 
 

@@ -488,3 +488,66 @@ def test_scan_store_beside_a_service_loses_no_alert_count(tmp_path):
     assert len(states) == 1
     (state,) = states.values()
     assert state["state"] not in ("ok", "suspect"), state      # two bad files: open
+
+
+# ---------------------------------------------------------------- 9. a damaged database
+
+def _damage(db: Path, name: str) -> None:
+    """Overwrite the root page of table or index ``name`` with garbage (a bad disk sector)."""
+    import sqlite3
+    conn = sqlite3.connect(db)
+    page = conn.execute("PRAGMA page_size").fetchone()[0]
+    root = conn.execute("SELECT rootpage FROM sqlite_master WHERE name = ?", (name,)).fetchone()[0]
+    conn.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+    conn.close()
+    with open(db, "r+b") as f:
+        f.seek((root - 1) * page)
+        f.write(b"\xa5" * page)
+
+
+def test_a_damaged_database_is_one_clear_line_for_each_command(tmp_path, capsys):
+    from qcd.cli import main
+    cfg = _store_with_one_file(tmp_path)
+    _damage(tmp_path / "qcd.sqlite", "files")
+    capsys.readouterr()
+    for argv in (["report"], ["status"], ["export"], ["trend", RIG, "noise_rms"]):
+        code = main(argv + ["--config", str(cfg)])
+        err = capsys.readouterr().err.strip()
+        assert code == 1, (argv, err)
+        assert err.count("\n") == 0 and "Traceback" not in err, err
+        assert "the database file is damaged" in err, err
+
+
+@pytest.mark.slow
+def test_a_service_whose_store_fails_says_so_and_tells_the_lab_once(tmp_path, store):
+    from sinks import HttpSink
+    from qcd.notify import Sender
+    from qcd.status import format_status, status
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    _tiny_abf(folder / "a.abf", 61)
+    cfg = _config(tmp_path, [folder])
+    with _running(cfg, store) as (svc, rec, step):
+        wait_until(lambda: len(rec.committed) == 1, 10.0, step)
+    store.close()
+    _damage(tmp_path / "qcd.sqlite", "files_rig_sha256")     # every commit looks content up
+    sink = HttpSink().start()
+    try:
+        with Store(tmp_path / "qcd.sqlite") as broken:
+            with _running(cfg, broken, sender=Sender([sink.url], attempt_s=5.0),
+                          beat_s=0.2) as (svc, rec, step):
+                for i in range(3):
+                    _tiny_abf(folder / f"n{i}.abf", 70 + i)
+                wait_until(lambda: svc._store_trouble is not None
+                           and svc._store_trouble["failures"] >= 3, 15.0, step)
+                _idle(step, 0.5)
+                st = status(broken, time.time())
+                assert st["storing_failed"] and "damaged" in st["storing_failed"]["reason"]
+                text = format_status(st, time.time())
+                assert text.startswith("service: storing is failing: "), text
+                assert sink.wait_for(1, 10.0)
+                _idle(step, 0.5)
+        alarms = [m for m in sink.received if "not being stored" in m.get("title", "")]
+        assert len(alarms) == 1, sink.received            # told once, not per failure
+    finally:
+        sink.stop()
