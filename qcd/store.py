@@ -167,6 +167,26 @@ def _m006_path_bytes(db: Database) -> None:
     db.execute("ALTER TABLE files ADD COLUMN path_bytes BLOB")
 
 
+def cannot_write(path: Path) -> str | None:
+    """Why qcd cannot write ``path`` and the files it keeps beside it (-wal, -shm, lock,
+    log), or None when it can: 'the folder F is on a read-only file system', ..."""
+    import errno
+    import tempfile
+    folder = Path(path).parent
+    try:
+        with tempfile.TemporaryFile(dir=folder, prefix=".qcd-write-check-"):
+            pass
+    except OSError as e:
+        kind = ("is on a read-only file system" if e.errno == errno.EROFS else
+                "is not writable for this user (permission denied)"
+                if e.errno in (errno.EACCES, errno.EPERM) else f"cannot be written ({e.strerror})")
+        return (f"the folder {folder} {kind}; qcd writes its database, the -wal and -shm files "
+                f"beside it, its lock and its log there")
+    if Path(path).exists() and not os.access(path, os.W_OK):
+        return f"the file {path} is read-only (permission denied)"
+    return None
+
+
 def describe_error(e: BaseException) -> str:
     """What an SQLite error means for the lab, with the driver's own words."""
     text = str(e)
@@ -316,6 +336,10 @@ class Store:
         except sqlite3.DatabaseError as e:
             conn.close()
             self._closed = True
+            why = cannot_write(self.path)
+            if why is not None:               # a healthy database in a folder qcd cannot write
+                raise StoreError(f"{self.path}: cannot be opened for writing: {why}; the "
+                                 f"database itself may be fine: do not delete it") from e
             raise StoreError(f"{self.path}: not a usable qcd database: {e}") from e
         except BaseException:
             conn.close()

@@ -533,8 +533,9 @@ class ServiceLock:
         try:
             f = open(self.path, "a+", encoding="utf-8")
         except OSError as e:
-            raise StoreError(f"{self.path}: cannot open the service lock file: "
-                             f"{e.strerror or e}") from e
+            from qcd.store import cannot_write
+            why = cannot_write(self.path) or f"{self.path}: {e.strerror or e}"
+            raise StoreError(f"cannot start the service: {why}") from e
         try:
             if sys.platform == "win32":
                 import msvcrt

@@ -551,3 +551,57 @@ def test_a_service_whose_store_fails_says_so_and_tells_the_lab_once(tmp_path, st
         assert len(alarms) == 1, sink.received            # told once, not per failure
     finally:
         sink.stop()
+
+
+# ---------------------------------------------------------------- 10. a read-only database folder
+
+@contextlib.contextmanager
+def _read_only(folder: Path):
+    """``folder`` made read-only: a read-only bind mount as root (permissions do not stop
+    root), else its permission bits."""
+    import subprocess
+    if sys.platform == "win32":
+        pytest.skip("read-only folders are made differently on Windows")
+    if os.geteuid() != 0:
+        folder.chmod(0o555)
+        try:
+            yield
+        finally:
+            folder.chmod(0o755)
+        return
+    done = subprocess.run(["mount", "--bind", os.fspath(folder), os.fspath(folder)],
+                          capture_output=True)
+    if done.returncode != 0:
+        pytest.skip(f"cannot make a read-only mount here: {done.stderr.decode().strip()}")
+    try:
+        ro = subprocess.run(["mount", "-o", "remount,ro,bind", os.fspath(folder)],
+                            capture_output=True)
+        if ro.returncode != 0:
+            pytest.skip(f"cannot remount read-only here: {ro.stderr.decode().strip()}")
+        yield
+    finally:
+        subprocess.run(["umount", os.fspath(folder)], capture_output=True)
+
+
+def test_a_read_only_database_folder_is_named_as_such(tmp_path, capsys):
+    from qcd.cli import main
+    from qcd.errors import StoreError
+    dbdir = tmp_path / "db"
+    dbdir.mkdir()
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "db/qcd.sqlite"\n[[rig]]\nname = "{RIG}"\n'
+                   f'folders = ["{folder.as_posix()}"]\n')
+    with Store(dbdir / "qcd.sqlite"):
+        pass                                   # a healthy database
+    with _read_only(dbdir):
+        with pytest.raises(StoreError) as e:
+            Store(dbdir / "qcd.sqlite")
+        assert "not a usable" not in str(e.value) and "do not delete it" in str(e.value)
+        assert os.fspath(dbdir) in str(e.value) and "read-only" in str(e.value) or \
+            "permission denied" in str(e.value), str(e.value)
+        assert main(["watch", "--config", str(cfg)]) == 1
+        err = capsys.readouterr().err.strip()
+        assert err.count("\n") == 0 and "Traceback" not in err, err
+        assert os.fspath(dbdir) in err and ("read-only" in err or "permission denied" in err)
