@@ -801,6 +801,9 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_USAGE
     logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    from qcd.config import SECRET_FILTER
+    for handler in logging.getLogger().handlers:      # secrets masked in every line, --debug too
+        handler.addFilter(SECRET_FILTER)
     try:
         return _COMMANDS[args.command](args)
     except ConfigError as e:

@@ -23,7 +23,7 @@ from typing import TYPE_CHECKING, Any, Iterable
 
 import apprise
 
-from qcd.config import redact, redact_text
+from qcd.config import redact, redact_text, register_secrets
 from qcd.errors import DeliveryError
 
 if TYPE_CHECKING:
@@ -110,6 +110,7 @@ class Sender:
                 raise DeliveryError(f"{config_path}: apprise config file cannot be read")
             self._apprise.add(cfg)
         self._services = list(self._apprise)       # plugin instances, kept (mail throttle)
+        register_secrets(list(self._urls) + [s.url(privacy=False) for s in self._services])
         self._delivered: dict[Any, set[int]] = {}
         if not self._services:
             where = f" (config file {config_path} has no valid URL)" if config_path else ""
@@ -241,6 +242,7 @@ def test_targets(urls: Iterable[str] = (), config_path: Any = None
     """Send a test message to every target on its own, also when another cannot be loaded:
     [(redacted target, 'accepted' | 'failed' | 'not loaded', reason)]."""
     urls = tuple(str(u) for u in urls)
+    register_secrets(urls)
     out: list[tuple[str, str, str]] = []
     services: list[Any] = []
     for url in urls:
@@ -258,6 +260,7 @@ def test_targets(urls: Iterable[str] = (), config_path: Any = None
             out.append((str(config_path), "not loaded", "the apprise config file cannot be "
                                                         "read or holds no valid URL"))
         else:
+            register_secrets([s.url(privacy=False) for s in one])
             for service in one:
                 services.append(service)
                 out.append((redact(service.url(privacy=True)), "", ""))

@@ -586,6 +586,8 @@ def setup_logging(database: Path, *, debug: bool = False, max_bytes: int = 5 << 
                                                    backupCount=backups, encoding="utf-8",
                                                    errors="backslashreplace")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    from qcd.config import SECRET_FILTER
+    handler.addFilter(SECRET_FILTER)         # target secrets never reach the log file
     root = logging.getLogger("qcd")
     root.addHandler(handler)
     root.setLevel(logging.DEBUG if debug else logging.INFO)
