@@ -132,6 +132,8 @@ class Service:
         self._backlog_keys: set[tuple[str, Path]] = set()
         self._unreadable: set[tuple[str, Path]] = set()   # stored as unreadable in this run
         self._store_trouble: dict | None = None   # {reason, since, failures} while storing fails
+        self.store_retry_s = 30.0           # first wait after a failed store (doubles to 10 min)
+        self._retry: list[tuple[float, Ready, Any]] = []   # measured, not stored yet
         self._now = 0.0                     # the clock of the last step (the courier's clock)
         self._courier: Any = None
 
@@ -227,6 +229,8 @@ class Service:
         for r in ready:
             self._submit(r, now)
         busy |= self._collect(now)
+        if self._retry:
+            self._retry_commits(now)
         self._flush_digest(now)
         if self._courier is not None and busy:
             self._courier.wake()              # new messages may be queued
@@ -260,7 +264,7 @@ class Service:
             self.stop_event.wait(self.poll_s)
 
     def queue_len(self) -> int:
-        return len(self.intake) + len(self._jobs)
+        return len(self.intake) + len(self._jobs) + len(self._retry)
 
     # -- intake
 
@@ -381,7 +385,7 @@ class Service:
             stored = self._call_commit(fm, rig, now, batch)
         except Exception as e:
             wait = self._store_failed(e, now, f"storing {printable(r.path)}")
-            self.intake.offer(r.rig, r.path, now + wait, live=r.live)
+            self._retry.append((now + wait, r, fm))     # kept: stored later, not re-measured
             return
         self._store_ok(now)
         self._seen[(r.rig, r.path)] = (r.size, r.mtime)
@@ -460,7 +464,17 @@ class Service:
             log.debug("still failing (%s): %s", what, reason)
         t["failures"] += 1
         t["reason"] = reason
-        return min(600.0, 30.0 * 2.0 ** min(t["failures"] - 1, 10))
+        return min(600.0, self.store_retry_s * 2.0 ** min(t["failures"] - 1, 10))
+
+    def _retry_commits(self, now: float) -> bool:
+        """Store again the measured files whose storing failed, once their wait is over."""
+        due = [x for x in self._retry if x[0] <= now]
+        if not due:
+            return False
+        self._retry = [x for x in self._retry if x[0] > now]
+        for _, r, fm in due:
+            self._finish(r, fm, now)
+        return True
 
     def _store_ok(self, now: float) -> None:
         if self._store_trouble is not None:
@@ -577,14 +591,42 @@ class ServiceLock:
 
 # ---------------------------------------------------------------- logging
 
+class _LogFile(logging.handlers.RotatingFileHandler):
+    """The service's log file. When it cannot be written (a full disk), that is said once on
+    stderr, and lines are dropped quietly until a write works again (no traceback per line)."""
+
+    failing = False
+
+    def emit(self, record: logging.LogRecord) -> None:
+        super().emit(record)
+        if self.failing and self.stream is not None and not self._last_failed:
+            self.failing = False
+            sys.stderr.write(f"qcd: the log file {self.baseFilename} can be written again\n")
+        self._last_failed = False
+
+    _last_failed = False
+
+    def handleError(self, record: logging.LogRecord) -> None:  # noqa: N802 (logging API)
+        self._last_failed = True
+        if self.failing:
+            return
+        self.failing = True
+        err = sys.exc_info()[1]
+        why = getattr(err, "strerror", None) or str(err)
+        try:
+            sys.stderr.write(f"qcd: cannot write the log file {self.baseFilename} ({why}); "
+                             f"log lines are dropped until it can\n")
+        except Exception:
+            pass
+
+
 def setup_logging(database: Path, *, debug: bool = False, max_bytes: int = 5 << 20,
                   backups: int = 5) -> Path:
     """A rotating log file beside the database (qcd.log, 5 MB x 5); returns its path."""
     path = Path(database).parent / LOG_NAME
     path.parent.mkdir(parents=True, exist_ok=True)
-    handler = logging.handlers.RotatingFileHandler(path, maxBytes=max_bytes,
-                                                   backupCount=backups, encoding="utf-8",
-                                                   errors="backslashreplace")
+    handler = _LogFile(path, maxBytes=max_bytes, backupCount=backups, encoding="utf-8",
+                       errors="backslashreplace")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
     from qcd.config import SECRET_FILTER
     handler.addFilter(SECRET_FILTER)         # target secrets never reach the log file

@@ -626,3 +626,75 @@ def test_debug_output_of_the_targets_carries_no_secret(tmp_path):
     assert "JSON POST URL" in out and "POST /hook/" in out    # the debug lines did come through
     for secret in (key, path_token, password):
         assert secret not in out, secret
+
+
+# ---------------------------------------------------------------- 12. a full disk
+
+@contextlib.contextmanager
+def _small_disk(folder: Path, size: str = "2m"):
+    """A small tmpfs at ``folder`` (needs root; skipped with a message otherwise)."""
+    import subprocess
+    if sys.platform != "linux" or os.geteuid() != 0:
+        pytest.skip("a small full file system needs root (a tmpfs mount) on Linux")
+    folder.mkdir()
+    done = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs",
+                           os.fspath(folder)], capture_output=True)
+    if done.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here: {done.stderr.decode().strip()}")
+    try:
+        yield folder
+    finally:
+        subprocess.run(["umount", "-l", os.fspath(folder)], capture_output=True)
+
+
+def _fill(folder: Path) -> Path:
+    filler = folder / "filler"
+    with open(filler, "wb") as f:
+        try:
+            while True:
+                f.write(b"\0" * 65536)
+                f.flush()
+        except OSError:
+            pass
+    return filler
+
+
+@pytest.mark.slow
+def test_a_full_disk_is_said_once_and_nothing_is_measured_again(tmp_path, capfd):
+    import logging
+    from qcd.watch import setup_logging
+    with _small_disk(tmp_path / "disk") as disk:
+        db = disk / "qcd.sqlite"
+        folder = tmp_path / "rig"
+        folder.mkdir()
+        handler_count = len(logging.getLogger("qcd").handlers)
+        setup_logging(db)
+        try:
+            with Store(db) as store:
+                cfg = _config(tmp_path, [folder])
+                with _running(cfg, store, beat_s=0.2) as (svc, rec, step):
+                    svc.store_retry_s = 0.2
+                    filler = _fill(disk)
+                    for i in range(3):
+                        _tiny_abf(folder / f"f{i}.abf", 80 + i)
+                    wait_until(lambda: svc._store_trouble is not None
+                               and svc._store_trouble["failures"] >= 6, 20.0, step)
+                    assert "disk is full" in svc._store_trouble["reason"]
+                    for i in range(300):                 # the log file needs new space too
+                        logging.getLogger("qcd.test").warning("line %d %s", i, "x" * 100)
+                    attempts = list(rec.committed)
+                    filler.unlink()                      # space again
+                    wait_until(lambda: len(store.files(rig=RIG)) == 3, 20.0, step)
+                # each file measured once: every attempt to store it carried the same result
+                by_path: dict[str, set[int]] = {}
+                for fm in attempts + rec.committed:
+                    by_path.setdefault(os.fspath(fm.path), set()).add(id(fm))
+                assert len(by_path) == 3 and all(len(v) == 1 for v in by_path.values()), by_path
+                assert svc._store_trouble is None
+        finally:
+            for h in logging.getLogger("qcd").handlers[handler_count:]:
+                logging.getLogger("qcd").removeHandler(h)
+                h.close()
+    err = capfd.readouterr().err
+    assert "--- Logging error ---" not in err
+    assert err.count("cannot write the log file") == 1, err
