@@ -134,6 +134,7 @@ class RigReport:
     spectrum: LatestSpectrum | None = None
     channels: tuple[tuple[int, str], ...] = ()   # (channel, name) of the rig's recent files
     notes: tuple[dict, ...] = ()         # logbook notes (at, text, kind) of the trend window
+    odd_times: tuple[dict, ...] = ()     # files of the period whose recorded time is not trusted
 
 
 @dataclass(frozen=True)
@@ -145,6 +146,14 @@ class Report:
 
     def to_json(self) -> dict[str, Any]:
         return asdict(self)
+
+
+# A recorded time before 1990 is an acquisition PC's clock reset (to the 1980 or 1970 epoch of
+# its file system or system clock, common practice); one more than a day after the file was
+# measured is a clock set ahead. Such files are counted by when they were measured.
+TRUST_FROM = 631152000.0                 # 1990-01-01 00:00 UTC
+_SOURCES = {"header": "header", "header_tz": "header", "mtime": "file's modification time",
+            "analysed": "time measured"}
 
 
 def _file_time(f: dict) -> float:
@@ -255,6 +264,12 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
     for rig in names:
         files = sorted(store.files(rig=rig, since=since, until=None), key=_file_time)
         files = [f for f in files if not f.get("superseded")]
+        odd = store.files_measured_with_odd_times(rig, since, trust_from=TRUST_FROM)
+        seen = {f["id"] for f in files}
+        files += [f for f in odd if f["id"] not in seen]      # measured in the period
+        odd_times = tuple({"id": f["id"], "path": f.get("path"), "recorded_at":
+                           f.get("recorded_at"), "analysed_at": f.get("analysed_at"),
+                           "time_source": f.get("time_source")} for f in odd)
         hints: list[str] = []
         flags: dict[int, list[str]] = {}
         for f in files:
@@ -286,7 +301,7 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
             resolved, tuple(trends), _latest_spectrum(store, rig, files, now),
             tuple(names.items()), tuple({k: n[k] for k in ("at", "text", "kind")} for n in
                                         store.notes(rig, since=now - HISTORY_DAYS * 86400.0,
-                                                    until=now))))
+                                                    until=now)), odd_times))
     return Report(now, since, tuple(out), dict(store.outbox_counts()))
 
 
@@ -319,6 +334,22 @@ def _mute_text(x: dict) -> str:
     return f"muted until {until}{rules}{why}"
 
 
+def _odd_times_lines(rig: RigReport) -> list[str]:
+    """What the report says of files whose recorded time it could not trust."""
+    if not rig.odd_times:
+        return []
+    out = [f"time not trusted: {len(rig.odd_times)} file(s) carry a recorded time before 1990 "
+           f"or ahead of when they were measured (check the acquisition PC's clock); they are "
+           f"counted by when they were measured:"]
+    for f in rig.odd_times[:5]:
+        out.append(f"  {f.get('path')}: {_when(f.get('recorded_at'))} UTC from the "
+                   f"{_SOURCES.get(f.get('time_source'), 'file')}, measured "
+                   f"{_when(f.get('analysed_at'))} UTC")
+    if len(rig.odd_times) > 5:
+        out.append(f"  ... and {len(rig.odd_times) - 5} more")
+    return out
+
+
 def render_text(r: Report) -> str:
     """The compact terminal report; every line fits 100 columns."""
     out = [f"qcd morning report, {_when(r.since)} to {_when(r.generated_at)} UTC"]
@@ -328,6 +359,8 @@ def render_text(r: Report) -> str:
         out.append("")
         out.append(f"== {rig.rig}: {rig.n_files} file(s), {rig.n_ok} ok, {rig.n_error} error, "
                    f"{rig.n_flagged} flagged")
+        for line in _odd_times_lines(rig):
+            out.append(_wrap("   " + line, 100))
         if any(name for _, name in rig.channels):
             out.append(_wrap("   channels: " + _channels_text(rig.channels), 100))
         if rig.measures:
@@ -578,6 +611,8 @@ def render_html(r: Report) -> str:
                      f"<span class='pill {cls}'>{status}</span></h2>"
                      f"<p class='meta'>{rig.n_files} file(s) in the period: {rig.n_ok} ok, "
                      f"{rig.n_error} error, {rig.n_flagged} flagged</p>")
+        for line in _odd_times_lines(rig):
+            parts.append(f"<p class='meta'>{html.escape(line)}</p>")
         if any(name for _, name in rig.channels):
             parts.append(f"<p class='meta'>channels: "
                          f"{html.escape(_channels_text(rig.channels))}</p>")

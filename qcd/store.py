@@ -857,6 +857,21 @@ class Store:
             r["flagged"], r["superseded"] = bool(r["flagged"]), bool(r["superseded"])
         return rows
 
+    def files_measured_with_odd_times(self, rig: str, since: float, *, trust_from: float,
+                                      ahead_s: float = 86400.0) -> list[dict[str, Any]]:
+        """Current files measured at or after ``since`` whose recorded time cannot be right:
+        before ``trust_from`` (a clock reset to 1980 or 1970) or more than ``ahead_s`` after
+        they were measured. Same row form as ``files``."""
+        rows = self._rows("SELECT * FROM files WHERE superseded = 0 AND rig = ? AND "
+                          "analysed_at >= ? AND (recorded_at < ? OR recorded_at > analysed_at "
+                          "+ ?) ORDER BY analysed_at, id", (rig, since, trust_from, ahead_s))
+        for r in rows:
+            r["notes"] = json.loads(r["notes"])
+            r["extra"] = json.loads(r["extra"])
+            r["gap_free"] = None if r["gap_free"] is None else bool(r["gap_free"])
+            r["flagged"], r["superseded"] = bool(r["flagged"]), bool(r["superseded"])
+        return rows
+
     def measure_series(self, rig: str, measure: str, *, channel: int | None = None,
                        since: float | None = None
                        ) -> list[tuple[float, float, str, bool, int, str]]:

@@ -698,3 +698,27 @@ def test_a_full_disk_is_said_once_and_nothing_is_measured_again(tmp_path, capfd)
     err = capfd.readouterr().err
     assert "--- Logging error ---" not in err
     assert err.count("cannot write the log file") == 1, err
+
+
+# ---------------------------------------------------------------- 16. clocks
+
+def test_a_file_with_a_1980_time_is_counted_in_the_period_it_was_measured(tmp_path, store):
+    from qcd.report import build_report, render_html, render_text
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    for i in range(3):
+        _tiny_abf(folder / f"f{i}.abf", 90 + i)      # pyabf's ABF1 writer: no header date
+    old = 315532800.0 + 3600                          # 1980-01-01 01:00 UTC: a reset clock
+    os.utime(folder / "f0.abf", (old, old))
+    cfg = _config(tmp_path, [folder])
+    with _running(cfg, store) as (svc, rec, step):
+        wait_until(lambda: len(rec.committed) == 3, 15.0, step)
+    assert all(fm.recorded_at is None for fm in rec.committed)
+    now = time.time()
+    report = build_report(store, now, now - 3600)
+    (rig,) = report.rigs
+    assert rig.n_files == 3 and rig.n_ok == 3                 # all three measured this hour
+    assert [Path(f["path"]).name for f in rig.odd_times] == ["f0.abf"]
+    text = render_text(report)
+    assert "time not trusted: 1 file(s)" in text and "1980-01-01 01:00 UTC" in text
+    assert "time not trusted" in render_html(report)
