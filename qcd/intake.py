@@ -479,16 +479,30 @@ class _FolderWatch:
         self._poll_interval_s = poll_interval_s
         self.observer = None
         self.state = "not started"
+        self._identity: tuple[int, int] | None = None     # (device, inode) being watched
+
+    def _current(self) -> tuple[int, int] | None:
+        try:
+            st = os.stat(self.root)
+        except OSError:
+            return None
+        return (st.st_dev, st.st_ino)
 
     def ensure(self) -> bool:
-        """Start or restart the observer as needed; True when it was (re)started now."""
+        """Start or restart the observer as needed; True when it was (re)started now.
+
+        The folder's identity (device, inode) is checked too: a folder renamed away and
+        made again under the configured name (``mv rig rig_old; mkdir rig``) is a new folder,
+        which the old observer (following the old one) would never see."""
         present = self.root.is_dir()
         if self.observer is not None:
             alive = self.observer.is_alive() and any(e.is_alive() for e in self.observer.emitters)
-            if present and alive:
+            same = not present or self._identity is None or self._current() == self._identity
+            if present and alive and same:
                 return False
             log.warning("%s: %s; will watch it again when it is back", self.root,
-                        "folder is gone" if not present else "watcher stopped")
+                        "folder is gone" if not present else "watcher stopped" if not alive
+                        else "folder was replaced by a new one of the same name")
             self.stop()
             self.state = "missing" if not present else "restarting"
         if not present:
@@ -520,6 +534,7 @@ class _FolderWatch:
             self.state = "error"
             return False
         self.observer = obs
+        self._identity = self._current()
         self.state = "polling" if self.polling else "watching"
         log.info("%s: %s for rig %s", self.root, self.state, self.rig.name)
         return True

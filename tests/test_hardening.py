@@ -722,3 +722,21 @@ def test_a_file_with_a_1980_time_is_counted_in_the_period_it_was_measured(tmp_pa
     text = render_text(report)
     assert "time not trusted: 1 file(s)" in text and "1980-01-01 01:00 UTC" in text
     assert "time not trusted" in render_html(report)
+
+
+# ---------------------------------------------------------------- 7. a folder renamed and made again
+
+def test_a_watched_folder_renamed_away_and_made_again_is_watched_within_seconds(tmp_path, store):
+    folder = tmp_path / "rigA"
+    folder.mkdir()
+    cfg = _config(tmp_path, [folder])
+    with _running(cfg, store) as (svc, rec, step):
+        _tiny_abf(folder / "one.abf", 101)
+        wait_until(lambda: len(rec.committed) == 1, 10.0, step)
+        folder.rename(tmp_path / "rigA_old")       # mv rigA rigA_old; mkdir rigA
+        folder.mkdir()
+        _idle(step, 0.1)
+        _tiny_abf(folder / "two.abf", 102)
+        wait_until(lambda: len(rec.committed) == 2, 5.0, step)   # seconds, not the rescan
+        assert svc._folders[0].state == "watching"
+    assert Path(rec.committed[1].path) == folder / "two.abf"
