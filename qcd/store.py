@@ -639,7 +639,8 @@ class Store:
             "severity, value, unit, limit_text, hint) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
             (file_id, f.rig, f.mode, None if f.channel is None else int(f.channel), f.measure,
              f.rule, f.kind, int(bool(f.bad)), f.severity, _real(f.value), f.unit,
-             f.limit_text, f.hint))
+             None if f.limit_text is None else printable(f.limit_text),
+             None if f.hint is None else printable(f.hint)))
 
     @staticmethod
     def _upsert_alerts(conn: sqlite3.Connection, states: Iterable[dict], now: float) -> None:

@@ -99,9 +99,13 @@ def test_a_name_that_is_not_utf8_is_stored_losslessly_and_not_measured_again(tmp
     raw = os.fsencode(folder) + b"/caf\xe9.abf"     # a legacy (Latin-1) encoded name
     _tiny_abf(raw, 1)
     _tiny_abf(folder / "plain.abf", 2)
+    bad = os.fsencode(folder) + b"/caf\xe9_bad.abf"      # an error names the file too
+    with open(bad, "wb") as f:
+        f.write(b"not a recording " * 200)
     cfg = _config(tmp_path, [folder])
     with _running(cfg, store) as (svc, rec, step):
-        wait_until(lambda: len(rec.committed) == 2, 20.0, step)
+        wait_until(lambda: len(rec.committed) == 3, 20.0, step)
+        assert svc._store_trouble is None
     rows = {r["path"]: r for r in store.files(rig=RIG)}
     shown = os.fspath(folder) + "/caf\\xe9.abf"      # shown escaped, printable everywhere
     assert shown in rows and rows[shown]["status"] == "ok"
