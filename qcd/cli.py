@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from qcd import __version__
-from qcd.errors import ConfigError, QcdError
+from qcd.errors import ConfigError, QcdError, StoreError, printable
 
 if TYPE_CHECKING:
     from qcd.results import FileMeasures, Measure
@@ -227,8 +227,19 @@ def build_parser() -> argparse.ArgumentParser:
                                    "the alerts to a local file, and print the morning report.",
                        epilog="Example: qcd demo --keep demo-lab")
     p.add_argument("--keep", type=Path, metavar="DIR",
-                   help="build the lab in DIR and keep it (default: a temporary folder)")
+                   help="build the lab in DIR and keep it (default: a temporary folder); DIR "
+                        "must be new, empty or an earlier demo's")
     p.add_argument("--days", type=int, default=21, metavar="N", help="days of recordings (21)")
+    _common(p)
+
+    p = sub.add_parser("rules", help="check rule files",
+                       description="Check rule files as the service loads them: known measures "
+                                   "and modes, limits in the measure's quantity. Each file is "
+                                   "checked after the packaged default rules, as qcd.toml's "
+                                   "'rules' list would load it.",
+                       epilog="Example: qcd rules --check rules/my-lab.toml")
+    p.add_argument("--check", nargs="+", type=Path, metavar="FILE",
+                   help="rule files to check (exit 2 at the first wrong rule)")
     _common(p)
     return parser
 
@@ -351,12 +362,13 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         files = _scan_files(list(args.paths))
 
         def said(fm) -> None:
-            what = "ok" if fm.status == "ok" else f"error ({fm.error_kind}): {fm.error}"
-            print(f"stored  {fm.path}  {what}", flush=True)
+            what = ("ok" if fm.status == "ok" else f"copy: {fm.error}" if fm.status == "skipped"
+                    else f"error ({fm.error_kind}): {fm.error}")
+            print(printable(f"stored  {fm.path}  {what}"), flush=True)
         with Store(cfg.database) as store:
             res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
                        workers=args.workers)
-        failed = [fm for fm in res.files if fm.status != "ok"]
+        failed = [fm for fm in res.files if fm.status == "error"]
         print(f"qcd scan: rig {rig.name}: {len(res.files) - len(failed)} of {len(res.files)} "
               f"file(s) measured and stored" + _failed_text(failed))
         for a in res.opened:
@@ -395,7 +407,7 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             if args.json:
                 print(json.dumps(fm.to_json()), flush=True)
             else:
-                print(_scan_row(fm, width, args.mains), flush=True)
+                print(printable(_scan_row(fm, width, args.mains)), flush=True)
             if progress and i < len(files):
                 print(f"\rqcd scan: {i}/{len(files)} files, {failed} failed", end="",
                       file=sys.stderr, flush=True)
@@ -425,16 +437,21 @@ def _cmd_watch(args: argparse.Namespace) -> int:
     from qcd import watch
     from qcd.config import find_config, load_config
     from qcd.ruleset import load_rules
-    from qcd.store import Store
     cfg = load_config(find_config(args.config))
     if not cfg.rigs:
         raise ConfigError(cfg.path, "rig", "no [[rig]] tables: there is no folder to watch")
     if args.workers < 0:
         raise ConfigError(None, "--workers", f"expected 0 (automatic) or more, got {args.workers}")
     rules = load_rules(cfg.rules)
+    with watch.ServiceLock(cfg.database):    # one service per database
+        return _run_service(args, cfg, rules)
+
+
+def _run_service(args: argparse.Namespace, cfg, rules) -> int:
+    from qcd import digest, watch
+    from qcd.store import Store
     log_path = watch.setup_logging(cfg.database, debug=args.debug)
     sender = watch.make_sender(cfg)
-    from qcd import digest
     with Store(cfg.database) as store:
         service = watch.Service(cfg, store, rules, sender=sender,
                                 workers=args.workers or None, catch_up=not args.no_catch_up,
@@ -457,9 +474,12 @@ def _cmd_status(args: argparse.Namespace) -> int:
     with Store(cfg.database) as store:
         now = time.time()
         st = status(store, now)
+    if st.get("read_error") and not st.get("heartbeat"):
+        raise StoreError(st["read_error"])       # nothing to show: one line
     print(format_status(st, now, zones={r.name: r.timezone for r in cfg.rigs},
                         lab_zone=cfg.timezone))
-    return EXIT_OK if st["alive"] else EXIT_FAILED
+    return EXIT_OK if st["alive"] and not (st.get("storing_failed") or st.get("read_error")) \
+        else EXIT_FAILED
 
 
 def _zones(args: argparse.Namespace) -> tuple[dict[str, str | None], str | None]:
@@ -779,6 +799,22 @@ def _cmd_notify_test(args: argparse.Namespace) -> int:
     return EXIT_OK if ok == len(results) else EXIT_FAILED
 
 
+def _cmd_rules(args: argparse.Namespace) -> int:
+    if args.check:
+        return _rules_check(args.check)
+    raise ConfigError(None, "rules", "name the rule files to check: qcd rules --check FILE")
+
+
+def _rules_check(paths: list[Path]) -> int:
+    """``qcd rules --check FILE...``: load each file as the service would; one line per file."""
+    from qcd.ruleset import load_rules
+    for path in paths:
+        rules = load_rules([path])           # ConfigError: file, rule, what was expected
+        print(f"{path}: ok, {len(rules.limits)} limit and {len(rules.history)} history "
+              f"rule(s)")
+    return EXIT_OK
+
+
 def _cmd_demo(args: argparse.Namespace) -> int:
     from qcd.demo import run_demo
     if not 6 <= args.days <= 120:
@@ -793,8 +829,7 @@ _COMMANDS = {
     "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
     "trend": _cmd_trend, "export": _cmd_export, "compare": _cmd_compare, "alerts": _cmd_alerts,
     "mute": _cmd_mute, "note": _cmd_note, "digest": _cmd_digest, "init": _cmd_init,
-    "notify-test": _cmd_notify_test,
-    "demo": _cmd_demo,
+    "notify-test": _cmd_notify_test, "demo": _cmd_demo, "rules": _cmd_rules,
 }
 
 
@@ -827,6 +862,9 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_USAGE
     logging.basicConfig(level=logging.DEBUG if args.debug else logging.WARNING,
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    from qcd.config import SECRET_FILTER
+    for handler in logging.getLogger().handlers:      # secrets masked in every line, --debug too
+        handler.addFilter(SECRET_FILTER)
     try:
         return _COMMANDS[args.command](args)
     except ConfigError as e:
@@ -845,6 +883,24 @@ def main(argv: list[str] | None = None) -> int:
     except BrokenPipeError:   # ``qcd ... | head``: the reader left; stop quietly, as tools do
         _quiet_stdout()
         return EXIT_OK
+    except OSError as e:      # a file or folder the user named: one line, path and reason
+        if args.debug:
+            raise
+        print(f"qcd {args.command}: {_os_error_text(e)}", file=sys.stderr)
+        if e.filename is None:
+            _quiet_stdout()   # the output itself failed (a full disk): do not try it again
+        return EXIT_FAILED
+
+
+def _os_error_text(e: OSError) -> str:
+    """'PATH: No such file or directory' (or 'writing the output: No space left on device')."""
+    reason = e.strerror or str(e)
+    if e.filename is None:
+        return f"writing the output: {reason}"
+    where = printable(e.filename)
+    if e.filename2 is not None:
+        where += f" -> {printable(e.filename2)}"
+    return f"{where}: {reason}"
 
 
 def _quiet_stdout() -> None:

@@ -7,6 +7,7 @@ parses durations (``parse_duration``) and writes the commented starter file
 from __future__ import annotations
 
 import difflib
+import logging
 import os
 import re
 import sys
@@ -26,7 +27,7 @@ else:  # pragma: no cover - Python 3.10
 __all__ = ["TestPulse", "RigConfig", "Config", "DigestConfig", "load_config", "parse_pulse", "find_config",
            "DECLARED_MODES",
            "read_toml", "redact", "redact_text", "default_rules_path", "starter_config",
-           "CONFIG_NAME", "parse_duration"]
+           "CONFIG_NAME", "parse_duration", "secrets_of", "register_secrets", "SECRET_FILTER"]
 
 CONFIG_NAME = "qcd.toml"
 # Every suffix qcd reads (qcd.recording.SUFFIXES; a test keeps the two equal).
@@ -504,7 +505,7 @@ def redact(url: str) -> str:
     segments = parts.path.split("/")
     segs = []
     for s in segments:
-        if s and (token_style or _TOKEN_LIKE.match(s)):
+        if s and (token_style or _TOKEN_LIKE.match(s) or _mixed_token(s)):
             segs.append(MASK)
         else:
             segs.append(s)
@@ -520,6 +521,11 @@ def redact(url: str) -> str:
     return f"{parts.scheme}://{new_netloc}{path}{query}"
 
 
+def _mixed_token(seg: str) -> bool:
+    """A path segment of 8+ characters mixing letters and digits: a webhook token."""
+    return len(seg) >= 8 and bool(re.search(r"\d", seg)) and bool(re.search(r"[A-Za-z]", seg))
+
+
 _URL_IN_TEXT = re.compile(r"\b[A-Za-z][A-Za-z0-9+.-]*://[^\s'\"<>]+")
 
 
@@ -530,6 +536,70 @@ def redact_text(text: str, urls: tuple[str, ...] | list[str] = ()) -> str:
         if u:
             out = out.replace(u, redact(u))
     return _URL_IN_TEXT.sub(lambda m: redact(m.group(0)), out)
+
+
+def secrets_of(url: str) -> set[str]:
+    """The secret parts of a target URL as they may appear in other programs' log lines:
+    the password, secret-named query values and every ``+header`` value, the user and host of
+    token-addressed services, and path segments that hold letters and digits (webhook tokens),
+    each also URL-decoded."""
+    text = str(url)
+    try:
+        parts = urlsplit(text)
+    except ValueError:
+        return set()
+    if "://" not in text:
+        return set()
+    out: set[str] = set()
+    netloc = text.split("://", 1)[1].split("/", 1)[0].split("?", 1)[0].split("#", 1)[0]
+    userinfo, _, hostport = netloc.rpartition("@")
+    user, colon, password = userinfo.partition(":")
+    if colon:
+        out.add(password)
+    token_style = parts.scheme.lower() not in _HOST_SCHEMES
+    if token_style:
+        out.update((user, hostport.rsplit(":", 1)[0]))
+    for seg in parts.path.split("/"):
+        if token_style or _mixed_token(seg):
+            out.add(seg)
+    for item in parts.query.split("&") if parts.query else ():
+        k, eq, v = item.partition("=")
+        name = unquote(k)
+        if eq and (name.startswith("+") or _SECRET_PARAM.search(name.lstrip("+-: "))):
+            out.add(v)
+    return {s for x in out for s in (x, unquote(x)) if len(s) >= 4}
+
+
+_SECRETS: set[str] = set()
+
+
+def register_secrets(urls: Any) -> None:
+    """Have SECRET_FILTER mask these target URLs' secrets in every log line from now on."""
+    for u in urls:
+        _SECRETS.update(secrets_of(str(u)))
+
+
+class _SecretFilter(logging.Filter):
+    """Masks registered secrets (and redacts URLs) in log records, whoever wrote them: qcd,
+    apprise's debug lines, the HTTP library's request lines. Put on every handler."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if not _SECRETS:
+            return True
+        try:
+            msg = record.getMessage()
+        except Exception:                    # a malformed record: leave it to logging
+            return True
+        new = msg
+        for s in sorted(_SECRETS, key=len, reverse=True):
+            if s in new:
+                new = new.replace(s, MASK)
+        if new != msg:
+            record.msg, record.args = new, None
+        return True
+
+
+SECRET_FILTER = _SecretFilter()
 
 
 # --- the starter file --------------------------------------------------------------------------

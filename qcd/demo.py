@@ -288,6 +288,24 @@ def _printer(out) -> Callable[[str], None]:
     return p
 
 
+DEMO_MARKER = ".qcd-demo"
+
+
+def check_demo_folder(folder: Path) -> None:
+    """ConfigError unless ``folder`` is new, empty, or one the demo made (its marker file):
+    the demo replaces its rig folders, database and config there."""
+    from qcd.errors import ConfigError
+    if not folder.exists():
+        return
+    if not folder.is_dir():
+        raise ConfigError(None, "--keep", f"{folder} exists and is not a folder")
+    if (folder / DEMO_MARKER).is_file() or not any(folder.iterdir()):
+        return
+    raise ConfigError(None, "--keep", f"{folder} is not empty and was not made by qcd demo "
+                      f"(no {DEMO_MARKER} file in it); the demo would replace what is there: "
+                      f"name a new or empty folder")
+
+
 def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int = 3,
              out=None, write_html: bool = True, workers: int | None = None,
              end: datetime | None = None) -> DemoResult:
@@ -308,7 +326,10 @@ def run_demo(folder: Path | None = None, *, days: int = 21, files_per_day: int =
     t_start = time.monotonic()
     folder = Path(folder) if folder else Path(tempfile.mkdtemp(prefix="qcd-demo-"))
     folder = folder.resolve()
+    check_demo_folder(folder)
     folder.mkdir(parents=True, exist_ok=True)
+    (folder / DEMO_MARKER).write_text("made by qcd demo: it may delete and rewrite this "
+                                      "folder's demo files\n", encoding="utf-8")
     for stale in ("qcd.sqlite", "qcd.sqlite-wal", "qcd.sqlite-shm", "alerts.log",
                   "report.html", "qcd.log"):
         (folder / stale).unlink(missing_ok=True)

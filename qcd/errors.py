@@ -4,7 +4,7 @@ from __future__ import annotations
 import os
 
 __all__ = ["QcdError", "ConfigError", "RecordingError", "DeliveryError", "StoreError",
-           "RECORDING_ERROR_KINDS"]
+           "RECORDING_ERROR_KINDS", "printable", "path_bytes"]
 
 # Stable codes stored with every failed file (files.error_kind). Never rename one.
 RECORDING_ERROR_KINDS = (
@@ -18,6 +18,34 @@ RECORDING_ERROR_KINDS = (
     "never_settled",  # kept changing for longer than give_up_hours
     "internal",       # a bug in qcd: logged with its traceback, counted as a failure in tests
 )
+
+
+def printable(text: object) -> str:
+    """``text`` (a str or path) as valid Unicode: the bytes of a name that is not UTF-8 (which
+    Python keeps as lone surrogates) shown escaped, ``caf\\xe9.abf``; valid text unchanged."""
+    s = os.fspath(text) if isinstance(text, os.PathLike) else str(text)
+    try:
+        s.encode("utf-8")
+        return s
+    except UnicodeEncodeError:
+        pass
+    try:
+        return s.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    except UnicodeEncodeError:
+        return s.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def path_bytes(path: object) -> bytes | None:
+    """The file-system bytes of a path whose name is not valid UTF-8, else None (its text
+    is exact then)."""
+    s = os.fspath(path)  # type: ignore[arg-type]
+    if isinstance(s, bytes):
+        return s
+    try:
+        s.encode("utf-8")
+        return None
+    except UnicodeEncodeError:
+        return os.fsencode(s)
 
 
 class QcdError(Exception):

@@ -17,7 +17,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable
 
-from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
+from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileAttribEvent,
+                             FileClosedEvent, FileCreatedEvent,
                              FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
                              FileSystemEventHandler)
 from watchdog.observers import Observer
@@ -72,6 +73,9 @@ def read_header(path: Path, size: int) -> tuple[str | None, Recording | None]:
     """
     if size == 0:
         return "empty so far", None
+    why = _preallocated(path, size)
+    if why is not None:
+        return why, None
     from qcd.recording import not_finished, open_recording
     try:
         why = not_finished(path, size)        # HDF5: superblock end-of-file address vs size
@@ -86,6 +90,33 @@ def read_header(path: Path, size: int) -> tuple[str | None, Recording | None]:
         return None, None
     except Exception:                         # the pipeline will record what is wrong
         return None, None
+
+
+# Copy tools and some acquisition programs set a file's final size first and fill it in later:
+# until then the header (the first block) or the end of the data is all zeros. Real
+# recordings end in at most one 512-byte block of padding zeros (every file of the sample set),
+# so 4 KiB and more of zeros at the end mean the data is not there yet. Such a file waits (up
+# to give_up_hours, after which it is measured as it is).
+_HEAD_BYTES = 512
+_ZERO_TAIL_BYTES = 4096
+
+
+def _preallocated(path: Path, size: int) -> str | None:
+    """Why the file looks set aside but not yet written (blank header, zeros at its end)."""
+    try:
+        with open(path, "rb") as f:
+            head = f.read(min(size, _HEAD_BYTES))
+            if head and not head.strip(b"\0"):
+                return "the header is all zeros so far (space set aside, not written yet)"
+            tail = min(4 * _ZERO_TAIL_BYTES, size // 2)
+            if tail >= _ZERO_TAIL_BYTES:
+                f.seek(size - tail)
+                if not f.read(tail).strip(b"\0"):
+                    return (f"the last {tail} bytes are all zeros so far (space set aside, "
+                            f"data not written yet)")
+    except OSError:
+        return None                           # the pipeline stores why it cannot be read
+    return None
 
 
 def header_fits(path: Path, size: int) -> str | None:
@@ -418,6 +449,8 @@ class _Inbox(FileSystemEventHandler):
         t = type(event)
         if t in (FileCreatedEvent, FileModifiedEvent):
             self._put(event.src_path, "written")
+        elif t is FileAttribEvent:           # permissions changed: an unreadable file may read
+            self._put(event.src_path, "written")
         elif t is FileClosedEvent:                      # close after write (Linux)
             self._put(event.src_path, "closed")
         elif t is FileMovedEvent:
@@ -446,16 +479,30 @@ class _FolderWatch:
         self._poll_interval_s = poll_interval_s
         self.observer = None
         self.state = "not started"
+        self._identity: tuple[int, int] | None = None     # (device, inode) being watched
+
+    def _current(self) -> tuple[int, int] | None:
+        try:
+            st = os.stat(self.root)
+        except OSError:
+            return None
+        return (st.st_dev, st.st_ino)
 
     def ensure(self) -> bool:
-        """Start or restart the observer as needed; True when it was (re)started now."""
+        """Start or restart the observer as needed; True when it was (re)started now.
+
+        The folder's identity (device, inode) is checked too: a folder renamed away and
+        made again under the configured name (``mv rig rig_old; mkdir rig``) is a new folder,
+        which the old observer (following the old one) would never see."""
         present = self.root.is_dir()
         if self.observer is not None:
             alive = self.observer.is_alive() and any(e.is_alive() for e in self.observer.emitters)
-            if present and alive:
+            same = not present or self._identity is None or self._current() == self._identity
+            if present and alive and same:
                 return False
             log.warning("%s: %s; will watch it again when it is back", self.root,
-                        "folder is gone" if not present else "watcher stopped")
+                        "folder is gone" if not present else "watcher stopped" if not alive
+                        else "folder was replaced by a new one of the same name")
             self.stop()
             self.state = "missing" if not present else "restarting"
         if not present:
@@ -487,6 +534,7 @@ class _FolderWatch:
             self.state = "error"
             return False
         self.observer = obs
+        self._identity = self._current()
         self.state = "polling" if self.polling else "watching"
         log.info("%s: %s for rig %s", self.root, self.state, self.rig.name)
         return True

@@ -5,20 +5,29 @@ crash between the send and that mark can send it again (once) on the next start;
 stays pending and is retried (30 s doubling to 1 h), and after 24 h it is marked ``stuck``,
 never dropped. Targets are sent to one by one, and within one running Sender a target that
 accepted a message is not sent it again while another target is down.
+
+Every attempt has a deadline on the whole of it (``attempt_s``): a target that never answers,
+or answers one byte at a time, costs at most that. An attempt past its deadline is left to
+finish in its own thread; the message is not sent to that target again while it runs, and
+counts as accepted if it ends in success, so a slow target rarely gets a message twice (it
+may, when the late attempt fails after the target took it). The service delivers through a
+``Courier``: a thread of its own, off the measuring path, that stopping does not wait for.
 Imports apprise, qcd.config (redact), qcd.errors; the Store it is given as a type.
 """
 from __future__ import annotations
 
 import json
 import logging
+import shutil
 import tempfile
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable
 
 import apprise
 
-from qcd.config import redact, redact_text
+from qcd.config import redact, redact_text, register_secrets
 from qcd.errors import DeliveryError
 
 if TYPE_CHECKING:
@@ -26,13 +35,56 @@ if TYPE_CHECKING:
     from qcd.store import Store
 
 __all__ = ["Sender", "SendResult", "Delivery", "deliver_due", "backoff_s", "BACKOFF_START_S",
-           "BACKOFF_CAP_S", "STUCK_AFTER_S", "test_targets"]
+           "BACKOFF_CAP_S", "STUCK_AFTER_S", "ATTEMPT_S", "test_targets", "Courier"]
 
 log = logging.getLogger(__name__)
 
 BACKOFF_START_S = 30.0
 BACKOFF_CAP_S = 3600.0
 STUCK_AFTER_S = 24 * 3600.0
+ATTEMPT_S = 20.0           # deadline on one attempt to one target, connecting to the answer
+
+
+class _Attempt:
+    """One ``service.notify`` call in a daemon thread: (done, accepted, reason) when it ends."""
+
+    def __init__(self, service: Any, title: str, body: str, kind: str,
+                 attachment: tuple[str, str] | None = None) -> None:
+        self.accepted = False
+        self.reason = ""
+        self.done = threading.Event()
+        self._thread = threading.Thread(target=self._run,
+                                        args=(service, title, body, kind, attachment),
+                                        name="qcd-send", daemon=True)
+        self._thread.start()
+
+    def _run(self, service: Any, title: str, body: str, kind: str,
+             attachment: tuple[str, str] | None) -> None:
+        tmp = None
+        extra = {}
+        with apprise.LogCapture(level=logging.WARNING, fmt="%(message)s") as cap:
+            try:
+                if attachment is not None and getattr(service, "attachment_support", False):
+                    # the file lives as long as this attempt, also one past its deadline
+                    tmp = tempfile.mkdtemp(prefix="qcd-attach-")
+                    path = Path(tmp) / Path(attachment[0]).name
+                    path.write_text(attachment[1], encoding="utf-8")
+                    extra = {"attach": str(path)}
+                ok = bool(service.notify(body=body, title=title,
+                                         notify_type=_TYPE.get(kind, apprise.NotifyType.INFO),
+                                         **extra))
+                reason = "" if ok else (" ".join(cap.getvalue().split()) or "not accepted")
+            except Exception as e:           # a plugin bug is one failed target, not a crash
+                log.exception("sending to %s", redact(service.url(privacy=True)))
+                ok, reason = False, f"internal error in the target's plugin: {type(e).__name__}"
+            finally:
+                if tmp is not None:
+                    shutil.rmtree(tmp, ignore_errors=True)
+        self.accepted, self.reason = ok, reason
+        self.done.set()
+
+    def wait(self, seconds: float) -> bool:
+        return self.done.wait(max(0.0, seconds))
 
 _TYPE = {"firing": apprise.NotifyType.WARNING, "unstable": apprise.NotifyType.WARNING,
          "digest": apprise.NotifyType.WARNING, "reminder": apprise.NotifyType.INFO,
@@ -64,9 +116,11 @@ class Sender:
     """All configured apprise targets as one: URLs and/or an apprise config file."""
 
     def __init__(self, urls: Iterable[str] = (), config_path: Any = None, *,
-                 named_only: Iterable[str] = ()) -> None:
+                 named_only: Iterable[str] = (), attempt_s: float = ATTEMPT_S) -> None:
         """``named_only``: further URLs sent to only by messages that name them (a daily
-        report's own targets), never by alerts."""
+        report's own targets), never by alerts. ``attempt_s``: the deadline on one attempt."""
+        self.attempt_s = float(attempt_s)
+        self._late: dict[tuple[Any, int], _Attempt] = {}   # attempts past their deadline
         named_only = tuple(str(u) for u in named_only if str(u) not in tuple(map(str, urls)))
         self._urls = tuple(str(u) for u in urls) + named_only
         self._apprise = apprise.Apprise()
@@ -83,6 +137,7 @@ class Sender:
         self._services = list(self._apprise)       # plugin instances, kept (mail throttle)
         self._origin += [None] * (len(self._services) - len(self._origin))
         self._named_only = set(named_only)
+        register_secrets(list(self._urls) + [s.url(privacy=False) for s in self._services])
         self._delivered: dict[Any, set[int]] = {}
         if not self._services:
             where = f" (config file {config_path} has no valid URL)" if config_path else ""
@@ -130,67 +185,64 @@ class Sender:
         """
         done = self._delivered.get(key, set()) if key is not None else set()
         failures = []
+        timed_out = False
         chosen = set(self.chosen(targets))
-        with tempfile.TemporaryDirectory(prefix="qcd-attach-") as tmp:
-            attach = None
-            if attachment is not None:
-                path = Path(tmp) / Path(attachment[0]).name
-                path.write_text(attachment[1], encoding="utf-8")
-                attach = str(path)
-            for i, service in enumerate(self._services):
-                if i in done or i not in chosen:
+        for i, service in enumerate(self._services):
+            if i in done or i not in chosen:
+                continue
+            late = self._late.get((key, i)) if key is not None else None
+            if late is not None:             # the last attempt ran past its deadline
+                if not late.done.is_set():
+                    timed_out = True
+                    failures.append(f"{redact(service.url(privacy=True))}: the previous attempt "
+                                    f"is still waiting for an answer")
                     continue
-                ok, reason = self._send_one(service, title, body, kind, attach)
-                if ok:
+                del self._late[(key, i)]
+                if late.accepted:            # it got through late: not sent again
                     done.add(i)
-                else:
-                    failures.append(f"{redact(service.url(privacy=True))}: {reason}")
+                    continue
+            attempt = _Attempt(service, title, body, kind, attachment)
+            if not attempt.wait(self.attempt_s):
+                timed_out = True
+                if key is not None:
+                    self._late[(key, i)] = attempt
+                failures.append(f"{redact(service.url(privacy=True))}: no answer within "
+                                f"{self.attempt_s:g} s (the message may still arrive)")
+            elif attempt.accepted:
+                done.add(i)
+            else:
+                failures.append(f"{redact(service.url(privacy=True))}: {attempt.reason}")
         if key is not None:
             if failures:
                 self._delivered[key] = done
             else:
                 self._delivered.pop(key, None)
-        status = "SUCCESS" if not failures else "PARTIAL" if done else "FAILURE"
+        status = ("SUCCESS" if not failures else "PARTIAL" if done else
+                  "TIMEOUT" if timed_out else "FAILURE")
         return SendResult(not failures, status, self._clean("; ".join(failures)))
-
-    @staticmethod
-    def _send_one(service: Any, title: str, body: str, kind: str, attach: str | None
-                  ) -> tuple[bool, str]:
-        extra = {"attach": attach} if attach and getattr(service, "attachment_support",
-                                                         False) else {}
-        with apprise.LogCapture(level=logging.WARNING, fmt="%(message)s") as cap:
-            try:
-                ok = bool(service.notify(body=body, title=title,
-                                         notify_type=_TYPE.get(kind, apprise.NotifyType.INFO),
-                                         **extra))
-            except Exception:                # a plugin bug is one failed target, not a crash
-                log.exception("sending to %s", redact(service.url(privacy=True)))
-                ok = False
-        return ok, ("" if ok else " ".join(cap.getvalue().split()) or "not accepted")
 
     def test(self, title: str = "qcd test message",
              body: str = "This is a test message from qcd: the target is reachable.") -> list[tuple[str, bool]]:
         """Send a test message to each target on its own: [(redacted target, accepted)]."""
         out = []
         for service in self._services:
-            try:
-                ok = bool(service.notify(body=body, title=title,
-                                         notify_type=apprise.NotifyType.INFO))
-            except Exception:                # a plugin bug must not hide the other targets
-                log.exception("test message to %s", redact(service.url(privacy=True)))
-                ok = False
+            attempt = _Attempt(service, title, body, "test")
+            ok = attempt.wait(self.attempt_s) and attempt.accepted
             out.append((redact(service.url(privacy=True)), ok))
         return out
 
 
-def deliver_due(store: Store, sender: Sender, now: float, *, limit: int = 50) -> Delivery:
+def deliver_due(store: Store, sender: Sender, now: float, *, limit: int = 50,
+                stop: threading.Event | None = None) -> Delivery:
     """Send the outbox rows due at ``now``; record sent, retry (back-off) or stuck.
 
     After the first failed send the call stops, so a dead target costs one attempt per call,
-    not one per queued row.
+    not one per queued row; so does ``stop`` once set.
     """
     sent = retried = stuck = 0
     for row in store.outbox_due(now, limit=limit):
+        if stop is not None and stop.is_set():
+            break
         rid = row["id"]
         try:
             att = row.get("attachment")
@@ -228,18 +280,12 @@ _TEST_TITLE = "qcd test message"
 _TEST_BODY = "This is a test message from qcd: the target is reachable."
 
 
-def _try(service: Any) -> tuple[bool, str]:
+def _try(service: Any, attempt_s: float = ATTEMPT_S) -> tuple[bool, str]:
     """Send the test message through one loaded target: (accepted, redacted reason)."""
-    with apprise.LogCapture(level=logging.WARNING, fmt="%(message)s") as cap:
-        try:
-            ok = bool(service.notify(body=_TEST_BODY, title=_TEST_TITLE,
-                                     notify_type=apprise.NotifyType.INFO))
-        except Exception as e:               # a plugin bug is one failed target
-            log.exception("test message to %s", redact(service.url(privacy=True)))
-            ok, reason = False, f"internal error in the target's plugin: {type(e).__name__}"
-        else:
-            reason = "" if ok else (" ".join(cap.getvalue().split()) or "not accepted")
-    return ok, reason
+    attempt = _Attempt(service, _TEST_TITLE, _TEST_BODY, "test")
+    if not attempt.wait(attempt_s):
+        return False, f"no answer within {attempt_s:g} s"
+    return attempt.accepted, attempt.reason
 
 
 def test_targets(urls: Iterable[str] = (), config_path: Any = None
@@ -247,6 +293,7 @@ def test_targets(urls: Iterable[str] = (), config_path: Any = None
     """Send a test message to every target on its own, also when another cannot be loaded:
     [(redacted target, 'accepted' | 'failed' | 'not loaded', reason)]."""
     urls = tuple(str(u) for u in urls)
+    register_secrets(urls)
     out: list[tuple[str, str, str]] = []
     services: list[Any] = []
     for url in urls:
@@ -264,6 +311,7 @@ def test_targets(urls: Iterable[str] = (), config_path: Any = None
             out.append((str(config_path), "not loaded", "the apprise config file cannot be "
                                                         "read or holds no valid URL"))
         else:
+            register_secrets([s.url(privacy=False) for s in one])
             for service in one:
                 services.append(service)
                 out.append((redact(service.url(privacy=True)), "", ""))
@@ -276,3 +324,45 @@ def test_targets(urls: Iterable[str] = (), config_path: Any = None
         ok, why = _try(next(it))
         tested.append((target, "accepted" if ok else "failed", redact_text(why, list(urls))))
     return tested
+
+
+class Courier:
+    """Delivers the outbox in a thread of its own, so a slow or hung target never holds up
+    measuring, storing or stopping. ``clock()`` gives ``now`` (the service's clock);
+    ``wake()`` asks for a pass right away (new messages); ``stop(wait_s)`` waits at most
+    ``wait_s`` for a send under way, which otherwise finishes (or not) on its own: a message
+    sent but not yet marked is sent again after a restart (at least once)."""
+
+    def __init__(self, store: Store, sender: Sender, clock: Any, *,
+                 interval_s: float = 1.0) -> None:
+        self.store, self.sender, self.clock = store, sender, clock
+        self.interval_s = float(interval_s)
+        self._stop = threading.Event()
+        self._wake = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="qcd-courier", daemon=True)
+
+    def start(self) -> "Courier":
+        self._thread.start()
+        return self
+
+    def wake(self) -> None:
+        self._wake.set()
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            self._wake.clear()
+            try:
+                deliver_due(self.store, self.sender, self.clock(), stop=self._stop)
+            except Exception:
+                if self._stop.is_set():      # the store was closed under a late send
+                    return
+                log.exception("delivering notifications")
+            self._wake.wait(self.interval_s)
+
+    def stop(self, wait_s: float = 2.0) -> bool:
+        """Stop; True when the thread ended within ``wait_s``."""
+        self._stop.set()
+        self._wake.set()
+        if self._thread.is_alive():
+            self._thread.join(wait_s)
+        return not self._thread.is_alive()

@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
 from qcd import alerts
 from qcd.analyze import analyze_path
-from qcd.errors import StoreError
+from qcd.errors import StoreError, printable
 from qcd.judge import Finding, judge
 from qcd.results import ChannelMeasures, FileMeasures, file_time
 from qcd.workers import imap
@@ -202,8 +202,25 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
     Never raises for a bad file; a StoreError (the database itself failing) propagates.
     With ``batch`` no message is queued per file (see ``flush_digest``).
     """
+    with store.transaction():     # alert states read and written with no other writer between
+        fm = _commit(fm, rig, store, rules, now, batch=batch)
+    _deliver(store, sender, now)             # also retries rows still pending
+    return fm
+
+
+def _commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float, *,
+            batch: bool = False) -> FileMeasures:
     name = rig.name
     fm = in_rig_zone(fm, rig)
+    first = store.same_content(name, fm.sha256)
+    if first is not None and not (first["status"] == "error" and fm.status == "ok"):
+        # content already stored (a copy, or the same file touched): not judged again
+        store.commit_file(name, fm, analysed_at=now)
+        if first["status"] == "ok" and store.file_state(name, fm.path).id != first["id"]:
+            return replace(fm, status="skipped", error_kind=None,
+                           error=f"{printable(fm.path)}: same content as {first['path']}, "
+                                 f"not measured again")
+        return fm
     try:
         findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)
@@ -222,7 +239,6 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
                       messages=messages)
     if changed:
         _end_resolved_mutes(store, now)
-    _deliver(store, sender, now)             # also retries rows still pending
     return fm
 
 
@@ -235,12 +251,13 @@ def process(path: str | os.PathLike, rig: RigConfig, store: Store, rules: Rules,
 def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None = None, *,
                  zones: dict[str, str | None] | None = None) -> alerts.Message | None:
     """After a backlog: one digest of what opened and resolved, queued with its states."""
-    before = store.alert_states()
-    states, message = alerts.flush_digest(before, store.active_mutes(now), now,
-                                          rules.settings, zones=zones)
-    changed = _changed(before, states)
-    if changed or message is not None:
-        store.commit_alerts(changed, [message] if message is not None else [], now=now)
+    with store.transaction():
+        before = store.alert_states()
+        states, message = alerts.flush_digest(before, store.active_mutes(now), now,
+                                              rules.settings, zones=zones)
+        changed = _changed(before, states)
+        if changed or message is not None:
+            store.commit_alerts(changed, [message] if message is not None else [], now=now)
     if message is not None:
         _deliver(store, sender, now)
     return message
@@ -249,12 +266,13 @@ def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None =
 def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None, *,
          zones: dict[str, str | None] | None = None) -> list[alerts.Message]:
     """No new file: one message per rig for open alerts whose mute has just ended."""
-    before = store.alert_states()
-    states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings,
-                                   zones=zones)
-    changed = _changed(before, states)
-    if changed or messages:
-        store.commit_alerts(changed, messages, now=now)
+    with store.transaction():
+        before = store.alert_states()
+        states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings,
+                                       zones=zones)
+        changed = _changed(before, states)
+        if changed or messages:
+            store.commit_alerts(changed, messages, now=now)
     if messages:
         _deliver(store, sender, now)
     return messages
@@ -333,7 +351,8 @@ def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules
     recording order, through this one writer. ``batch`` (default: more than DIGEST_FILES
     files) ends with one digest instead of one message per file.
     """
-    ordered = _in_order(paths)
+    # stored as absolute, resolved paths: the service finds them under its (resolved) folders
+    ordered = _in_order(Path(os.path.realpath(p)) for p in paths)
     files = [p for p, _ in ordered]
     batch = len(files) > DIGEST_FILES if batch is None else batch
     name = rig.name

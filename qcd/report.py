@@ -144,6 +144,7 @@ class RigReport:
     notes: tuple[dict, ...] = ()         # logbook notes (at, text, kind) of the trend window
     timezone: str | None = None          # the rig's IANA zone (None: this computer's)
     zone_label: str = ""                 # the zone as shown ('America/Los_Angeles')
+    odd_times: tuple[dict, ...] = ()     # files of the period whose recorded time is not trusted
 
 
 @dataclass(frozen=True)
@@ -169,6 +170,14 @@ class Report:
 
     def to_json(self) -> dict[str, Any]:
         return asdict(self)
+
+
+# A recorded time before 1990 is an acquisition PC's clock reset (to the 1980 or 1970 epoch of
+# its file system or system clock, common practice); one more than a day after the file was
+# measured is a clock set ahead. Such files are counted by when they were measured.
+TRUST_FROM = 631152000.0                 # 1990-01-01 00:00 UTC
+_SOURCES = {"header": "header", "header_tz": "header", "mtime": "file's modification time",
+            "analysed": "time measured"}
 
 
 def _file_time(f: dict) -> float:
@@ -306,6 +315,12 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
         files = sorted(store.files(rig=rig, since=since, until=None, or_analysed=True),
                        key=_file_time)          # recorded or measured in the period
         files = [f for f in files if not f.get("superseded")]
+        odd = store.files_measured_with_odd_times(rig, since, trust_from=TRUST_FROM)
+        seen = {f["id"] for f in files}
+        files += [f for f in odd if f["id"] not in seen]      # measured in the period
+        odd_times = tuple({"id": f["id"], "path": f.get("path"), "recorded_at":
+                           f.get("recorded_at"), "analysed_at": f.get("analysed_at"),
+                           "time_source": f.get("time_source")} for f in odd)
         hints: list[str] = []
         flags: dict[int, list[str]] = {}
         for f in files:
@@ -338,7 +353,7 @@ def build_report(store: Store, now: float, since: float, rigs: Iterable[str] | N
             tuple(names.items()), tuple({k: n[k] for k in ("at", "text", "kind")} for n in
                                         store.notes(rig, since=now - HISTORY_DAYS * 86400.0,
                                                     until=now)),
-            zones.get(rig, lab_zone), zone_name(zones.get(rig, lab_zone), now)))
+            zones.get(rig, lab_zone), zone_name(zones.get(rig, lab_zone), now), odd_times))
     ranked = sorted(((summarize(x), x) for x in out), key=lambda p: (-p[0].severity, p[0].rig))
     return Report(now, since, tuple(x for _, x in ranked), dict(store.outbox_counts()),
                   lab_zone, zone_name(lab_zone, now), tuple(sm for sm, _ in ranked))
@@ -456,6 +471,22 @@ def _mute_text(x: dict, zone: str | None = "UTC") -> str:
     return f"muted until {until}{rules}{why}"
 
 
+def _odd_times_lines(rig: RigReport) -> list[str]:
+    """What the report says of files whose recorded time it could not trust."""
+    if not rig.odd_times:
+        return []
+    out = [f"time not trusted: {len(rig.odd_times)} file(s) carry a recorded time before 1990 "
+           f"or ahead of when they were measured (check the acquisition PC's clock); they are "
+           f"counted by when they were measured:"]
+    for f in rig.odd_times[:5]:
+        out.append(f"  {f.get('path')}: {_when(f.get('recorded_at'), rig.timezone)} from the "
+                   f"{_SOURCES.get(f.get('time_source'), 'file')}, measured "
+                   f"{_when(f.get('analysed_at'), rig.timezone)}")
+    if len(rig.odd_times) > 5:
+        out.append(f"  ... and {len(rig.odd_times) - 5} more")
+    return out
+
+
 def render_text(r: Report) -> str:
     """The compact terminal report; every line fits 100 columns."""
     out = [f"qcd morning report, {_when(r.since, r.timezone)} to "
@@ -475,6 +506,8 @@ def render_text(r: Report) -> str:
                    f"{rig.n_flagged} flagged")
         if rig.zone_label and rig.zone_label != r.zone_label:
             out.append(f"   times in {rig.zone_label}")
+        for line in _odd_times_lines(rig):
+            out.append(_wrap("   " + line, 100))
         if any(name for _, name in rig.channels):
             out.append(_wrap("   channels: " + _channels_text(rig.channels), 100))
         if rig.measures:
@@ -776,6 +809,8 @@ def render_html(r: Report) -> str:
                      f"{rig.n_error} error, {rig.n_flagged} flagged</p>")
         if rig.zone_label and rig.zone_label != r.zone_label:
             parts.append(f"<p class='meta'>times in {html.escape(rig.zone_label)}</p>")
+        for line in _odd_times_lines(rig):
+            parts.append(f"<p class='meta'>{html.escape(line)}</p>")
         if any(name for _, name in rig.channels):
             parts.append(f"<p class='meta'>channels: "
                          f"{html.escape(_channels_text(rig.channels))}</p>")

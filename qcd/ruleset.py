@@ -3,7 +3,10 @@
 Format (see rules/default.toml): a [settings] table, [[limit]] tables (fixed limits per mode)
 and [[history]] tables (a rig against its own history). Later files override earlier rules of
 the same name; ``enabled = false`` drops one. qcd.judge reads these dataclasses and never TOML.
-Imports qcd.config (the TOML reader, the packaged rules path), qcd.units and qcd.errors.
+Every rule is checked at load: a known measure (qcd.results.MEASURES), known modes, limits in
+a unit of the measure's quantity; a wrong rule is a ConfigError, never a rule skipped later.
+Imports qcd.config (the TOML reader, the packaged rules path), qcd.results (measure names and
+modes), qcd.units and qcd.errors.
 """
 from __future__ import annotations
 
@@ -14,6 +17,7 @@ from typing import Any
 
 from qcd.config import default_rules_path, read_toml
 from qcd.errors import ConfigError
+from qcd.results import MEASURES, MODES
 from qcd.units import parse_quantity
 
 __all__ = ["RuleSettings", "LimitRule", "HistoryRule", "Rules", "load_rules", "rule_names",
@@ -153,7 +157,54 @@ def _rule_modes(path: Path, where: str, value: object) -> tuple[str, ...]:
     items = [value] if isinstance(value, str) else value
     if not isinstance(items, list) or not items or not all(isinstance(m, str) for m in items):
         raise ConfigError(path, f"{where}.modes", f"expected a mode name or a list of them, got {value!r}")
+    for m in items:
+        if m != "*" and m not in MODES:
+            hint = difflib.get_close_matches(m, MODES, n=1)
+            raise ConfigError(path, f"{where}.modes", f"unknown mode {m!r}"
+                              + (f" (did you mean {hint[0]!r}?)" if hint else "")
+                              + f"; expected '*' or one of {', '.join(MODES)}")
     return tuple(items)
+
+
+def _rule_measure(path: Path, where: str, name: str) -> None:
+    if name not in MEASURES:
+        hint = difflib.get_close_matches(name, list(MEASURES), n=1)
+        raise ConfigError(path, f"{where}.measure", f"unknown measure {name!r}"
+                          + (f" (did you mean {hint[0]!r}?)" if hint else "")
+                          + "; the measures are listed in the README")
+
+
+# The quantity a signal measure is in, per mode (voltage clamp measures current).
+_SIGNAL_DIMS = {"voltage_clamp": ("A",), "current_clamp": ("V",), "extracellular": ("V",),
+                "unknown": ("A", "V"), "*": ("A", "V")}
+_EXAMPLE = {"A": "200 pA", "V": "20 uV", "Ohm": "25 MOhm", "F": "30 pF", "s": "100 us",
+            "Hz": "1 kHz", "%": "20 %", "A/s": "5 pA/min", "V/s": "1 mV/min"}
+
+
+def _check_dimension(path: Path, where: str, key: str, written: object, dim: str,
+                     measure: str, modes: tuple[str, ...]) -> None:
+    """ConfigError when a value written with a unit is not in the measure's quantity.
+
+    A bare number (dimension '') is compared with the measure as stored, so it always fits.
+    """
+    if not dim:
+        return
+    info = MEASURES[measure].dimension
+    if info in ("signal", "signal/s"):
+        allowed = sorted({d + ("/s" if info == "signal/s" else "")
+                          for m in modes for d in _SIGNAL_DIMS.get(m, ("A", "V"))})
+    elif info == "":
+        allowed = []
+    else:
+        allowed = [info]
+    if dim in allowed:
+        return
+    if allowed:
+        want = " or ".join(f"{d} (e.g. '{_EXAMPLE.get(d, d)}')" for d in allowed)
+        raise ConfigError(path, f"{where}.{key}", f"{written!r} is a quantity in {dim}, but "
+                          f"{measure} is in {want}")
+    raise ConfigError(path, f"{where}.{key}", f"{written!r} has a unit, but {measure} is a plain "
+                      f"number: write it without a unit")
 
 
 def _rule_common(path: Path, where: str, t: dict, known: set[str], settings: RuleSettings,
@@ -164,6 +215,7 @@ def _rule_common(path: Path, where: str, t: dict, known: set[str], settings: Rul
     for key in ("name", "measure"):
         if not isinstance(t.get(key), str) or not t[key]:
             raise ConfigError(path, f"{where}.{key}", "required, a non-empty string")
+    _rule_measure(path, where, t["measure"])
     sev = t.get("severity", None)
     if sev is not None and sev not in _SEVERITIES:
         raise ConfigError(path, f"{where}.severity", f"expected one of {', '.join(_SEVERITIES)}, got {sev!r}")
@@ -189,6 +241,7 @@ def _limit_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> Limi
     for key in ("above", "below"):
         if key in t:
             v, dim = _rule_quantity(path, where, key, t[key])
+            _check_dimension(path, where, key, t[key], dim, kw["measure"], kw["modes"])
             kw[key] = v
             dims.add(dim)
             text.append(f"{key} {t[key]}")
@@ -234,6 +287,8 @@ def _history_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> Hi
                                                                       t["min_spread"])
         if kw["min_spread_abs"] < 0:
             raise ConfigError(path, f"{where}.min_spread", "must not be negative")
+        _check_dimension(path, where, "min_spread", t["min_spread"], kw["spread_dimension"],
+                         kw["measure"], kw["modes"])
         t = {k: v for k, v in t.items() if k != "min_spread"}
     for key, attr in (("z", "z"), ("clear_z", "clear_z"), ("lambda", "lam"), ("L", "L"), ("k", "k"),
                       ("h", "h"), ("min_spread", "min_spread")):

@@ -8,6 +8,7 @@ from __future__ import annotations
 import socket
 from typing import Any
 
+from qcd.errors import StoreError
 from qcd.workers import pid_alive
 from qcd.zones import local_text
 
@@ -27,7 +28,12 @@ def status(store: Any, now: float, *, host: str | None = None) -> dict:
         same_host = hb.get("host") == host
         pid_ok = pid_alive(int(hb.get("pid") or 0)) if same_host else True
         alive = (not st.get("stopped")) and age < 3 * beat_s and pid_ok
-        if alive:
+        trouble = st.get("storing_failed") if alive else None
+        if trouble:
+            reason = (f"storing is failing: {trouble.get('reason')} (since "
+                      f"{_ago(now, trouble.get('since'))}, {trouble.get('failures')} failed "
+                      f"attempt(s); the service runs, pid {hb.get('pid')} on {hb.get('host')})")
+        elif alive:
             reason = f"alive (pid {hb.get('pid')} on {hb.get('host')}, last beat {age:.1f} s ago)"
         elif st.get("stopped"):
             reason = f"stopped cleanly {_ago(now, hb['beat_at'])}"
@@ -38,20 +44,24 @@ def status(store: Any, now: float, *, host: str | None = None) -> dict:
             reason = (f"not responding: last beat {_ago(now, hb['beat_at'])} (expected every "
                       f"{beat_s:g} s)")
         out.update(alive=alive, reason=reason, heartbeat=hb, beat_age_s=age,
+                   storing_failed=trouble,
                    queue_len=hb.get("queue_len"), intake=st.get("intake"),
                    measuring=st.get("measuring"), folders=st.get("folders", {}),
                    catch_up=st.get("catch_up"), counts=st.get("counts"))
     last: dict[str, Any] = {}
-    for rig in store.rigs():
-        files = store.files(rig=rig)           # oldest recording first
-        if files:
-            f = files[-1]                        # the last one recorded, whenever it was measured
-            last[rig] = {"path": f.get("path"), "status": f.get("status"),
-                         "recorded_at": f.get("recorded_at"),
-                         "analysed_at": f.get("analysed_at"), "error": f.get("error")}
-    out["last_file"] = last
-    out["open_alerts"] = list(store.open_alerts())
-    out["outbox"] = store.outbox_counts()
+    out.update(last_file=last, open_alerts=[], outbox={}, read_error=None)
+    try:                                       # the service's state is shown even when the
+        for rig in store.rigs():               # rest of the database cannot be read
+            files = store.files(rig=rig)           # oldest recording first
+            if files:
+                f = files[-1]                        # the last one recorded, whenever measured
+                last[rig] = {"path": f.get("path"), "status": f.get("status"),
+                             "recorded_at": f.get("recorded_at"),
+                             "analysed_at": f.get("analysed_at"), "error": f.get("error")}
+        out["open_alerts"] = list(store.open_alerts())
+        out["outbox"] = store.outbox_counts()
+    except StoreError as e:
+        out["read_error"] = str(e)
     return out
 
 
@@ -91,6 +101,9 @@ def format_status(st: dict, now: float, *, zones: dict[str, str | None] | None =
             lines.append(f"catching up: {cu.get('done', 0)} of {cu['total']} files")
         for folder, state in (st.get("folders") or {}).items():
             lines.append(f"folder {folder}: {state}")
+    if st.get("read_error"):
+        lines.append(st["read_error"])
+        return "\n".join(lines)
     if st["last_file"]:
         lines.append("last file recorded, per rig:")
         for rig, f in sorted(st["last_file"].items()):

@@ -16,7 +16,7 @@ import sqlite3
 import threading
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -26,7 +26,7 @@ from sqlite_utils import Database
 from sqlite_utils.migrations import Migrations
 
 from qcd.alerts import Message, Mute
-from qcd.errors import StoreError
+from qcd.errors import StoreError, path_bytes, printable
 from qcd.results import ChannelMeasures, FileMeasures, Measure, Spectrum, file_time
 
 if TYPE_CHECKING:
@@ -160,12 +160,59 @@ def _m004_notes(db: Database) -> None:
     db.execute("CREATE INDEX notes_rig_at ON notes (rig, at)")
 
 
+@MIGRATIONS(name="m006_path_bytes")
+def _m006_path_bytes(db: Database) -> None:
+    """A file name that is not valid UTF-8 kept exactly: files.path holds it shown escaped
+    (``caf\\xe9.abf``), files.path_bytes its bytes (NULL for every valid name)."""
+    db.execute("ALTER TABLE files ADD COLUMN path_bytes BLOB")
+
+
+
 @MIGRATIONS(name="m007_outbox_attachment")
 def _m007_outbox_attachment(db: Database) -> None:
     """Outbox rows that carry a file (the daily report's page) and name their targets."""
     db.execute("ALTER TABLE outbox ADD COLUMN attachment_name TEXT")
     db.execute("ALTER TABLE outbox ADD COLUMN attachment TEXT")
     db.execute("ALTER TABLE outbox ADD COLUMN targets TEXT")     # JSON list; NULL: every target
+
+
+def cannot_write(path: Path) -> str | None:
+    """Why qcd cannot write ``path`` and the files it keeps beside it (-wal, -shm, lock,
+    log), or None when it can: 'the folder F is on a read-only file system', ..."""
+    import errno
+    import tempfile
+    folder = Path(path).parent
+    try:
+        with tempfile.TemporaryFile(dir=folder, prefix=".qcd-write-check-"):
+            pass
+    except OSError as e:
+        kind = ("is on a read-only file system" if e.errno == errno.EROFS else
+                "is not writable for this user (permission denied)"
+                if e.errno in (errno.EACCES, errno.EPERM) else f"cannot be written ({e.strerror})")
+        return (f"the folder {folder} {kind}; qcd writes its database, the -wal and -shm files "
+                f"beside it, its lock and its log there")
+    if Path(path).exists() and not os.access(path, os.W_OK):
+        return f"the file {path} is read-only (permission denied)"
+    return None
+
+
+def describe_error(e: BaseException) -> str:
+    """What an SQLite error means for the lab, with the driver's own words."""
+    text = str(e)
+    low = text.lower()
+    if "malformed" in low or "not a database" in low or "corrupt" in low:
+        return (f"the database file is damaged ({text}); stop qcd, keep a copy, and restore a "
+                f"backup or move the file aside (qcd then starts a new one)")
+    if "disk is full" in low or "disk i/o" in low:
+        return f"the disk is full or failing ({text}); free space on it"
+    if "readonly" in low or "read-only" in low:
+        return f"the database cannot be written ({text}): check its folder's permissions"
+    return text
+
+
+def _path_key(path: Any) -> tuple[str, bytes | None]:
+    """(text stored in files.path, bytes stored in files.path_bytes) of a path."""
+    return printable(path), path_bytes(path)
 
 
 @dataclass(frozen=True)
@@ -176,6 +223,7 @@ class FileState:
     mtime: float | None
     sha256: str | None
     status: str
+    error_kind: str | None = field(default=None, compare=False)
 
 
 def _plain(value: Any) -> Any:
@@ -272,6 +320,7 @@ class Store:
         self.timeout_s = float(timeout_s)
         self._before_commit = before_commit
         self._lock = threading.RLock()
+        self._depth = 0                      # nesting of _write() in this thread
         self._closed = True
         if not self.path.parent.is_dir():
             raise StoreError(f"{self.path}: folder {self.path.parent} does not exist")
@@ -296,6 +345,10 @@ class Store:
         except sqlite3.DatabaseError as e:
             conn.close()
             self._closed = True
+            why = cannot_write(self.path)
+            if why is not None:               # a healthy database in a folder qcd cannot write
+                raise StoreError(f"{self.path}: cannot be opened for writing: {why}; the "
+                                 f"database itself may be fine: do not delete it") from e
             raise StoreError(f"{self.path}: not a usable qcd database: {e}") from e
         except BaseException:
             conn.close()
@@ -351,15 +404,31 @@ class Store:
             return 0
 
     @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """One write transaction around reads and writes that belong together (read alert
+        states, judge, commit): no other process writes in between. Store calls inside it
+        join it instead of starting their own."""
+        with self._write():
+            yield
+
+    @contextmanager
     def _write(self) -> Iterator[sqlite3.Connection]:
         """One write transaction, BEGIN IMMEDIATE (waits up to timeout_s for another writer)."""
         with self._lock:
             conn = self.db.conn
+            if self._depth:                  # inside transaction(): one COMMIT at its end
+                self._depth += 1
+                try:
+                    yield conn
+                finally:
+                    self._depth -= 1
+                return
             try:
                 conn.execute("BEGIN IMMEDIATE")
             except sqlite3.OperationalError as e:
                 raise StoreError(f"{self.path}: cannot start a write ({e}); another process "
                                  f"held the database longer than {self.timeout_s:g} s") from e
+            self._depth = 1
             try:
                 yield conn
                 conn.execute("COMMIT")
@@ -367,27 +436,56 @@ class Store:
                 if conn.in_transaction:
                     conn.execute("ROLLBACK")
                 if isinstance(e, sqlite3.Error):
-                    raise StoreError(f"{self.path}: write failed: {e}") from e
+                    raise StoreError(f"{self.path}: write failed: {describe_error(e)}") from e
                 raise
+            finally:
+                self._depth = 0
 
     def _rows(self, sql: str, params: Iterable[Any] = ()) -> list[dict[str, Any]]:
-        with self._lock:
+        with self._lock, self._reading():
             cur = self.db.conn.execute(sql, tuple(params))
             names = [d[0] for d in cur.description]
             return [dict(zip(names, row)) for row in cur.fetchall()]
 
     def _one(self, sql: str, params: Iterable[Any] = ()) -> Any:
-        with self._lock:
+        with self._lock, self._reading():
             return self.db.conn.execute(sql, tuple(params)).fetchone()
+
+    @contextmanager
+    def _reading(self) -> Iterator[None]:
+        """A failed read is a StoreError saying what is wrong, not a driver traceback."""
+        try:
+            yield
+        except sqlite3.DatabaseError as e:
+            if self._depth:                  # inside a write: _write() names it
+                raise
+            raise StoreError(f"{self.path}: reading failed: {describe_error(e)}") from e
 
     # --- intake ---------------------------------------------------------------------------------
 
     def file_state(self, rig: str, path: Path | str) -> FileState | None:
         """The latest non-superseded row of ``rig``/``path``, or None."""
-        row = self._one("SELECT id, size, mtime, sha256, status FROM files WHERE rig = ? AND "
-                        "path = ? AND superseded = 0 ORDER BY id DESC LIMIT 1",
-                        (rig, os.fspath(path)))
+        text, raw = _path_key(path)
+        row = self._one("SELECT id, size, mtime, sha256, status, error_kind FROM files WHERE "
+                        "rig = ? AND path = ? AND path_bytes IS ? AND superseded = 0 ORDER BY id DESC "
+                        "LIMIT 1", (rig, text, raw))
         return FileState(*row) if row else None
+
+    def same_content(self, rig: str, sha256: str | None) -> dict[str, Any] | None:
+        """The current row (id, path, status) holding this content for the rig, or None."""
+        if not sha256:
+            return None
+        rows = self._rows("SELECT id, path, path_bytes, status FROM files WHERE rig = ? AND "
+                          "sha256 = ? AND superseded = 0 AND status != 'skipped' "
+                          "ORDER BY id DESC LIMIT 1", (rig, sha256))
+        return rows[0] if rows else None
+
+    def file_bytes(self, file_id: int) -> bytes | None:
+        """The exact file-system name of a stored file (its path as bytes), or None."""
+        row = self._one("SELECT path, path_bytes FROM files WHERE id = ?", (file_id,))
+        if row is None:
+            return None
+        return bytes(row[1]) if row[1] is not None else os.fsencode(row[0])
 
     # --- history for the judge ----------------------------------------------------------------
 
@@ -409,7 +507,7 @@ class Store:
         return [(float(t), float(v)) for t, v in rows]
 
     def _one_all(self, sql: str, params: Iterable[Any] = ()) -> list[tuple]:
-        with self._lock:
+        with self._lock, self._reading():
             return self.db.conn.execute(sql, tuple(params)).fetchall()
 
     def reference_spectrum(self, rig: str, mode: str, channel: int, *, limit: int = 30,
@@ -446,31 +544,47 @@ class Store:
                     messages: Iterable[Message] = ()) -> int:
         """Store everything of one processed file in ONE transaction; returns the file id.
 
-        Content already stored for the rig (same sha256, current row) is not stored again:
-        the existing id is returned and nothing is written (unless the old row was an error
-        and this one is ok, which re-measures it). Otherwise an older row of the same
-        rig/path is marked superseded.
+        Content already stored for the rig (same sha256, current row) is not stored again
+        (unless the old row was an error and this one is ok, which re-measures it): for the
+        same path the row's size and mtime are brought up to date and its id returned; another
+        path gets a row of its own, status 'skipped' pointing to the first (``extra.same_as``,
+        no measures, so history counts the content once), or an error row like the first's.
+        Otherwise an older row of the same rig/path is marked superseded.
         """
         findings = list(findings)
         alert_states = list(alert_states)
         messages = list(messages)
         any_bad, named = _bad_targets(findings)
-        path = os.fspath(fm.path)
+        path, raw = _path_key(fm.path)
         with self._write() as conn:
             replaces: list[int] = []
             if fm.sha256:
+                same = conn.execute("SELECT id, status FROM files WHERE rig = ? AND sha256 = ? "
+                                    "AND path = ? AND path_bytes IS ? AND superseded = 0",
+                                    (rig, fm.sha256, path, raw)).fetchone()
+                if same is not None and not (same[1] == "error" and fm.status == "ok"):
+                    conn.execute("UPDATE files SET size = ?, mtime = ? WHERE id = ?",
+                                 (_plain(fm.size), _plain(fm.mtime), same[0]))
+                    return int(same[0])               # touched, or committed again
                 row = conn.execute("SELECT id, status FROM files WHERE rig = ? AND sha256 = ? "
-                                   "AND superseded = 0 ORDER BY id DESC LIMIT 1",
-                                   (rig, fm.sha256)).fetchone()
+                                   "AND superseded = 0 AND status != 'skipped' "
+                                   "ORDER BY id DESC LIMIT 1", (rig, fm.sha256)).fetchone()
                 if row is not None:
                     if not (row[1] == "error" and fm.status == "ok"):
-                        return int(row[0])
-                    replaces.append(int(row[0]))
+                        first = int(row[0])
+                        if row[1] == "ok":            # a copy: its own row, pointing to the first
+                            fm = _copy_of(fm, first, conn)
+                            findings, alert_states, messages, any_bad = [], [], [], False
+                            named = set()
+                    else:
+                        replaces.append(int(row[0]))
             conn.execute("UPDATE files SET superseded = 1 WHERE rig = ? AND path = ? AND "
-                         "superseded = 0", (rig, path))
+                         "path_bytes IS ? AND superseded = 0", (rig, path, raw))
             for old in replaces:
                 conn.execute("UPDATE files SET superseded = 1 WHERE id = ?", (old,))
             file_id = self._insert_file(conn, rig, fm, path, analysed_at, any_bad)
+            if raw is not None:
+                conn.execute("UPDATE files SET path_bytes = ? WHERE id = ?", (raw, file_id))
             for ch in fm.channels:
                 self._insert_channel(conn, file_id, ch, named)
             for f in findings:
@@ -496,10 +610,12 @@ class Store:
             "gap_free, notes, extra, flagged, superseded) "
             "VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,0)",
             (rig, path, _plain(fm.size), _plain(fm.mtime), fm.sha256, recorded_at, source,
-             float(analysed_at), fm.status, fm.error_kind, fm.error, fm.mode, fm.format,
+             float(analysed_at), fm.status, fm.error_kind,
+             None if fm.error is None else printable(fm.error), fm.mode, fm.format,
              _plain(fm.fs_hz), _plain(fm.duration_s), _plain(fm.n_sweeps),
              None if fm.gap_free is None else int(bool(fm.gap_free)),
-             _dumps(list(fm.notes)), _dumps(fm.extra or {}), int(flagged)))
+             _dumps([printable(n) if isinstance(n, str) else n for n in fm.notes]),
+             _dumps(fm.extra or {}), int(flagged)))
         return int(cur.lastrowid)
 
     @staticmethod
@@ -532,7 +648,8 @@ class Store:
             "severity, value, unit, limit_text, hint) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
             (file_id, f.rig, f.mode, None if f.channel is None else int(f.channel), f.measure,
              f.rule, f.kind, int(bool(f.bad)), f.severity, _real(f.value), f.unit,
-             f.limit_text, f.hint))
+             None if f.limit_text is None else printable(f.limit_text),
+             None if f.hint is None else printable(f.hint)))
 
     @staticmethod
     def _upsert_alerts(conn: sqlite3.Connection, states: Iterable[dict], now: float) -> None:
@@ -549,7 +666,7 @@ class Store:
                 "resolved_at = excluded.resolved_at, announced = excluded.announced",
                 (str(st["key"]), st.get("rig"), st.get("mode"),
                  None if ch is None else int(ch), st.get("measure"), st.get("rule"),
-                 st.get("state"), _dumps(st), _real(st.get("opened_at")),
+                 st.get("state"), _dumps(_printable_path(st)), _real(st.get("opened_at")),
                  float(now), _real(st.get("resolved_at")),
                  int(announced) if isinstance(announced, (bool, int)) else
                  (None if announced is None else int(bool(announced)))))
@@ -561,9 +678,10 @@ class Store:
                 "INSERT OR IGNORE INTO outbox (alert_key, transition, kind, priority, rig, title, "
                 "body, created_at, status, attempts, next_at, attachment_name, attachment, "
                 "targets) VALUES (?,?,?,?,?,?,?,?,'pending',0,?,?,?,?)",
-                (m.alert_key, int(m.transition), m.kind, int(m.priority), m.rig, m.title,
-                 m.body, float(now), float(now), getattr(m, "attachment_name", None),
-                 getattr(m, "attachment", None),
+                (m.alert_key, int(m.transition), m.kind, int(m.priority), m.rig,
+                 None if m.title is None else printable(m.title),
+                 None if m.body is None else printable(m.body), float(now), float(now),
+                 getattr(m, "attachment_name", None), getattr(m, "attachment", None),
                  _dumps(list(m.targets)) if getattr(m, "targets", ()) else None))
 
     def commit_alerts(self, alert_states: Iterable[dict] = (), messages: Iterable[Message] = (),
@@ -767,6 +885,21 @@ class Store:
             r["flagged"], r["superseded"] = bool(r["flagged"]), bool(r["superseded"])
         return rows
 
+    def files_measured_with_odd_times(self, rig: str, since: float, *, trust_from: float,
+                                      ahead_s: float = 86400.0) -> list[dict[str, Any]]:
+        """Current files measured at or after ``since`` whose recorded time cannot be right:
+        before ``trust_from`` (a clock reset to 1980 or 1970) or more than ``ahead_s`` after
+        they were measured. Same row form as ``files``."""
+        rows = self._rows("SELECT * FROM files WHERE superseded = 0 AND rig = ? AND "
+                          "analysed_at >= ? AND (recorded_at < ? OR recorded_at > analysed_at "
+                          "+ ?) ORDER BY analysed_at, id", (rig, since, trust_from, ahead_s))
+        for r in rows:
+            r["notes"] = json.loads(r["notes"])
+            r["extra"] = json.loads(r["extra"])
+            r["gap_free"] = None if r["gap_free"] is None else bool(r["gap_free"])
+            r["flagged"], r["superseded"] = bool(r["flagged"]), bool(r["superseded"])
+        return rows
+
     def measure_series(self, rig: str, measure: str, *, channel: int | None = None,
                        since: float | None = None
                        ) -> list[tuple[float, float, str, bool, int, str]]:
@@ -842,6 +975,24 @@ class Store:
             gap_free=None if f["gap_free"] is None else bool(f["gap_free"]), recorded_at=recorded,
             size=f["size"], mtime=f["mtime"], sha256=f["sha256"], channels=channels,
             notes=tuple(json.loads(f["notes"])), extra=json.loads(f["extra"]))
+
+
+def _copy_of(fm: FileMeasures, first: int, conn: sqlite3.Connection) -> FileMeasures:
+    """The row of a file whose content is already stored as file ``first``: 'skipped'."""
+    from dataclasses import replace
+    where = conn.execute("SELECT path FROM files WHERE id = ?", (first,)).fetchone()[0]
+    return replace(fm, status="skipped", error_kind=None, channels=(),
+                   error=f"{printable(fm.path)}: same content as {where} (file {first}), "
+                         f"not measured again",
+                   extra={**(fm.extra or {}), "same_as": first})
+
+
+def _printable_path(st: dict) -> dict:
+    """An alert state whose file path is shown escaped when its name is not UTF-8."""
+    p = st.get("path")
+    if isinstance(p, str) and path_bytes(p) is not None:
+        return {**st, "path": printable(p)}
+    return st
 
 
 def _alert_row(r: dict[str, Any]) -> dict[str, Any]:

@@ -21,12 +21,13 @@ from pathlib import Path
 from typing import Any, Callable
 
 from qcd import pipeline
+from qcd.errors import StoreError, printable
 from qcd.intake import (GaveUp, Hint, Intake, Ready, is_candidate_name, is_network_path,
                         scan_folder, _FolderWatch)
 from qcd.workers import Jobs, default_workers
 
 __all__ = ["Service", "setup_logging", "is_network_path", "scan_folder", "make_sender",
-           "LOG_NAME"]
+           "LOG_NAME", "ServiceLock"]
 
 log = logging.getLogger("qcd.watch")
 
@@ -111,7 +112,7 @@ class Service:
         self._stat = stat
         self._rigs = {r.name: r for r in config.rigs}
         self._events: "queue.Queue[Hint]" = queue.Queue()
-        self._folders = [_FolderWatch(r, Path(os.path.abspath(f)), self._events,
+        self._folders = [_FolderWatch(r, Path(os.path.realpath(f)), self._events,
                                       poll_interval_s=poll_interval_s)
                          for r in config.rigs for f in r.folders]
         if commit is None:
@@ -136,12 +137,21 @@ class Service:
         self.progress = _Progress(tty=sys.stderr.isatty() if progress_tty is None
                                   else progress_tty)
         self._backlog_keys: set[tuple[str, Path]] = set()
+        self._unreadable: set[tuple[str, Path]] = set()   # stored as unreadable in this run
+        self._store_trouble: dict | None = None   # {reason, since, failures} while storing fails
+        self.store_retry_s = 30.0           # first wait after a failed store (doubles to 10 min)
+        self._retry: list[tuple[float, Ready, Any]] = []   # measured, not stored yet
+        self._now = 0.0                     # the clock of the last step (the courier's clock)
+        self._courier: Any = None
 
     # -- lifecycle
 
     def start(self, now: float) -> None:
         """Start observers, then queue every file not yet stored (oldest first)."""
-        self._started_at = now
+        self._started_at = self._now = now
+        if self.sender is not None and self._courier is None:
+            from qcd.notify import Courier     # delivery off the measuring path
+            self._courier = Courier(self.store, self.sender, lambda: self._now).start()
         for fw in self._folders:
             fw.ensure()
         self._last_folder_check = now
@@ -161,6 +171,11 @@ class Service:
         for fw in self._folders:
             fw.stop()
         self._jobs.close()                   # abandon a long measurement: restart re-measures
+        if self._courier is not None:        # a send under way is not waited for long
+            if not self._courier.stop(wait_s=2.0):
+                log.warning("stopping while a notification is being sent; an unmarked "
+                            "message is sent again at the next start")
+            self._courier = None
         try:
             self._heartbeat(time.time() if now is None else now, stopped=True)
         except Exception:
@@ -201,6 +216,7 @@ class Service:
 
         Returns True when there is more work right away (the loop then skips its wait).
         """
+        self._now = max(self._now, now)
         self._drain_events(now)
         if now - self._last_folder_check >= self.folder_check_s:
             self._last_folder_check = now
@@ -220,19 +236,19 @@ class Service:
         for r in ready:
             self._submit(r, now)
         busy |= self._collect(now)
+        if self._retry:
+            self._retry_commits(now)
         self._flush_digest(now)
         if self._daily is not None and now - self._last_daily >= self.daily_s \
                 and not self._batch_pending:  # after the start-up backlog, so it is counted
             self._last_daily = now
+            busy = True                       # a daily report may have been queued
             try:
                 self._daily(now)
             except Exception:
                 log.exception("queueing the daily report")
-        if self.sender is not None:
-            try:
-                self._deliver_due(now)
-            except Exception:
-                log.exception("delivering notifications")
+        if self._courier is not None and busy:
+            self._courier.wake()              # new messages may be queued
         if self._tick is not None and now - self._last_tick >= self.tick_s:
             self._last_tick = now             # mutes that ended with their alert still open
             try:
@@ -240,8 +256,13 @@ class Service:
             except Exception:
                 log.exception("checking ended mutes")
         if now - self._last_beat >= self.beat_s:
-            self._heartbeat(now)
-            self._checkpoint()
+            try:
+                self._heartbeat(now)
+            except Exception as e:
+                self._last_beat = now
+                self._store_failed(e, now, "writing the heartbeat")
+            else:
+                self._checkpoint()
         self.progress.tick(now)
         return busy or (self.workers == 0 and len(self._jobs) > 0)
 
@@ -257,12 +278,8 @@ class Service:
         else:
             self.stop_event.wait(self.poll_s)
 
-    def _deliver_due(self, now: float) -> None:
-        from qcd import notify
-        notify.deliver_due(self.store, self.sender, now)
-
     def queue_len(self) -> int:
-        return len(self.intake) + len(self._jobs)
+        return len(self.intake) + len(self._jobs) + len(self._retry)
 
     # -- intake
 
@@ -286,7 +303,7 @@ class Service:
                 if root is None or not is_candidate_name(p / "x", ("x",), root):
                     continue                         # a hidden folder
                 for fp, st in scan_folder(p, rig.patterns):
-                    if self._needs_measuring(rig_name, fp, st):
+                    if self._needs(rig_name, fp, st, default=True):
                         self.intake.offer(rig_name, fp, now, live=True)
             elif is_candidate_name(p, rig.patterns, self._root_of(rig, p)):
                 self.intake.offer(rig_name, p, now, live=True, closed=hint.what == "closed")
@@ -297,18 +314,29 @@ class Service:
                 return fw.root
         return None
 
+    def _needs(self, rig: str, path: Path, st: Any, *, default: bool) -> bool:
+        """``_needs_measuring``, or ``default`` when the store cannot be read."""
+        try:
+            return self._needs_measuring(rig, path, st)
+        except Exception as e:
+            self._store_failed(e, self._now, f"looking up {printable(path)}")
+            return default
+
     def _needs_measuring(self, rig: str, path: Path, st: os.stat_result) -> bool:
-        # files committed in this run (a copy of content already stored has no row of its own)
-        if self._seen.get((rig, path)) == (st.st_size, st.st_mtime):
+        # files committed in this run; an unreadable one is tried again (its permissions may
+        # have been fixed, which changes neither its size nor its mtime)
+        if self._seen.get((rig, path)) == (st.st_size, st.st_mtime) and \
+                (rig, path) not in self._unreadable:
             return False
         state = self.store.file_state(rig, os.fspath(path))
-        return state is None or state.size != st.st_size or state.mtime != st.st_mtime
+        return (state is None or state.size != st.st_size or state.mtime != st.st_mtime
+                or state.error_kind == "unreadable")
 
     def _scan_root(self, fw: _FolderWatch, now: float, *, live: bool) -> int:
         n = 0
         for p, st in scan_folder(fw.root, fw.rig.patterns):
-            if (fw.rig.name, p) in self.intake._items or not self._needs_measuring(
-                    fw.rig.name, p, st):
+            if (fw.rig.name, p) in self.intake._items or not self._needs(
+                    fw.rig.name, p, st, default=False):        # the next rescan tries again
                 continue
             self.intake.offer(fw.rig.name, p, now, live=live, mtime=st.st_mtime)
             if not live:
@@ -326,7 +354,7 @@ class Service:
     # -- measuring and committing
 
     def _submit(self, r: Ready, now: float) -> None:
-        if not self._needs_measuring(r.rig, r.path, _StatLike(r.size, r.mtime)):
+        if not self._needs(r.rig, r.path, _StatLike(r.size, r.mtime), default=True):
             self.counts["skipped"] += 1
             self._backlog_done(r)
             return
@@ -358,22 +386,38 @@ class Service:
             return
         rig = self._rigs[r.rig]
         batch = (r.rig, r.path) in self._backlog_keys
+        if fm.error_kind == "unreadable":
+            self._unreadable.add((r.rig, r.path))
+            state = self.store.file_state(r.rig, os.fspath(r.path))
+            if state is not None and state.error_kind == "unreadable" and \
+                    (state.size, state.mtime) == (r.size, r.mtime):
+                self._seen[(r.rig, r.path)] = (r.size, r.mtime)     # still unreadable: as stored
+                self._backlog_done(r)
+                return
+        else:
+            self._unreadable.discard((r.rig, r.path))
         try:
-            self._call_commit(fm, rig, now, batch)
-        except Exception:
-            log.exception("storing %s failed; it will be measured again", r.path)
-            self.intake.offer(r.rig, r.path, now + 30.0, live=r.live)
+            stored = self._call_commit(fm, rig, now, batch)
+        except Exception as e:
+            wait = self._store_failed(e, now, f"storing {printable(r.path)}")
+            self._retry.append((now + wait, r, fm))     # kept: stored later, not re-measured
             return
+        self._store_ok(now)
         self._seen[(r.rig, r.path)] = (r.size, r.mtime)
         self._backlog_done(r)
-        if fm.status == "ok":
+        if getattr(stored, "status", None) is not None:
+            fm = stored                       # what was stored ('skipped': a copy)
+        if fm.status == "skipped":           # a copy of content already stored
+            self.counts["skipped"] += 1
+            log.info("%s", fm.error)
+        elif fm.status == "ok":
             self.counts["measured"] += 1
             if not batch:                     # the backlog logs progress lines instead
                 log.info("%s: measured and stored (rig %s)", r.path, r.rig)
         else:
             self.counts["errors"] += 1
             log.warning("%s", fm.error or f"{r.path}: error")
-        self._last_file[r.rig] = {"path": os.fspath(r.path), "at": now,
+        self._last_file[r.rig] = {"path": printable(r.path), "at": now,
                                   "status": fm.status}
 
     def _give_up(self, g: GaveUp, now: float) -> None:
@@ -386,18 +430,18 @@ class Service:
                                  mtime=g.mtime if g.mtime >= 0 else None)
         try:
             self._call_commit(fm, self._rigs[g.rig], now, (g.rig, g.path) in self._backlog_keys)
-            self._last_file[g.rig] = {"path": os.fspath(g.path), "at": now, "status": "error"}
+            self._last_file[g.rig] = {"path": printable(g.path), "at": now, "status": "error"}
             self._backlog_done(Ready(g.rig, g.path, g.size, g.mtime, False))
-        except Exception:
-            log.exception("storing the never_settled error of %s", g.path)
+            self._store_ok(now)
+        except Exception as e:
+            self._store_failed(e, now, f"storing the never_settled error of {printable(g.path)}")
         log.warning("%s", g.reason)
 
-    def _call_commit(self, fm: Any, rig: Any, now: float, batch: bool) -> None:
+    def _call_commit(self, fm: Any, rig: Any, now: float, batch: bool) -> Any:
         if batch and self._digest is not None:
             self._batch_pending = True
-            self._commit(fm, rig, now, batch=True)
-        else:
-            self._commit(fm, rig, now)
+            return self._commit(fm, rig, now, batch=True)
+        return self._commit(fm, rig, now)
 
     def _backlog_done(self, r: Ready) -> None:
         key = (r.rig, r.path)
@@ -414,6 +458,62 @@ class Service:
                 self._digest(now)
             except Exception:
                 log.exception("writing the catch-up digest")
+
+    # -- storing trouble: said once, backed off
+
+    def _store_failed(self, e: BaseException, now: float, what: str) -> float:
+        """Record a failed store; returns how long the file waits before it is tried again
+        (30 s doubling to 10 min). The first failure of a run of them is logged with its
+        reason and told to the lab directly (not through the outbox, which may be what
+        fails); the rest only at debug level."""
+        from qcd.errors import QcdError
+        reason = str(e) if isinstance(e, QcdError) else f"{type(e).__name__}: {e}"
+        t = self._store_trouble
+        if t is None:
+            self._store_trouble = t = {"reason": reason, "since": now, "failures": 0}
+            log.error("storing is failing: %s (%s); files stay queued and are tried again, "
+                      "backing off to every 10 min", reason, what,
+                      exc_info=not isinstance(e, QcdError))
+            self._alarm(reason)
+        else:
+            log.debug("still failing (%s): %s", what, reason)
+        t["failures"] += 1
+        t["reason"] = reason
+        return min(600.0, self.store_retry_s * 2.0 ** min(t["failures"] - 1, 10))
+
+    def _retry_commits(self, now: float) -> bool:
+        """Store again the measured files whose storing failed, once their wait is over."""
+        due = [x for x in self._retry if x[0] <= now]
+        if not due:
+            return False
+        self._retry = [x for x in self._retry if x[0] > now]
+        for _, r, fm in due:
+            self._finish(r, fm, now)
+        return True
+
+    def _store_ok(self, now: float) -> None:
+        if self._store_trouble is not None:
+            log.warning("storing works again after %d failure(s)", self._store_trouble["failures"])
+            self._store_trouble = None
+
+    def _alarm(self, reason: str) -> None:
+        """Tell the lab that results are not being stored, straight to the targets."""
+        if self.sender is None:
+            return
+        title = f"qcd on {self._host}: results are not being stored"
+        body = (f"Storing measured recordings in the database is failing: {reason}\n"
+                f"Files stay queued and are tried again; qcd status shows the state. This "
+                f"message is sent once for this failure.")
+        sender = self.sender
+
+        def send() -> None:
+            try:
+                res = sender.send(title, body, "firing")
+                if not res.ok:
+                    log.error("could not tell the lab that storing fails: %s", res.detail)
+            except Exception:
+                log.exception("telling the lab that storing fails")
+        threading.Thread(target=send, name="qcd-alarm", daemon=True).start()
 
     # -- heartbeat
 
@@ -433,7 +533,8 @@ class Service:
                  "intake": self.intake.counts(), "measuring": len(self._jobs),
                  "counts": dict(self.counts), "last_file": dict(self._last_file),
                  "folders": {os.fspath(fw.root): fw.state for fw in self._folders},
-                 "catch_up": {"total": self.progress.total, "done": self.progress.done}}
+                 "catch_up": {"total": self.progress.total, "done": self.progress.done},
+                 "storing_failed": self._store_trouble}
         self.store.beat(os.getpid(), self._host, self._started_at, now, self.queue_len(), state)
 
 
@@ -444,16 +545,106 @@ class _StatLike:
         self.st_size, self.st_mtime = size, mtime
 
 
+# ---------------------------------------------------------------- one service per database
+
+class ServiceLock:
+    """One service per database: an OS lock on ``DATABASE.lock`` beside it (flock on POSIX,
+    msvcrt on Windows), which the OS releases when the process ends, however it ends.
+    ``acquire()`` raises StoreError naming the process that holds it."""
+
+    _WIN_OFFSET = 1 << 20                    # Windows: lock a byte past the pid text
+
+    def __init__(self, database: Path | str) -> None:
+        self.path = Path(f"{os.fspath(database)}.lock")
+        self._f: Any = None
+
+    def acquire(self) -> "ServiceLock":
+        try:
+            f = open(self.path, "a+", encoding="utf-8")
+        except OSError as e:
+            from qcd.store import cannot_write
+            why = cannot_write(self.path) or f"{self.path}: {e.strerror or e}"
+            raise StoreError(f"cannot start the service: {why}") from e
+        try:
+            if sys.platform == "win32":
+                import msvcrt
+                f.seek(self._WIN_OFFSET)
+                msvcrt.locking(f.fileno(), msvcrt.LK_NBLCK, 1)
+            else:
+                import fcntl
+                fcntl.flock(f.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            f.seek(0)
+            holder = f.read(200).strip() or "another process"
+            f.close()
+            raise StoreError(f"{self.path.with_suffix('')}: another qcd watch is using this "
+                             f"database ({holder}); one service per database: stop it first, "
+                             f"or give this one a database of its own") from None
+        f.seek(0)
+        f.truncate()
+        f.write(f"pid {os.getpid()} on {socket.gethostname()}")
+        f.flush()
+        self._f = f
+        return self
+
+    def release(self) -> None:
+        if self._f is not None:
+            try:
+                self._f.seek(0)
+                self._f.truncate()
+            except OSError:
+                pass
+            self._f.close()                  # closing drops the lock
+            self._f = None
+
+    def __enter__(self) -> "ServiceLock":
+        return self.acquire()
+
+    def __exit__(self, *exc: object) -> None:
+        self.release()
+
+
 # ---------------------------------------------------------------- logging
+
+class _LogFile(logging.handlers.RotatingFileHandler):
+    """The service's log file. When it cannot be written (a full disk), that is said once on
+    stderr, and lines are dropped quietly until a write works again (no traceback per line)."""
+
+    failing = False
+
+    def emit(self, record: logging.LogRecord) -> None:
+        super().emit(record)
+        if self.failing and self.stream is not None and not self._last_failed:
+            self.failing = False
+            sys.stderr.write(f"qcd: the log file {self.baseFilename} can be written again\n")
+        self._last_failed = False
+
+    _last_failed = False
+
+    def handleError(self, record: logging.LogRecord) -> None:  # noqa: N802 (logging API)
+        self._last_failed = True
+        if self.failing:
+            return
+        self.failing = True
+        err = sys.exc_info()[1]
+        why = getattr(err, "strerror", None) or str(err)
+        try:
+            sys.stderr.write(f"qcd: cannot write the log file {self.baseFilename} ({why}); "
+                             f"log lines are dropped until it can\n")
+        except Exception:
+            pass
+
 
 def setup_logging(database: Path, *, debug: bool = False, max_bytes: int = 5 << 20,
                   backups: int = 5) -> Path:
     """A rotating log file beside the database (qcd.log, 5 MB x 5); returns its path."""
     path = Path(database).parent / LOG_NAME
     path.parent.mkdir(parents=True, exist_ok=True)
-    handler = logging.handlers.RotatingFileHandler(path, maxBytes=max_bytes,
-                                                   backupCount=backups, encoding="utf-8")
+    handler = _LogFile(path, maxBytes=max_bytes, backupCount=backups, encoding="utf-8",
+                       errors="backslashreplace")
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    from qcd.config import SECRET_FILTER
+    handler.addFilter(SECRET_FILTER)         # target secrets never reach the log file
     root = logging.getLogger("qcd")
     root.addHandler(handler)
     root.setLevel(logging.DEBUG if debug else logging.INFO)

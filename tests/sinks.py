@@ -21,10 +21,15 @@ def free_port() -> int:
 
 
 class HttpSink:
-    """Records JSON POST bodies; ``status`` is the HTTP code it answers (500: a failing target)."""
+    """Records JSON POST bodies; ``status`` is the HTTP code it answers (500: a failing target).
 
-    def __init__(self, port: int | None = None) -> None:
+    ``trickle_s`` > 0: a slow target that takes the message, sends its status line, then the
+    rest of its answer one byte every ``trickle_s`` seconds (no per-read timeout fires).
+    """
+
+    def __init__(self, port: int | None = None, *, trickle_s: float = 0.0) -> None:
         self.port = port or free_port()
+        self.trickle_s = trickle_s
         self.received: list[dict] = []
         self.attempts = 0
         self.status = 200
@@ -48,6 +53,16 @@ class HttpSink:
                     status = sink.status
                     if status < 300:
                         sink.received.append(json.loads(raw.decode("utf-8")))
+                if sink.trickle_s > 0:
+                    self.wfile.write(f"HTTP/1.0 {status} OK\r\n".encode())
+                    self.wfile.flush()
+                    for byte in b"Content-Length: 0\r\nX-Pad: ..........\r\n\r\n":
+                        if sink._server is None:
+                            return
+                        time.sleep(sink.trickle_s)
+                        self.wfile.write(bytes([byte]))
+                        self.wfile.flush()
+                    return
                 self.send_response(status)
                 self.send_header("Content-Length", "0")
                 self.end_headers()

@@ -137,15 +137,18 @@ def test_error_file_gets_a_row(store):
 
 # --- dedup and supersede ----------------------------------------------------------------------------
 
-def test_same_content_is_never_stored_twice(store):
+def test_same_content_is_never_measured_twice_but_each_path_has_its_row(store):
     fm = fmeasures()
     fid = store.commit_file("rig-a", fm, analysed_at=T0,
                             findings=[F(0, "noise_rms", "noise_max", True)],
                             messages=[Msg("k1", 1)])
     again = store.commit_file("rig-a", replace(fm, path="/data/rig-a/copy.abf"),
                               analysed_at=T0 + 10, messages=[Msg("k1", 2)])
-    assert again == fid
-    assert len(store.files("rig-a", include_superseded=True)) == 1
+    assert again != fid
+    rows = {r["id"]: r for r in store.files("rig-a", include_superseded=True)}
+    assert rows[again]["status"] == "skipped" and rows[again]["extra"]["same_as"] == fid
+    assert store.measured(again).channels == ()                     # the values are stored once
+    assert store.commit_file("rig-a", fm, analysed_at=T0 + 20) == fid   # the same path again
     assert [r["transition"] for r in outbox_rows(store)] == [1]     # nothing new marked
     assert has_content(store, "rig-a", fm.sha256)
     assert not has_content(store, "rig-b", fm.sha256)
