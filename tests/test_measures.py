@@ -230,6 +230,17 @@ def test_baseline_drift_pools_long_series():
     assert drift.baseline_drift(t[:2], y[:2]) is None
 
 
+@pytest.mark.parametrize("n", [1000, 1001, 1800, 2999, 5000])
+def test_pooled_medians_equal_array_split_groups(n):
+    # reference: numpy.array_split into MAX_POINTS consecutive groups, numpy.median of each
+    rng = np.random.default_rng(n)
+    t, y = np.arange(float(n)), rng.normal(0, 1, n)
+    groups = np.array_split(np.arange(n), drift.MAX_POINTS)
+    pt, py = drift._pool(t, y, drift.MAX_POINTS)
+    assert np.array_equal(pt, [np.median(t[g]) for g in groups])
+    assert np.array_equal(py, [np.median(y[g]) for g in groups])
+
+
 # --- chunking ----------------------------------------------------------------------------------
 
 @settings(max_examples=25, deadline=None)

@@ -25,9 +25,17 @@ def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
 
 
 def _pool(t: np.ndarray, y: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    groups = np.array_split(np.arange(len(t)), n)
-    return (np.array([np.median(t[g]) for g in groups]),
-            np.array([np.median(y[g]) for g in groups]))
+    """Medians of n consecutive groups, split as numpy.array_split does (the first
+    len % n groups one longer): two reshapes, so no Python loop over the groups."""
+    q, r = divmod(len(t), n)
+    cut = r * (q + 1)
+
+    def medians(v: np.ndarray) -> np.ndarray:
+        parts = [np.median(v[:cut].reshape(r, q + 1), axis=1)] if r else []
+        if q:
+            parts.append(np.median(v[cut:].reshape(n - r, q), axis=1))
+        return np.concatenate(parts)
+    return medians(t), medians(y)
 
 
 def baseline_drift(t_s: np.ndarray, medians: np.ndarray) -> float | None:
