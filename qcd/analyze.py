@@ -709,81 +709,91 @@ def _spectral(acc: _Blocks, keep_events: np.ndarray, fs: float, dim: str,
     return Spectrum(tuple(float(v) for v in cf), tuple(float(v) * f * f for v in cd), unit)
 
 
-def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
-             windows: list[list[tuple[int, int]]], mains_hz: float | None, chunk: int
-             ) -> ChannelMeasures:
-    ch = rec.channels[c]
-    dim, factor = dims.dim[c], dims.factor[c]
-    fs = rec.fs
-    notes: list[str] = []
-    out: dict[str, Measure] = {}
-    n_total = clipped = 0
-    rails = ch.rails
-    tpr = None
-    if plan is not None and plan.ok:
-        tpr = _TestPulse(mode, plan, ch, factor, fs, rec.n_sweeps)
-    if rec.gap_free:
-        L = max(1, min(int(round(fs * _BLOCK_S)), rec.n_samples))
-        gain, offset = ch.gain, ch.offset
-        raw_rails = None
-        if rails is not None and gain != 0:
-            raw_rails = tuple(sorted(((rails[0] - offset) / gain, (rails[1] - offset) / gain)))
-        acc = _Blocks(L, fs, gain * factor, offset * factor, raw_rails) \
-            if L >= _MIN_BLOCK else None
-        acc_s = acc
-    else:
-        # time-domain noise from the pre-step windows (DESIGN); the spectrum from every
-        # stretch at holding, so a long holding tail gives the resolution hum needs
-        one_s = int(round(fs * _BLOCK_S))
-        pre = [w[0][1] - w[0][0] for w in windows if w]
-        usable = [n for n in pre if n >= _MIN_BLOCK]
-        L = min([one_s] + usable) if usable else 0
-        L2 = min(one_s, max((b - a for w in windows for a, b in w), default=0))
-        acc = _Blocks(L, fs) if L >= _MIN_BLOCK else None
-        same = L2 == L and all(len(w) == 1 for w in windows)
-        acc_s = acc if same else (_Blocks(L2, fs) if L2 >= _MIN_BLOCK else None)
-        if (acc_s is not None and mains_hz and fs / acc_s.L > _MAX_HUM_DF
-                and humfit.HumFit.fits(acc_s.L, fs, mains_hz)):
-            acc_s.humfit = humfit.HumFit(acc_s.L, fs, mains_hz)
-    if acc_s is not None and fs / acc_s.L <= _MAX_HUM_DF and fs / 2 > 75.0:
-        acc_s.lines = zoom.LineBins(acc_s.L, fs, (mains_hz,) if mains_hz else (50.0, 60.0),
-                                     scale=acc_s.scale)
-    if rec.gap_free:
-        # raw converter counts in chunks of whole blocks; gain, offset and the SI factor are
-        # applied to the results (every measure is linear in the samples or offset-free)
-        size = max(L, chunk // max(L, 1) * max(L, 1))
-        left = None
-        done = 0
-        for x in rec.raw_chunks(c, None, size=size):
-            n_total += len(x)
-            if acc is None:
-                clipped += nz.clipping_count(x * ch.gain + ch.offset, rails)
-                continue
-            if left is not None and len(left):
-                x = np.concatenate((left, x))
-            nb = len(x) // L
-            if nb:
-                t0 = (done + np.arange(nb) * L + L / 2) / fs
-                left = x[nb * L:].copy()
-                acc.add(x[:nb * L].reshape(nb, L), t0)
-                done += nb * L
-            else:
-                left = x
-        if acc is not None:
-            clipped += acc.clipped
-            if left is not None and len(left):
-                clipped += nz.clipping_count(left * ch.gain + ch.offset, rails)
-    else:
+class _Run:
+    """One channel's measuring: set up from the plan, fed samples, then ``result()``.
+
+    Gap-free files are fed raw converter counts chunk by chunk (``feed``), so that every
+    channel's blocks come from one read of the file (``_gap_free_pass``); episodic files read
+    their sweeps one by one (``sweeps``)."""
+
+    def __init__(self, rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
+                 windows: list[list[tuple[int, int]]], mains_hz: float | None) -> None:
+        self.rec, self.c, self.mode, self.plan, self.windows = rec, c, mode, plan, windows
+        self.mains_hz = mains_hz
+        self.ch = ch = rec.channels[c]
+        self.dim, self.factor = dims.dim[c], dims.factor[c]
+        fs = rec.fs
+        self.n_total = self.clipped = 0
+        self.tpr = None
+        if plan is not None and plan.ok:
+            self.tpr = _TestPulse(mode, plan, ch, self.factor, fs, rec.n_sweeps)
+        acc: _Blocks | None
+        if rec.gap_free:
+            L = max(1, min(int(round(fs * _BLOCK_S)), rec.n_samples))
+            gain, offset = ch.gain, ch.offset
+            raw_rails = None
+            if ch.rails is not None and gain != 0:
+                raw_rails = tuple(sorted(((ch.rails[0] - offset) / gain,
+                                          (ch.rails[1] - offset) / gain)))
+            acc = _Blocks(L, fs, gain * self.factor, offset * self.factor, raw_rails) \
+                if L >= _MIN_BLOCK else None
+            acc_s = acc
+            self.L = L
+        else:
+            # time-domain noise from the pre-step windows (DESIGN); the spectrum from every
+            # stretch at holding, so a long holding tail gives the resolution hum needs
+            one_s = int(round(fs * _BLOCK_S))
+            pre = [w[0][1] - w[0][0] for w in windows if w]
+            usable = [n for n in pre if n >= _MIN_BLOCK]
+            L = min([one_s] + usable) if usable else 0
+            L2 = min(one_s, max((b - a for w in windows for a, b in w), default=0))
+            acc = _Blocks(L, fs) if L >= _MIN_BLOCK else None
+            same = L2 == L and all(len(w) == 1 for w in windows)
+            acc_s = acc if same else (_Blocks(L2, fs) if L2 >= _MIN_BLOCK else None)
+            if (acc_s is not None and mains_hz and fs / acc_s.L > _MAX_HUM_DF
+                    and humfit.HumFit.fits(acc_s.L, fs, mains_hz)):
+                acc_s.humfit = humfit.HumFit(acc_s.L, fs, mains_hz)
+        if acc_s is not None and fs / acc_s.L <= _MAX_HUM_DF and fs / 2 > 75.0:
+            acc_s.lines = zoom.LineBins(acc_s.L, fs, (mains_hz,) if mains_hz else (50.0, 60.0),
+                                         scale=acc_s.scale)
+        self.acc, self.acc_s = acc, acc_s
+        self._left: np.ndarray | None = None
+        self._done = 0
+
+    def feed(self, x: np.ndarray) -> None:
+        """The next raw samples of a gap-free channel (converter counts or stored floats);
+        gain, offset and the SI factor are applied to the results (every measure is linear
+        in the samples or offset-free)."""
+        ch, acc = self.ch, self.acc
+        self.n_total += len(x)
+        if acc is None:
+            self.clipped += nz.clipping_count(x * ch.gain + ch.offset, ch.rails)
+            return
+        L, left = acc.L, self._left
+        if left is not None and len(left):
+            x = np.concatenate((left, x))
+        nb = len(x) // L
+        if nb:
+            t0 = (self._done + np.arange(nb) * L + L / 2) / self.rec.fs
+            self._left = x[nb * L:].copy()
+            acc.add(x[:nb * L].reshape(nb, L), t0)
+            self._done += nb * L
+        else:
+            self._left = x.copy()
+
+    def sweeps(self) -> None:
+        """Read and measure every sweep of an episodic channel."""
+        rec, acc, acc_s, fs = self.rec, self.acc, self.acc_s, self.rec.fs
         for k in range(rec.n_sweeps):
-            x = rec.sweep(c, k)
-            n_total += len(x)
-            clipped += nz.clipping_count(x, rails)
-            xs = x * factor
-            if tpr is not None:
-                tpr.add(k, xs)
+            x = rec.sweep(self.c, k)
+            self.n_total += len(x)
+            self.clipped += nz.clipping_count(x, self.ch.rails)
+            xs = x * self.factor
+            if self.tpr is not None:
+                self.tpr.add(k, xs)
             t_k = rec.sweep_starts_s[k]
-            for target, wins in ((acc, windows[k][:1]),
-                                 (None if acc_s is acc else acc_s, windows[k])):
+            for target, wins in ((acc, self.windows[k][:1]),
+                                 (None if acc_s is acc else acc_s, self.windows[k])):
                 if target is None:
                     continue
                 n_l = target.L
@@ -793,50 +803,76 @@ def _channel(rec: Any, c: int, dims: _Dims, mode: str, plan: _StepPlan | None,
                         t0 = t_k + (a + np.arange(nb) * n_l + n_l / 2) / fs
                         target.add(xs[a:a + nb * n_l].reshape(nb, n_l).copy(), t0,
                                    a + np.arange(nb) * n_l, k)
-    spectrum = None
-    for a_ in {id(acc): acc, id(acc_s): acc_s}.values():
-        if a_ is not None and a_.nonfinite:
-            notes.append(f"{a_.nonfinite} baseline windows hold NaN or infinite samples and "
-                         f"were left out")
-    if acc is None or not acc.parts["sd"]:
-        notes.append("no baseline window long enough for noise measures "
-                     f"(need {_MIN_BLOCK} samples at the holding level)")
-    else:
-        a = acc.arrays()
-        events = nz.event_blocks(a["sd"])
-        keep = ~events
-        if rec.gap_free or len(a["sd"]) >= 3:
-            out["event_blocks"] = Measure("event_blocks", int(events.sum()), "")
-        _put(out, "noise_rms", float(np.median(a["sd"][keep])), dim)
-        _put(out, "noise_rms_1k", float(np.median(a["sd_band"][keep])), dim)
-        if fs / 2 <= 1000.0:
-            notes.append(f"noise_rms_1k: the file's bandwidth ({fs / 2:g} Hz Nyquist) is "
-                         f"already below 1 kHz")
-        pp = float(np.median(a["pp"][keep]))
-        _put(out, "noise_pp", pp, dim)
-        rms = float(np.median(a["sd"][keep]))
-        if rms > 0:
-            out["pp_over_rms"] = Measure("pp_over_rms", pp / rms, "")
-        _put(out, "holding", float(np.mean(a["mean"][keep])), dim)
-        slope = drift.baseline_drift(a["t"][keep], a["median"][keep])
-        if slope is not None:
-            _put(out, "baseline_drift", slope, {"A": "A/s", "V": "V/s"}.get(dim, ""))
+
+    def result(self) -> ChannelMeasures:
+        ch, acc, acc_s, dim = self.ch, self.acc, self.acc_s, self.dim
+        rec, fs, rails, plan = self.rec, self.rec.fs, self.ch.rails, self.plan
+        notes: list[str] = []
+        out: dict[str, Measure] = {}
+        clipped = self.clipped
+        if rec.gap_free and acc is not None:
+            clipped += acc.clipped
+            if self._left is not None and len(self._left):
+                clipped += nz.clipping_count(self._left * ch.gain + ch.offset, rails)
+        spectrum = None
+        for a_ in {id(acc): acc, id(acc_s): acc_s}.values():
+            if a_ is not None and a_.nonfinite:
+                notes.append(f"{a_.nonfinite} baseline windows hold NaN or infinite samples "
+                             f"and were left out")
+        if acc is None or not acc.parts["sd"]:
+            notes.append("no baseline window long enough for noise measures "
+                         f"(need {_MIN_BLOCK} samples at the holding level)")
         else:
-            notes.append("baseline_drift: baseline spans less than 1 s or fewer than 3 windows")
-    if acc_s is not None and acc_s.parts["sd"]:
-        s_events = nz.event_blocks(np.concatenate(acc_s.parts["sd"]))
-        spectrum = _spectral(acc_s, s_events, fs, dim, mains_hz, out, notes)
-    if rails is not None and n_total:
-        out["clipping_fraction"] = Measure("clipping_fraction", clipped / n_total, "")
-    elif rails is None:
-        notes.append("clipping_fraction: converter rails unknown (float samples)")
-    if tpr is not None:
-        notes.append(f"test step from the {plan.source}")
-        _tp_measures(tpr, out, notes)
-    elif plan is not None and plan.reason:
-        notes.append(plan.reason)
-    return ChannelMeasures(ch.index, ch.name, ch.unit.replace("\x00", "").strip() or "?",
-                           dim, out, tuple(notes), spectrum)
+            a = acc.arrays()
+            events = nz.event_blocks(a["sd"])
+            keep = ~events
+            if rec.gap_free or len(a["sd"]) >= 3:
+                out["event_blocks"] = Measure("event_blocks", int(events.sum()), "")
+            _put(out, "noise_rms", float(np.median(a["sd"][keep])), dim)
+            _put(out, "noise_rms_1k", float(np.median(a["sd_band"][keep])), dim)
+            if fs / 2 <= 1000.0:
+                notes.append(f"noise_rms_1k: the file's bandwidth ({fs / 2:g} Hz Nyquist) is "
+                             f"already below 1 kHz")
+            pp = float(np.median(a["pp"][keep]))
+            _put(out, "noise_pp", pp, dim)
+            rms = float(np.median(a["sd"][keep]))
+            if rms > 0:
+                out["pp_over_rms"] = Measure("pp_over_rms", pp / rms, "")
+            _put(out, "holding", float(np.mean(a["mean"][keep])), dim)
+            slope = drift.baseline_drift(a["t"][keep], a["median"][keep])
+            if slope is not None:
+                _put(out, "baseline_drift", slope, {"A": "A/s", "V": "V/s"}.get(dim, ""))
+            else:
+                notes.append("baseline_drift: baseline spans less than 1 s or fewer than 3 "
+                             "windows")
+        if acc_s is not None and acc_s.parts["sd"]:
+            s_events = nz.event_blocks(np.concatenate(acc_s.parts["sd"]))
+            spectrum = _spectral(acc_s, s_events, fs, dim, self.mains_hz, out, notes)
+        if rails is not None and self.n_total:
+            out["clipping_fraction"] = Measure("clipping_fraction", clipped / self.n_total, "")
+        elif rails is None:
+            notes.append("clipping_fraction: converter rails unknown (float samples)")
+        if self.tpr is not None:
+            notes.append(f"test step from the {plan.source}")
+            _tp_measures(self.tpr, out, notes)
+        elif plan is not None and plan.reason:
+            notes.append(plan.reason)
+        return ChannelMeasures(ch.index, ch.name, ch.unit.replace("\x00", "").strip() or "?",
+                               dim, out, tuple(notes), spectrum)
+
+
+def _gap_free_pass(rec: Any, runs: list[_Run], chunk: int) -> None:
+    """One read of a gap-free file for every channel: chunks of whole blocks (about ``chunk``
+    samples over all channels), each channel's column fed to its run."""
+    L = max(r.L for r in runs)
+    per = max(L, chunk // len(runs) // L * L)
+    if len(runs) == 1:
+        for x in rec.raw_chunks(0, None, size=per):
+            runs[0].feed(x)
+        return
+    for x in rec.raw_chunks_all(None, size=per):
+        for c, r in enumerate(runs):
+            r.feed(x[:, c])
 
 
 def _plan(rec: Any, pulse: Any, notes: list[str], mode: str | None = None
@@ -869,8 +905,14 @@ def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
     rec = recording
     notes: list[str] = list(rec.notes)
     dims, mode, primary, plans, windows = _plan(rec, pulse, notes, mode)
-    channels = tuple(_channel(rec, c, dims, mode, plans.get(c), windows, mains_hz, chunk_size)
-                     for c in range(len(rec.channels)))
+    runs = [_Run(rec, c, dims, mode, plans.get(c), windows, mains_hz)
+            for c in range(len(rec.channels))]
+    if rec.gap_free and runs:
+        _gap_free_pass(rec, runs, chunk_size)
+    else:
+        for r in runs:
+            r.sweeps()
+    channels = tuple(r.result() for r in runs)
     return FileMeasures(
         path=str(rec.path), status="ok", mode=mode, format=rec.format, fs_hz=float(rec.fs),
         duration_s=float(rec.duration_s), n_sweeps=int(rec.n_sweeps),

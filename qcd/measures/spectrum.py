@@ -90,7 +90,8 @@ class BlockFFT:
             self._work = np.empty((nb, self.n))
             self._X = np.empty((nb, self.n // 2 + 1), dtype=complex)
         trend, X = self._trend[:nb], self._X[:nb]
-        if blocks.dtype != np.float64 or not blocks.flags.writeable:
+        if (blocks.dtype != np.float64 or not blocks.flags.writeable
+                or not blocks.flags.c_contiguous):
             work = self._work[:nb]
             work[...] = blocks
             blocks = work
