@@ -53,6 +53,8 @@ _NO_COMMAND_FRACTION = 8  # no command known: the first 1/8 of each sweep is the
 _TP_SPREAD = 0.10         # a test pulse keeps its size within 10 % over the sweeps
 _MEDIAN_SAMPLES = 512     # block medians from every k-th sample, k = L // 512 (speed)
 _ABSURD_AMPERES = 1e-3    # |current| above 1 mA is no patch-clamp signal: the unit is wrong
+_KEEP_BYTES = 40_000_000  # loudest block spectra kept per file (events taken out of the PSD),
+                          # shared by its channels so that many channels stay in bounded memory
 
 
 class _Dims:
@@ -322,10 +324,11 @@ class _Blocks:
     """
 
     def __init__(self, L: int, fs: float, scale: float = 1.0, offset: float = 0.0,
-                 rails: tuple[float, float] | None = None) -> None:
+                 rails: tuple[float, float] | None = None, *,
+                 keep_bytes: int = _KEEP_BYTES) -> None:
         self.L, self.fs = L, fs
         self.scale, self.offset, self.rails = scale, offset, rails
-        self.welch = sp.WelchAccumulator(L, fs)
+        self.welch = sp.WelchAccumulator(L, fs, keep_bytes=keep_bytes)
         self.fft = sp.BlockFFT(L)
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
@@ -735,7 +738,8 @@ class _Run:
             if ch.rails is not None and gain != 0:
                 raw_rails = tuple(sorted(((ch.rails[0] - offset) / gain,
                                           (ch.rails[1] - offset) / gain)))
-            acc = _Blocks(L, fs, gain * self.factor, offset * self.factor, raw_rails) \
+            acc = _Blocks(L, fs, gain * self.factor, offset * self.factor, raw_rails,
+                          keep_bytes=_KEEP_BYTES // len(rec.channels)) \
                 if L >= _MIN_BLOCK else None
             acc_s = acc
             self.L = L
@@ -872,7 +876,7 @@ def _gap_free_pass(rec: Any, runs: list[_Run], chunk: int) -> None:
         return
     for x in rec.raw_chunks_all(None, size=per):
         for c, r in enumerate(runs):
-            r.feed(x[:, c])
+            r.feed(np.ascontiguousarray(x[:, c]))     # one short copy: later passes are fast
 
 
 def _plan(rec: Any, pulse: Any, notes: list[str], mode: str | None = None
