@@ -53,6 +53,10 @@ _NO_COMMAND_FRACTION = 8  # no command known: the first 1/8 of each sweep is the
 _TP_SPREAD = 0.10         # a test pulse keeps its size within 10 % over the sweeps
 _MEDIAN_SAMPLES = 512     # block medians from every k-th sample, k = L // 512 (speed)
 _ABSURD_AMPERES = 1e-3    # |current| above 1 mA is no patch-clamp signal: the unit is wrong
+# A gap-free file of at least this many samples (all channels) has its integer samples
+# transformed in float32 through scipy.fft, whose import (~0.2 s CPU) the faster passes repay
+# (measured: about 2 ns less per sample, so from about 1e8 samples on).
+_SINGLE_MIN_SAMPLES = 1 << 27
 _KEEP_BYTES = 40_000_000  # loudest block spectra kept per file (events taken out of the PSD),
                           # shared by its channels so that many channels stay in bounded memory
 
@@ -325,11 +329,11 @@ class _Blocks:
 
     def __init__(self, L: int, fs: float, scale: float = 1.0, offset: float = 0.0,
                  rails: tuple[float, float] | None = None, *,
-                 keep_bytes: int = _KEEP_BYTES) -> None:
+                 keep_bytes: int = _KEEP_BYTES, single: bool = False) -> None:
         self.L, self.fs = L, fs
         self.scale, self.offset, self.rails = scale, offset, rails
         self.welch = sp.WelchAccumulator(L, fs, keep_bytes=keep_bytes)
-        self.fft = sp.BlockFFT(L)
+        self.fft = sp.BlockFFT(L, single=single)   # single: integer blocks in float32
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
         self.humfit: humfit.HumFit | None = None   # short windows with a declared mains_hz
@@ -367,7 +371,7 @@ class _Blocks:
         # spectra in groups of rows small enough (~2 MB) to stay in cache across the passes
         g = max(1, (1 << 21) // (8 * self.L))
         for a in range(0, blocks.shape[0], g):
-            X, mean, _ = self.fft(blocks[a:a + g])
+            X, mean, _ = self.fft(blocks[a:a + g], med[a:a + g])
             if self.humfit is not None:
                 self.humfit.add(self.fft.detrended)
             pp, _, _ = nz.peak_to_peak(self.fft.detrended)     # still in cache
@@ -738,8 +742,9 @@ class _Run:
             if ch.rails is not None and gain != 0:
                 raw_rails = tuple(sorted(((ch.rails[0] - offset) / gain,
                                           (ch.rails[1] - offset) / gain)))
+            single = rec.n_samples * len(rec.channels) >= _SINGLE_MIN_SAMPLES
             acc = _Blocks(L, fs, gain * self.factor, offset * self.factor, raw_rails,
-                          keep_bytes=_KEEP_BYTES // len(rec.channels)) \
+                          keep_bytes=_KEEP_BYTES // len(rec.channels), single=single) \
                 if L >= _MIN_BLOCK else None
             acc_s = acc
             self.L = L

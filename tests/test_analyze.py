@@ -313,6 +313,25 @@ def _reference():
     return _cache["_chunk_ref"]
 
 
+@pytest.mark.parametrize("name", ["gapfree_cc_slow_drift.abf", "gapfree_16_channels.abf"])
+def test_single_precision_path_gives_the_measures_of_the_double_one(name, monkeypatch):
+    # long gap-free files take their 16-bit samples through float32 (qcd.analyze's
+    # _SINGLE_MIN_SAMPLES, here lowered to 0 so that the real files take that path): every
+    # measure within float32 rounding of the float64 path's, the notes the same
+    import qcd.analyze as an
+    ref = analyze_path(abf(name), digest=False)
+    monkeypatch.setattr(an, "_SINGLE_MIN_SAMPLES", 0)
+    got = analyze_path(abf(name), digest=False)
+    for a, b in zip(got.channels, ref.channels):
+        assert a.measures.keys() == b.measures.keys() and a.notes == b.notes
+        for key, m in a.measures.items():
+            va, vb = m.value, b.measures[key].value
+            if key == "spectral_lines":
+                assert [f for f, _ in va] == [f for f, _ in vb]
+                continue
+            assert va == pytest.approx(vb, rel=1e-5, abs=1e-5 * abs(vb) + 1e-9), (a.index, key)
+
+
 def test_declared_mains_gives_hum_on_short_episodic_baselines():
     # vc_cell_step.abf: 192 ms stretches at holding give 5 Hz bins, too coarse for the PSD
     # method (which needs <= 2 Hz); with the mains declared, the least-squares fit measures it

@@ -241,6 +241,47 @@ def test_pooled_medians_equal_array_split_groups(n):
     assert np.array_equal(py, [np.median(y[g]) for g in groups])
 
 
+# --- single precision ----------------------------------------------------------------------------
+
+@pytest.mark.parametrize("L", [2000, 2001])
+def test_single_precision_blocks_match_scipy_welch_and_the_time_domain(L):
+    # 16-bit converter counts (white noise, a 60 Hz line, a ramp, an offset near the top of
+    # the range) through the float32 path; references: numpy polyfit detrend and the brick-wall
+    # irfft low-pass in float64 (nz.detrended_sd / nz.lowpass_sd), scipy.signal.welch (Hann,
+    # no overlap, linear detrend). float32 keeps about 7 digits: sums agree to 1e-5
+    rng = np.random.default_rng(L)
+    fs, nb = 10_000.0, 12
+    t = np.arange(nb * L) / fs
+    x = 20_000 + rng.normal(0, 40, nb * L) + 300 * np.sin(2 * np.pi * 60 * t) + 500 * t
+    counts = np.clip(np.rint(x), -32768, 32767).astype(np.int16).reshape(nb, L)
+    f64 = counts.astype(np.float64)
+    fft = sp.BlockFFT(L, single=True)
+    X, mean, slope = fft(counts, np.median(counts, axis=1))
+    assert X.dtype == np.complex64
+    sd, sd1k = nz.parseval_sd(X, L, fs)
+    for i in range(nb):
+        assert sd[i] == pytest.approx(nz.detrended_sd(f64[i]), rel=1e-5)
+        assert sd1k[i] == pytest.approx(nz.lowpass_sd(f64[i], fs, 1000.0), rel=1e-5)
+        assert mean[i] == pytest.approx(f64[i].mean(), rel=1e-9)
+        assert slope[i] == pytest.approx(np.polyfit(np.arange(L), f64[i], 1)[0], rel=1e-5)
+    acc = sp.WelchAccumulator(L, fs)
+    acc.add(X, sd)
+    P, k = acc.psd()
+    _, Pw = ss.welch(f64.ravel(), fs, window="hann", nperseg=L, noverlap=0, detrend="linear")
+    assert k == nb
+    np.testing.assert_allclose(P, Pw, rtol=1e-4, atol=1e-6 * Pw.max())
+    assert P.sum() == pytest.approx(Pw.sum(), rel=1e-5)
+
+
+def test_single_precision_constant_blocks_give_exactly_zero():
+    # a constant channel (a disconnected input at one converter step): no rounding noise
+    counts = np.full((4, 1000), 1234, dtype=np.int16)
+    X, mean, slope = sp.BlockFFT(1000, single=True)(counts, np.median(counts, axis=1))
+    sd, sd1k = nz.parseval_sd(X, 1000, 10_000.0)
+    assert not sd.any() and not sd1k.any() and not slope.any()
+    assert (mean == 1234).all()
+
+
 # --- chunking ----------------------------------------------------------------------------------
 
 @settings(max_examples=25, deadline=None)
