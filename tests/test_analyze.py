@@ -332,6 +332,77 @@ def test_single_precision_path_gives_the_measures_of_the_double_one(name, monkey
             assert va == pytest.approx(vb, rel=1e-5, abs=1e-5 * abs(vb) + 1e-9), (a.index, key)
 
 
+@pytest.mark.parametrize("name", ["gapfree_cc_slow_drift.abf", "gapfree_16_channels.abf",
+                                  "fast_100khz_temperature.abf"])
+def test_noise_from_the_spectrum_equals_its_time_domain_definition_on_real_files(name):
+    # noise_rms and noise_rms_1k come from each 1 s block's rfft (Parseval); their definitions
+    # are in the time domain: the SD of the block after removing its least-squares line, and
+    # the same after an ideal zero-phase low-pass at 1 kHz. References: pyabf's samples (an
+    # independent reader), numpy polyfit (nz.detrended_sd), the brick-wall filter applied and
+    # inverted (nz.lowpass_sd), event blocks (SD > 3x the median, DESIGN) left out, medians
+    require_data()
+    import pyabf
+
+    from qcd import units
+    from qcd.measures import noise as nz
+    ref = pyabf.ABF(str(abf(name)))
+    fm = analyze_path(abf(name), digest=False)
+    fs = ref.dataRate
+    L = min(int(round(fs)), len(ref.data[0]))
+    checked = 0
+    for ch in fm.channels:
+        ms = ch.measures
+        if "noise_rms_1k" not in ms:
+            continue
+        x = ref.data[ch.index]
+        blocks = x[:len(x) // L * L].reshape(-1, L)
+        sd = np.array([nz.detrended_sd(b) for b in blocks])
+        keep = ~nz.event_blocks(sd)
+        lo = np.array([nz.lowpass_sd(b, fs, 1000.0) for b in blocks[keep]])
+        si = units.to_si(1.0, ref.adcUnits[ch.index]) if ref.adcUnits[ch.index] in \
+            units.FACTORS else 1.0
+        for key, want in (("noise_rms", np.median(sd[keep])), ("noise_rms_1k", np.median(lo))):
+            got = units.to_si(ms[key].value, ms[key].unit) if ms[key].unit else ms[key].value
+            assert got == pytest.approx(want * si, rel=1e-6), (ch.index, key)
+        checked += 1
+    assert checked
+
+
+def test_noise_rms_1k_and_bands_agree_with_time_domain_filters(tmp_path):
+    # a practical zero-phase filter: scipy.signal.sosfiltfilt with an 8-pole Butterworth whose
+    # squared response |H|^4 has a 1 kHz noise bandwidth (cutoff 1 kHz / 0.94355, the integral
+    # of 1/(1+x^16)^2 over x >= 0, evaluated numerically) gives the same noise_rms_1k on white
+    # noise within 1 % (a sloped spectrum moves a Butterworth away from the ideal filter)
+    import scipy.integrate
+    import scipy.signal as ss
+    enbw = scipy.integrate.quad(lambda u: 1 / (1 + u ** 16) ** 2, 0, 50, limit=200)[0]
+    fs, L = 20_000.0, 20_000
+    rng = np.random.default_rng(21)
+    x = rng.normal(0, 2.0, 30 * L)
+    path = tmp_path / "white.abf"
+    _write_abf1(path, x[None, :], fs, gap_free=True)
+    fm = analyze_path(path, digest=False)
+    got = fm.channels[0].measures["noise_rms_1k"].value
+    import pyabf
+    y = pyabf.ABF(str(path)).data[0]
+    sos = ss.butter(8, 1000.0 / enbw, fs=fs, output="sos")
+    sds = [np.std(ss.sosfiltfilt(sos, ss.detrend(b))) for b in y[:30 * L].reshape(30, L)]
+    assert got == pytest.approx(float(np.median(sds)), rel=0.01)
+    assert got == pytest.approx(2.0 * math.sqrt(1000.0 / (fs / 2)), rel=0.02)   # analytic
+    # the bands come from the Welch PSD (Hann windows); their definition: the RMS of the
+    # detrended blocks after an ideal zero-phase band-pass (bins outside zeroed, irfft), the
+    # power averaged over blocks. The same within 1 % (window leakage at the band edges)
+    ms = fm.channels[0].measures
+    f = np.fft.rfftfreq(L, 1 / fs)
+    X = np.fft.rfft(ss.detrend(y[:30 * L].reshape(30, L), axis=1), axis=1)
+    for name, (lo, hi) in (("band_rms_0p5_10", (0.5, 10.0)), ("band_rms_10_70", (10.0, 70.0)),
+                           ("band_rms_70_1k", (70.0, 1000.0)),
+                           ("band_rms_1k_corner", (1000.0, 0.95 * fs / 2))):   # no corner
+        band = np.where((f >= lo) & (f <= hi), X, 0)
+        want = math.sqrt(float(np.mean(np.var(np.fft.irfft(band, n=L, axis=1), axis=1))))
+        assert ms[name].value == pytest.approx(want, rel=0.01), name
+
+
 def test_declared_mains_gives_hum_on_short_episodic_baselines():
     # vc_cell_step.abf: 192 ms stretches at holding give 5 Hz bins, too coarse for the PSD
     # method (which needs <= 2 Hz); with the mains declared, the least-squares fit measures it
