@@ -369,7 +369,7 @@ class _Blocks:
             part = np.partition(sub, (h - 1, h), axis=1)
             med = 0.5 * (part[:, h - 1].astype(float) + part[:, h])
         # spectra in groups of rows small enough (~2 MB) to stay in cache across the passes
-        g = max(1, (1 << 21) // (8 * self.L))
+        g = max(1, (1 << 21) // ((4 if self.fft.single else 8) * self.L))
         for a in range(0, blocks.shape[0], g):
             X, mean, _ = self.fft(blocks[a:a + g], med[a:a + g])
             if self.humfit is not None:

@@ -78,6 +78,7 @@ class BlockFFT:
         self._X: np.ndarray | None = None
         self.detrended: np.ndarray | None = None
         self._rfft32 = _single_rfft() if single else None
+        self.single = self._rfft32 is not None
         self._c32 = self.c.astype(np.float32)
         self._work32: np.ndarray | None = None
         self._trend32: np.ndarray | None = None
@@ -124,9 +125,8 @@ class BlockFFT:
             self._work32 = np.empty((nb, self.n), dtype=np.float32)
             self._trend32 = np.empty((nb, self.n), dtype=np.float32)
         work, trend = self._work32[:nb], self._trend32[:nb]
-        work[...] = blocks
         off = np.zeros(nb) if offset is None else np.rint(np.asarray(offset, dtype=float))
-        work -= off.astype(np.float32)[:, None]
+        np.subtract(blocks, off.astype(np.float32)[:, None], out=work)    # exact, one pass
         slope = (np.einsum("bj,j->b", work, self._c32, dtype=np.float64) / self.ss
                  if self.ss > 0 else np.zeros(nb))
         np.multiply.outer(slope.astype(np.float32), self._c32, out=trend)
@@ -230,17 +230,22 @@ class WelchAccumulator:
         if self._rows is None:
             self._rows = np.empty((self.keep, self.m), dtype=complex)
         heap = self._heap
-        for i in range(X.shape[0]):
-            r = float(rms[i])
-            if len(heap) < self.keep:
-                slot = len(heap)
-                heapq.heappush(heap, (r, self.count + i, slot))
-            elif r > heap[0][0]:
-                slot = heap[0][2]
-                heapq.heapreplace(heap, (r, self.count + i, slot))
-            else:
-                continue
+        rows = X.shape[0]
+        first = min(rows, max(self.keep - len(heap), 0))       # rows that fill free slots
+        for i in range(first):
+            slot = len(heap)
+            heapq.heappush(heap, (float(rms[i]), self.count + i, slot))
             self._rows[slot] = X[i]
+        # the slots are full: a row at or below the smallest kept RMS is never kept (that
+        # minimum only rises), so only the rows above it are looked at one by one
+        later = np.flatnonzero(np.asarray(rms[first:rows], dtype=float) > heap[0][0]) + first \
+            if rows > first else ()
+        for i in later:
+            r = float(rms[i])
+            if r > heap[0][0]:
+                slot = heap[0][2]
+                heapq.heapreplace(heap, (r, self.count + int(i), slot))
+                self._rows[slot] = X[i]
         self.count += X.shape[0]
 
     def _total(self) -> np.ndarray:
