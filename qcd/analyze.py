@@ -336,6 +336,7 @@ class _Blocks:
         self.fft = sp.BlockFFT(L, single=single)   # single: integer blocks in float32
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
+        self.flat = 0                     # blocks whose samples all hold one value
         self.humfit: humfit.HumFit | None = None   # short windows with a declared mains_hz
         self.lines: zoom.LineBins | None = None  # bins near the mains harmonics (line_hz)
         self._median_step = max(1, L // _MEDIAN_SAMPLES)
@@ -356,6 +357,7 @@ class _Blocks:
             for i in np.flatnonzero((mx >= hi) | (mn <= lo)):
                 self.clipped += nz.clipping_count(blocks[i], self.rails)
         finite = np.isfinite(mx) & np.isfinite(mn)      # float files may hold NaN/inf samples
+        self.flat += int(np.count_nonzero((mx == mn) & finite))
         if not finite.all():
             self.nonfinite += int((~finite).sum())
             blocks, t0, starts = blocks[finite], t0[finite], starts[finite]
@@ -831,6 +833,10 @@ class _Run:
         if acc is None or not acc.parts["sd"]:
             notes.append("no baseline window long enough for noise measures "
                          f"(need {_MIN_BLOCK} samples at the holding level)")
+        elif _all_flat(acc):
+            self._flat(acc, out, notes)
+            if acc_s is acc or _all_flat(acc_s):
+                acc_s = None              # a spectrum of one value is only rounding
         else:
             a = acc.arrays()
             events = nz.event_blocks(a["sd"])
@@ -868,6 +874,29 @@ class _Run:
             notes.append(plan.reason)
         return ChannelMeasures(ch.index, ch.name, ch.unit.replace("\x00", "").strip() or "?",
                                dim, out, tuple(notes), spectrum)
+
+
+    def _flat(self, acc: _Blocks, out: dict[str, Measure], notes: list[str]) -> None:
+        """Every baseline window holds one value (an input not connected, a converter at a
+        rail): holding that value and exact zeros for noise, no spectral measures."""
+        a = acc.arrays()
+        value = float(np.median(a["mean"]))
+        if self.rec.gap_free:
+            out["event_blocks"] = Measure("event_blocks", 0, "")
+        _put(out, "holding", value, self.dim)
+        for name in ("noise_rms", "noise_rms_1k", "noise_pp"):
+            _put(out, name, 0.0, self.dim)
+        unit = out["holding"].unit if "holding" in out else ""
+        shown = out["holding"].value if "holding" in out else value
+        notes.append(f"the samples do not change: every baseline window holds the one value "
+                     f"{shown:.6g}{' ' + unit if unit else ''} (an input not connected or a "
+                     f"signal at a converter rail?); noise is 0 and there is no spectrum, so "
+                     f"no hum, bands, corner or lines")
+
+
+def _all_flat(acc: _Blocks | None) -> bool:
+    """Every block the accumulator took holds one value."""
+    return acc is not None and acc.flat == sum(len(v) for v in acc.parts["sd"]) > 0
 
 
 def _gap_free_pass(rec: Any, runs: list[_Run], chunk: int) -> None:

@@ -66,7 +66,17 @@ def test_every_real_file_analyzes_ok(path):
     for ch in doc["channels"]:
         for name, m in ch["measures"].items():
             assert m["unit"] in UNITS, (name, m["unit"])
-        if ch["dimension"] in ("A", "V"):
+        if ch["dimension"] in ("A", "V") and any("samples do not change" in n
+                                                 for n in ch["notes"]):
+            # zero noise only where the samples do not change: pyabf (the reference reader)
+            # shows every sweep of the channel starting with a run of one value
+            import pyabf
+            ref = pyabf.ABF(str(path))
+            for k in range(ref.sweepCount):
+                ref.setSweep(k, channel=ch["index"])
+                assert np.ptp(ref.sweepY[:100]) == 0, (ch["index"], k)
+            assert ch["measures"]["noise_rms"]["value"] == 0
+        elif ch["dimension"] in ("A", "V"):
             assert ch["measures"]["noise_rms"]["value"] > 0
             assert ch["measures"]["noise_rms"]["unit"] == ("pA" if ch["dimension"] == "A"
                                                            else "mV")
@@ -401,6 +411,25 @@ def test_noise_rms_1k_and_bands_agree_with_time_domain_filters(tmp_path):
         band = np.where((f >= lo) & (f <= hi), X, 0)
         want = math.sqrt(float(np.mean(np.var(np.fft.irfft(band, n=L, axis=1), axis=1))))
         assert ms[name].value == pytest.approx(want, rel=0.01), name
+
+
+@pytest.mark.parametrize("single", [False, True])
+def test_constant_channel_gives_zero_noise_and_says_why_no_spectrum(tmp_path, monkeypatch,
+                                                                  single):
+    # analytic: samples that never change have zero variance; rounding in either precision
+    # must not turn into a noise value, a corner frequency or a "no mains line" finding
+    import qcd.analyze as an
+    if single:
+        monkeypatch.setattr(an, "_SINGLE_MIN_SAMPLES", 0)
+    path = tmp_path / "flat.abf"
+    _write_abf1(path, np.full((1, 50_000), 12.5), 10_000.0, gap_free=True)
+    ch = analyze_path(path, digest=False).channels[0]
+    ms = ch.measures
+    assert ms["noise_rms"].value == ms["noise_rms_1k"].value == ms["noise_pp"].value == 0.0
+    assert ms["holding"].value == pytest.approx(12.5, abs=0.05)     # int16 steps of the writer
+    assert not {"pp_over_rms", "corner_hz", "hum_rms_max", "band_rms_70_1k"} & set(ms)
+    assert any("samples do not change" in n for n in ch.notes)
+    assert not any("mains line" in n or "corner_hz" in n for n in ch.notes)
 
 
 def test_declared_mains_gives_hum_on_short_episodic_baselines():
