@@ -227,7 +227,9 @@ def _gap_free_pass(rec: Any, runs: list[_Run], chunk: int) -> None:
     """One read of a gap-free file for every channel: chunks of whole blocks (about ``chunk``
     samples over all channels), each channel's column fed to its run."""
     L = max(r.L for r in runs)
-    per = max(L, chunk // len(runs) // L * L)
+    # rows per read: ``chunk`` for one channel; with more, up to 4x ``chunk`` samples in all
+    # (8 MB of 16-bit samples), so each channel still gets many blocks per call
+    per = max(L, min(chunk, 4 * chunk // len(runs)) // L * L)
     if len(runs) == 1:
         for x in rec.raw_chunks(0, None, size=per):
             runs[0].feed(x)
