@@ -17,6 +17,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable
 
+from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileClosedEvent, FileCreatedEvent,
+                             FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
+                             FileSystemEventHandler)
+from watchdog.observers import Observer
+from watchdog.observers.polling import PollingObserver
+
 from qcd.errors import RecordingError
 
 if TYPE_CHECKING:
@@ -399,11 +405,8 @@ class Hint:
     what: str
 
 
-class _Inbox:
-    """Only enqueues a Hint per event. Runs on watchdog's thread, which calls ``dispatch``.
-
-    watchdog is imported where folders are watched, not with this module: ``qcd scan`` uses
-    intake's file finding and never loads it."""
+class _Inbox(FileSystemEventHandler):
+    """Only enqueues a Hint per event. Runs on watchdog's thread."""
 
     def __init__(self, q: "queue.Queue[Hint]", rig: str, root: Path) -> None:
         self._q, self._rig, self._root = q, rig, root
@@ -411,10 +414,7 @@ class _Inbox:
     def _put(self, path: Any, what: str) -> None:
         self._q.put(Hint(self._rig, os.fsdecode(path), what))
 
-    def dispatch(self, event) -> None:
-        from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent,
-                                     FileClosedEvent, FileCreatedEvent, FileDeletedEvent,
-                                     FileModifiedEvent, FileMovedEvent)
+    def on_any_event(self, event) -> None:
         t = type(event)
         if t in (FileCreatedEvent, FileModifiedEvent):
             self._put(event.src_path, "written")
@@ -463,8 +463,6 @@ class _FolderWatch:
                 log.warning("%s: folder not found; waiting for it", self.root)
             self.state = "missing"
             return False
-        from watchdog.observers import Observer
-        from watchdog.observers.polling import PollingObserver
         obs = (PollingObserver(timeout=self._poll_interval_s) if self.polling else Observer())
         obs.name = f"qcd-observer-{self.rig.name}"
         try:

@@ -17,15 +17,15 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
+from qcd import alerts
 from qcd.analyze import analyze_path
 from qcd.errors import StoreError
+from qcd.judge import Finding, judge
 from qcd.results import ChannelMeasures, FileMeasures, file_time
 from qcd.workers import imap
 
 if TYPE_CHECKING:
-    from qcd import alerts
     from qcd.config import RigConfig
-    from qcd.judge import Finding
     from qcd.notify import Sender
     from qcd.recording import Recording
     from qcd.ruleset import Rules
@@ -140,7 +140,6 @@ def watched_channels(fm: FileMeasures, rig: RigConfig) -> FileMeasures:
 def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float
                ) -> list[Finding]:
     """The judge with the rig's history bound to the store (files recorded before this one)."""
-    from qcd.judge import judge        # here: measuring alone (qcd scan) never loads it
     st = rules.settings
     name, before = rig.name, file_time(fm.recorded_at, fm.mtime, now)
 
@@ -192,7 +191,6 @@ def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: fl
     Never raises for a bad file; a StoreError (the database itself failing) propagates.
     With ``batch`` no message is queued per file (see ``flush_digest``).
     """
-    from qcd import alerts
     name = rig.name
     try:
         findings = judge_file(fm, rig, store, rules, now)
@@ -224,7 +222,6 @@ def process(path: str | os.PathLike, rig: RigConfig, store: Store, rules: Rules,
 def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None = None
                  ) -> alerts.Message | None:
     """After a backlog: one digest of what opened and resolved, queued with its states."""
-    from qcd import alerts
     before = store.alert_states()
     states, message = alerts.flush_digest(before, store.active_mutes(now), now,
                                           rules.settings)
@@ -239,7 +236,6 @@ def flush_digest(store: Store, rules: Rules, now: float, sender: Sender | None =
 def tick(store: Store, rules: Rules, now: float, sender: Sender | None = None
          ) -> list[alerts.Message]:
     """No new file: one message per rig for open alerts whose mute has just ended."""
-    from qcd import alerts
     before = store.alert_states()
     states, messages = alerts.tick(before, store.active_mutes(now), now, rules.settings)
     changed = _changed(before, states)
