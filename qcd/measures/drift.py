@@ -1,6 +1,8 @@
 """Drift: Theil-Sen slope of baseline medians against time. numpy only, SI in and out."""
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 __all__ = ["theil_sen", "baseline_drift", "MAX_POINTS"]
@@ -15,13 +17,21 @@ def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     y = np.asarray(y, dtype=float)
     if len(t) < 2:
         raise ValueError("Theil-Sen needs at least two points")
-    i, j = np.triu_indices(len(t), k=1)
+    i, j = _pairs(len(t))
     dt = t[j] - t[i]
     ok = dt != 0
     if not ok.any():
         raise ValueError("Theil-Sen needs two distinct times")
     slope = float(np.median((y[j] - y[i])[ok] / dt[ok]))
     return slope, float(np.median(y - slope * t))
+
+
+@functools.lru_cache(maxsize=4)
+def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Index pairs i < j of n points (the same for every channel of a file: made once)."""
+    i, j = np.triu_indices(n, k=1)
+    i.flags.writeable = j.flags.writeable = False
+    return i, j
 
 
 def _pool(t: np.ndarray, y: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
