@@ -116,6 +116,37 @@ def test_excluded_blocks_leave_the_psd_exactly():
     np.testing.assert_allclose(P, Pw, rtol=1e-9, atol=1e-12 * Pw.max())
 
 
+def test_loudest_blocks_kept_in_few_slots_leave_the_psd_exactly():
+    # 16 slots (the smallest keep) for 200 blocks fed in uneven pieces: the 5 event blocks are
+    # among the loudest kept, so taking them out is exact; reference scipy.signal.welch of the
+    # blocks without them (Hann, no overlap, linear detrend)
+    rng = np.random.default_rng(7)
+    fs, L = 1000.0, 500
+    x = rng.normal(0, 1, (200, L)) * rng.uniform(0.8, 1.2, (200, 1))
+    events = [3, 40, 41, 150, 199]
+    for i in events:
+        x[i] += 30 * np.sin(np.linspace(0, 20, L))
+    acc = sp.WelchAccumulator(L, fs, keep_bytes=1)
+    assert acc.keep == 16
+    for part in np.array_split(np.arange(200), [7, 8, 60, 130]):
+        X, _, _ = sp.block_fft(x[part])
+        sd, _ = nz.parseval_sd(X, L, fs)
+        acc.add(X, sd)
+    P, k = acc.psd(frozenset(events))
+    _, Pw = ss.welch(np.delete(x, events, axis=0).ravel(), fs, window="hann", nperseg=L,
+                     noverlap=0, detrend="linear")
+    assert k == 195 and acc.exact
+    np.testing.assert_allclose(P, Pw, rtol=1e-9, atol=1e-12 * Pw.max())
+
+
+def test_single_precision_transform_equals_scipy_fft():
+    # the compiled transform loaded straight from scipy's file against the public scipy.fft.rfft
+    import scipy.fft
+    r2c = sp._single_rfft()
+    x = np.random.default_rng(3).normal(0, 100, (5, 1001)).astype(np.float32)
+    assert np.array_equal(r2c(x), scipy.fft.rfft(x, axis=1))
+
+
 def test_parseval_psd_integral_equals_variance_on_methods_signal():
     # METHODS §3.4 check on the §4.2 signal: var = 0.7953, sum P df = 0.7958 (theory 0.795)
     x, fs = _methods_42_signal()
