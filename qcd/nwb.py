@@ -379,11 +379,50 @@ class _Source:
             with h5py.File(self._path, "r", locking=False) as f:
                 if channel is not None:
                     return self._column(f, channel, a, b)
-                cols = [self._column(f, c, a, b) for c in range(len(self._pieces))]
+                return self._columns(f, a, b)
         except OSError as e:
             raise _err(self._path, "unreadable", f"reading samples failed ({str(e)[:160]}); "
                        f"the file changed or is damaged") from e
-        return np.stack(cols, axis=1) if cols else np.empty((b - a, 0))
+
+    def _columns(self, f: Any, a: int, b: int) -> np.ndarray:
+        """Every channel's samples [a, b): channels that are columns of one dataset (an
+        ElectricalSeries) come from one hyperslab of all its columns, not one read each."""
+        n = len(self._pieces)
+        out = np.empty((b - a, n), dtype=np.float64 if any(self._scaled) else self.dtype)
+        if not n:
+            return out
+        k = int(np.searchsorted(self._offsets, a, side="right")) - 1
+        pos = a
+        while pos < b:
+            base, end = int(self._offsets[k]), int(self._offsets[k + 1])
+            lo, hi = pos - base, min(b, end) - base
+            slabs: dict[tuple[str, int], np.ndarray] = {}
+            first = self._pieces[0][k]
+            if (pos == a and min(b, end) == b and not any(self._scaled)
+                    and all(self._pieces[c][k].data == first.data
+                            and self._pieces[c][k].start == first.start
+                            and self._pieces[c][k].col == c for c in range(n))):
+                # every channel is its own column of one dataset, in order: the hyperslab
+                # of all columns is the answer as it is
+                slab = f[first.data][first.start + lo:first.start + hi][:, :n]
+                if slab.dtype == out.dtype and slab.flags.c_contiguous:
+                    return slab
+                out[...] = slab
+                return out
+            for c in range(n):
+                p = self._pieces[c][k]
+                if p.col is None:
+                    part = f[p.data][p.start + lo:p.start + hi]
+                else:
+                    key = (p.data, p.start)
+                    if key not in slabs:
+                        slabs[key] = f[p.data][p.start + lo:p.start + hi]
+                    part = slabs[key][:, p.col]
+                if self._scaled[c]:
+                    part = part.astype(np.float64) * p.gain + p.offset
+                out[pos - a:pos - a + hi - lo, c] = part
+            pos, k = base + hi, k + 1
+        return out
 
     def close(self) -> None:
         pass

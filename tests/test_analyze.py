@@ -66,7 +66,17 @@ def test_every_real_file_analyzes_ok(path):
     for ch in doc["channels"]:
         for name, m in ch["measures"].items():
             assert m["unit"] in UNITS, (name, m["unit"])
-        if ch["dimension"] in ("A", "V"):
+        if ch["dimension"] in ("A", "V") and any("samples do not change" in n
+                                                 for n in ch["notes"]):
+            # zero noise only where the samples do not change: pyabf (the reference reader)
+            # shows every sweep of the channel starting with a run of one value
+            import pyabf
+            ref = pyabf.ABF(str(path))
+            for k in range(ref.sweepCount):
+                ref.setSweep(k, channel=ch["index"])
+                assert np.ptp(ref.sweepY[:100]) == 0, (ch["index"], k)
+            assert ch["measures"]["noise_rms"]["value"] == 0
+        elif ch["dimension"] in ("A", "V"):
             assert ch["measures"]["noise_rms"]["value"] > 0
             assert ch["measures"]["noise_rms"]["unit"] == ("pA" if ch["dimension"] == "A"
                                                            else "mV")
@@ -311,6 +321,115 @@ def _reference():
     if "_chunk_ref" not in _cache:
         _cache["_chunk_ref"] = analyze(open_recording(abf("gapfree_cc_slow_drift.abf")))
     return _cache["_chunk_ref"]
+
+
+@pytest.mark.parametrize("name", ["gapfree_cc_slow_drift.abf", "gapfree_16_channels.abf"])
+def test_single_precision_path_gives_the_measures_of_the_double_one(name, monkeypatch):
+    # long gap-free files take their 16-bit samples through float32 (qcd.analyze's
+    # _SINGLE_MIN_SAMPLES, here lowered to 0 so that the real files take that path): every
+    # measure within float32 rounding of the float64 path's, the notes the same
+    import qcd.analyze as an
+    ref = analyze_path(abf(name), digest=False)
+    monkeypatch.setattr(an, "_SINGLE_MIN_SAMPLES", 0)
+    got = analyze_path(abf(name), digest=False)
+    for a, b in zip(got.channels, ref.channels):
+        assert a.measures.keys() == b.measures.keys() and a.notes == b.notes
+        for key, m in a.measures.items():
+            va, vb = m.value, b.measures[key].value
+            if key == "spectral_lines":
+                assert [f for f, _ in va] == [f for f, _ in vb]
+                continue
+            assert va == pytest.approx(vb, rel=1e-5, abs=1e-5 * abs(vb) + 1e-9), (a.index, key)
+
+
+@pytest.mark.parametrize("name", ["gapfree_cc_slow_drift.abf", "gapfree_16_channels.abf",
+                                  "fast_100khz_temperature.abf"])
+def test_noise_from_the_spectrum_equals_its_time_domain_definition_on_real_files(name):
+    # noise_rms and noise_rms_1k come from each 1 s block's rfft (Parseval); their definitions
+    # are in the time domain: the SD of the block after removing its least-squares line, and
+    # the same after an ideal zero-phase low-pass at 1 kHz. References: pyabf's samples (an
+    # independent reader), numpy polyfit (nz.detrended_sd), the brick-wall filter applied and
+    # inverted (nz.lowpass_sd), event blocks (SD > 3x the median, DESIGN) left out, medians
+    require_data()
+    import pyabf
+
+    from qcd import units
+    from qcd.measures import noise as nz
+    ref = pyabf.ABF(str(abf(name)))
+    fm = analyze_path(abf(name), digest=False)
+    fs = ref.dataRate
+    L = min(int(round(fs)), len(ref.data[0]))
+    checked = 0
+    for ch in fm.channels:
+        ms = ch.measures
+        if "noise_rms_1k" not in ms:
+            continue
+        x = ref.data[ch.index]
+        blocks = x[:len(x) // L * L].reshape(-1, L)
+        sd = np.array([nz.detrended_sd(b) for b in blocks])
+        keep = ~nz.event_blocks(sd)
+        lo = np.array([nz.lowpass_sd(b, fs, 1000.0) for b in blocks[keep]])
+        si = units.to_si(1.0, ref.adcUnits[ch.index]) if ref.adcUnits[ch.index] in \
+            units.FACTORS else 1.0
+        for key, want in (("noise_rms", np.median(sd[keep])), ("noise_rms_1k", np.median(lo))):
+            got = units.to_si(ms[key].value, ms[key].unit) if ms[key].unit else ms[key].value
+            assert got == pytest.approx(want * si, rel=1e-6), (ch.index, key)
+        checked += 1
+    assert checked
+
+
+def test_noise_rms_1k_and_bands_agree_with_time_domain_filters(tmp_path):
+    # a practical zero-phase filter: scipy.signal.sosfiltfilt with an 8-pole Butterworth whose
+    # squared response |H|^4 has a 1 kHz noise bandwidth (cutoff 1 kHz / 0.94355, the integral
+    # of 1/(1+x^16)^2 over x >= 0, evaluated numerically) gives the same noise_rms_1k on white
+    # noise within 1 % (a sloped spectrum moves a Butterworth away from the ideal filter)
+    import scipy.integrate
+    import scipy.signal as ss
+    enbw = scipy.integrate.quad(lambda u: 1 / (1 + u ** 16) ** 2, 0, 50, limit=200)[0]
+    fs, L = 20_000.0, 20_000
+    rng = np.random.default_rng(21)
+    x = rng.normal(0, 2.0, 30 * L)
+    path = tmp_path / "white.abf"
+    _write_abf1(path, x[None, :], fs, gap_free=True)
+    fm = analyze_path(path, digest=False)
+    got = fm.channels[0].measures["noise_rms_1k"].value
+    import pyabf
+    y = pyabf.ABF(str(path)).data[0]
+    sos = ss.butter(8, 1000.0 / enbw, fs=fs, output="sos")
+    sds = [np.std(ss.sosfiltfilt(sos, ss.detrend(b))) for b in y[:30 * L].reshape(30, L)]
+    assert got == pytest.approx(float(np.median(sds)), rel=0.01)
+    assert got == pytest.approx(2.0 * math.sqrt(1000.0 / (fs / 2)), rel=0.02)   # analytic
+    # the bands come from the Welch PSD (Hann windows); their definition: the RMS of the
+    # detrended blocks after an ideal zero-phase band-pass (bins outside zeroed, irfft), the
+    # power averaged over blocks. The same within 1 % (window leakage at the band edges)
+    ms = fm.channels[0].measures
+    f = np.fft.rfftfreq(L, 1 / fs)
+    X = np.fft.rfft(ss.detrend(y[:30 * L].reshape(30, L), axis=1), axis=1)
+    for name, (lo, hi) in (("band_rms_0p5_10", (0.5, 10.0)), ("band_rms_10_70", (10.0, 70.0)),
+                           ("band_rms_70_1k", (70.0, 1000.0)),
+                           ("band_rms_1k_corner", (1000.0, 0.95 * fs / 2))):   # no corner
+        band = np.where((f >= lo) & (f <= hi), X, 0)
+        want = math.sqrt(float(np.mean(np.var(np.fft.irfft(band, n=L, axis=1), axis=1))))
+        assert ms[name].value == pytest.approx(want, rel=0.01), name
+
+
+@pytest.mark.parametrize("single", [False, True])
+def test_constant_channel_gives_zero_noise_and_says_why_no_spectrum(tmp_path, monkeypatch,
+                                                                  single):
+    # analytic: samples that never change have zero variance; rounding in either precision
+    # must not turn into a noise value, a corner frequency or a "no mains line" finding
+    import qcd.analyze as an
+    if single:
+        monkeypatch.setattr(an, "_SINGLE_MIN_SAMPLES", 0)
+    path = tmp_path / "flat.abf"
+    _write_abf1(path, np.full((1, 50_000), 12.5), 10_000.0, gap_free=True)
+    ch = analyze_path(path, digest=False).channels[0]
+    ms = ch.measures
+    assert ms["noise_rms"].value == ms["noise_rms_1k"].value == ms["noise_pp"].value == 0.0
+    assert ms["holding"].value == pytest.approx(12.5, abs=0.05)     # int16 steps of the writer
+    assert not {"pp_over_rms", "corner_hz", "hum_rms_max", "band_rms_70_1k"} & set(ms)
+    assert any("samples do not change" in n for n in ch.notes)
+    assert not any("mains line" in n or "corner_hz" in n for n in ch.notes)
 
 
 def test_declared_mains_gives_hum_on_short_episodic_baselines():

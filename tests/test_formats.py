@@ -275,6 +275,95 @@ def test_raw_chunks_all_equals_every_channel_read_alone(tmp_path):
                         list(rec.chunks(c, sweep, size))), equal_nan=True), (path, c)
 
 
+class _CountingSource:
+    """The recording's own source, with every read it serves written down."""
+
+    def __init__(self, src) -> None:
+        self.src, self.reads = src, []
+
+    def read(self, a: int, b: int, channel):
+        self.reads.append((a, b, channel))
+        return self.src.read(a, b, channel)
+
+    def close(self) -> None:
+        self.src.close()
+
+
+@pytest.mark.parametrize("chunk", [1 << 14, 1 << 20])
+def test_multichannel_gap_free_file_is_read_once_for_all_channels(chunk):
+    # one pass: every sample row of the 16-channel file read once, all channels per read (the
+    # unit probe reads at most 4096 samples of one channel); the measures are those of each
+    # channel read alone (the same chunks through raw_chunks, which the test above pins)
+    require_data()
+    with open_recording(abf("gapfree_16_channels.abf")) as rec:
+        counting = _CountingSource(rec._src)
+        rec._src = counting
+        fm = analyze(rec, chunk_size=chunk)
+        whole = sorted((a, b) for a, b, c in counting.reads if c is None)
+        assert whole[0][0] == 0 and whole[-1][1] == rec.n_samples
+        assert all(p[1] == q[0] for p, q in zip(whole, whole[1:]))      # no row twice
+        assert all(b - a <= 4096 for a, b, c in counting.reads if c is not None)
+    alone = {}
+    for c in range(16):
+        with open_recording(abf("gapfree_16_channels.abf")) as rec:
+            rec.channels = rec.channels[c:c + 1]          # channel c as a file of its own
+            rec._src = _OneColumn(rec._src, c)
+            alone.update({(c, k): v for (_, k), v in _numbers(analyze(rec)).items()})
+    assert _numbers(fm).keys() == alone.keys()
+    for key, v in _numbers(fm).items():
+        assert v == pytest.approx(alone[key], rel=1e-12, abs=1e-300), key
+
+
+class _OneColumn:
+    """Column ``c`` of a source, as a one-channel source."""
+
+    def __init__(self, src, c: int) -> None:
+        self.src, self.c = src, c
+
+    def read(self, a: int, b: int, channel):
+        x = self.src.read(a, b, self.c)
+        return x if channel is not None else x[:, None]
+
+    def close(self) -> None:
+        self.src.close()
+
+
+def test_int16_abf_and_float64_nwb_of_the_same_samples_agree(tmp_path):
+    # the same values through both readers and both sample types: the ABF holds 16-bit
+    # converter counts (measured from the counts, scaled at the end), the NWB the float64
+    # values those counts stand for (pyabf's scaling, the reference). Every measure agrees to
+    # float32 rounding; the voltage channels of the real 16-channel file, in volts
+    require_data()
+    import pyabf
+    src = pyabf.ABF(str(abf("gapfree_16_channels.abf")))
+    volts = [c for c, u in enumerate(src.adcUnits) if u in ("mV", "V")]
+    data = np.stack([src.data[c] * (1e-3 if src.adcUnits[c] == "mV" else 1.0) for c in volts],
+                    axis=1).astype(np.float64)
+    nwb = write_extracellular(tmp_path / "same.nwb", data, float(src.dataRate))
+    fa, fn = analyze_path(abf("gapfree_16_channels.abf")), analyze_path(nwb)
+    assert fa.status == fn.status == "ok" and fn.gap_free
+    pairs = [(next(ch for ch in fa.channels if ch.index == c), fn.channels[i])
+             for i, c in enumerate(volts)]
+    for ca, cn in pairs:
+        # float samples have no converter rails: no clipping_fraction from the NWB
+        assert ca.measures.keys() - {"clipping_fraction"} == cn.measures.keys(), ca.index
+        for k, m in ca.measures.items():
+            if k == "clipping_fraction":
+                continue
+            got = cn.measures[k]
+            if isinstance(m.value, bool) or not isinstance(m.value, (int, float)):
+                assert got.value == m.value, (ca.index, k)
+                continue
+            a = units_si(m)
+            assert units_si(got) == pytest.approx(a, rel=1e-5, abs=1e-5 * abs(a) + 1e-15), \
+                (ca.index, k)
+
+
+def units_si(m) -> float:
+    from qcd import units
+    return units.to_si(m.value, m.unit) if m.unit in units.FACTORS else float(m.value)
+
+
 # ------------------------------------------------------------------------------------ NWB
 
 def test_nwb_samples_and_facts_equal_pynwb(tmp_path):

@@ -116,6 +116,37 @@ def test_excluded_blocks_leave_the_psd_exactly():
     np.testing.assert_allclose(P, Pw, rtol=1e-9, atol=1e-12 * Pw.max())
 
 
+def test_loudest_blocks_kept_in_few_slots_leave_the_psd_exactly():
+    # 16 slots (the smallest keep) for 200 blocks fed in uneven pieces: the 5 event blocks are
+    # among the loudest kept, so taking them out is exact; reference scipy.signal.welch of the
+    # blocks without them (Hann, no overlap, linear detrend)
+    rng = np.random.default_rng(7)
+    fs, L = 1000.0, 500
+    x = rng.normal(0, 1, (200, L)) * rng.uniform(0.8, 1.2, (200, 1))
+    events = [3, 40, 41, 150, 199]
+    for i in events:
+        x[i] += 30 * np.sin(np.linspace(0, 20, L))
+    acc = sp.WelchAccumulator(L, fs, keep_bytes=1)
+    assert acc.keep == 16
+    for part in np.array_split(np.arange(200), [7, 8, 60, 130]):
+        X, _, _ = sp.block_fft(x[part])
+        sd, _ = nz.parseval_sd(X, L, fs)
+        acc.add(X, sd)
+    P, k = acc.psd(frozenset(events))
+    _, Pw = ss.welch(np.delete(x, events, axis=0).ravel(), fs, window="hann", nperseg=L,
+                     noverlap=0, detrend="linear")
+    assert k == 195 and acc.exact
+    np.testing.assert_allclose(P, Pw, rtol=1e-9, atol=1e-12 * Pw.max())
+
+
+def test_single_precision_transform_equals_scipy_fft():
+    # the compiled transform loaded straight from scipy's file against the public scipy.fft.rfft
+    import scipy.fft
+    r2c = sp._single_rfft()
+    x = np.random.default_rng(3).normal(0, 100, (5, 1001)).astype(np.float32)
+    assert np.array_equal(r2c(x), scipy.fft.rfft(x, axis=1))
+
+
 def test_parseval_psd_integral_equals_variance_on_methods_signal():
     # METHODS §3.4 check on the §4.2 signal: var = 0.7953, sum P df = 0.7958 (theory 0.795)
     x, fs = _methods_42_signal()
@@ -228,6 +259,58 @@ def test_baseline_drift_pools_long_series():
     y = 2.0 + 0.01 * t + rng.normal(0, 0.5, len(t))
     assert drift.baseline_drift(t, y) == pytest.approx(0.01, rel=0.02)
     assert drift.baseline_drift(t[:2], y[:2]) is None
+
+
+@pytest.mark.parametrize("n", [1000, 1001, 1800, 2999, 5000])
+def test_pooled_medians_equal_array_split_groups(n):
+    # reference: numpy.array_split into MAX_POINTS consecutive groups, numpy.median of each
+    rng = np.random.default_rng(n)
+    t, y = np.arange(float(n)), rng.normal(0, 1, n)
+    groups = np.array_split(np.arange(n), drift.MAX_POINTS)
+    pt, py = drift._pool(t, y, drift.MAX_POINTS)
+    assert np.array_equal(pt, [np.median(t[g]) for g in groups])
+    assert np.array_equal(py, [np.median(y[g]) for g in groups])
+
+
+# --- single precision ----------------------------------------------------------------------------
+
+@pytest.mark.parametrize("L", [2000, 2001])
+def test_single_precision_blocks_match_scipy_welch_and_the_time_domain(L):
+    # 16-bit converter counts (white noise, a 60 Hz line, a ramp, an offset near the top of
+    # the range) through the float32 path; references: numpy polyfit detrend and the brick-wall
+    # irfft low-pass in float64 (nz.detrended_sd / nz.lowpass_sd), scipy.signal.welch (Hann,
+    # no overlap, linear detrend). float32 keeps about 7 digits: sums agree to 1e-5
+    rng = np.random.default_rng(L)
+    fs, nb = 10_000.0, 12
+    t = np.arange(nb * L) / fs
+    x = 20_000 + rng.normal(0, 40, nb * L) + 300 * np.sin(2 * np.pi * 60 * t) + 500 * t
+    counts = np.clip(np.rint(x), -32768, 32767).astype(np.int16).reshape(nb, L)
+    f64 = counts.astype(np.float64)
+    fft = sp.BlockFFT(L, single=True)
+    X, mean, slope = fft(counts, np.median(counts, axis=1))
+    assert X.dtype == np.complex64
+    sd, sd1k = nz.parseval_sd(X, L, fs)
+    for i in range(nb):
+        assert sd[i] == pytest.approx(nz.detrended_sd(f64[i]), rel=1e-5)
+        assert sd1k[i] == pytest.approx(nz.lowpass_sd(f64[i], fs, 1000.0), rel=1e-5)
+        assert mean[i] == pytest.approx(f64[i].mean(), rel=1e-9)
+        assert slope[i] == pytest.approx(np.polyfit(np.arange(L), f64[i], 1)[0], rel=1e-5)
+    acc = sp.WelchAccumulator(L, fs)
+    acc.add(X, sd)
+    P, k = acc.psd()
+    _, Pw = ss.welch(f64.ravel(), fs, window="hann", nperseg=L, noverlap=0, detrend="linear")
+    assert k == nb
+    np.testing.assert_allclose(P, Pw, rtol=1e-4, atol=1e-6 * Pw.max())
+    assert P.sum() == pytest.approx(Pw.sum(), rel=1e-5)
+
+
+def test_single_precision_constant_blocks_give_exactly_zero():
+    # a constant channel (a disconnected input at one converter step): no rounding noise
+    counts = np.full((4, 1000), 1234, dtype=np.int16)
+    X, mean, slope = sp.BlockFFT(1000, single=True)(counts, np.median(counts, axis=1))
+    sd, sd1k = nz.parseval_sd(X, 1000, 10_000.0)
+    assert not sd.any() and not sd1k.any() and not slope.any()
+    assert (mean == 1234).all()
 
 
 # --- chunking ----------------------------------------------------------------------------------

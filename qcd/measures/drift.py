@@ -1,6 +1,8 @@
 """Drift: Theil-Sen slope of baseline medians against time. numpy only, SI in and out."""
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 __all__ = ["theil_sen", "baseline_drift", "MAX_POINTS"]
@@ -15,7 +17,7 @@ def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     y = np.asarray(y, dtype=float)
     if len(t) < 2:
         raise ValueError("Theil-Sen needs at least two points")
-    i, j = np.triu_indices(len(t), k=1)
+    i, j = _pairs(len(t))
     dt = t[j] - t[i]
     ok = dt != 0
     if not ok.any():
@@ -24,10 +26,26 @@ def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     return slope, float(np.median(y - slope * t))
 
 
+@functools.lru_cache(maxsize=4)
+def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Index pairs i < j of n points (the same for every channel of a file: made once)."""
+    i, j = np.triu_indices(n, k=1)
+    i.flags.writeable = j.flags.writeable = False
+    return i, j
+
+
 def _pool(t: np.ndarray, y: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    groups = np.array_split(np.arange(len(t)), n)
-    return (np.array([np.median(t[g]) for g in groups]),
-            np.array([np.median(y[g]) for g in groups]))
+    """Medians of n consecutive groups, split as numpy.array_split does (the first
+    len % n groups one longer): two reshapes, so no Python loop over the groups."""
+    q, r = divmod(len(t), n)
+    cut = r * (q + 1)
+
+    def medians(v: np.ndarray) -> np.ndarray:
+        parts = [np.median(v[:cut].reshape(r, q + 1), axis=1)] if r else []
+        if q:
+            parts.append(np.median(v[cut:].reshape(n - r, q), axis=1))
+        return np.concatenate(parts)
+    return medians(t), medians(y)
 
 
 def baseline_drift(t_s: np.ndarray, medians: np.ndarray) -> float | None:
