@@ -782,3 +782,45 @@ def test_a_watched_folder_renamed_away_and_made_again_is_watched_within_seconds(
         wait_until(lambda: len(rec.committed) == 2, 5.0, step)   # seconds, not the rescan
         assert svc._folders[0].state == "watching"
     assert Path(rec.committed[1].path) == folder / "two.abf"
+
+
+def _noisy_abf(path, seed: int, sd: float) -> None:
+    import pyabf.abfWriter
+    rng = np.random.default_rng(seed)
+    pyabf.abfWriter.writeABF1(rng.normal(0.0, sd, size=(1, 2000)).astype(np.float32),
+                              os.fspath(path), 10000.0, units="pA")
+
+
+def test_an_alert_opened_by_a_superseded_row_alone_resolves_with_the_new_content(tmp_path,
+                                                                               store):
+    from dataclasses import replace
+    from qcd.ruleset import load_rules
+    rules_file = tmp_path / "rules.toml"
+    rules_file.write_text('[[limit]]\nname = "noisy"\nmeasure = "noise_rms"\nabove = "20 pA"\n'
+                          'resolve_after_files = 3\n', encoding="utf-8")
+    rules = load_rules([rules_file])
+    rig = RigConfig(RIG, (), patterns=("*.abf",))
+    _noisy_abf(tmp_path / "bad.abf", 1, 60.0)       # noise about 60 pA: above the limit
+    _noisy_abf(tmp_path / "good.abf", 2, 3.0)       # about 3 pA: well below (clear)
+    bad = pipeline.measure(tmp_path / "bad.abf", rig)
+    good = pipeline.measure(tmp_path / "good.abf", rig)
+    # control: a good file at another path counts 1 of the 3 clear files the alert needs
+    pipeline.commit(replace(bad, path=os.fspath(tmp_path / "a.abf")), rig, store, rules, 1000.0)
+    assert _noisy_state(store) == "open"
+    pipeline.commit(replace(good, path=os.fspath(tmp_path / "b.abf")), rig, store, rules, 1001.0)
+    assert _noisy_state(store) == "open"
+    for i in range(2):
+        pipeline.commit(replace(good, path=os.fspath(tmp_path / f"c{i}.abf"),
+                                sha256=f"{i}" * 64), rig, store, rules, 1002.0 + i)
+    assert _noisy_state(store) == "ok"
+    # the case: a file measured mid-write opens the alert alone, then its final content is good
+    p = os.fspath(tmp_path / "d.abf")
+    pipeline.commit(replace(bad, path=p, sha256="e" * 64), rig, store, rules, 2000.0)
+    assert _noisy_state(store) == "open"
+    pipeline.commit(replace(good, path=p, sha256="f" * 64), rig, store, rules, 2001.0)
+    assert _noisy_state(store) == "ok"
+
+
+def _noisy_state(store: Store) -> str:
+    (st,) = [s for s in store.alert_states(RIG).values() if s["rule"] == "noisy"]
+    return st["state"]
