@@ -444,12 +444,11 @@ class Store:
 
     @contextmanager
     def _reading(self) -> Iterator[None]:
-        """A failed read is a StoreError saying what is wrong, not a driver traceback."""
+        """A failed read is a StoreError saying what is wrong, not a driver traceback (also
+        inside a write, so the pipeline never takes it for a bad file)."""
         try:
             yield
         except sqlite3.DatabaseError as e:
-            if self._depth:                  # inside a write: _write() names it
-                raise
             raise StoreError(f"{self.path}: reading failed: {describe_error(e)}") from e
 
     # --- intake ---------------------------------------------------------------------------------
