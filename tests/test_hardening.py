@@ -824,3 +824,45 @@ def test_an_alert_opened_by_a_superseded_row_alone_resolves_with_the_new_content
 def _noisy_state(store: Store) -> str:
     (st,) = [s for s in store.alert_states(RIG).values() if s["rule"] == "noisy"]
     return st["state"]
+
+
+@pytest.mark.slow
+def test_qcd_watch_with_a_hung_target_stores_new_files_and_stops_on_sigterm(tmp_path):
+    import signal
+    import sqlite3
+    import subprocess
+    from sinks import HttpSink
+    sink = HttpSink(trickle_s=2.0).start()       # takes the message, answers over 80 s
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _toml(tmp_path, folder, extra=f'notify = ["{sink.url}"]')
+    err = open(tmp_path / "watch.err", "wb")
+    proc = subprocess.Popen([sys.executable, "-m", "qcd", "watch", "--config", str(cfg),
+                             "--workers", "1"], stdout=subprocess.DEVNULL, stderr=err)
+    try:
+        (folder / "garbage.abf").write_bytes(b"not a recording " * 100)   # alerts at once
+        wait_until(lambda: sink.attempts >= 1, 30.0)                      # a send hangs
+        for i in range(5):
+            _tiny_abf(folder / f"f{i}.abf", 200 + i)
+
+        def stored() -> int:
+            try:
+                with sqlite3.connect(f"file:{tmp_path / 'qcd.sqlite'}?mode=ro", uri=True,
+                                     timeout=5) as conn:
+                    return conn.execute("SELECT count(*) FROM files WHERE status = 'ok'"
+                                        ).fetchone()[0]
+            except sqlite3.OperationalError:
+                return 0
+        wait_until(lambda: stored() == 5, 20.0, interval=0.2)
+        t0 = time.monotonic()
+        proc.send_signal(signal.SIGTERM)
+        code = proc.wait(30)
+        took = time.monotonic() - t0
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(10)
+        err.close()
+        sink.stop()
+    assert code == 0, (tmp_path / "watch.err").read_text(errors="replace")[-2000:]
+    assert took < 6.0                              # stop waits 2 s at most for the send
