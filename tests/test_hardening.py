@@ -471,7 +471,6 @@ def test_rules_check_passes_the_packaged_rules(capsys):
 # ---------------------------------------------------------------- 8. two writers
 
 def test_a_second_service_on_one_database_is_refused_until_the_first_dies(tmp_path):
-    import signal
     import subprocess
     folder = tmp_path / "rig"
     folder.mkdir()
@@ -491,7 +490,7 @@ def test_a_second_service_on_one_database_is_refused_until_the_first_dies(tmp_pa
         assert "another qcd watch is using this database" in err
         assert f"pid {holder.pid}" in err, err
     finally:
-        holder.send_signal(signal.SIGKILL)    # kill -9: the OS drops the lock
+        holder.kill()                          # kill -9: the OS drops the lock
         holder.wait(10)
         holder.stdout.close()
     from qcd.watch import ServiceLock
