@@ -865,3 +865,20 @@ def test_qcd_watch_with_a_hung_target_stores_new_files_and_stops_on_sigterm(tmp_
         sink.stop()
     assert code == 0, (tmp_path / "watch.err").read_text(errors="replace")[-2000:]
     assert took < 6.0                              # stop waits 2 s at most for the send
+
+
+def test_a_copy_is_exported_with_the_verdict_of_the_file_it_copies(tmp_path, store):
+    import shutil
+    from qcd.export import verdicts
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    _tiny_abf(folder / "a.abf", 301)
+    shutil.copy(folder / "a.abf", folder / "b.abf")
+    rules = load_rules()
+    rig = RigConfig(RIG, (folder,), patterns=("*.abf",))
+    for name in ("a.abf", "b.abf"):
+        pipeline.process(folder / name, rig, store, rules, time.time())
+    rows = {Path(r.path).name: r for r in verdicts(store, rules, now=time.time())}
+    a, b = rows["a.abf"], rows["b.abf"]
+    assert b.status == "skipped"
+    assert (b.verdict, b.reasons, b.measures) == (a.verdict, a.reasons, a.measures)
