@@ -179,7 +179,8 @@ def cannot_write(path: Path) -> str | None:
     except OSError as e:
         kind = ("is on a read-only file system" if e.errno == errno.EROFS else
                 "is not writable for this user (permission denied)"
-                if e.errno in (errno.EACCES, errno.EPERM) else f"cannot be written ({e.strerror})")
+                if e.errno in (errno.EACCES, errno.EPERM) else "does not exist"
+                if e.errno == errno.ENOENT else f"cannot be written ({e.strerror})")
         return (f"the folder {folder} {kind}; qcd writes its database, the -wal and -shm files "
                 f"beside it, its lock and its log there")
     if Path(path).exists() and not os.access(path, os.W_OK):
