@@ -548,6 +548,10 @@ class ServiceLock:
 
     def acquire(self) -> "ServiceLock":
         try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)   # as the log set-up does
+        except OSError:
+            pass                              # said below, with the reason
+        try:
             f = open(self.path, "a+", encoding="utf-8")
         except OSError as e:
             from qcd.store import cannot_write
