@@ -122,13 +122,19 @@ def verdicts(store: Store, rules: Rules, *, rigs: Sequence[str] | None = None,
             base = dict(rig=rig, file_id=int(f["id"]), path=f["path"],
                         recorded_at=f["recorded_at"], status=f["status"], mode=f["mode"] or "",
                         cell=cell)
-            fm = store.measured(int(f["id"])) if f["status"] == "ok" else None
+            src = int(f["id"])                # a copy is judged by the first file's measures
+            same = (f.get("extra") or {}).get("same_as") if f["status"] == "skipped" else None
+            if same is not None:
+                src = int(same)
+            fm = store.measured(src) if f["status"] == "ok" or same is not None else None
+            if fm is not None and fm.status != "ok":
+                fm = None
             if fm is None:
                 why = f"not measured ({f.get('error_kind') or 'error'}): {f.get('error') or ''}"
                 rig_rows.append(Row(channel=None, channel_name="", unit="", measures={},
                                     verdict="fail", reasons=(why.rstrip(": "),), **base))
                 continue
-            reasons = file_verdicts(fm, rig, limits, store.findings(int(f["id"])), now)
+            reasons = file_verdicts(fm, rig, limits, store.findings(src), now)
             for ch in fm.channels:
                 why = tuple(dict.fromkeys(reasons.get(ch.index, ())))
                 rig_rows.append(Row(

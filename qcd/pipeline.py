@@ -181,6 +181,24 @@ def _deliver(store: Store, sender: Sender | None, now: float) -> None:
         log.exception("delivering notifications")
 
 
+def _superseded_episodes(store: Store, rig: str, fm: FileMeasures, states: dict[str, dict]
+                         ) -> dict[str, dict]:
+    """``states`` with every alert opened by this path's earlier row alone (a file measured
+    while it was still being written, now measured again with new content) set to resolve
+    on this file's first clear value: a superseded row's findings do not hold an alert open
+    for resolve_after_files more files."""
+    old = store.file_state(rig, fm.path)
+    if old is None or old.sha256 == fm.sha256 or not states:
+        return states
+    shown = printable(fm.path)
+    out = dict(states)
+    for key, st in states.items():
+        if st.get("path") == shown and st.get("bad_files") == 1 and \
+                st.get("machine", st.get("state")) == "open":
+            out[key] = {**st, "clear_run": max(0, int(st.get("resolve_after_files") or 1) - 1)}
+    return out
+
+
 def _end_resolved_mutes(store: Store, now: float) -> None:
     """End 'until resolved' mutes once every alert they muted has resolved."""
     open_ended = [s for s in store.active_mutes(now) if s.end_at is None]
@@ -224,7 +242,8 @@ def _commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: f
     try:
         findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)
-        states, messages = alerts.advance(before, findings, store.active_mutes(now), now,
+        states, messages = alerts.advance(_superseded_episodes(store, name, fm, before),
+                                          findings, store.active_mutes(now), now,
                                           rules.settings, batch=batch,
                                           zones={name: rig.timezone})
         changed = _changed(before, states)

@@ -188,7 +188,8 @@ def cannot_write(path: Path) -> str | None:
     except OSError as e:
         kind = ("is on a read-only file system" if e.errno == errno.EROFS else
                 "is not writable for this user (permission denied)"
-                if e.errno in (errno.EACCES, errno.EPERM) else f"cannot be written ({e.strerror})")
+                if e.errno in (errno.EACCES, errno.EPERM) else "does not exist"
+                if e.errno == errno.ENOENT else f"cannot be written ({e.strerror})")
         return (f"the folder {folder} {kind}; qcd writes its database, the -wal and -shm files "
                 f"beside it, its lock and its log there")
     if Path(path).exists() and not os.access(path, os.W_OK):
@@ -453,12 +454,11 @@ class Store:
 
     @contextmanager
     def _reading(self) -> Iterator[None]:
-        """A failed read is a StoreError saying what is wrong, not a driver traceback."""
+        """A failed read is a StoreError saying what is wrong, not a driver traceback (also
+        inside a write, so the pipeline never takes it for a bad file)."""
         try:
             yield
         except sqlite3.DatabaseError as e:
-            if self._depth:                  # inside a write: _write() names it
-                raise
             raise StoreError(f"{self.path}: reading failed: {describe_error(e)}") from e
 
     # --- intake ---------------------------------------------------------------------------------

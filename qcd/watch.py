@@ -388,7 +388,10 @@ class Service:
         batch = (r.rig, r.path) in self._backlog_keys
         if fm.error_kind == "unreadable":
             self._unreadable.add((r.rig, r.path))
-            state = self.store.file_state(r.rig, os.fspath(r.path))
+            try:
+                state = self.store.file_state(r.rig, os.fspath(r.path))
+            except Exception:                 # the commit below says what is wrong
+                state = None
             if state is not None and state.error_kind == "unreadable" and \
                     (state.size, state.mtime) == (r.size, r.mtime):
                 self._seen[(r.rig, r.path)] = (r.size, r.mtime)     # still unreadable: as stored
@@ -559,6 +562,10 @@ class ServiceLock:
         self._f: Any = None
 
     def acquire(self) -> "ServiceLock":
+        try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)   # as the log set-up does
+        except OSError:
+            pass                              # said below, with the reason
         try:
             f = open(self.path, "a+", encoding="utf-8")
         except OSError as e:

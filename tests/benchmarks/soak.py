@@ -299,6 +299,7 @@ def main() -> int:
     queued = Counter((t, b) for t, b, _ in outbox)
     lost = sum(max(0, n - got.get(k, 0)) for k, n in queued.items())
     dup = sum(max(0, got[k] - n) for k, n in queued.items())
+    direct = sum(n for k, n in got.items() if k not in queued)   # "not being stored" alarms
     errors = sum(1 for v in content.values() if v[2] == "error")
     total_ops = sum(writers.ops.values())
     print(f"qcd soak: {args.minutes:g} min ({took:.0f} s with catch-up), {args.writers} "
@@ -310,7 +311,8 @@ def main() -> int:
           f"half-written {len(half)}; integrity_check: {integrity}")
     print(f"  orphan workers after kills: {orphans}")
     print(f"  messages: {len(outbox)} queued, {sum(got.values())} received, {lost} lost, "
-          f"{dup} duplicate(s); {sum(1 for *_, s in outbox if s != 'sent')} not marked sent")
+          f"{dup} duplicate(s); {sum(1 for *_, s in outbox if s != 'sent')} not marked sent; "
+          f"{direct} sent directly (storing-trouble alarms)")
     if rss:
         third = max(1, len(rss) // 3)
         print(f"  memory (service + workers RSS): first third max {max(rss[:third]) / 1024:.0f} "
