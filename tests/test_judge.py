@@ -209,16 +209,33 @@ def test_new_rig_learns_and_says_so(rules):
     assert "learning" not in _by_rule(fs) and not _by_rule(fs)["hum_jump"].learning
 
 
-def test_cusum_rule_flags_a_sustained_small_shift(rules):
-    # a 1.5-sigma shift held over 8 files trips CUSUM k=0.5, h=5 while robust z (4) stays quiet
-    rng = np.random.default_rng(3)
-    base = list(np.exp(rng.normal(0.0, 0.05, 22)))
-    shifted = list(np.exp(rng.normal(0.0, 0.05, 8) + 0.075))     # +1.5 sigma in log units
-    past = list(reversed(base + shifted))              # newest first
-    f = _by_rule(judge(_fm({"hum_rms": (math.exp(0.11), "pA")}), "r", _history_from(past),
-                       rules, 0))
-    assert f["hum_drift"].bad and not f["hum_jump"].bad
+def _charting(ref):
+    """A chart source: the reference given, the chart as the previous finding left it."""
+    from qcd.charts import ChartInput, ChartState
+    state = {}
 
+    def charts(mode, channel, measure, rule):
+        return ChartInput(ref, ChartState.from_dict(state.get(rule.name)), at=len(state) + 1.0)
+    return charts, state
+
+
+def test_cusum_rule_flags_a_sustained_small_shift(rules):
+    # a 1.5-sigma shift held file after file trips the CUSUM (k 0.5: +1 sigma a file, so past h
+    # within h + 1 files; Page 1954) while robust z (4) stays quiet
+    from qcd.charts import Reference
+    rule = next(r for r in rules.history if r.name == "hum_drift")
+    charts, state = _charting(Reference(0.0, 0.05, 40, 0.0, 0.0, log=True))
+    rng = np.random.default_rng(3)
+    past = list(np.exp(rng.normal(0.0, 0.05, 30)))
+    bad = []
+    for i in range(int(rule.h) + 2):
+        f = _by_rule(judge(_fm({"hum_rms": (math.exp(0.075), "pA")}), "r", _history_from(past),
+                           rules, 0, charts))
+        state[rule.name] = f["hum_drift"].chart["state"]
+        bad.append(f["hum_drift"].bad)
+        assert not f["hum_jump"].bad
+    assert bad[-1] and not bad[0]
+    assert "x its reference median" in f["hum_drift"].limit_text
 
 
 def test_rules_file_errors_name_file_and_key(tmp_path: Path):
@@ -278,7 +295,10 @@ def test_strong_non_mains_line_suggests_switching_supplies(rules):
 def test_a_jump_flagged_by_z_does_not_also_open_the_trend_rule(rules):
     rng = np.random.default_rng(1)
     past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
-    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0))
+    from qcd.charts import Reference
+    charts, _ = _charting(Reference(math.log(0.1), 0.05, 40, 0.0, 0.0, log=True))
+    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0,
+                       charts))
     assert f["hum_jump"].bad
     assert not f["hum_drift"].bad and not f["hum_drift"].clear
     assert "flagged by hum_jump" in f["hum_drift"].limit_text

@@ -1,0 +1,194 @@
+"""Sequential drift charts: one EWMA or CUSUM statistic per (rig, mode, channel, measure, rule),
+carried forward file by file against a fixed reference (pure).
+
+A chart standardises each file's value with its reference, x = (v - center) / scale (log v for
+positive, skewed measures), and updates its statistic by one step: EWMA z = lam x + (1 - lam) z
+(Roberts 1959), tabular CUSUM S+ = max(0, S+ + x - k), S- = max(0, S- - x - k) (Page 1954).
+The statistic is never re-computed over a window centred on its own median, so a creep adds up
+instead of being absorbed. ``ChartState`` is what the store keeps between files; ``reset``
+starts a chart again (after a resolve or a re-learn). Imports numpy and qcd.ruleset (the rule).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, replace
+from datetime import datetime, timezone
+from typing import Any, Iterable, Mapping
+
+import numpy as np
+
+from qcd.ruleset import HistoryRule
+
+__all__ = ["Reference", "ChartState", "step", "replay", "verdict", "reset", "standardise",
+           "CHART_TESTS", "span_text", "inflation", "limit", "ChartInput"]
+
+CHART_TESTS = ("ewma", "cusum")
+
+
+@dataclass(frozen=True)
+class Reference:
+    """A rig's normal for one (mode, channel, measure): center and robust scale of the values
+    (their logs when ``log``) of the reference files recorded from ``first_at`` to ``last_at``.
+    Files of one day share that day's conditions: ``icc`` is the part of the variance they
+    have in common, ``per_day`` how many a day there are (``inflation``)."""
+    center: float
+    scale: float
+    n: int
+    first_at: float
+    last_at: float
+    log: bool = False
+    icc: float = 0.0                 # share of the variance that files of one day have in common
+    per_day: float = 1.0             # files a day in the reference
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any] | None) -> "Reference | None":
+        if not d:
+            return None
+        return cls(**{k: d[k] for k in ("center", "scale", "n", "first_at", "last_at", "log",
+                                        "icc", "per_day") if k in d})
+
+    @property
+    def median(self) -> float:
+        """The reference median in the measure's own unit."""
+        return math.exp(self.center) if self.log else self.center
+
+
+@dataclass(frozen=True)
+class ChartState:
+    """A chart between files: ``up`` is the EWMA (or CUSUM S+), ``down`` CUSUM S-; ``n`` files
+    charted since ``since`` (a recording time: files recorded after it are charted);
+    ``last_at`` the recording time of the latest charted file."""
+    up: float = 0.0
+    down: float = 0.0
+    n: int = 0
+    since: float | None = None
+    last_at: float | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any] | None) -> "ChartState":
+        if not d:
+            return cls()
+        return cls(**{k: d[k] for k in ("up", "down", "n", "since", "last_at") if k in d})
+
+
+def inflation(rule: HistoryRule, ref: Reference) -> float:
+    """Var(chart statistic) / Var(the same chart on independent files) when files of one day
+    share a part ``icc`` of their variance (days of ``per_day`` files).
+
+    EWMA: sum over pairs of weights w_i w_j (w_i = lam (1-lam)^i) of their correlation (1 for
+    i = j, icc within a day), over the sum of w_i^2, averaged over where in its day the newest
+    file falls. CUSUM (which sums many files): the design effect 1 + (m - 1) icc of a day's
+    mean (Kish 1965)."""
+    m = max(1, int(round(ref.per_day)))
+    icc = min(max(ref.icc, 0.0), 1.0)
+    if m == 1 or icc == 0.0:
+        return 1.0
+    if rule.test != "ewma":
+        return 1.0 + (m - 1) * icc
+    n = int(min(2000, max(50, 40 / rule.lam)))
+    w = rule.lam * (1.0 - rule.lam) ** np.arange(n)
+    iid = float(np.sum(w * w))
+    total = 0.0
+    for phase in range(m):
+        day = (np.arange(n) + phase) // m
+        sums = np.bincount(day, weights=w)
+        total += iid + icc * float(np.sum(sums * sums) - iid)
+    return total / m / iid
+
+
+@dataclass(frozen=True)
+class ChartInput:
+    """What the judge needs to chart one file: the reference (None while it learns), the chart
+    as it stood just before this file (recorded ``at``), and the stored files recorded after
+    it (a backlog file: stepped through after it, so the chart stays in recording order)."""
+    ref: Reference | None
+    state: ChartState
+    at: float
+    tail: tuple[tuple[float, float], ...] = ()
+    start_at: float | None = None
+    learning: str = ""
+
+
+def standardise(value: float, ref: Reference, rule: HistoryRule | None = None) -> float | None:
+    """(v - center) / (scale sqrt(inflation)), on log v for a log reference; None when the
+    value cannot be charted (not finite, or not positive on a log scale). The inflation makes
+    the chart's in-control spread what its limit (qcd.runlength, independent files) expects."""
+    if value is None or not math.isfinite(value):
+        return None
+    if ref.log:
+        if value <= 0:
+            return None
+        value = math.log(value)
+    f = inflation(rule, ref) if rule is not None else 1.0
+    return (value - ref.center) / (ref.scale * math.sqrt(f))
+
+
+def step(rule: HistoryRule, state: ChartState, x: float, at: float) -> ChartState:
+    """The chart after one more standardised value ``x`` recorded at ``at``."""
+    if rule.test == "ewma":
+        up, down = rule.lam * x + (1.0 - rule.lam) * state.up, 0.0
+    elif rule.test == "cusum":
+        up = max(0.0, state.up + x - rule.k)
+        down = max(0.0, state.down - x - rule.k)
+    else:
+        raise ValueError(f"rule {rule.name}: {rule.test!r} is not a sequential chart")
+    last = at if state.last_at is None else max(state.last_at, at)
+    return replace(state, up=up, down=down, n=state.n + 1, last_at=last)
+
+
+def replay(rule: HistoryRule, state: ChartState, points: Iterable[tuple[float, float]],
+           ref: Reference) -> ChartState:
+    """``step`` over (recorded_at, value) points in the order given (recording order)."""
+    for at, v in points:
+        x = standardise(v, ref, rule)
+        if x is not None:
+            state = step(rule, state, x, at)
+    return state
+
+
+def limit(rule: HistoryRule) -> float:
+    """The signal level of the statistic, in sigma units: L sqrt(lam/(2-lam)) or h."""
+    if rule.test == "ewma":
+        return rule.L * math.sqrt(rule.lam / (2.0 - rule.lam))
+    return rule.h
+
+
+def verdict(rule: HistoryRule, state: ChartState) -> tuple[bool, bool, float, float]:
+    """(bad, clear, statistic, limit) of a chart now. The EWMA is compared with its
+    asymptotic limit (the one its run length is computed for, qcd.runlength); it clears below
+    3/4 of it, a CUSUM below h/2 (hysteresis; common practice)."""
+    lim = limit(rule)
+    up, down = rule.side in ("up", "both"), rule.side in ("down", "both")
+    if rule.test == "ewma":
+        s = state.up
+        bad = (up and s > lim) or (down and s < -lim)
+        clear = not bad and (not up or s < 0.75 * lim) and (not down or s > -0.75 * lim)
+        return bad, clear, s, lim
+    sp, sm = state.up, state.down
+    bad = (up and sp > lim) or (down and sm > lim)
+    clear = not bad and (not up or sp < lim / 2) and (not down or sm < lim / 2)
+    stat = sp if rule.side == "up" else sm if rule.side == "down" else max(sp, sm)
+    return bad, clear, stat, lim
+
+
+def reset(state: ChartState, at: float | None) -> ChartState:
+    """A chart started again after ``at``: files recorded after it are charted from zero."""
+    return ChartState(since=at, last_at=at)
+
+
+def _day(t: float) -> str:
+    return datetime.fromtimestamp(t, timezone.utc).strftime("%Y-%m-%d")
+
+
+def span_text(ref: Reference) -> str:
+    """'2026-09-01...09-10' (the reference files' recording days, UTC)."""
+    a, b = _day(ref.first_at), _day(ref.last_at)
+    if a == b:
+        return a
+    return f"{a}...{b[5:] if a[:4] == b[:4] else b}"
