@@ -20,7 +20,7 @@ import numpy as np
 from qcd.ruleset import HistoryRule
 
 __all__ = ["Reference", "ChartState", "step", "replay", "verdict", "reset", "standardise",
-           "CHART_TESTS", "span_text", "inflation", "limit", "ChartInput"]
+           "CHART_TESTS", "span_text", "inflation", "limit", "ChartInput", "hold", "signal_files", "budget_lines"]
 
 CHART_TESTS = ("ewma", "cusum")
 
@@ -39,6 +39,7 @@ class Reference:
     log: bool = False
     icc: float = 0.0                 # share of the variance that files of one day have in common
     per_day: float = 1.0             # files a day in the reference
+    widen: float = 1.0               # > 1: a provisional reference's wider limits
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -48,7 +49,7 @@ class Reference:
         if not d:
             return None
         return cls(**{k: d[k] for k in ("center", "scale", "n", "first_at", "last_at", "log",
-                                        "icc", "per_day") if k in d})
+                                        "icc", "per_day", "widen") if k in d})
 
     @property
     def median(self) -> float:
@@ -113,6 +114,7 @@ class ChartInput:
     tail: tuple[tuple[float, float], ...] = ()
     start_at: float | None = None
     learning: str = ""
+    provisional: bool = False        # ``ref`` is a young rig's provisional reference
 
 
 def standardise(value: float, ref: Reference, rule: HistoryRule | None = None) -> float | None:
@@ -126,7 +128,7 @@ def standardise(value: float, ref: Reference, rule: HistoryRule | None = None) -
             return None
         value = math.log(value)
     f = inflation(rule, ref) if rule is not None else 1.0
-    return (value - ref.center) / (ref.scale * math.sqrt(f))
+    return (value - ref.center) / (ref.scale * math.sqrt(f) * max(ref.widen, 1.0))
 
 
 def step(rule: HistoryRule, state: ChartState, x: float, at: float) -> ChartState:
@@ -177,9 +179,51 @@ def verdict(rule: HistoryRule, state: ChartState) -> tuple[bool, bool, float, fl
     return bad, clear, stat, lim
 
 
+def hold(rule: HistoryRule, state: ChartState) -> ChartState:
+    """The chart held at its clear level (3/4 of an EWMA's limit, half a CUSUM's) at most."""
+    lim = limit(rule) * (0.75 if rule.test == "ewma" else 0.5)
+    if rule.test == "ewma":
+        return replace(state, up=min(max(state.up, -lim), lim))
+    return replace(state, up=min(state.up, lim), down=min(state.down, lim))
+
+
 def reset(state: ChartState, at: float | None) -> ChartState:
     """A chart started again after ``at``: files recorded after it are charted from zero."""
     return ChartState(since=at, last_at=at)
+
+
+def signal_files(rule: HistoryRule) -> float:
+    """In-control files per signal of a history rule on independent normal values: the chart's
+    Brook-Evans ARL (qcd.runlength), or 1/P(|z| beyond z) for a robust-z rule (one tail for
+    'up'/'down', two for 'both')."""
+    from qcd.runlength import arl
+    if rule.test in CHART_TESTS:
+        return arl(rule.test, side=rule.side, lam=rule.lam, L=rule.L, k=rule.k, h=rule.h)
+    tail = 0.5 * math.erfc(rule.z / math.sqrt(2.0))
+    return 1.0 / (tail * (2.0 if rule.side == "both" else 1.0))
+
+
+def budget_lines(rules: Any, per_day: Mapping[str, float]) -> list[str]:
+    """``qcd rules``: each history rule, its limit, and how often it signals in control, in
+    files and in days at each rig's observed file rate (``per_day``: rig -> files a day)."""
+    out = []
+    for r in rules.history:
+        if r.test == "ewma":
+            what = f"EWMA lambda {r.lam:g}, L {r.L:.3g}"
+        elif r.test == "cusum":
+            what = f"CUSUM k {r.k:g}, h {r.h:.3g}"
+        else:
+            what = f"robust z beyond {r.z:g}"
+        n = signal_files(r)
+        budget = f" (set for {r.arl0_files:g})" if r.arl0_files else ""
+        out.append(f"{r.name}: {r.measure}, {what}, side {r.side}{', log' if r.log else ''}; "
+                   f"in control one signal per {n:,.0f} files{budget}; an alert needs "
+                   f"{r.open_after_files} in a row")
+        for rig, rate in sorted(per_day.items()):
+            if rate > 0:
+                out.append(f"    {rig}: {rate:.1f} files a day -> one signal per "
+                           f"{n / rate:,.0f} days ({n / rate / 365.25:.1f} years)")
+    return out
 
 
 def _day(t: float) -> str:

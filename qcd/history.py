@@ -19,7 +19,7 @@ import numpy as np
 from qcd.charts import Reference
 from qcd.measures.noise import MAD_SCALE
 
-__all__ = ["learn", "reference_of", "day_icc", "progress_text"]
+__all__ = ["learn", "reference_of", "provisional", "day_icc", "progress_text"]
 
 DAY_S = 86400.0
 
@@ -82,6 +82,22 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
         if i + 1 >= files and t - first >= days * DAY_S:
             return reference_of(usable[: i + 1], log=log, min_spread=min_spread)
     return None
+
+
+def provisional(rows: Sequence[tuple[float, float]], *, files: int, log: bool,
+                min_spread: float = 0.0) -> Reference | None:
+    """A young rig's provisional reference while the full one learns: the first ``files`` good
+    rows (fixed, so a creep after them cannot enter), its limits widened by 1 + 1/sqrt(days)
+    for the days they span, as a scale estimated from a few days can be far too small (the
+    MAD of n normal values has a relative error of about 1.2/sqrt(n); common practice: widen
+    the limits of a short phase I). None with fewer rows."""
+    if len(rows) < files:
+        return None
+    ref = reference_of(rows[:files], log=log, min_spread=min_spread)
+    if ref is None:
+        return None
+    days = len({math.floor(t / DAY_S) for t, _ in rows[:files]})
+    return Reference(**{**ref.to_dict(), "widen": 1.0 + 1.0 / math.sqrt(max(days, 1))})
 
 
 def progress_text(rows: Sequence[tuple[float, float]], files: int, days: float) -> str:

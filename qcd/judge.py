@@ -371,11 +371,15 @@ def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = ""
     return bad, clear_ok, f"CUSUM {stat:.2f} sigma (limit {rule.h:g})"
 
 
-def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, key: dict
-           ) -> tuple[bool, bool, str, str, dict] | None:
-    """(bad, clear, text, headline, chart to store) of one file on a sequential chart."""
+def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, key: dict,
+           jumped: bool = False) -> tuple[bool, bool, str, str, dict] | None:
+    """(bad, clear, text, headline, chart to store) of one file on a sequential chart.
+
+    ``jumped``: a jump rule flagged this value. It is charted, but the chart is held at its
+    clear level (``charts.hold``), so that a few outliers alone cannot open a drift alert
+    after the jump's alert has resolved; a drift that goes on takes the chart up again."""
     store = dict(key, start_at=ci.start_at, state=ci.state.to_dict(),
-                 ref=None if ci.ref is None else ci.ref.to_dict())
+                 ref=None if ci.ref is None or ci.provisional else ci.ref.to_dict())
     if ci.ref is None:
         return False, True, ci.learning, "", store
     x = _charts.standardise(value, ci.ref, rule)
@@ -383,6 +387,8 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
         return None
     new = _charts.step(rule, ci.state, x, ci.at)
     bad, clear, stat, lim = _charts.verdict(rule, new)
+    if jumped:
+        new = _charts.hold(rule, new)
     store["state"] = _charts.replay(rule, new, ci.tail, ci.ref).to_dict()
     ref = ci.ref
     med = ref.median
@@ -395,8 +401,11 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
         stat_text = f"CUSUM {stat:.1f} sigma, limit {lim:.1f}"
     ratio = (f"{value / med:.2g}x its reference median" if ref.log and med > 0 else
              f"{value - med:+.3g} {unit} from its reference median")
-    return bad, clear, f"{ratio} of {_charts.span_text(ref)} / {stat_text}; {where}", ratio, \
-        store
+    text = f"{ratio} of {_charts.span_text(ref)} / {stat_text}; {where}"
+    if ci.provisional:
+        text += (f"; provisional reference, limit widened {ref.widen:.2g}x while "
+                 f"{ci.learning}")
+    return bad, clear, text, ratio, store
 
 
 def _with(m: Measure, value: float) -> Measure:
@@ -568,7 +577,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                         continue
                     res = _chart(rule, value, ci, m.unit,
                                  dict(mode=mode, channel=ch.index, measure=m.name,
-                                      rule=rule.name))
+                                      rule=rule.name), jumped=bool(jump))
                     if res is None:
                         continue
                     bad, clear_ok, stat_text, headline, chart_row = res

@@ -185,19 +185,29 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                                  days=st.reference_days, log=rule.log,
                                  min_spread=rule.min_spread)
         reference = followed or reference
-    learned_now = False
     if reference is None:
         rows = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
                                     limit=max(4 * st.reference_files, 400))
         reference = history.learn(rows, files=st.reference_files, days=st.reference_days,
                                   log=rule.log, min_spread=rule.min_spread)
+        learning = history.progress_text(rows, st.reference_files, st.reference_days)
         if reference is None:
-            return ChartInput(None, ChartState.from_dict(state), at, start_at=start_at,
-                              learning=history.progress_text(rows, st.reference_files,
-                                                             st.reference_days))
-        learned_now = True
+            young = history.provisional(rows, files=st.learning_files, log=rule.log,
+                                        min_spread=rule.min_spread)
+            if young is None:
+                return ChartInput(None, ChartState.from_dict(state), at, start_at=start_at,
+                                  learning=learning)
+            return _charted(store, rig, mode, channel, measure, rule, young, state, at,
+                            start_at, learning)
+        state = None          # charted again from the full reference's end, in its units
+    return _charted(store, rig, mode, channel, measure, rule, reference, state, at, start_at)
+
+
+def _charted(store: Store, rig: str, mode: str, channel: int, measure: str, rule: HistoryRule,
+             reference: Reference, state: dict | None, at: float, start_at: float | None,
+             learning: str = "") -> ChartInput | None:
     chart = ChartState.from_dict(state)
-    if learned_now or (chart.since is None and chart.last_at is None):
+    if chart.since is None and chart.last_at is None:
         chart = ChartState(since=reference.last_at, last_at=None)   # charts after the reference
     since = chart.since
     if since is not None and at <= since:
@@ -210,7 +220,8 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
         latest = since
     before = store.chart_points(rig, mode, channel, measure, after=latest, before=at)
     chart = replay(rule, chart, before, reference)
-    return ChartInput(reference, chart, at, tuple(tail), start_at=start_at)
+    return ChartInput(reference, chart, at, tuple(tail), start_at=start_at, learning=learning,
+                      provisional=bool(learning))
 
 
 def _changed(before: dict[str, dict], after: dict[str, alerts.AlertState]) -> list[dict]:

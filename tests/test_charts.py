@@ -143,6 +143,17 @@ HUM_RULES = """
     """
 
 
+# the chart on its own (no jump rule holding it at its limit)
+CHART_ONLY = HUM_RULES.replace("""    [[history]]
+    name = "hum_jump"
+    measure = "hum_rms"
+    test = "z"
+    side = "up"
+    log = true
+    z = 4
+""", "")
+
+
 def _stable(n: int, seed: int = 5) -> list[float]:
     rng = np.random.default_rng(seed)
     return list(0.1 * np.exp(rng.normal(0.0, 0.1, n)))
@@ -156,7 +167,8 @@ def _feed(store, rules, values, start=0, per_day=4, measure="hum_rms"):
 
 def test_the_reference_learns_then_stays_fixed_and_a_creep_raises_the_chart_monotonically(
         tmp_path):
-    rules = rules_file(tmp_path, HUM_RULES)
+    rules = rules_file(tmp_path, CHART_ONLY)
+    assert [r.name for r in rules.history] == ["hum_drift"]
     with Store(tmp_path / "q.sqlite") as s:
         _feed(s, rules, _stable(12))
         # the 12th file sees 11 before it, over 2.2 days: still learning (3 days asked), and says so
@@ -180,7 +192,7 @@ def test_the_reference_learns_then_stays_fixed_and_a_creep_raises_the_chart_mono
 
 def test_files_out_of_recording_order_are_charted_in_recording_order(tmp_path):
     rules = rules_file(tmp_path, HUM_RULES)
-    vals = _stable(16) + [0.1 * 1.04 ** k for k in range(1, 13)]
+    vals = _stable(16) + [0.1 * 1.02 ** k for k in range(1, 13)]   # under the jump rule
     with Store(tmp_path / "a.sqlite") as a, Store(tmp_path / "b.sqlite") as b:
         _feed(a, rules, vals)
         _feed(b, rules, vals[:20])
