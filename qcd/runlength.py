@@ -5,7 +5,7 @@ limits; the expected number of points before it leaves (the average run length, 
 (I - Q) a = 1 with Q the transitions between in-limit states. Observations are standard
 normal with mean ``shift`` (in sigma). Used by ``qcd rules`` and by the rule loader to turn a
 rule's ``arl0_files`` (the in-control run length it may have) into the limit L or h.
-numpy and scipy only (docs/methods.md §11).
+numpy and scipy only (docs/methods.md §10).
 """
 from __future__ import annotations
 

@@ -139,7 +139,7 @@ HUM_RULES = """
     side = "up"
     log = true
     lambda = 0.2
-    arl0_files = 1000
+    L = 3.1
     """
 
 
@@ -306,3 +306,18 @@ def test_learn_waits_for_files_and_days():
     assert learn(rows[:48], files=40, days=3, log=True) is None          # under 3 days
     ref = learn(rows, files=40, days=1, log=True)
     assert ref.n == 40 and ref.log and ref.median == pytest.approx(1.02)
+
+
+def test_day_inflation_is_one_for_independent_files_and_m_for_identical_days():
+    # docs/methods.md §7 (derived): icc 0 -> 1; icc 1 with a long EWMA memory -> m files a day;
+    # CUSUM: the design effect 1 + (m - 1) icc of a day's mean (Kish 1965)
+    from qcd.charts import inflation
+    from qcd.ruleset import HistoryRule
+    ewma = HistoryRule("e", "hum_rms", test="ewma", lam=0.01)
+    cusum = HistoryRule("c", "hum_rms", test="cusum")
+    ref = Reference(0.0, 0.1, 40, 0.0, 0.0, log=True, icc=0.0, per_day=4)
+    assert inflation(ewma, ref) == 1.0
+    ref = Reference(0.0, 0.1, 40, 0.0, 0.0, log=True, icc=1.0, per_day=4)
+    assert inflation(ewma, ref) == pytest.approx(4.0, rel=0.02)
+    half = Reference(0.0, 0.1, 40, 0.0, 0.0, log=True, icc=0.5, per_day=4)
+    assert inflation(cusum, half) == pytest.approx(2.5)
