@@ -86,6 +86,7 @@ class Panel:
     marks: Sequence[float] = ()         # alert openings, Unix seconds
     log_axis: bool = False              # a log axis when the values span more than 20x
     notes: Sequence[tuple[float, str]] = ()   # logbook notes (Unix seconds, text)
+    band_label: str = "normal range"    # the legend's name of the band
 
 
 def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str | None:
@@ -106,7 +107,8 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float]) -> str 
         fl = np.asarray(p.flagged, dtype=bool)
         if p.band is not None:
             low, median, high = p.band
-            ax.axhspan(low, high, color="#4a9d5b", alpha=0.13, lw=0, label="normal range")
+            ax.axhspan(low, high, color="#4a9d5b", alpha=0.13, lw=0,
+                       label=p.band_label or "normal range")
             ax.axhline(median, color="#4a9d5b", lw=0.8, alpha=0.7)
         ax.plot(ts, vs, color="#4a6fa5", lw=0.9, marker="o", ms=2.6)
         if fl.any():

@@ -103,6 +103,8 @@ class Trend:
     points: tuple[tuple[float, float, bool], ...]    # (recorded_at, value, flagged), oldest first
     alerts_opened: tuple[float, ...] = ()
     channel_name: str = ""
+    band: tuple[float, float, float] | None = None   # (low, median, high) the plot shades
+    band_label: str = ""       # what the band is: the drift charts' reference, else normal range
 
 
 @dataclass(frozen=True)
@@ -207,6 +209,7 @@ def _key_measures(store: Store, rig: str, now: float, opened: list[dict],
     the series of the first six plotted ones with their alert openings."""
     t0 = now - HISTORY_DAYS * 86400.0
     lines, trends = [], []
+    refs = store.charts(rig)
     for measure in KEY_MEASURES:
         for ch in list(names)[:4]:
             rows = _series(store, rig, measure, ch, t0)
@@ -218,10 +221,30 @@ def _key_measures(store: Store, rig: str, now: float, opened: list[dict],
                 marks = sorted({a["opened_at"] for a in opened if a.get("opened_at")
                                 and a.get("measure") == measure
                                 and a.get("channel") in (None, ch)})
+                band, label = _reference_band(refs, ch, measure)
+                if band is None and ml.low is not None:
+                    band, label = (ml.low, ml.median, ml.high), \
+                        f"normal range (median +- {NORMAL_SPREADS:g} robust SD)"
                 trends.append(Trend(measure, ch, ml.unit,
                                     tuple((r[0], r[1], bool(r[3])) for r in rows), tuple(marks),
-                                    names[ch]))
+                                    names[ch], band, label))
     return lines, trends
+
+
+def _reference_band(refs: dict[tuple, dict], channel: int, measure: str
+                    ) -> tuple[tuple[float, float, float] | None, str]:
+    """The drift charts' reference of a (channel, measure) as a band: median and +-3 robust SD
+    (on the log scale for a log reference), and its label naming the reference files' days;
+    (None, '') when no chart of it has a learned reference."""
+    from qcd.charts import Reference, span_text
+    found = [(row.get("updated_at") or 0.0, row["ref"]) for (mode, ch, m, rule), row
+             in refs.items() if ch == channel and m == measure and row.get("ref")]
+    if not found:
+        return None, ""
+    ref = Reference.from_dict(max(found, key=lambda x: x[0])[1])
+    c, w = ref.center, NORMAL_SPREADS * ref.scale
+    band = (math.exp(c - w), math.exp(c), math.exp(c + w)) if ref.log else (c - w, c, c + w)
+    return band, f"reference {span_text(ref)} ({ref.n} files, +-{NORMAL_SPREADS:g} robust SD)"
 
 
 def _latest_spectrum(store: Store, rig: str, files: list[dict], now: float
@@ -535,17 +558,15 @@ def render_alerts(a: AlertList, *, secrets: Iterable[str] = ()) -> str:
 # ----------------------------------------------------------------------------- HTML
 
 def _trend_image(rig: RigReport, now: float, since: float) -> str | None:
-    lines = {(m.measure, m.channel): m for m in rig.measures}
     panels = []
     for t in rig.trends:
-        m = lines[(t.measure, t.channel)]
         info = MEASURES[t.measure]
         name = f" {t.channel_name}" if t.channel_name else ""
         panels.append(Panel(
             f"{info.label} ({t.measure}, ch {t.channel}{name})", t.unit, [p[0] for p in t.points],
             [p[1] for p in t.points], [p[2] for p in t.points],
-            (m.low, m.median, m.high) if m.low is not None else None, t.alerts_opened,
-            info.log_axis, tuple((n["at"], n["text"]) for n in rig.notes)))
+            t.band, t.alerts_opened, info.log_axis,
+            tuple((n["at"], n["text"]) for n in rig.notes), band_label=t.band_label))
     return trend_figure(panels, shade=(since, now))
 
 

@@ -321,3 +321,21 @@ def test_day_inflation_is_one_for_independent_files_and_m_for_identical_days():
     assert inflation(ewma, ref) == pytest.approx(4.0, rel=0.02)
     half = Reference(0.0, 0.1, 40, 0.0, 0.0, log=True, icc=0.5, per_day=4)
     assert inflation(cusum, half) == pytest.approx(2.5)
+
+
+def test_the_report_shades_the_reference_band_and_names_it(tmp_path):
+    from qcd.report import build_report, render_html
+    rules = rules_file(tmp_path, HUM_RULES)
+    with Store(tmp_path / "q.sqlite") as s:
+        _feed(s, rules, _stable(16))
+        ref = Reference.from_dict(chart_of(s, "hum_drift", "hum_rms")["ref"])
+        now = s.files(rig=RIG.name)[-1]["recorded_at"] + 3600.0
+        rep = build_report(s, now, now - 86400.0)
+    (trend,) = [t for t in rep.rigs[0].trends if t.measure == "hum_rms"]
+    # median and +-3 robust SD of the reference on the log scale (docs/methods.md §7)
+    assert trend.band == pytest.approx((math.exp(ref.center - 3 * ref.scale),
+                                        math.exp(ref.center),
+                                        math.exp(ref.center + 3 * ref.scale)))
+    assert trend.band_label == "reference 2026-09-01...09-04 (13 files, +-3 robust SD)"
+    assert rep.to_json()["rigs"][0]["trends"][0]["band_label"].startswith("reference")
+    assert "<img" in render_html(rep)
