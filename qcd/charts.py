@@ -40,6 +40,7 @@ class Reference:
     icc: float = 0.0                 # share of the variance that files of one day have in common
     per_day: float = 1.0             # files a day in the reference
     widen: float = 1.0               # > 1: a provisional reference's wider limits
+    rho: float = 0.0                 # day effects carried to the next day (lag-1 correlation)
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -49,7 +50,7 @@ class Reference:
         if not d:
             return None
         return cls(**{k: d[k] for k in ("center", "scale", "n", "first_at", "last_at", "log",
-                                        "icc", "per_day", "widen") if k in d})
+                                        "icc", "per_day", "widen", "rho") if k in d})
 
     @property
     def median(self) -> float:
@@ -80,18 +81,20 @@ class ChartState:
 
 def inflation(rule: HistoryRule, ref: Reference) -> float:
     """Var(chart statistic) / Var(the same chart on independent files) when files of one day
-    share a part ``icc`` of their variance (days of ``per_day`` files).
+    share a part ``icc`` of their variance (days of ``per_day`` files) and a day's effect is
+    carried to the next with correlation ``rho`` (files d days apart: icc rho^d).
 
-    EWMA: sum over pairs of weights w_i w_j (w_i = lam (1-lam)^i) of their correlation (1 for
-    i = j, icc within a day), over the sum of w_i^2, averaged over where in its day the newest
-    file falls. CUSUM (which sums many files): the design effect 1 + (m - 1) icc of a day's
-    mean (Kish 1965)."""
+    EWMA: sum over pairs of weights w_i w_j (w_i = lam (1-lam)^i) of their correlation, over
+    the sum of w_i^2, averaged over where in its day the newest file falls. CUSUM (which sums
+    many files): the long-run ratio 1 + (m - 1) icc + 2 m icc rho / (1 - rho), the design
+    effect of a day's mean (Kish 1965) with the days' autocorrelation added."""
     m = max(1, int(round(ref.per_day)))
     icc = min(max(ref.icc, 0.0), 1.0)
-    if m == 1 or icc == 0.0:
+    rho = min(max(ref.rho, 0.0), 0.9)
+    if icc == 0.0 or (m == 1 and rho == 0.0):
         return 1.0
     if rule.test != "ewma":
-        return 1.0 + (m - 1) * icc
+        return 1.0 + (m - 1) * icc + 2.0 * m * icc * rho / (1.0 - rho)
     n = int(min(2000, max(50, 40 / rule.lam)))
     w = rule.lam * (1.0 - rule.lam) ** np.arange(n)
     iid = float(np.sum(w * w))
@@ -99,7 +102,8 @@ def inflation(rule: HistoryRule, ref: Reference) -> float:
     for phase in range(m):
         day = (np.arange(n) + phase) // m
         sums = np.bincount(day, weights=w)
-        total += iid + icc * float(np.sum(sums * sums) - iid)
+        lag = np.abs(np.subtract.outer(np.arange(len(sums)), np.arange(len(sums))))
+        total += iid + icc * (float(sums @ (rho ** lag) @ sums) - iid)
     return total / m / iid
 
 

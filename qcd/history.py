@@ -19,7 +19,8 @@ import numpy as np
 from qcd.charts import Reference
 from qcd.measures.noise import MAD_SCALE
 
-__all__ = ["learn", "reference_of", "provisional", "day_icc", "progress_text"]
+__all__ = ["learn", "reference_of", "provisional", "day_icc", "day_autocorrelation",
+           "progress_text"]
 
 DAY_S = 86400.0
 
@@ -49,6 +50,24 @@ def day_icc(times: Sequence[float], values: Sequence[float]) -> tuple[float, flo
     return sb2 / (sb2 + msw), per_day
 
 
+def day_autocorrelation(times: Sequence[float], values: Sequence[float]) -> float:
+    """Lag-1 autocorrelation of the day means over consecutive recording days (a day effect
+    carried to the next day), clipped to [0, 0.9]; 0 with fewer than 4 days."""
+    t = np.asarray(times, dtype=float)
+    y = np.asarray(values, dtype=float)
+    days = np.floor(t / DAY_S)
+    uniq = np.unique(days)
+    if len(uniq) < 4:
+        return 0.0
+    means = np.array([y[days == d].mean() for d in uniq])
+    dev = means - means.mean()
+    den = float(np.sum(dev * dev))
+    if den <= 0:
+        return 0.0
+    r = float(np.sum(dev[1:] * dev[:-1])) / den
+    return min(max(r, 0.0), 0.9)
+
+
 def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: float = 0.0
                  ) -> Reference | None:
     """The reference of (recorded_at, value) rows: median and 1.4826 MAD of the values (their
@@ -66,38 +85,50 @@ def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: 
     scale = max(scale, floor, 1e-12)
     icc, per_day = day_icc(t, y)
     return Reference(center=center, scale=scale, n=len(pts), first_at=float(t.min()),
-                     last_at=float(t.max()), log=log, icc=icc, per_day=per_day)
+                     last_at=float(t.max()), log=log, icc=icc, per_day=per_day,
+                     rho=day_autocorrelation(t, y))
+
+
+def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin: float
+              ) -> Reference | None:
+    """``ref`` with its limits widened by 1 + margin/sqrt(days) for the days its rows span."""
+    if ref is None:
+        return None
+    days = len({math.floor(t / DAY_S) for t, _ in rows})
+    return Reference(**{**ref.to_dict(), "widen": 1.0 + margin / math.sqrt(max(days, 1))})
 
 
 def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: bool,
-          min_spread: float = 0.0) -> Reference | None:
+          min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
     """The fixed reference from good rows (oldest first, recorded after the reference start):
     the first rows up to the one that makes ``files`` files over at least ``days`` days; None
-    while there are not enough yet (still learning)."""
+    while there are not enough yet (still learning).
+
+    ``margin``: the limits are widened by 1 + margin/sqrt(days) for the days the reference
+    spans. A scale estimated from a few independent days can be far too small (the MAD of n
+    normal values has a relative error of about 1.2/sqrt(n), and a day's files count as about
+    one), and a chart's false-alarm rate grows steeply as its scale shrinks; the margin keeps
+    the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py)."""
     usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
     if not usable:
         return None
     first = usable[0][0]
     for i, (t, _) in enumerate(usable):
         if i + 1 >= files and t - first >= days * DAY_S:
-            return reference_of(usable[: i + 1], log=log, min_spread=min_spread)
+            return _widened(reference_of(usable[: i + 1], log=log, min_spread=min_spread),
+                            usable[: i + 1], margin)
     return None
 
 
 def provisional(rows: Sequence[tuple[float, float]], *, files: int, log: bool,
-                min_spread: float = 0.0) -> Reference | None:
+                min_spread: float = 0.0, margin: float = 1.0) -> Reference | None:
     """A young rig's provisional reference while the full one learns: the first ``files`` good
-    rows (fixed, so a creep after them cannot enter), its limits widened by 1 + 1/sqrt(days)
-    for the days they span, as a scale estimated from a few days can be far too small (the
-    MAD of n normal values has a relative error of about 1.2/sqrt(n); common practice: widen
-    the limits of a short phase I). None with fewer rows."""
+    rows (fixed, so a creep after them cannot enter), widened like ``learn`` by
+    1 + margin/sqrt(days) for the (few) days they span. None with fewer rows."""
     if len(rows) < files:
         return None
-    ref = reference_of(rows[:files], log=log, min_spread=min_spread)
-    if ref is None:
-        return None
-    days = len({math.floor(t / DAY_S) for t, _ in rows[:files]})
-    return Reference(**{**ref.to_dict(), "widen": 1.0 + 1.0 / math.sqrt(max(days, 1))})
+    return _widened(reference_of(rows[:files], log=log, min_spread=min_spread), rows[:files],
+                    margin)
 
 
 def progress_text(rows: Sequence[tuple[float, float]], files: int, days: float) -> str:

@@ -183,17 +183,19 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                              after=start_at, skip=st.follow_files)
         followed = history.learn(rows[::-1], files=st.reference_files,
                                  days=st.reference_days, log=rule.log,
-                                 min_spread=rule.min_spread)
+                                 min_spread=rule.min_spread, margin=st.reference_margin)
         reference = followed or reference
     if reference is None:
         rows = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
                                     limit=max(4 * st.reference_files, 400))
         reference = history.learn(rows, files=st.reference_files, days=st.reference_days,
-                                  log=rule.log, min_spread=rule.min_spread)
+                                  log=rule.log, min_spread=rule.min_spread,
+                                  margin=st.reference_margin)
         learning = history.progress_text(rows, st.reference_files, st.reference_days)
         if reference is None:
             young = history.provisional(rows, files=st.learning_files, log=rule.log,
-                                        min_spread=rule.min_spread)
+                                        min_spread=rule.min_spread,
+                                        margin=st.reference_margin)
             if young is None:
                 return ChartInput(None, ChartState.from_dict(state), at, start_at=start_at,
                                   learning=learning)

@@ -38,8 +38,9 @@ class RuleSettings:
     flap_changes: int = 6            # >= this many open/resolve changes ...
     flap_window: int = 21            # ... in the last N files: one "unstable" message
     intake_open_after_files: int = 1   # error files: open at once
-    reference_files: int = 40        # the drift charts' reference: at least N good files ...
-    reference_days: float = 10.0     # ... over at least D days (qcd.history)
+    reference_files: int = 60        # the drift charts' reference: at least N good files ...
+    reference_days: float = 20.0     # ... over at least D days (qcd.history)
+    reference_margin: float = 1.5    # its limits widened 1 + margin/sqrt(days) (estimation)
     follow_days: float = 0.0         # > 0: the reference follows the rig from files older ...
     follow_files: int = 20           # ... than this many days and files (0: fixed reference)
 
@@ -113,8 +114,9 @@ _SETTINGS_KEYS = {"history_files": ("history_files", int), "history_days": ("his
                   "intake_open_after_files": ("intake_open_after_files", int),
                   "reference_files": ("reference_files", int),
                   "reference_days": ("reference_days", float),
+                  "reference_margin": ("reference_margin", float),
                   "follow_days": ("follow_days", float), "follow_files": ("follow_files", int)}
-_MAY_BE_ZERO = {"follow_days", "follow_files"}
+_MAY_BE_ZERO = {"follow_days", "follow_files", "reference_margin"}
 _LIMIT_KEYS = {"name", "measure", "modes", "above", "below", "equals", "absolute", "scope",
                "severity", "open_after_files", "resolve_after_files", "remind_hours",
                "clear_margin", "enabled"}

@@ -300,6 +300,19 @@ def test_day_icc_finds_a_shared_day_effect_and_none_without_one():
     assert icc0 < 0.1
 
 
+def test_day_autocorrelation_finds_a_carried_day_effect():
+    # AR(1) day means with coefficient 0.6 over 400 days: lag-1 autocorrelation ~0.6 (Box &
+    # Jenkins: r1 estimates phi; sd about 1/sqrt(n))
+    from qcd.history import day_autocorrelation
+    rng = np.random.default_rng(8)
+    d = np.zeros(400)
+    for i in range(1, 400):
+        d[i] = 0.6 * d[i - 1] + rng.normal()
+    t = np.arange(400) * 86400.0
+    assert day_autocorrelation(t, d) == pytest.approx(0.6, abs=0.1)
+    assert day_autocorrelation(t, rng.normal(size=400)) < 0.1
+
+
 def test_learn_waits_for_files_and_days():
     rows = [(T0 + 3600.0 * i, 1.0 + 0.01 * (i % 5)) for i in range(100)]
     assert learn(rows[:30], files=40, days=1, log=True) is None          # too few files
@@ -321,6 +334,10 @@ def test_day_inflation_is_one_for_independent_files_and_m_for_identical_days():
     assert inflation(ewma, ref) == pytest.approx(4.0, rel=0.02)
     half = Reference(0.0, 0.1, 40, 0.0, 0.0, log=True, icc=0.5, per_day=4)
     assert inflation(cusum, half) == pytest.approx(2.5)
+    carried = Reference(0.0, 0.1, 40, 0.0, 0.0, log=True, icc=0.5, per_day=4, rho=0.3)
+    assert inflation(cusum, carried) == pytest.approx(2.5 + 1.2 / 0.7)
+    # EWMA with a long memory approaches the CUSUM's long-run factor
+    assert inflation(ewma, carried) == pytest.approx(2.5 + 1.2 / 0.7, rel=0.03)
 
 
 def test_the_report_shades_the_reference_band_and_names_it(tmp_path):

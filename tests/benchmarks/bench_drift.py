@@ -104,7 +104,8 @@ def run_rig(folder: Path, name: str, files, rules) -> list[tuple[int, str]]:
                 last = rid
                 for line in body.splitlines():
                     if line.startswith("OPEN") and ":" in line:
-                        opened.append((i, line.split(":", 1)[1].split()[0]))
+                        rule = line.split("rule ", 1)[1].split(",")[0] if "rule " in line else ""
+                        opened.append((i, line.split(":", 1)[1].split()[0], rule))
     return opened
 
 
@@ -131,17 +132,24 @@ def main(argv=None) -> int:
         folder = Path(tmp)
         if not args.skip_control:
             false = {"hum_rms": 0, "noise_rms": 0}
+            young = {"hum_rms": 0, "noise_rms": 0}
+            by_rule: dict[str, int] = {}
             for r in range(args.rig_years):
                 per_day = int(rng.integers(2, 9))
                 scatter = float(rng.uniform(0.10, 0.30))
                 files = rig_files(rng, days=365, per_day=per_day, scatter=scatter)
                 n_files += len(files)
-                for _, measure in run_rig(folder, f"ic{r}", files, rules):
+                for i, measure, rule in run_rig(folder, f"ic{r}", files, rules):
                     if measure in false:
                         false[measure] += 1
+                        by_rule[rule] = by_rule.get(rule, 0) + 1
+                        if i < per_day * 30:
+                            young[measure] += 1
             print(f"in control, {args.rig_years} rig-years (2-8 files a day, 10-30 % scatter, "
                   f"day share {DAY_SHARE:g}, AR(1) 0.3): false alerts per rig-year: hum {false['hum_rms'] / args.rig_years:.2f}, "
-                  f"noise {false['noise_rms'] / args.rig_years:.2f} (goal <= 0.5)")
+                  f"noise {false['noise_rms'] / args.rig_years:.2f} (goal <= 0.5); of these in a rig's "
+                  f"first 30 days: hum {young['hum_rms']}, noise {young['noise_rms']}; by rule: "
+                  + ", ".join(f"{k} {v}" for k, v in sorted(by_rule.items())))
             sys.stdout.flush()
         for measure in ("hum_rms", "noise_rms"):
             for rate in (0.03, 0.05, 0.10):
@@ -150,7 +158,7 @@ def main(argv=None) -> int:
                     files = rig_files(rng, days=60, per_day=4, scatter=0.20,
                                       fault=(measure, "creep", rate, 30))
                     n_files += len(files)
-                    first = next((i for i, m in run_rig(folder, f"c{measure}{rate}{r}", files,
+                    first = next((i for i, m, _ in run_rig(folder, f"c{measure}{rate}{r}", files,
                                                         rules)
                                   if m == measure and files[i][3]), None)
                     if first is None:
@@ -168,7 +176,7 @@ def main(argv=None) -> int:
                                       fault=(measure, "step", size, 30))
                     n_files += len(files)
                     onset = next(i for i, f in enumerate(files) if f[3])
-                    first = next((i for i, m in run_rig(folder, f"s{measure}{size}{r}", files,
+                    first = next((i for i, m, _ in run_rig(folder, f"s{measure}{size}{r}", files,
                                                         rules)
                                   if m == measure and files[i][3]), None)
                     if first is None:
