@@ -327,9 +327,12 @@ def _limit(rule: LimitRule, m: Measure) -> tuple[bool, bool] | None:
     return bad, clear_ok
 
 
-def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = ""
-           ) -> tuple[bool, bool, str] | None:
-    """(bad, clear, text) for one value against the history values (oldest first)."""
+def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = "",
+           ref_scale: float = 0.0) -> tuple[bool, bool, str] | None:
+    """(bad, clear, text) for one value against the history values (oldest first): robust z
+    against their median and scale. ``ref_scale``: the scale of the rig's reference (same
+    scale: log or not) floors the window's, which a few days of files can make far too small
+    when files of one day share its conditions (docs/methods.md §7)."""
     abs_floor = 0.0
     if rule.min_spread_abs is not None and not rule.log:
         si, dim = _to_si(1.0, unit)
@@ -349,26 +352,12 @@ def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = ""
         return None
     med, scale = baseline(past)
     floor = rule.min_spread if rule.log else max(rule.min_spread * abs(med), abs_floor)
-    scale = max(scale, floor, 1e-300)
+    scale = max(scale, floor, ref_scale, 1e-300)
     up, down = rule.side in ("up", "both"), rule.side in ("down", "both")
-    if rule.test == "z":
-        z = (x - med) / scale
-        bad = (up and z > rule.z) or (down and z < -rule.z)
-        clear_ok = not bad and (not up or z < rule.clear_z) and (not down or z > -rule.clear_z)
-        return bad, clear_ok, f"robust z {z:+.1f} (flag beyond {rule.z:g})"
-    series = [(p - med) / scale for p in past] + [(x - med) / scale]
-    if rule.test == "ewma":
-        chart = ewma(series, rule.lam, target=0.0, sigma=1.0, L=rule.L)
-        s, u = chart.statistic[-1], chart.upper[-1]
-        bad = (up and s > u) or (down and s < -u)
-        clear_ok = not bad and (not up or s < 0.75 * u) and (not down or s > -0.75 * u)
-        return bad, clear_ok, f"EWMA {s:+.2f} sigma (limit {u:.2f})"
-    cs = cusum(series, 0.0, rule.k, rule.h)
-    sp, sm = cs.upper[-1], cs.lower[-1]
-    bad = (up and sp > rule.h) or (down and sm > rule.h)
-    clear_ok = not bad and (not up or sp < rule.h / 2) and (not down or sm < rule.h / 2)
-    stat = sp if rule.side == "up" else sm if rule.side == "down" else max(sp, sm)
-    return bad, clear_ok, f"CUSUM {stat:.2f} sigma (limit {rule.h:g})"
+    z = (x - med) / scale
+    bad = (up and z > rule.z) or (down and z < -rule.z)
+    clear_ok = not bad and (not up or z < rule.clear_z) and (not down or z > -rule.clear_z)
+    return bad, clear_ok, f"robust z {z:+.1f} (flag beyond {rule.z:g})"
 
 
 def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, key: dict,
@@ -569,10 +558,14 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
             if not math.isfinite(value):
                 continue
             jump = ""
+            inputs = {r.name: charts(mode, ch.index, m.name, r) for r in hist_rules
+                      if charts is not None and r.test in _charts.CHART_TESTS}
+            refs = {ci.ref.log: ci.ref.scale for ci in inputs.values()     # learned ones
+                    if ci is not None and ci.ref is not None and not ci.provisional}
             for rule in sorted(hist_rules, key=lambda r: r.test != "z"):    # z rules first
                 chart_row, headline = None, ""
                 if rule.test in _charts.CHART_TESTS:
-                    ci = charts(mode, ch.index, m.name, rule) if charts is not None else None
+                    ci = inputs.get(rule.name)
                     if ci is None:
                         continue
                     res = _chart(rule, value, ci, m.unit,
@@ -594,7 +587,9 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                 else:
                     ref = _precise(history, mode, ch, m.name, st.history_files, rule.side) \
                         if _se(ch, m.name) else points
-                    res = _interval(lambda x: _drift(rule, x, ref, m.unit), m, _se(ch, m.name))
+                    res = _interval(lambda x: _drift(rule, x, ref, m.unit,
+                                                     refs.get(rule.log, 0.0)),
+                                    m, _se(ch, m.name))
                     if res is None:
                         continue
                     bad, clear_ok, stat_text = res

@@ -393,3 +393,19 @@ def test_a_limit_counts_a_value_with_an_error_only_when_its_whole_interval_is_be
     f = check(-3.0, 15.0)
     assert not f.bad and not f.clear
     assert check(5.0, 1.0).clear and not check(5.0, 1.0).bad
+
+
+def test_a_learned_reference_floors_the_jump_rules_window_scale(rules):
+    # a window of files from one quiet day (log sd 0.05) makes 1.5x look like z = 8; the rig's
+    # reference, learned over weeks, says its files scatter by 0.2 in log units: z about 2
+    # (robust z, Iglewicz & Hoaglin 1993: the window's median, the wider of the two scales)
+    from qcd.charts import Reference
+    rng = np.random.default_rng(11)
+    past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
+    fm = _fm({"hum_rms": (0.15, "pA")})
+    alone = _by_rule(judge(fm, "r", _history_from(past), rules, 0))
+    assert alone["hum_jump"].bad
+    charts, _ = _charting(Reference(math.log(0.1), 0.2, 60, 0.0, 0.0, log=True))
+    floored = _by_rule(judge(fm, "r", _history_from(past), rules, 0, charts))
+    z = math.log(0.15 / float(np.median(past))) / 0.2
+    assert not floored["hum_jump"].bad and f"robust z {z:+.1f}" in floored["hum_jump"].limit_text
