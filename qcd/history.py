@@ -19,7 +19,7 @@ import numpy as np
 from qcd.charts import Reference
 from qcd.measures.noise import MAD_SCALE
 
-__all__ = ["learn", "reference_of", "provisional", "day_icc", "day_autocorrelation",
+__all__ = ["learn", "follow", "reference_of", "provisional", "day_icc", "day_autocorrelation",
            "progress_text"]
 
 DAY_S = 86400.0
@@ -117,6 +117,22 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
         if i + 1 >= files and t - first >= days * DAY_S:
             return _widened(reference_of(usable[: i + 1], log=log, min_spread=min_spread),
                             usable[: i + 1], margin)
+    return None
+
+
+def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days: float,
+           log: bool, min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
+    """A following reference: the NEWEST good rows (already behind the guard gap) back to the
+    one that makes ``files`` files over ``days`` days; None when there are not enough."""
+    usable = [(t, v) for t, v in rows_newest_first if math.isfinite(v) and (not log or v > 0)]
+    if not usable:
+        return None
+    newest = usable[0][0]
+    for i, (t, _) in enumerate(usable):
+        if i + 1 >= files and newest - t >= days * DAY_S:
+            chosen = usable[: i + 1][::-1]
+            return _widened(reference_of(chosen, log=log, min_spread=min_spread), chosen,
+                            margin)
     return None
 
 

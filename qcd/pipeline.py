@@ -178,12 +178,13 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
     """
     reference = Reference.from_dict(ref)
     if st.follow_days > 0:
-        rows = store.history(rig, mode, channel, measure, limit=st.reference_files,
-                             days=math.inf, before=at - st.follow_days * 86400.0,
-                             after=start_at, skip=st.follow_files)
-        followed = history.learn(rows[::-1], files=st.reference_files,
-                                 days=st.reference_days, log=rule.log,
-                                 min_spread=rule.min_spread, margin=st.reference_margin)
+        rows = store.history(rig, mode, channel, measure,
+                             limit=max(4 * st.reference_files, 400), days=math.inf,
+                             before=at - st.follow_days * 86400.0, after=start_at,
+                             skip=st.follow_files)
+        followed = history.follow(rows, files=st.reference_files, days=st.reference_days,
+                                  log=rule.log, min_spread=rule.min_spread,
+                                  margin=st.reference_margin)
         reference = followed or reference
     if reference is None:
         rows = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,

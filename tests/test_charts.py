@@ -356,3 +356,20 @@ def test_the_report_shades_the_reference_band_and_names_it(tmp_path):
     assert trend.band_label == "reference 2026-09-01...09-04 (13 files, +-3 robust SD)"
     assert rep.to_json()["rigs"][0]["trends"][0]["band_label"].startswith("reference")
     assert "<img" in render_html(rep)
+
+
+@pytest.mark.slow
+def test_a_following_reference_keeps_behind_its_guard_gap(tmp_path):
+    # follow_days = 2, follow_files = 4: the reference moves with a slow change of the rig's
+    # normal, but only from files recorded over 2 days and 4 files before the one judged
+    rules = rules_file(tmp_path, CHART_ONLY.replace(
+        "reference_days = 3", "reference_days = 3\n    follow_days = 2\n    follow_files = 4"))
+    with Store(tmp_path / "q.sqlite") as s:
+        _feed(s, rules, _stable(16))
+        first = Reference.from_dict(chart_of(s, "hum_drift", "hum_rms")["ref"])
+        _feed(s, rules, [0.12 * v / 0.1 for v in _stable(40, 3)], start=16)
+        ref = Reference.from_dict(chart_of(s, "hum_drift", "hum_rms")["ref"])
+        last = s.files(rig=RIG.name)[-1]["recorded_at"]
+        assert ref.last_at <= last - 2 * 86400.0
+        assert ref.first_at > first.last_at                   # the old files have moved out
+        assert ref.median == pytest.approx(0.12, rel=0.1)
