@@ -381,8 +381,7 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
     store["state"] = _charts.replay(rule, new, ci.tail, ci.ref).to_dict()
     ref = ci.ref
     med = ref.median
-    where = (f"reference median {med:.3g} {unit} of {_charts.span_text(ref)} ({ref.n} files)"
-             .replace("  ", " "))
+    where = f"reference median {med:.3g} {unit} from {ref.n} files".replace("  ", " ")
     if rule.test == "ewma":
         sd = math.sqrt(rule.lam / (2.0 - rule.lam))
         stat_text = f"EWMA {stat / sd:.1f} sigma, limit {lim / sd:.1f}"
