@@ -136,15 +136,17 @@ def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days
     return None
 
 
+PROVISIONAL_DAYS = 3.0     # a provisional reference spans at least 3 days (common practice)
+
+
 def provisional(rows: Sequence[tuple[float, float]], *, files: int, log: bool,
-                min_spread: float = 0.0, margin: float = 1.0) -> Reference | None:
-    """A young rig's provisional reference while the full one learns: the first ``files`` good
-    rows (fixed, so a creep after them cannot enter), widened like ``learn`` by
-    1 + margin/sqrt(days) for the (few) days they span. None with fewer rows."""
-    if len(rows) < files:
-        return None
-    return _widened(reference_of(rows[:files], log=log, min_spread=min_spread), rows[:files],
-                    margin)
+                min_spread: float = 0.0, margin: float = 1.0,
+                days: float = PROVISIONAL_DAYS) -> Reference | None:
+    """A young rig's provisional reference while the full one learns: its first good rows up
+    to the one that makes ``files`` files over ``days`` days (fixed, so a creep after them
+    cannot enter), widened like ``learn`` by 1 + margin/sqrt(days) for the (few) days they
+    span: one or two days say little about a rig's day-to-day scatter. None before that."""
+    return learn(rows, files=files, days=days, log=log, min_spread=min_spread, margin=margin)
 
 
 def progress_text(rows: Sequence[tuple[float, float]], files: int, days: float) -> str:

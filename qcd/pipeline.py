@@ -196,7 +196,8 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
         if reference is None:
             young = history.provisional(rows, files=st.learning_files, log=rule.log,
                                         min_spread=rule.min_spread,
-                                        margin=st.reference_margin)
+                                        margin=st.reference_margin,
+                                        days=min(history.PROVISIONAL_DAYS, st.reference_days))
             if young is None:
                 return ChartInput(None, ChartState.from_dict(state), at, start_at=start_at,
                                   learning=learning)

@@ -183,7 +183,7 @@ def main(argv=None) -> int:
                         missed += 1
                     else:
                         counts.append(first - onset + 1)
-                within2 = sum(c <= 2 for c in counts) / args.rigs
+                within2 = sum(c <= 2 for c in counts) / max(args.rigs, 1)
                 print(f"step {measure} {size:g}x: files to first message median "
                       f"{pct(counts, 50):.1f}, p90 {pct(counts, 90):.1f}, within 2 files "
                       f"{within2:.0%}, missed {missed} of {args.rigs}")
