@@ -20,7 +20,8 @@ import numpy as np
 from qcd.ruleset import HistoryRule
 
 __all__ = ["Reference", "ChartState", "step", "replay", "verdict", "reset", "standardise",
-           "CHART_TESTS", "span_text", "inflation", "limit", "ChartInput", "hold", "signal_files", "budget_lines"]
+           "CHART_TESTS", "span_text", "inflation", "limit", "ChartInput", "hold",
+           "signal_files", "budget_lines"]
 
 CHART_TESTS = ("ewma", "cusum")
 

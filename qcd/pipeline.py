@@ -35,8 +35,8 @@ if TYPE_CHECKING:
     from qcd.store import Store
 
 __all__ = ["measure", "measure_all", "watched_channels", "process", "commit", "error_file",
-           "flush_digest", "tick", "judge_file", "chart_input", "relearn", "scan", "ScanResult", "recording_order",
-           "DIGEST_FILES"]
+           "flush_digest", "tick", "judge_file", "chart_input", "relearn", "scan", "ScanResult",
+           "recording_order", "DIGEST_FILES"]
 
 # More files than this in one ``scan`` is a backlog: one digest instead of a message per file.
 DIGEST_FILES = 20

@@ -173,7 +173,8 @@ def test_the_reference_learns_then_stays_fixed_and_a_creep_raises_the_chart_mono
         _feed(s, rules, _stable(12))
         # the 12th file sees 11 before it, over 2.2 days: still learning (3 days asked), and says so
         assert chart_of(s, "hum_drift", "hum_rms")["ref"] is None
-        assert "learning the reference: 11 of 12 files, 2.2 of 3 days" in finding(s, "hum_drift")["limit_text"]
+        assert "learning the reference: 11 of 12 files, 2.2 of 3 days" in \
+            finding(s, "hum_drift")["limit_text"]
         _feed(s, rules, _stable(4, 6), start=12)
         ref = chart_of(s, "hum_drift", "hum_rms")["ref"]
         assert ref is not None and ref["n"] == 13       # 13 files span the 3 days

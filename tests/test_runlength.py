@@ -75,7 +75,8 @@ def test_a_rule_with_arl0_gets_its_limit_and_refuses_both(tmp_path):
         arl0_files = 500
         """), encoding="utf-8")
     rule = load_rules([p]).history[0]
-    assert rule.arl0_files == 500 and cusum_arl(0.5, rule.h, side="up") == pytest.approx(500, rel=2e-3)
+    assert rule.arl0_files == 500
+    assert cusum_arl(0.5, rule.h, side="up") == pytest.approx(500, rel=2e-3)
     p.write_text(p.read_text() + "h = 5\n", encoding="utf-8")
     with pytest.raises(ConfigError, match="arl0_files or h"):
         load_rules([p])

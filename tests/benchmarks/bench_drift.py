@@ -146,8 +146,10 @@ def main(argv=None) -> int:
                         if i < per_day * 30:
                             young[measure] += 1
             print(f"in control, {args.rig_years} rig-years (2-8 files a day, 10-30 % scatter, "
-                  f"day share {DAY_SHARE:g}, AR(1) 0.3): false alerts per rig-year: hum {false['hum_rms'] / args.rig_years:.2f}, "
-                  f"noise {false['noise_rms'] / args.rig_years:.2f} (goal <= 0.5); of these in a rig's "
+                  f"day share {DAY_SHARE:g}, AR(1) 0.3): false alerts per rig-year: "
+                  f"hum {false['hum_rms'] / args.rig_years:.2f}, "
+                  f"noise {false['noise_rms'] / args.rig_years:.2f} (goal <= 0.5); "
+                  f"of these in a rig's "
                   f"first 30 days: hum {young['hum_rms']}, noise {young['noise_rms']}; by rule: "
                   + ", ".join(f"{k} {v}" for k, v in sorted(by_rule.items())))
             sys.stdout.flush()
