@@ -20,7 +20,8 @@ if TYPE_CHECKING:
     from qcd.ruleset import RuleSettings
     from qcd.judge import Finding
 
-__all__ = ["AlertState", "Message", "Mute", "advance", "flush_digest", "tick", "PRIORITY"]
+__all__ = ["AlertState", "Message", "Mute", "advance", "flush_digest", "tick", "resolve",
+           "PRIORITY"]
 
 # Outbox priorities: firing above reminders above resolved (resolved are lower priority).
 PRIORITY = {"firing": 2, "unstable": 2, "digest": 2, "reminder": 1, "resolved": 0}
@@ -122,9 +123,10 @@ class Mute:
 
 @dataclass(frozen=True)
 class _Event:
-    what: str                 # opened | reminder | resolved | unstable | stable | late
+    what: str                 # opened | reminder | resolved | unstable | stable | late | relearned
     state: AlertState
     seq: int
+    note: str = ""
 
 
 def _mute_for(s: AlertState, mutes: Iterable[Mute], now: float) -> Mute | None:
@@ -296,6 +298,31 @@ def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding]
     return out, _group(events, now, zones)
 
 
+def resolve(states: Mapping[str, AlertState | dict], keys: Iterable[str], now: float,
+            why: str, *, zones: Mapping[str, str | None] | None = None
+            ) -> tuple[dict[str, AlertState], list[Message]]:
+    """Resolve the open (or suspect) alerts of ``keys`` by hand, saying ``why`` (a re-learn):
+    (all states, one message per rig for those whose opening had been announced)."""
+    out = _load(states)
+    events = []
+    for key in sorted(set(keys)):
+        s = out.get(key)
+        if s is None or (s.state == "ok" and not s.flapping):
+            continue
+        was_open = s.state == "open" or s.flapping
+        s.state, s.bad_run, s.clear_run = "ok", 0, 0
+        s.flapping, s.stable_files, s.changes = False, 0, []
+        if was_open:
+            s.resolved_at = now
+        s.updated_at = now
+        s.seq += 1
+        s.mutes, s.spent = [], sorted(set(s.spent) | set(s.mutes))
+        if s.announced:
+            events.append(_Event("relearned", s, s.seq, why))
+        s.announced = False
+    return out, _group(events, now, zones)
+
+
 def _late(out: dict[str, AlertState], mutes: list[Mute], rig_bad: set[str], now: float,
           skip: set[str] = frozenset()) -> list[_Event]:
     """Open keys never announced (held by a mute that ended, inhibition, learning): announce."""
@@ -353,9 +380,10 @@ def flush_digest(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute],
 # --- message text ---------------------------------------------------------------------------------
 
 _HEAD = {"opened": "OPEN", "late": "OPEN (held back until now)", "backlog": "OPEN",
-         "reminder": "STILL BAD", "resolved": "RESOLVED", "unstable": "UNSTABLE"}
+         "reminder": "STILL BAD", "resolved": "RESOLVED", "unstable": "UNSTABLE",
+         "relearned": "RESOLVED (re-learned)"}
 _KIND = {"opened": "firing", "late": "firing", "backlog": "firing", "reminder": "reminder",
-         "resolved": "resolved", "unstable": "unstable"}
+         "resolved": "resolved", "unstable": "unstable", "relearned": "resolved"}
 
 
 def _when(t: float | None, zone: str | None = "UTC") -> str:
@@ -382,6 +410,9 @@ def _describe(e: _Event, zones: Mapping[str, str | None] | None = None) -> str:
     if e.what == "resolved":
         lines.append(f"  resolved after {s.resolve_after_files} good files; open since "
                      f"{_when(s.opened_at, zone)}")
+    elif e.what == "relearned":
+        lines.append(f"  resolved without good files: {e.note}; open since "
+                     f"{_when(s.opened_at, zone)}")
     elif e.what == "unstable":
         lines.append("  this alert keeps opening and resolving: it stays open and quiet until "
                      "it has been stable for a while")
@@ -393,7 +424,7 @@ def _describe(e: _Event, zones: Mapping[str, str | None] | None = None) -> str:
     elif e.what == "backlog":
         lines.append(f"  open since {_when(s.opened_at, zone)} (found while catching up on files "
                      f"recorded earlier)")
-    if s.hint and e.what != "resolved":
+    if s.hint and e.what not in ("resolved", "relearned"):
         lines.append(f"  {s.hint}")
     return "\n".join(lines)
 
@@ -430,7 +461,9 @@ def _title(rig: str, events: list[_Event]) -> str:
                 "resolved": f"{_subject(s)} resolved: {'files are ' if s.measure == 'file' else ''}"
                             f"{back}",
                 "unstable": f"{_subject(s)} keeps going bad and good again (the alert stays "
-                            f"open, quietly)"}[e.what]
+                            f"open, quietly)",
+                "relearned": f"{_subject(s)} resolved: its normal is being learned again"
+                }[e.what]
         return f"qcd {rig}: {text}"[:160]
     by_measure: dict[str, set[int]] = {}
     for e in events:
@@ -444,7 +477,7 @@ def _title(rig: str, events: list[_Event]) -> str:
         elif chans:
             label += f" on channel {min(chans)}"
         names.append(label)
-    n_res = sum(e.what == "resolved" for e in events)
+    n_res = sum(e.what in ("resolved", "relearned") for e in events)
     n_rem = sum(e.what == "reminder" for e in events)
     n_new = len(events) - n_res - n_rem
     parts = [f"{n} {label}" for n, label in ((n_new, "new alerts" if n_new > 1 else "new alert"),

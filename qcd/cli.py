@@ -206,6 +206,35 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--html", type=Path, metavar="FILE", help="also write the page it attaches")
     _common(p)
 
+    p = sub.add_parser("relearn", help="accept a rig's new normal after an intentional change",
+                       description="After an intentional change at a rig (new headstage, moved "
+                                   "rig, new filter setting): the references of its drift "
+                                   "charts learn again from the next files, its open history "
+                                   "alerts on those measures resolve with a message saying "
+                                   "why, and a logbook note marks it on the trend plots. An "
+                                   "alert that resolves by itself never re-learns.",
+                       epilog="Example: qcd relearn rig-b new headstage --measure noise_rms")
+    p.add_argument("rig", metavar="RIG", help="a configured rig")
+    p.add_argument("why", nargs="*", metavar="WHY", help="what changed (no quotes needed)")
+    p.add_argument("--measure", action="append", metavar="M",
+                   help="only this measure (repeat for more; default: every measure)")
+    p.add_argument("--channel", type=int, metavar="N", help="only channel N")
+    _common(p)
+
+    p = sub.add_parser("rules", help="the history rules' false-alarm rates; check rule files",
+                       description="Without --check: for each history rule, its limit and how "
+                                   "often it signals on a rig in control, in files and in days "
+                                   "at each rig's observed file rate (last 30 days). With "
+                                   "--check: check rule files as the service loads them (known "
+                                   "measures and modes, limits in the measure's quantity), each "
+                                   "after the packaged default rules, as qcd.toml's 'rules' "
+                                   "list would load it.",
+                       epilog="Examples: qcd rules --config qcd.toml; "
+                              "qcd rules --check rules/my-lab.toml")
+    p.add_argument("--check", nargs="+", type=Path, metavar="FILE",
+                   help="rule files to check (exit 2 at the first wrong rule)")
+    _common(p)
+
     p = sub.add_parser("init", help="write a commented starter qcd.toml",
                        description="Write a starter config with one example rig to edit.",
                        epilog="Example: qcd init qcd.toml")
@@ -232,15 +261,6 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--days", type=int, default=21, metavar="N", help="days of recordings (21)")
     _common(p)
 
-    p = sub.add_parser("rules", help="check rule files",
-                       description="Check rule files as the service loads them: known measures "
-                                   "and modes, limits in the measure's quantity. Each file is "
-                                   "checked after the packaged default rules, as qcd.toml's "
-                                   "'rules' list would load it.",
-                       epilog="Example: qcd rules --check rules/my-lab.toml")
-    p.add_argument("--check", nargs="+", type=Path, metavar="FILE",
-                   help="rule files to check (exit 2 at the first wrong rule)")
-    _common(p)
     return parser
 
 
@@ -769,6 +789,58 @@ def _cmd_digest(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_relearn(args: argparse.Namespace) -> int:
+    import time
+
+    from qcd.pipeline import relearn
+    from qcd.results import MEASURES
+    from qcd.ruleset import load_rules
+    from qcd.store import Store
+    from qcd.config import find_config, load_config
+    cfg = load_config(find_config(args.config))
+    cfg.rig(args.rig)
+    for m in args.measure or ():
+        if m not in MEASURES:
+            raise ConfigError(None, "--measure", f"unknown measure {m!r}")
+    rules = load_rules(cfg.rules)
+    now = time.time()
+    why = " ".join(" ".join(args.why).split())
+    with Store(cfg.database) as store:
+        charts, resolved = relearn(store, rules, args.rig, now, now, measures=args.measure,
+                                   channel=args.channel, why=why,
+                                   zones={args.rig: cfg.rig(args.rig).timezone})
+    what = ", ".join(sorted({f"{m} ch {c}" for _, c, m, _ in charts})) or "no chart stored yet"
+    print(f"{args.rig}: re-learning from the next files: {what}; "
+          f"{len(resolved)} open alert(s) resolved")
+    return EXIT_OK
+
+
+def _cmd_rules(args: argparse.Namespace) -> int:
+    if args.check:
+        return _rules_check(args.check)
+    import time
+
+    from qcd.charts import budget_lines
+    from qcd.config import find_config, load_config
+    from qcd.ruleset import load_rules
+    from qcd.store import Store
+    cfg = load_config(find_config(args.config))
+    rules = load_rules(cfg.rules)
+    now = time.time()
+    rates = {}
+    if not cfg.database.exists():
+        print(f"no database yet at {cfg.database}: rates per day need the rigs' files",
+              file=sys.stderr)
+    else:
+        with Store(cfg.database) as store:
+            for rig in cfg.rigs:
+                n = len(store.files(rig=rig.name, since=now - 30 * 86400.0))
+                rates[rig.name] = n / 30.0
+    for line in budget_lines(rules, rates):
+        print(line)
+    return EXIT_OK
+
+
 def _cmd_init(args: argparse.Namespace) -> int:
     from qcd.config import starter_config
 
@@ -799,12 +871,6 @@ def _cmd_notify_test(args: argparse.Namespace) -> int:
     return EXIT_OK if ok == len(results) else EXIT_FAILED
 
 
-def _cmd_rules(args: argparse.Namespace) -> int:
-    if args.check:
-        return _rules_check(args.check)
-    raise ConfigError(None, "rules", "name the rule files to check: qcd rules --check FILE")
-
-
 def _rules_check(paths: list[Path]) -> int:
     """``qcd rules --check FILE...``: load each file as the service would; one line per file."""
     from qcd.ruleset import load_rules
@@ -828,8 +894,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 _COMMANDS = {
     "scan": _cmd_scan, "watch": _cmd_watch, "status": _cmd_status, "report": _cmd_report,
     "trend": _cmd_trend, "export": _cmd_export, "compare": _cmd_compare, "alerts": _cmd_alerts,
-    "mute": _cmd_mute, "note": _cmd_note, "digest": _cmd_digest, "init": _cmd_init,
-    "notify-test": _cmd_notify_test, "demo": _cmd_demo, "rules": _cmd_rules,
+    "mute": _cmd_mute, "note": _cmd_note, "digest": _cmd_digest, "relearn": _cmd_relearn,
+    "rules": _cmd_rules, "init": _cmd_init, "notify-test": _cmd_notify_test, "demo": _cmd_demo,
 }
 
 

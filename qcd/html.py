@@ -101,6 +101,7 @@ class Panel:
     marks: Sequence[float] = ()         # alert openings, Unix seconds
     log_axis: bool = False              # a log axis when the values span more than 20x
     notes: Sequence[tuple[float, str]] = ()   # logbook notes (Unix seconds, text)
+    band_label: str = "normal range"    # the legend's name of the band
 
 
 def date_axis(ax: Any, zone: tzinfo) -> None:
@@ -140,7 +141,8 @@ def trend_figure(panels: Sequence[Panel], *, shade: tuple[float, float],
         fl = np.asarray(p.flagged, dtype=bool)
         if p.band is not None:
             low, median, high = p.band
-            ax.axhspan(low, high, color="#4a9d5b", alpha=0.13, lw=0, label="reference band")
+            ax.axhspan(low, high, color="#4a9d5b", alpha=0.13, lw=0,
+                       label=p.band_label or "reference band")
             ax.axhline(median, color="#4a9d5b", lw=0.8, alpha=0.7)
         ax.plot(ts, vs, color="#4a6fa5", lw=0.9, marker="o", ms=2.6)
         if fl.any():

@@ -8,11 +8,12 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Callable, Iterable, Sequence
 
 import numpy as np
 
+from qcd import charts as _charts
 from qcd.measures.noise import MAD_SCALE
 from qcd.results import HINTS, MEASURES, SAFETY_NOTE, ChannelMeasures, FileMeasures, Measure
 from qcd.ruleset import INTAKE_RULE, HistoryRule, LimitRule, Rules
@@ -24,6 +25,8 @@ __all__ = ["Finding", "Chart", "CusumChart", "judge", "robust_z", "baseline", "e
 log = logging.getLogger(__name__)
 
 History = Callable[[str, int, str], Sequence[tuple[float, float]]]
+# (mode, channel, measure, rule) -> the chart's reference and state before this file, or None
+Charts = Callable[[str, int, str, HistoryRule], "_charts.ChartInput | None"]
 
 
 @dataclass(frozen=True)
@@ -55,6 +58,7 @@ class Finding:
     headline: str = ""           # a few words for a message title: 'below 1 GOhm', '3.1x its normal'
     channel_name: str = ""       # the channel's name (the rig's display name, else the header's)
     channels: tuple[int, ...] = ()   # file-level findings: the channels that broke the limit
+    chart: dict | None = field(default=None, compare=False)  # drift charts: state to store
 
     @property
     def key(self) -> str:
@@ -323,9 +327,12 @@ def _limit(rule: LimitRule, m: Measure) -> tuple[bool, bool] | None:
     return bad, clear_ok
 
 
-def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = ""
-           ) -> tuple[bool, bool, str] | None:
-    """(bad, clear, text) for one value against the history values (oldest first)."""
+def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = "",
+           ref_scale: float = 0.0) -> tuple[bool, bool, str] | None:
+    """(bad, clear, text) for one value against the history values (oldest first): robust z
+    against their median and scale. ``ref_scale``: the scale of the rig's reference (same
+    scale: log or not) floors the window's, which a few days of files can make far too small
+    when files of one day share its conditions (docs/methods.md §7)."""
     abs_floor = 0.0
     if rule.min_spread_abs is not None and not rule.log:
         si, dim = _to_si(1.0, unit)
@@ -345,26 +352,48 @@ def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = ""
         return None
     med, scale = baseline(past)
     floor = rule.min_spread if rule.log else max(rule.min_spread * abs(med), abs_floor)
-    scale = max(scale, floor, 1e-300)
+    scale = max(scale, floor, ref_scale, 1e-300)
     up, down = rule.side in ("up", "both"), rule.side in ("down", "both")
-    if rule.test == "z":
-        z = (x - med) / scale
-        bad = (up and z > rule.z) or (down and z < -rule.z)
-        clear_ok = not bad and (not up or z < rule.clear_z) and (not down or z > -rule.clear_z)
-        return bad, clear_ok, f"robust z {z:+.1f} (flag beyond {rule.z:g})"
-    series = [(p - med) / scale for p in past] + [(x - med) / scale]
+    z = (x - med) / scale
+    bad = (up and z > rule.z) or (down and z < -rule.z)
+    clear_ok = not bad and (not up or z < rule.clear_z) and (not down or z > -rule.clear_z)
+    return bad, clear_ok, f"robust z {z:+.1f} (flag beyond {rule.z:g})"
+
+
+def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, key: dict,
+           jumped: bool = False) -> tuple[bool, bool, str, str, dict] | None:
+    """(bad, clear, text, headline, chart to store) of one file on a sequential chart.
+
+    ``jumped``: a jump rule flagged this value. It is charted, but the chart is held at its
+    clear level (``charts.hold``), so that a few outliers alone cannot open a drift alert
+    after the jump's alert has resolved; a drift that goes on takes the chart up again."""
+    store = dict(key, start_at=ci.start_at, state=ci.state.to_dict(),
+                 ref=None if ci.ref is None or ci.provisional else ci.ref.to_dict())
+    if ci.ref is None:
+        return False, True, ci.learning, "", store
+    x = _charts.standardise(value, ci.ref, rule)
+    if x is None:
+        return None
+    new = _charts.step(rule, ci.state, x, ci.at)
+    bad, clear, stat, lim = _charts.verdict(rule, new)
+    if jumped:
+        new = _charts.hold(rule, new)
+    store["state"] = _charts.replay(rule, new, ci.tail, ci.ref).to_dict()
+    ref = ci.ref
+    med = ref.median
+    where = f"reference median {med:.3g} {unit} from {ref.n} files".replace("  ", " ")
     if rule.test == "ewma":
-        chart = ewma(series, rule.lam, target=0.0, sigma=1.0, L=rule.L)
-        s, u = chart.statistic[-1], chart.upper[-1]
-        bad = (up and s > u) or (down and s < -u)
-        clear_ok = not bad and (not up or s < 0.75 * u) and (not down or s > -0.75 * u)
-        return bad, clear_ok, f"EWMA {s:+.2f} sigma (limit {u:.2f})"
-    cs = cusum(series, 0.0, rule.k, rule.h)
-    sp, sm = cs.upper[-1], cs.lower[-1]
-    bad = (up and sp > rule.h) or (down and sm > rule.h)
-    clear_ok = not bad and (not up or sp < rule.h / 2) and (not down or sm < rule.h / 2)
-    stat = sp if rule.side == "up" else sm if rule.side == "down" else max(sp, sm)
-    return bad, clear_ok, f"CUSUM {stat:.2f} sigma (limit {rule.h:g})"
+        sd = math.sqrt(rule.lam / (2.0 - rule.lam))
+        stat_text = f"EWMA {stat / sd:.1f} sigma, limit {lim / sd:.1f}"
+    else:
+        stat_text = f"CUSUM {stat:.1f} sigma, limit {lim:.1f}"
+    ratio = (f"{value / med:.2g}x its reference median" if ref.log and med > 0 else
+             f"{value - med:+.3g} {unit} from its reference median")
+    text = f"{ratio} of {_charts.span_text(ref)} / {stat_text}; {where}"
+    if ci.provisional:
+        text += (f"; provisional reference, limit widened {ref.widen:.2g}x while "
+                 f"{ci.learning}")
+    return bad, clear, text, ratio, store
 
 
 def _with(m: Measure, value: float) -> Measure:
@@ -460,12 +489,15 @@ def _file_finding(rule: LimitRule, results: list[tuple[ChannelMeasures, Measure,
         channels=tuple(sorted(r[0].index for r in bad)))
 
 
-def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: float
-          ) -> list[Finding]:
+def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: float,
+          charts: Charts | None = None) -> list[Finding]:
     """Every evaluated (channel, measure, rule) of one file as a Finding, plus rig-level ones.
 
     ``history(mode, channel, measure)`` gives the rig's [(recorded_at, value)] of good,
-    unflagged files before this one.
+    unflagged files before this one (the 'z' rules' window). ``charts(mode, channel,
+    measure, rule)`` gives an 'ewma'/'cusum' rule's reference and chart before this file
+    (qcd.charts.ChartInput); their findings carry the chart after it (``Finding.chart``).
+    Without ``charts`` the sequential rules are not evaluated.
     """
     st = rules.settings
     path = str(fm.path)
@@ -525,13 +557,41 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
             if not math.isfinite(value):
                 continue
             jump = ""
+            inputs = {r.name: charts(mode, ch.index, m.name, r) for r in hist_rules
+                      if charts is not None and r.test in _charts.CHART_TESTS}
+            refs = {ci.ref.log: ci.ref.scale for ci in inputs.values()     # learned ones
+                    if ci is not None and ci.ref is not None and not ci.provisional}
             for rule in sorted(hist_rules, key=lambda r: r.test != "z"):    # z rules first
-                ref = _precise(history, mode, ch, m.name, st.history_files, rule.side) \
-                    if _se(ch, m.name) else points
-                res = _interval(lambda x: _drift(rule, x, ref, m.unit), m, _se(ch, m.name))
-                if res is None:
-                    continue
-                bad, clear_ok, stat_text = res
+                chart_row, headline = None, ""
+                if rule.test in _charts.CHART_TESTS:
+                    ci = inputs.get(rule.name)
+                    if ci is None:
+                        continue
+                    res = _chart(rule, value, ci, m.unit,
+                                 dict(mode=mode, channel=ch.index, measure=m.name,
+                                      rule=rule.name), jumped=bool(jump))
+                    if res is None:
+                        continue
+                    bad, clear_ok, stat_text, headline, chart_row = res
+                    if ci.ref is None:
+                        out.append(Finding(
+                            rig=rig_name, mode=mode, channel=ch.index, measure=m.name,
+                            rule=rule.name, kind="drift", bad=False, severity=rule.severity,
+                            value=value, unit=m.unit, limit_text=stat_text, clear=True,
+                            open_after_files=rule.open_after_files,
+                            resolve_after_files=rule.resolve_after_files,
+                            remind_h=rule.remind_h, learning=True, path=path,
+                            channel_name=_named(ch), chart=chart_row))
+                        continue
+                else:
+                    ref = _precise(history, mode, ch, m.name, st.history_files, rule.side) \
+                        if _se(ch, m.name) else points
+                    res = _interval(lambda x: _drift(rule, x, ref, m.unit,
+                                                     refs.get(rule.log, 0.0)),
+                                    m, _se(ch, m.name))
+                    if res is None:
+                        continue
+                    bad, clear_ok, stat_text = res
                 if rule.test == "z" and bad:
                     jump = rule.name
                 elif bad and jump:
@@ -544,19 +604,23 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     groups = noise_hints(ch, mode, history, rules) if groups is None else groups
                     g = groups or ([_HINT_MEASURES[m.name]] if m.name in _HINT_MEASURES else [])
                     hint = _hint_text(g)
-                text = f"{_normal_range(past, m.unit)}; {stat_text}"
-                med = float(np.median(past))
-                headline = (f"{value / med:.2g}x its normal" if med > 0 and value > 0 else
-                            f"{value - med:+.3g} {m.unit} from its normal")
-                if learning:
-                    text += f"; learning ({len(past)} of {st.learning_files} files)"
+                if chart_row is not None:
+                    text = stat_text
+                else:
+                    text = f"{_normal_range(past, m.unit)}; {stat_text}"
+                    med = float(np.median(past))
+                    headline = (f"{value / med:.2g}x its normal" if med > 0 and value > 0 else
+                                f"{value - med:+.3g} {m.unit} from its normal")
+                    if learning:
+                        text += f"; learning ({len(past)} of {st.learning_files} files)"
                 out.append(Finding(
                     rig=rig_name, mode=mode, channel=ch.index, measure=m.name, rule=rule.name,
                     kind="drift", bad=bad, severity=rule.severity, value=value, unit=m.unit,
                     limit_text=text, hint=hint, clear=clear_ok,
                     open_after_files=rule.open_after_files,
                     resolve_after_files=rule.resolve_after_files, remind_h=rule.remind_h,
-                    learning=learning, path=path, headline=headline, channel_name=_named(ch)))
+                    learning=learning and chart_row is None, path=path, headline=headline,
+                    channel_name=_named(ch), chart=chart_row))
     for rule in rules.limits:
         if rule.name in per_file:
             out.append(_file_finding(rule, per_file[rule.name], rig_name, mode, path))

@@ -12,14 +12,16 @@ from __future__ import annotations
 
 import hashlib
 import logging
+import math
 import os
 from dataclasses import dataclass, field, replace
-from datetime import datetime
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
-from qcd import alerts
+from qcd import alerts, history
 from qcd.analyze import analyze_path
+from qcd.charts import ChartInput, ChartState, Reference, replay, reset
 from qcd.errors import StoreError, printable
 from qcd.judge import Finding, judge
 from qcd.results import ChannelMeasures, FileMeasures, file_time
@@ -30,12 +32,12 @@ if TYPE_CHECKING:
     from qcd.config import RigConfig
     from qcd.notify import Sender
     from qcd.recording import Recording
-    from qcd.ruleset import Rules
+    from qcd.ruleset import HistoryRule, RuleSettings, Rules
     from qcd.store import Store
 
 __all__ = ["measure", "measure_all", "watched_channels", "process", "commit", "error_file",
-           "flush_digest", "tick", "judge_file", "scan", "ScanResult", "recording_order",
-           "DIGEST_FILES", "in_rig_zone"]
+           "flush_digest", "tick", "judge_file", "chart_input", "relearn", "scan", "ScanResult",
+           "recording_order", "DIGEST_FILES", "in_rig_zone"]
 
 # More files than this in one ``scan`` is a backlog: one digest instead of a message per file.
 DIGEST_FILES = 20
@@ -153,11 +155,87 @@ def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now
     """The judge with the rig's history bound to the store (files recorded before this one)."""
     st = rules.settings
     name, before = rig.name, file_time(fm.recorded_at, fm.mtime, now)
+    stored = store.charts(name, fm.mode) if fm.status == "ok" else {}
+    starts: dict[tuple[int, str], float] = {}
+    for (_, ch, measure, _), row in stored.items():        # a re-learn: history starts again
+        if row["start_at"] is not None:
+            starts[(ch, measure)] = max(starts.get((ch, measure), -math.inf), row["start_at"])
 
     def history(mode: str, channel: int, measure: str) -> list[tuple[float, float]]:
         return store.history(name, mode, channel, measure, limit=st.history_files,
-                             days=st.history_days, before=before)
-    return judge(fm, name, history, rules, now)
+                             days=st.history_days, before=before,
+                             after=starts.get((channel, measure)))
+
+    def charts(mode: str, channel: int, measure: str, rule: HistoryRule) -> ChartInput | None:
+        row = stored.get((mode, channel, measure, rule.name)) or {}
+        return chart_input(store, name, mode, channel, measure, rule, st, before,
+                           row.get("start_at", starts.get((channel, measure))),
+                           row.get("state"), row.get("ref"))
+    return judge(fm, name, history, rules, now, charts)
+
+
+def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
+                rule: HistoryRule, st: RuleSettings, at: float, start_at: float | None,
+                state: dict | None, ref: dict | None) -> ChartInput | None:
+    """The reference and the chart of one rule just before a file recorded ``at``.
+
+    The reference: the stored one (fixed once learned); while there is none, learned from the
+    good, unflagged files recorded since ``start_at`` (qcd.history.learn); with
+    ``follow_days``, from the good files older than the guard gap. The chart is stepped through
+    stored files it has not seen yet, in recording order; a file recorded before the chart's
+    latest (a backlog) gets the chart as it stood at its time, and the later files are stepped
+    through again after it (``ChartInput.tail``). None: the file lies before the chart's start.
+    """
+    reference = Reference.from_dict(ref)
+    if st.follow_days > 0:
+        rows = store.history(rig, mode, channel, measure,
+                             limit=max(4 * st.reference_files, 400), days=math.inf,
+                             before=at - st.follow_days * 86400.0, after=start_at,
+                             skip=st.follow_files)
+        followed = history.follow(rows, files=st.reference_files, days=st.reference_days,
+                                  log=rule.log, min_spread=rule.min_spread,
+                                  margin=st.reference_margin)
+        reference = followed or reference
+    if reference is None:
+        rows = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
+                                    limit=max(4 * st.reference_files, 400))
+        reference = history.learn(rows, files=st.reference_files, days=st.reference_days,
+                                  log=rule.log, min_spread=rule.min_spread,
+                                  margin=st.reference_margin)
+        learning = history.progress_text(rows, st.reference_files, st.reference_days)
+        if reference is None:
+            young = history.provisional(rows, files=st.learning_files, log=rule.log,
+                                        min_spread=rule.min_spread,
+                                        margin=st.reference_margin,
+                                        days=min(history.PROVISIONAL_DAYS, st.reference_days))
+            if young is None:
+                return ChartInput(None, ChartState.from_dict(state), at, start_at=start_at,
+                                  learning=learning)
+            return _charted(store, rig, mode, channel, measure, rule, young, state, at,
+                            start_at, learning)
+        state = None          # charted again from the full reference's end, in its units
+    return _charted(store, rig, mode, channel, measure, rule, reference, state, at, start_at)
+
+
+def _charted(store: Store, rig: str, mode: str, channel: int, measure: str, rule: HistoryRule,
+             reference: Reference, state: dict | None, at: float, start_at: float | None,
+             learning: str = "") -> ChartInput | None:
+    chart = ChartState.from_dict(state)
+    if chart.since is None and chart.last_at is None:
+        chart = ChartState(since=reference.last_at, last_at=None)   # charts after the reference
+    since = chart.since
+    if since is not None and at <= since:
+        return None
+    latest = chart.last_at if chart.last_at is not None else since
+    tail: list[tuple[float, float]] = []
+    if latest is not None and at < latest:                # a backlog file: replay around it
+        tail = store.chart_points(rig, mode, channel, measure, after=at)
+        chart = ChartState(since=since)
+        latest = since
+    before = store.chart_points(rig, mode, channel, measure, after=latest, before=at)
+    chart = replay(rule, chart, before, reference)
+    return ChartInput(reference, chart, at, tuple(tail), start_at=start_at, learning=learning,
+                      provisional=bool(learning))
 
 
 def _changed(before: dict[str, dict], after: dict[str, alerts.AlertState]) -> list[dict]:
@@ -213,6 +291,64 @@ def _end_resolved_mutes(store: Store, now: float) -> None:
             log.info("mute %s (%s) ended: its alerts resolved", mute.id, mute.reason)
 
 
+def _charts_after(findings: list[Finding], before: dict[str, dict],
+                  after: dict[str, alerts.AlertState], at: float) -> list[dict]:
+    """The drift charts to store after a file: as the judge stepped them, and started again
+    (``charts.reset``) where this file resolved the chart's alert."""
+    out = []
+    for f in findings:
+        if f.chart is None:
+            continue
+        row = dict(f.chart)
+        s = after.get(f.key)
+        if s is not None and s.state == "ok" and before.get(f.key, {}).get("state") == "open" \
+                and row.get("ref") is not None:
+            row["state"] = reset(ChartState.from_dict(row["state"]), at).to_dict()
+        out.append(row)
+    return out
+
+
+def relearn(store: Store, rules: Rules, rig: str, at: float, now: float, *,
+            measures: Iterable[str] | None = None, channel: int | None = None,
+            why: str = "", sender: Sender | None = None,
+            zones: dict[str, str | None] | None = None) -> tuple[list[tuple], list[str]]:
+    """Accept a rig's new normal: the references of its drift charts (of ``measures`` /
+    ``channel``, else all) learn again from files recorded at or after ``at``; the open
+    history alerts on those keys resolve with a message saying why; a logbook note (kind
+    'relearn') marks it on the trend plots. Returns (chart keys, resolved alert keys).
+
+    An alert that resolves by itself never re-learns: only this call does.
+    """
+    history_rules = {r.name: r for r in rules.history}
+    wanted = None if measures is None else set(measures)
+    keys = []
+    for mode_key in {(a["mode"], a["channel"], a["measure"], a["rule"])
+                     for a in store.alert_states(rig).values()}:
+        mode, ch, measure, rule = mode_key
+        if rule in history_rules and history_rules[rule].test in ("ewma", "cusum"):
+            keys.append((mode, int(ch), measure, rule))
+    when = datetime.fromtimestamp(at, timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    reason = (f"the rig's normal is re-learned from files recorded from {when}"
+              + (f" ({why})" if why else ""))
+    with store.transaction():     # alert states read and written with no other writer between
+        charts = store.relearn(rig, at, measures=wanted, channel=channel, keys=keys, now=now)
+        what = ", ".join(sorted({m for _, _, m, _ in charts})) or "nothing stored yet"
+        states = store.alert_states(rig)
+        resolve_keys = [k for k, st in states.items()
+                        if st.get("rule") in history_rules
+                        and (wanted is None or st.get("measure") in wanted)
+                        and (channel is None or st.get("channel") == channel)
+                        and st.get("state") not in ("ok", None)]
+        after, messages = alerts.resolve(states, resolve_keys, now, reason, zones=zones)
+        changed = _changed(states, after)
+        store.add_note(rig, f"re-learn of {what}" + (f": {why}" if why else ""), at,
+                       kind="relearn", now=now)
+        if changed or messages:
+            store.commit_alerts(changed, messages, now=now)
+    _deliver(store, sender, now)
+    return charts, resolve_keys
+
+
 def commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float,
            sender: Sender | None = None, *, batch: bool = False) -> FileMeasures:
     """Judge a measured file, advance its rig's alerts and store it all in one transaction.
@@ -247,15 +383,17 @@ def _commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: f
                                           rules.settings, batch=batch,
                                           zones={name: rig.timezone})
         changed = _changed(before, states)
+        charts = _charts_after(findings, before, states, file_time(fm.recorded_at, fm.mtime,
+                                                                     now))
     except StoreError:
         raise
     except Exception as e:
         log.exception("judging %s", fm.path)
         fm = replace(fm, status="error", error_kind="internal",
                      error=f"{fm.path}: internal error while judging ({type(e).__name__}: {e})")
-        findings, changed, messages = [], [], []
+        findings, changed, messages, charts = [], [], [], []
     store.commit_file(name, fm, analysed_at=now, findings=findings, alert_states=changed,
-                      messages=messages)
+                      messages=messages, charts=charts)
     if changed:
         _end_resolved_mutes(store, now)
     return fm

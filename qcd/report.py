@@ -44,9 +44,11 @@ KEY_MEASURES = shown("report")
 _PLOTTED = shown("plot")
 NORMAL_SPREADS = 3.0        # reference band = median +- 3 robust SD (1.4826 MAD)
 # What the reference band is, said in the report's header (keep with reference_band()).
-BAND_TEXT = (f"reference band = median \u00b1 {NORMAL_SPREADS:g} robust SD (1.4826 MAD) of the "
-             f"rig's unflagged files of the last 30 days; a value is high or low when qcd's "
-             f"rules flagged it")
+BAND_TEXT = (f"reference band = the drift charts' reference: median \u00b1 {NORMAL_SPREADS:g} "
+             f"robust SD of the reference files each plot names (on log values for positive "
+             f"measures); before a reference is learned, median \u00b1 {NORMAL_SPREADS:g} robust "
+             f"SD (1.4826 MAD) of the rig's unflagged files of the last 30 days; a value is "
+             f"high or low when qcd's rules flagged it")
 HISTORY_DAYS = 30.0
 _SPARKS = "\u2581\u2582\u2583\u2584\u2585\u2586\u2587\u2588"
 
@@ -111,6 +113,8 @@ class Trend:
     points: tuple[tuple[float, float, bool], ...]    # (recorded_at, value, flagged), oldest first
     alerts_opened: tuple[float, ...] = ()
     channel_name: str = ""
+    band: tuple[float, float, float] | None = None   # (low, median, high) the plot shades
+    band_label: str = ""       # what the band is: the drift charts' reference, else normal range
 
 
 @dataclass(frozen=True)
@@ -261,12 +265,19 @@ def _key_measures(store: Store, rig: str, now: float, opened: list[dict],
     the series of the first six plotted ones with their alert openings."""
     t0 = now - HISTORY_DAYS * 86400.0
     lines, trends = [], []
+    refs = store.charts(rig)
     for measure in KEY_MEASURES:
         for ch in list(names)[:4]:
             rows = _series(store, rig, measure, ch, t0)
             if not rows:
                 continue
             ml = replace(_measure_line(rows, measure, ch), channel_name=names[ch])
+            band, label = _reference_band(refs, ch, measure)
+            if band is not None:            # one band everywhere: the drift charts' reference
+                ml = replace(ml, low=band[0], median=band[1], high=band[2])
+            elif ml.low is not None:
+                band, label = (ml.low, ml.median, ml.high), \
+                    f"recent files (median +- {NORMAL_SPREADS:g} robust SD, no reference yet)"
             lines.append(ml)
             if measure in _PLOTTED and len(trends) < 6:
                 marks = sorted({a["opened_at"] for a in opened if a.get("opened_at")
@@ -274,8 +285,24 @@ def _key_measures(store: Store, rig: str, now: float, opened: list[dict],
                                 and a.get("channel") in (None, ch)})
                 trends.append(Trend(measure, ch, ml.unit,
                                     tuple((r[0], r[1], bool(r[3])) for r in rows), tuple(marks),
-                                    names[ch]))
+                                    names[ch], band, label))
     return lines, trends
+
+
+def _reference_band(refs: dict[tuple, dict], channel: int, measure: str
+                    ) -> tuple[tuple[float, float, float] | None, str]:
+    """The drift charts' reference of a (channel, measure) as a band: median and +-3 robust SD
+    (on the log scale for a log reference), and its label naming the reference files' days;
+    (None, '') when no chart of it has a learned reference."""
+    from qcd.charts import Reference, span_text
+    found = [(row.get("updated_at") or 0.0, row["ref"]) for (mode, ch, m, rule), row
+             in refs.items() if ch == channel and m == measure and row.get("ref")]
+    if not found:
+        return None, ""
+    ref = Reference.from_dict(max(found, key=lambda x: x[0])[1])
+    c, w = ref.center, NORMAL_SPREADS * ref.scale
+    band = (math.exp(c - w), math.exp(c), math.exp(c + w)) if ref.log else (c - w, c, c + w)
+    return band, f"reference {span_text(ref)} ({ref.n} files, +-{NORMAL_SPREADS:g} robust SD)"
 
 
 def _latest_spectrum(store: Store, rig: str, files: list[dict], now: float
@@ -755,8 +782,9 @@ def _trend_images(rig: RigReport, now: float, since: float) -> list[str]:
         panels.append(Panel(
             f"{info.label} ({t.measure}, ch {t.channel}{name})", pretty_unit(unit),
             [p[0] for p in t.points], [p[1] * k for p in t.points], [p[2] for p in t.points],
-            (m.low * k, m.median * k, m.high * k) if m.low is not None else None,
-            t.alerts_opened, info.log_axis, tuple((n["at"], n["text"]) for n in rig.notes)))
+            tuple(b * k for b in t.band) if t.band is not None else None,
+            t.alerts_opened, info.log_axis, tuple((n["at"], n["text"]) for n in rig.notes),
+            band_label=t.band_label))
     out = [trend_figure([p], shade=(since, now), zone=get_zone(rig.timezone),
                         zone_label=rig.zone_label or "UTC") for p in panels]
     return [u for u in out if u]

@@ -5,8 +5,9 @@ and [[history]] tables (a rig against its own history). Later files override ear
 the same name; ``enabled = false`` drops one. qcd.judge reads these dataclasses and never TOML.
 Every rule is checked at load: a known measure (qcd.results.MEASURES), known modes, limits in
 a unit of the measure's quantity; a wrong rule is a ConfigError, never a rule skipped later.
-Imports qcd.config (the TOML reader, the packaged rules path), qcd.results (measure names and
-modes), qcd.units and qcd.errors.
+A chart rule's ``arl0_files`` (its in-control run length) sets its L or h through
+qcd.runlength. Imports qcd.config (the TOML reader, the packaged rules path), qcd.results
+(measure names and modes), qcd.runlength, qcd.units and qcd.errors.
 """
 from __future__ import annotations
 
@@ -18,6 +19,7 @@ from typing import Any
 from qcd.config import default_rules_path, read_toml
 from qcd.errors import ConfigError
 from qcd.results import MEASURES, MODES
+from qcd.runlength import cusum_h_for, ewma_L_for
 from qcd.units import parse_quantity
 
 __all__ = ["RuleSettings", "LimitRule", "HistoryRule", "Rules", "load_rules", "rule_names",
@@ -39,6 +41,11 @@ class RuleSettings:
     flap_changes: int = 6            # >= this many open/resolve changes ...
     flap_window: int = 21            # ... in the last N files: one "unstable" message
     intake_open_after_files: int = 1   # error files: open at once
+    reference_files: int = 60        # the drift charts' reference: at least N good files ...
+    reference_days: float = 20.0     # ... over at least D days (qcd.history)
+    reference_margin: float = 1.5    # its limits widened 1 + margin/sqrt(days) (estimation)
+    follow_days: float = 0.0         # > 0: the reference follows the rig from files older ...
+    follow_files: int = 20           # ... than this many days and files (0: fixed reference)
 
 
 @dataclass(frozen=True)
@@ -82,6 +89,7 @@ class HistoryRule:
     L: float = 3.0                   # 'ewma': limit width in sigma
     k: float = 0.5                   # 'cusum': reference value (sigma units)
     h: float = 5.0                   # 'cusum': decision interval (sigma units)
+    arl0_files: float | None = None  # 'ewma'/'cusum': in-control run length L or h was set for
     min_spread: float = 0.05         # floor of the robust scale (log units, or fraction of median)
     min_spread_abs: float | None = None   # or an absolute floor in SI ('min_spread = "12 pA"')
     spread_dimension: str = ""
@@ -106,12 +114,17 @@ _SETTINGS_KEYS = {"history_files": ("history_files", int), "history_days": ("his
                   "resolve_after_files": ("resolve_after_files", int),
                   "remind_hours": ("remind_h", float),
                   "flap_changes": ("flap_changes", int), "flap_window": ("flap_window", int),
-                  "intake_open_after_files": ("intake_open_after_files", int)}
+                  "intake_open_after_files": ("intake_open_after_files", int),
+                  "reference_files": ("reference_files", int),
+                  "reference_days": ("reference_days", float),
+                  "reference_margin": ("reference_margin", float),
+                  "follow_days": ("follow_days", float), "follow_files": ("follow_files", int)}
+_MAY_BE_ZERO = {"follow_days", "follow_files", "reference_margin"}
 _LIMIT_KEYS = {"name", "measure", "modes", "above", "below", "equals", "absolute", "scope",
                "severity", "open_after_files", "resolve_after_files", "remind_hours",
                "clear_margin", "enabled"}
 _HISTORY_KEYS = {"name", "measure", "modes", "test", "side", "log", "z", "clear_z", "lambda", "L",
-                 "k", "h", "min_spread", "severity", "open_after_files", "resolve_after_files",
+                 "k", "h", "arl0_files", "min_spread", "severity", "open_after_files", "resolve_after_files",
                  "remind_hours", "enabled"}
 # Keys of earlier rule files and the names they have now: a clear error, never a silent default.
 _RENAMED = {"for_files": "open_after_files", "clear_files": "resolve_after_files",
@@ -298,6 +311,23 @@ def _history_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> Hi
         kw["clear_z"] = 0.75 * kw["z"]
     if not 0 < kw.get("lam", 0.2) <= 1:
         raise ConfigError(path, f"{where}.lambda", f"must be in (0, 1], got {kw['lam']!r}")
+    if "arl0_files" in t:
+        if test == "z":
+            raise ConfigError(path, f"{where}.arl0_files", "only an 'ewma' or 'cusum' rule has a "
+                                                           "run length")
+        given = "L" if test == "ewma" else "h"
+        if given in t:
+            raise ConfigError(path, f"{where}.{given}", f"give either arl0_files or {given}, "
+                                                        f"not both ({given} follows from it)")
+        arl0 = _rule_number(path, where, "arl0_files", t["arl0_files"], float)
+        if arl0 < 2:
+            raise ConfigError(path, f"{where}.arl0_files", f"must be at least 2, got {arl0!r}")
+        kw["arl0_files"] = arl0
+        one = side if side != "both" else "both"
+        if test == "ewma":
+            kw["L"] = ewma_L_for(arl0, kw.get("lam", 0.2), side=one)
+        else:
+            kw["h"] = cusum_h_for(arl0, kw.get("k", 0.5), side=one)
     if kw.get("clear_z", 3.0) > kw.get("z", 4.0):
         raise ConfigError(path, f"{where}.clear_z", "must not exceed z (the clear level lies short of the open level)")
     return HistoryRule(**kw)
@@ -325,7 +355,8 @@ def load_rules(paths: Any = ()) -> Rules:
             if key not in _SETTINGS_KEYS:
                 raise _unknown_key(path, "settings", key, _SETTINGS_KEYS)
             attr, kind = _SETTINGS_KEYS[key]
-            raw_settings[attr] = _rule_number(path, "settings", key, value, kind)
+            raw_settings[attr] = _rule_number(path, "settings", key, value, kind,
+                                              key not in _MAY_BE_ZERO)
         for kind in ("limit", "history"):
             items = data.get(kind, [])
             if not isinstance(items, list) or not all(isinstance(i, dict) for i in items):

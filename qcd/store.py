@@ -160,12 +160,24 @@ def _m004_notes(db: Database) -> None:
     db.execute("CREATE INDEX notes_rig_at ON notes (rig, at)")
 
 
+@MIGRATIONS(name="m005_charts")
+def _m005_charts(db: Database) -> None:
+    """The drift charts' state between files and the reference each one is measured against."""
+    db.execute("""CREATE TABLE charts (
+        rig TEXT NOT NULL, mode TEXT NOT NULL, channel INTEGER NOT NULL,
+        measure TEXT NOT NULL, rule TEXT NOT NULL,
+        start_at REAL,             -- the reference learns from files recorded at or after this
+        state_json TEXT NOT NULL DEFAULT '{}',    -- qcd.charts.ChartState
+        ref_json TEXT,             -- qcd.charts.Reference once learned (NULL: learning)
+        updated_at REAL NOT NULL,
+        PRIMARY KEY (rig, mode, channel, measure, rule))""")
+
+
 @MIGRATIONS(name="m006_path_bytes")
 def _m006_path_bytes(db: Database) -> None:
     """A file name that is not valid UTF-8 kept exactly: files.path holds it shown escaped
     (``caf\\xe9.abf``), files.path_bytes its bytes (NULL for every valid name)."""
     db.execute("ALTER TABLE files ADD COLUMN path_bytes BLOB")
-
 
 
 @MIGRATIONS(name="m007_outbox_attachment")
@@ -490,9 +502,11 @@ class Store:
     # --- history for the judge ----------------------------------------------------------------
 
     def history(self, rig: str, mode: str, channel: int, measure: str, *, limit: int = 30,
-                days: float = 30.0, before: float) -> list[tuple[float, float]]:
+                days: float = 30.0, before: float, after: float | None = None,
+                skip: int = 0) -> list[tuple[float, float]]:
         """[(recorded_at, value)] of ok, current files in [before - days, before) whose value of
-        this measure was not flagged, newest first, at most ``limit``.
+        this measure was not flagged, newest first, at most ``limit``; ``after``: only files
+        recorded at or after it (a re-learn); ``skip``: leave out the newest ``skip`` of them.
 
         The flag is per measure: a file whose hum was flagged still gives its seal resistance
         to the baseline, so a lasting condition on one measure cannot keep a rig learning.
@@ -502,9 +516,92 @@ class Store:
             "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
             "AND f.superseded = 0 AND f.recorded_at < ? AND f.recorded_at >= ? "
             "AND m.channel = ? AND m.name = ? AND m.flagged = 0 AND m.value IS NOT NULL "
-            "ORDER BY f.recorded_at DESC, f.id DESC LIMIT ?",
-            (rig, mode, before, before - days * 86400.0, channel, measure, int(limit)))
+            "ORDER BY f.recorded_at DESC, f.id DESC LIMIT ? OFFSET ?",
+            (rig, mode, before, max(before - days * 86400.0,
+                                    -math.inf if after is None else float(after)),
+             channel, measure, int(limit), int(skip)))
         return [(float(t), float(v)) for t, v in rows]
+
+    def reference_rows(self, rig: str, mode: str, channel: int, measure: str, *,
+                       start: float | None, before: float, limit: int
+                       ) -> list[tuple[float, float]]:
+        """[(recorded_at, value)] of ok, current files recorded in [start, before) whose value
+        of this measure was not flagged, OLDEST first, at most ``limit``: a reference to learn."""
+        rows = self._one_all(
+            "SELECT f.recorded_at, m.value FROM files f JOIN measures m ON m.file_id = f.id "
+            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.superseded = 0 "
+            "AND f.recorded_at < ? AND f.recorded_at >= ? AND m.channel = ? AND m.name = ? "
+            "AND m.flagged = 0 AND m.value IS NOT NULL "
+            "ORDER BY f.recorded_at, f.id LIMIT ?",
+            (rig, mode, before, -math.inf if start is None else float(start), channel, measure,
+             int(limit)))
+        return [(float(t), float(v)) for t, v in rows]
+
+    def chart_points(self, rig: str, mode: str, channel: int, measure: str, *,
+                     after: float | None, before: float | None = None
+                     ) -> list[tuple[float, float]]:
+        """[(recorded_at, value)] of every ok, current file (flagged or not) recorded in
+        (after, before), oldest first: what a drift chart steps through."""
+        rows = self._one_all(
+            "SELECT f.recorded_at, m.value FROM files f JOIN measures m ON m.file_id = f.id "
+            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.superseded = 0 "
+            "AND f.recorded_at > ? AND f.recorded_at < ? AND m.channel = ? AND m.name = ? "
+            "AND m.value IS NOT NULL ORDER BY f.recorded_at, f.id",
+            (rig, mode, -math.inf if after is None else float(after),
+             math.inf if before is None else float(before), channel, measure))
+        return [(float(t), float(v)) for t, v in rows]
+
+    def charts(self, rig: str, mode: str | None = None) -> dict[tuple, dict[str, Any]]:
+        """{(mode, channel, measure, rule): {start_at, state, ref, updated_at}} of a rig."""
+        sql, params = "SELECT * FROM charts WHERE rig = ?", [rig]
+        if mode is not None:
+            sql += " AND mode = ?"
+            params.append(mode)
+        out = {}
+        for r in self._rows(sql + " ORDER BY mode, channel, measure, rule", params):
+            out[(r["mode"], int(r["channel"]), r["measure"], r["rule"])] = {
+                "start_at": r["start_at"], "state": json.loads(r["state_json"] or "{}"),
+                "ref": json.loads(r["ref_json"]) if r["ref_json"] else None,
+                "updated_at": r["updated_at"]}
+        return out
+
+    def relearn(self, rig: str, at: float, *, measures: Iterable[str] | None = None,
+                channel: int | None = None, keys: Iterable[tuple] = (),
+                now: float) -> list[tuple]:
+        """Start the references of a rig's charts again from files recorded at or after ``at``
+        (optionally only of some measures or one channel): references forgotten, charts reset.
+        ``keys`` adds (mode, channel, measure, rule) charts not stored yet. Returns the keys."""
+        measures = None if measures is None else set(measures)
+        chosen = []
+        for key in list(self.charts(rig)) + list(keys):
+            mode, ch, measure, rule = key
+            if (measures is None or measure in measures) and (channel is None or ch == channel) \
+                    and key not in chosen:
+                chosen.append(key)
+        with self._write() as conn:
+            for mode, ch, measure, rule in chosen:
+                conn.execute(
+                    "INSERT INTO charts (rig, mode, channel, measure, rule, start_at, state_json, "
+                    "ref_json, updated_at) VALUES (?,?,?,?,?,?,?,NULL,?) "
+                    "ON CONFLICT (rig, mode, channel, measure, rule) DO UPDATE SET "
+                    "start_at = excluded.start_at, state_json = excluded.state_json, "
+                    "ref_json = NULL, updated_at = excluded.updated_at",
+                    (rig, mode, int(ch), measure, rule, float(at), _dumps({}), float(now)))
+        return chosen
+
+    @staticmethod
+    def _upsert_charts(conn: sqlite3.Connection, rig: str, charts: Iterable[dict],
+                       now: float) -> None:
+        for c in charts:
+            conn.execute(
+                "INSERT INTO charts (rig, mode, channel, measure, rule, start_at, state_json, "
+                "ref_json, updated_at) VALUES (?,?,?,?,?,?,?,?,?) "
+                "ON CONFLICT (rig, mode, channel, measure, rule) DO UPDATE SET "
+                "start_at = excluded.start_at, state_json = excluded.state_json, "
+                "ref_json = excluded.ref_json, updated_at = excluded.updated_at",
+                (rig, c["mode"], int(c["channel"]), c["measure"], c["rule"],
+                 _real(c.get("start_at")), _dumps(c.get("state") or {}),
+                 None if c.get("ref") is None else _dumps(c["ref"]), float(now)))
 
     def _one_all(self, sql: str, params: Iterable[Any] = ()) -> list[tuple]:
         with self._lock, self._reading():
@@ -541,7 +638,7 @@ class Store:
 
     def commit_file(self, rig: str, fm: FileMeasures, *, analysed_at: float,
                     findings: Iterable[Finding] = (), alert_states: Iterable[dict] = (),
-                    messages: Iterable[Message] = ()) -> int:
+                    messages: Iterable[Message] = (), charts: Iterable[dict] = ()) -> int:
         """Store everything of one processed file in ONE transaction; returns the file id.
 
         Content already stored for the rig (same sha256, current row) is not stored again
@@ -549,8 +646,11 @@ class Store:
         same path the row's size and mtime are brought up to date and its id returned; another
         path gets a row of its own, status 'skipped' pointing to the first (``extra.same_as``,
         no measures, so history counts the content once), or an error row like the first's.
-        Otherwise an older row of the same rig/path is marked superseded.
+        Otherwise an older row of the same rig/path is marked superseded. ``charts``: the drift
+        charts' new states ({mode, channel, measure, rule, start_at, state, ref}) after this
+        file.
         """
+        charts = list(charts)
         findings = list(findings)
         alert_states = list(alert_states)
         messages = list(messages)
@@ -591,6 +691,7 @@ class Store:
                 self._insert_finding(conn, file_id, f)
             self._upsert_alerts(conn, alert_states, analysed_at)
             self._queue(conn, messages, analysed_at)
+            self._upsert_charts(conn, rig, charts, analysed_at)
             if self._before_commit is not None:
                 self._before_commit()
         return file_id

@@ -30,9 +30,9 @@ LAYERS = (
     "measures.noise", "measures.drift", "measures.spectrum", "measures.transient",
     "measures.mains", "measures.humfit", "measures.zoom",
     "measures.steps", "measures.wholecell", "measures.testpulse",
-    "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "ruleset",
-    "judge", "alerts", "store", "notify", "plan", "blocks", "pulse", "analyze", "intake",
-    "workers", "pipeline", "watch",
+    "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "runlength", "ruleset",
+    "charts", "history", "judge", "alerts", "store", "notify", "plan", "blocks", "pulse",
+    "analyze", "intake", "workers", "pipeline", "watch",
     "status",
     "html", "report", "compare", "export", "digest", "synth", "demo", "cli", "__init__", "__main__",
 )

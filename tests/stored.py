@@ -102,3 +102,9 @@ def load_file(store: Store, file_id: int) -> FileMeasures | None:
         recorded_at=recorded, size=f["size"], mtime=f["mtime"], sha256=f["sha256"],
         channels=tuple(channels), notes=tuple(json.loads(f["notes"])),
         extra=json.loads(f["extra"]))
+
+
+def seed_chart(store: Store, rig: str, chart: dict, now: float = 0.0) -> None:
+    """Write one drift chart row as a re-learn or a file commit would (a known reference)."""
+    with store._write() as conn:
+        store._upsert_charts(conn, rig, [chart], now)

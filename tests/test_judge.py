@@ -209,16 +209,33 @@ def test_new_rig_learns_and_says_so(rules):
     assert "learning" not in _by_rule(fs) and not _by_rule(fs)["hum_jump"].learning
 
 
-def test_cusum_rule_flags_a_sustained_small_shift(rules):
-    # a 1.5-sigma shift held over 8 files trips CUSUM k=0.5, h=5 while robust z (4) stays quiet
-    rng = np.random.default_rng(3)
-    base = list(np.exp(rng.normal(0.0, 0.05, 22)))
-    shifted = list(np.exp(rng.normal(0.0, 0.05, 8) + 0.075))     # +1.5 sigma in log units
-    past = list(reversed(base + shifted))              # newest first
-    f = _by_rule(judge(_fm({"hum_rms": (math.exp(0.11), "pA")}), "r", _history_from(past),
-                       rules, 0))
-    assert f["hum_drift"].bad and not f["hum_jump"].bad
+def _charting(ref):
+    """A chart source: the reference given, the chart as the previous finding left it."""
+    from qcd.charts import ChartInput, ChartState
+    state = {}
 
+    def charts(mode, channel, measure, rule):
+        return ChartInput(ref, ChartState.from_dict(state.get(rule.name)), at=len(state) + 1.0)
+    return charts, state
+
+
+def test_cusum_rule_flags_a_sustained_small_shift(rules):
+    # a 1.5-sigma shift held file after file trips the CUSUM (k 0.5: +1 sigma a file, so past h
+    # within h + 1 files; Page 1954) while robust z (4) stays quiet
+    from qcd.charts import Reference
+    rule = next(r for r in rules.history if r.name == "hum_drift")
+    charts, state = _charting(Reference(0.0, 0.05, 40, 0.0, 0.0, log=True))
+    rng = np.random.default_rng(3)
+    past = list(np.exp(rng.normal(0.0, 0.05, 30)))
+    bad = []
+    for i in range(int(rule.h) + 2):
+        f = _by_rule(judge(_fm({"hum_rms": (math.exp(0.075), "pA")}), "r", _history_from(past),
+                           rules, 0, charts))
+        state[rule.name] = f["hum_drift"].chart["state"]
+        bad.append(f["hum_drift"].bad)
+        assert not f["hum_jump"].bad
+    assert bad[-1] and not bad[0]
+    assert "x its reference median" in f["hum_drift"].limit_text
 
 
 def test_rules_file_errors_name_file_and_key(tmp_path: Path):
@@ -278,7 +295,10 @@ def test_strong_non_mains_line_suggests_switching_supplies(rules):
 def test_a_jump_flagged_by_z_does_not_also_open_the_trend_rule(rules):
     rng = np.random.default_rng(1)
     past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
-    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0))
+    from qcd.charts import Reference
+    charts, _ = _charting(Reference(math.log(0.1), 0.05, 40, 0.0, 0.0, log=True))
+    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0,
+                       charts))
     assert f["hum_jump"].bad
     assert not f["hum_drift"].bad and not f["hum_drift"].clear
     assert "flagged by hum_jump" in f["hum_drift"].limit_text
@@ -373,3 +393,19 @@ def test_a_limit_counts_a_value_with_an_error_only_when_its_whole_interval_is_be
     f = check(-3.0, 15.0)
     assert not f.bad and not f.clear
     assert check(5.0, 1.0).clear and not check(5.0, 1.0).bad
+
+
+def test_a_learned_reference_floors_the_jump_rules_window_scale(rules):
+    # a window of files from one quiet day (log sd 0.05) makes 1.5x look like z = 8; the rig's
+    # reference, learned over weeks, says its files scatter by 0.2 in log units: z about 2
+    # (robust z, Iglewicz & Hoaglin 1993: the window's median, the wider of the two scales)
+    from qcd.charts import Reference
+    rng = np.random.default_rng(11)
+    past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
+    fm = _fm({"hum_rms": (0.15, "pA")})
+    alone = _by_rule(judge(fm, "r", _history_from(past), rules, 0))
+    assert alone["hum_jump"].bad
+    charts, _ = _charting(Reference(math.log(0.1), 0.2, 60, 0.0, 0.0, log=True))
+    floored = _by_rule(judge(fm, "r", _history_from(past), rules, 0, charts))
+    z = math.log(0.15 / float(np.median(past))) / 0.2
+    assert not floored["hum_jump"].bad and f"robust z {z:+.1f}" in floored["hum_jump"].limit_text

@@ -107,3 +107,36 @@ def test_qcd_trend_refuses_an_unknown_measure_and_a_negative_period(lab, capsys)
     assert "unknown measure 'noise_RMS'; did you mean noise_rms" in err
     assert main(["trend", "rig-b", "noise_rms", "--days", "-3"] + c) == 2
     assert "expected a number of days above 0, got -3" in capsys.readouterr().err
+
+
+def test_qcd_relearn_restarts_the_references_and_writes_a_relearn_note(lab, capsys):
+    c, db, now = lab
+    from qcd import pipeline
+    from qcd.config import RigConfig
+    from qcd.ruleset import load_rules
+    rules = load_rules()
+    with Store(db) as s:                  # one more file through the judge: its charts exist
+        pipeline.commit(_fm(9, now - 3600.0, 1.0), RigConfig("rig-b", ()), s, rules, now)
+        assert ("voltage_clamp", 0, "noise_rms", "noise_drift") in s.charts("rig-b")
+    assert main(["relearn", "rig-b", "new", "headstage", "--measure", "noise_rms"] + c) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("rig-b: re-learning from the next files: noise_rms ch 0")
+    with Store(db) as s:
+        row = s.charts("rig-b")[("voltage_clamp", 0, "noise_rms", "noise_drift")]
+        assert row["ref"] is None and row["start_at"] >= now
+        note = s.notes("rig-b")[-1]
+        assert note["kind"] == "relearn" and "new headstage" in note["text"]
+    assert main(["relearn", "rig-b", "--measure", "noise_rsm"] + c) == 2
+
+
+def test_qcd_rules_lists_each_history_rule_with_its_false_alarm_rate(lab, capsys):
+    c, db, now = lab
+    assert main(["rules"] + c) == 0
+    out = capsys.readouterr().out
+    # 6 files in the last 30 days: 0.2 a day; CUSUM h 6.16 -> 3000 files (qcd.runlength)
+    line = next(ln for ln in out.splitlines() if ln.startswith("hum_drift:"))
+    assert "one signal per 3,000 files (set for 3000)" in line
+    assert "rig-b: 0.2 files a day -> one signal per 15,000 days" in out
+    # robust z beyond 4, one tail: 1/P(Z > 4) = 31,574 files (normal table)
+    assert "hum_jump: hum_rms, robust z beyond 4, side up, log; in control one signal per " \
+           "31,574 files" in out

@@ -1,0 +1,156 @@
+"""Learning a rig's reference (its normal) for the drift charts, from good files (pure).
+
+Phase I / phase II: the reference of a (rig, mode, channel, measure) is learned from its first
+good, unflagged files after the reference starts (the first file, or a re-learn), and then kept
+fixed while the charts monitor. It is complete when it holds ``reference_files`` files spread
+over ``reference_days`` days: files of one day share that day's conditions, so the days, not the
+files, carry most of the information about the rig's day-to-day scatter. With ``follow_days``
+set, the reference follows the rig, but only from files older than that guard gap (in days and
+in ``follow_files`` files) that were never flagged, so a creep cannot enter its own reference.
+Imports numpy, qcd.charts (Reference) and qcd.measures.noise (the MAD scale).
+"""
+from __future__ import annotations
+
+import math
+from typing import Sequence
+
+import numpy as np
+
+from qcd.charts import Reference
+from qcd.measures.noise import MAD_SCALE
+
+__all__ = ["learn", "follow", "reference_of", "provisional", "day_icc", "day_autocorrelation",
+           "progress_text"]
+
+DAY_S = 86400.0
+
+
+def day_icc(times: Sequence[float], values: Sequence[float]) -> tuple[float, float]:
+    """(intraclass correlation of values within a UTC day, files per day).
+
+    One-way analysis of variance with unequal groups (Snedecor & Cochran; the n0 of unequal
+    group sizes): sigma_b^2 = (MSB - MSW) / n0, icc = sigma_b^2 / (sigma_b^2 + MSW), floored at 0.
+    """
+    t = np.asarray(times, dtype=float)
+    y = np.asarray(values, dtype=float)
+    days = np.floor(t / DAY_S)
+    groups = [y[days == d] for d in np.unique(days)]
+    k, n = len(groups), len(y)
+    per_day = n / k if k else 1.0
+    if k < 2 or n <= k:
+        return 0.0, per_day
+    sizes = np.array([len(g) for g in groups], dtype=float)
+    means = np.array([g.mean() for g in groups])
+    msb = float(np.sum(sizes * (means - y.mean()) ** 2)) / (k - 1)
+    msw = float(sum(np.sum((g - g.mean()) ** 2) for g in groups)) / (n - k)
+    n0 = (n - float(np.sum(sizes ** 2)) / n) / (k - 1)
+    sb2 = max(0.0, (msb - msw) / n0) if n0 > 0 else 0.0
+    if sb2 + msw <= 0:
+        return 0.0, per_day
+    return sb2 / (sb2 + msw), per_day
+
+
+def day_autocorrelation(times: Sequence[float], values: Sequence[float]) -> float:
+    """Lag-1 autocorrelation of the day means over consecutive recording days (a day effect
+    carried to the next day), clipped to [0, 0.9]; 0 with fewer than 4 days."""
+    t = np.asarray(times, dtype=float)
+    y = np.asarray(values, dtype=float)
+    days = np.floor(t / DAY_S)
+    uniq = np.unique(days)
+    if len(uniq) < 4:
+        return 0.0
+    means = np.array([y[days == d].mean() for d in uniq])
+    dev = means - means.mean()
+    den = float(np.sum(dev * dev))
+    if den <= 0:
+        return 0.0
+    r = float(np.sum(dev[1:] * dev[:-1])) / den
+    return min(max(r, 0.0), 0.9)
+
+
+def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: float = 0.0
+                 ) -> Reference | None:
+    """The reference of (recorded_at, value) rows: median and 1.4826 MAD of the values (their
+    logs when ``log``), the scale floored at ``min_spread`` (log units, or a fraction of the
+    median's size otherwise) (Iglewicz & Hoaglin 1993)."""
+    pts = [(float(t), float(v)) for t, v in rows if v is not None and math.isfinite(float(v))
+           and (not log or float(v) > 0)]
+    if len(pts) < 3:
+        return None
+    t = np.array([p[0] for p in pts])
+    y = np.array([math.log(p[1]) if log else p[1] for p in pts])
+    center = float(np.median(y))
+    scale = MAD_SCALE * float(np.median(np.abs(y - center)))
+    floor = min_spread if log else min_spread * abs(center)
+    scale = max(scale, floor, 1e-12)
+    icc, per_day = day_icc(t, y)
+    return Reference(center=center, scale=scale, n=len(pts), first_at=float(t.min()),
+                     last_at=float(t.max()), log=log, icc=icc, per_day=per_day,
+                     rho=day_autocorrelation(t, y))
+
+
+def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin: float
+              ) -> Reference | None:
+    """``ref`` with its limits widened by 1 + margin/sqrt(days) for the days its rows span."""
+    if ref is None:
+        return None
+    days = len({math.floor(t / DAY_S) for t, _ in rows})
+    return Reference(**{**ref.to_dict(), "widen": 1.0 + margin / math.sqrt(max(days, 1))})
+
+
+def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: bool,
+          min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
+    """The fixed reference from good rows (oldest first, recorded after the reference start):
+    the first rows up to the one that makes ``files`` files over at least ``days`` days; None
+    while there are not enough yet (still learning).
+
+    ``margin``: the limits are widened by 1 + margin/sqrt(days) for the days the reference
+    spans. A scale estimated from a few independent days can be far too small (the MAD of n
+    normal values has a relative error of about 1.2/sqrt(n), and a day's files count as about
+    one), and a chart's false-alarm rate grows steeply as its scale shrinks; the margin keeps
+    the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py)."""
+    usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
+    if not usable:
+        return None
+    first = usable[0][0]
+    for i, (t, _) in enumerate(usable):
+        if i + 1 >= files and t - first >= days * DAY_S:
+            return _widened(reference_of(usable[: i + 1], log=log, min_spread=min_spread),
+                            usable[: i + 1], margin)
+    return None
+
+
+def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days: float,
+           log: bool, min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
+    """A following reference: the NEWEST good rows (already behind the guard gap) back to the
+    one that makes ``files`` files over ``days`` days; None when there are not enough."""
+    usable = [(t, v) for t, v in rows_newest_first if math.isfinite(v) and (not log or v > 0)]
+    if not usable:
+        return None
+    newest = usable[0][0]
+    for i, (t, _) in enumerate(usable):
+        if i + 1 >= files and newest - t >= days * DAY_S:
+            chosen = usable[: i + 1][::-1]
+            return _widened(reference_of(chosen, log=log, min_spread=min_spread), chosen,
+                            margin)
+    return None
+
+
+PROVISIONAL_DAYS = 3.0     # a provisional reference spans at least 3 days (common practice)
+
+
+def provisional(rows: Sequence[tuple[float, float]], *, files: int, log: bool,
+                min_spread: float = 0.0, margin: float = 1.0,
+                days: float = PROVISIONAL_DAYS) -> Reference | None:
+    """A young rig's provisional reference while the full one learns: its first good rows up
+    to the one that makes ``files`` files over ``days`` days (fixed, so a creep after them
+    cannot enter), widened like ``learn`` by 1 + margin/sqrt(days) for the (few) days they
+    span: one or two days say little about a rig's day-to-day scatter. None before that."""
+    return learn(rows, files=files, days=days, log=log, min_spread=min_spread, margin=margin)
+
+
+def progress_text(rows: Sequence[tuple[float, float]], files: int, days: float) -> str:
+    """'learning the reference: 12 of 40 files, 3.0 of 10 days'."""
+    n = len(rows)
+    span = (rows[-1][0] - rows[0][0]) / DAY_S if n > 1 else 0.0
+    return (f"learning the reference: {n} of {files} files, {span:.1f} of {days:g} days")

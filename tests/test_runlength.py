@@ -1,0 +1,88 @@
+"""Average run lengths by the Brook-Evans Markov chain against published tables, and the limits
+the rule loader picks for a false-alarm budget (docs/methods.md §11; OPERATIONS §2)."""
+from __future__ import annotations
+
+import textwrap
+
+import pytest
+
+from qcd.errors import ConfigError
+from qcd.ruleset import load_rules
+from qcd.runlength import cusum_arl, cusum_h_for, ewma_arl, ewma_L_for
+
+SHIFTS = (0, .25, .5, .75, 1, 1.5, 2, 2.5, 3, 4, 5)
+# Lucas & Crosier (1982) Table 1, two-sided CUSUM k = 0.5, h = 4 (as quoted in R spc)
+LC_H4 = (168, 74.2, 26.6, 13.3, 8.38, 4.75, 3.34, 2.62, 2.19, 1.71, 1.31)
+# the same design with h = 5 (recomputed in OPERATIONS §2 with a 600-state chain)
+LC_H5 = (465, 139, 38.0, 17.0, 10.4, 5.75, 4.01, 3.11, 2.57, 2.01, 1.69)
+# Lucas & Saccucci (1990) Table 3, two-sided EWMA (as quoted in R spc)
+LS_SHIFTS = (0, .25, .5, .75, 1, 1.5, 2, 3)
+LS_05 = (500, 255, 88.8, 35.9, 17.5, 6.53, 3.63, 1.93)
+LS_003 = (500, 76.7, 29.3, 17.6, 12.6, 8.07, 5.99, 4.03)
+
+
+def _sig(x: float, digits: int = 3) -> float:
+    return float(f"{x:.{digits}g}")
+
+
+@pytest.mark.parametrize("shift,table", list(zip(SHIFTS, LC_H4)))
+def test_cusum_h4_reproduces_lucas_crosier(shift, table):
+    assert _sig(cusum_arl(0.5, 4.0, shift, side="both")) == pytest.approx(table, rel=2e-3)
+
+
+@pytest.mark.parametrize("shift,table", list(zip(SHIFTS, LC_H5)))
+def test_cusum_h5_reproduces_the_recomputed_table(shift, table):
+    assert _sig(cusum_arl(0.5, 5.0, shift, side="both")) == pytest.approx(table, rel=2e-3)
+
+
+@pytest.mark.parametrize("lam,L,table", [(0.5, 3.071, LS_05), (0.03, 2.437, LS_003)])
+def test_ewma_reproduces_lucas_saccucci(lam, L, table):
+    got = [ewma_arl(lam, L, s, side="both") for s in LS_SHIFTS]
+    # the table's 3 significant digits; its ARL0 of 500 is the design value, within 0.5 %
+    assert got[0] == pytest.approx(500, rel=5e-3)
+    assert [_sig(g) for g in got[1:]] == pytest.approx(list(table[1:]), rel=2e-3)
+
+
+def test_ewma_matches_the_sas_qc_value():
+    # SAS/QC, quoted in R spc: lambda 0.25, L 3, 1 sigma -> ARL 11.154267016 (4 digits here)
+    assert ewma_arl(0.25, 3.0, 1.0, side="both") == pytest.approx(11.154267016, rel=1e-4)
+
+
+def test_one_sided_limits_for_3000_files_agree_with_the_known_parameter_simulation():
+    # OPERATIONS §2 (simulation, iid normal, one-sided upper, about 5 %): EWMA lambda 0.2,
+    # L 3.3 -> ~3000; lambda 0.1, L 3.2 -> ~3200; CUSUM k 0.5, h 6 -> ~2800
+    assert ewma_arl(0.2, 3.3, side="up") == pytest.approx(3000, rel=0.05)
+    assert ewma_arl(0.1, 3.2, side="up") == pytest.approx(3200, rel=0.05)
+    assert cusum_arl(0.5, 6.0, side="up") == pytest.approx(2800, rel=0.1)
+
+
+def test_limit_search_inverts_the_run_length():
+    L = ewma_L_for(3000.0, 0.2, side="up")
+    h = cusum_h_for(3000.0, 0.5, side="up")
+    assert ewma_arl(0.2, L, side="up") == pytest.approx(3000, rel=2e-3)
+    assert cusum_arl(0.5, h, side="up") == pytest.approx(3000, rel=2e-3)
+    assert 3.2 < L < 3.4 and 6.0 < h < 6.3
+
+
+def test_a_rule_with_arl0_gets_its_limit_and_refuses_both(tmp_path):
+    p = tmp_path / "r.toml"
+    p.write_text(textwrap.dedent("""
+        [[history]]
+        name = "d"
+        measure = "hum_rms"
+        test = "cusum"
+        side = "up"
+        arl0_files = 500
+        """), encoding="utf-8")
+    rule = load_rules([p]).history[0]
+    assert rule.arl0_files == 500
+    assert cusum_arl(0.5, rule.h, side="up") == pytest.approx(500, rel=2e-3)
+    p.write_text(p.read_text() + "h = 5\n", encoding="utf-8")
+    with pytest.raises(ConfigError, match="arl0_files or h"):
+        load_rules([p])
+
+
+def test_shipped_drift_rules_state_their_budget():
+    rules = {r.name: r for r in load_rules().history}
+    for name in ("hum_drift", "noise_drift"):
+        assert rules[name].arl0_files == 3000
