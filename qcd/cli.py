@@ -229,8 +229,8 @@ def build_parser() -> argparse.ArgumentParser:
                                    "measures and modes, limits in the measure's quantity), each "
                                    "after the packaged default rules, as qcd.toml's 'rules' "
                                    "list would load it.",
-                       epilog="Examples: qcd rules --config qcd.toml; "
-                              "qcd rules --check rules/my-lab.toml")
+                       epilog="Example: qcd rules --config qcd.toml (or: qcd rules --check "
+                              "rules/my-lab.toml)")
     p.add_argument("--check", nargs="+", type=Path, metavar="FILE",
                    help="rule files to check (exit 2 at the first wrong rule)")
     _common(p)
