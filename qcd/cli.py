@@ -77,6 +77,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--store", action="store_true",
                    help="store, judge, alert and deliver as the service does (needs --rig)")
     p.add_argument("--rig", metavar="NAME", help="rig the files belong to (with --store)")
+    p.add_argument("--cluster", metavar="ADDRESS",
+                   help="with --store: measure on a Dask cluster, tcp://HOST:PORT of a running "
+                        "scheduler or local:N for N local worker processes; files already "
+                        "stored are skipped, so a rerun continues (needs qcd-ephys[cluster])")
+    p.add_argument("--path-map", action="append", default=[], metavar="CLIENT=WORKER",
+                   help="with --cluster: the workers see files under CLIENT as under WORKER "
+                        "(repeatable)")
     _common(p)
 
     p = sub.add_parser("watch", help="run the service: watch the rigs' folders",
@@ -309,6 +316,11 @@ def _scan_row(fm: FileMeasures, width: int, mains_hz: float | None = None) -> st
 def _cmd_scan(args: argparse.Namespace) -> int:
     if args.workers < 1:
         raise ConfigError(None, "workers", f"needs at least 1, got {args.workers}")
+    if (args.cluster or args.path_map) and not args.store:
+        raise ConfigError(None, "--cluster" if args.cluster else "--path-map",
+                          "needs --store (the cluster measures, this process stores)")
+    if args.path_map and not args.cluster:
+        raise ConfigError(None, "--path-map", "needs --cluster")
     if args.store:
         # measure -> store -> judge -> alerts -> delivery, as the service does (qcd.pipeline)
         import time
@@ -336,6 +348,8 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         if cfg.notify or cfg.notify_config is not None:
             from qcd.notify import Sender
             sender = Sender.from_config(cfg)
+        if args.cluster:
+            return _scan_cluster(args, cfg, rig, rules, sender)
         files = _scan_files(list(args.paths))
 
         def said(fm) -> None:
@@ -394,6 +408,43 @@ def _cmd_scan(args: argparse.Namespace) -> int:
     if not files:
         print("qcd scan: no *.abf files found", file=sys.stderr)
     return EXIT_FAILED if failed else EXIT_OK
+
+
+def _scan_cluster(args: argparse.Namespace, cfg, rig, rules, sender) -> int:
+    """``scan --store --cluster``: qcd.cluster measures, this process stores (one writer)."""
+    import time
+
+    from qcd.cluster import Progress, backfill, connect, parse_path_map, parse_target
+    from qcd.store import Store
+    target = parse_target(args.cluster)
+    path_map = parse_path_map(args.path_map)
+    files = _scan_files(list(args.paths))
+    progress: list[Progress] = []
+
+    def started(total: int, skipped: int) -> None:
+        print(f"qcd scan: rig {rig.name}: {total} file(s) to measure on {target}"
+              + (f", {skipped} already stored (skipped)" if skipped else ""), flush=True)
+        progress.append(Progress(total))
+
+    def said(fm) -> None:
+        progress[0](fm)
+    with Store(cfg.database) as store, connect(target, quiet=not args.debug) as client:
+        res = backfill(files, rig, store, rules, client=client, clock=time.time, sender=sender,
+                       on_file=said, path_map=path_map, on_start=started)
+    print(f"qcd scan: rig {rig.name}: {res.count - len(res.failed)} of {res.count} "
+          f"file(s) measured and stored" + _failed_text(res.failed))
+    for a in res.opened:
+        print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "
+              f"mode {a['mode']})")
+    for mode, n in res.learning.items():
+        print(f"learning ({mode}): {n} of {rules.settings.learning_files} files; history "
+              f"checks send no messages until then")
+    if res.digest is not None:
+        print(f"digest queued: {res.digest.title}")
+    ob = res.outbox
+    print(f"messages: {ob.get('sent', 0)} sent, {ob.get('pending', 0)} pending, "
+          f"{ob.get('stuck', 0)} stuck" + ("" if sender else " (no notification targets)"))
+    return EXIT_FAILED if res.failed or ob.get("stuck", 0) else EXIT_OK
 
 
 def _failed_text(failed: list[FileMeasures]) -> str:

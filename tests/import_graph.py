@@ -31,7 +31,7 @@ LAYERS = (
     "measures.mains", "measures.humfit", "measures.zoom",
     "measures.steps", "measures.wholecell", "measures.testpulse",
     "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "ruleset",
-    "judge", "alerts", "store", "notify", "analyze", "intake", "workers", "pipeline", "watch",
+    "judge", "alerts", "store", "notify", "analyze", "intake", "workers", "pipeline", "cluster", "watch",
     "status",
     "html", "report", "compare", "export", "synth", "demo", "cli", "__init__", "__main__",
 )
