@@ -357,9 +357,9 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             print(f"stored  {fm.path}  {what}", flush=True)
         with Store(cfg.database) as store:
             res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
-                       workers=args.workers)
-        failed = [fm for fm in res.files if fm.status != "ok"]
-        print(f"qcd scan: rig {rig.name}: {len(res.files) - len(failed)} of {len(res.files)} "
+                       workers=args.workers, keep_files=False)
+        failed = res.failed
+        print(f"qcd scan: rig {rig.name}: {res.count - len(failed)} of {res.count} "
               f"file(s) measured and stored" + _failed_text(failed))
         for a in res.opened:
             print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "

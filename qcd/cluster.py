@@ -50,7 +50,7 @@ if TYPE_CHECKING:
     from qcd.store import Store
 
 __all__ = ["ClusterError", "Target", "parse_target", "parse_path_map", "worker_path",
-           "connect", "pending", "measure_on", "backfill", "Progress", "EXTRA"]
+           "connect", "pending", "measure_on", "measure_batch", "backfill", "Progress", "EXTRA"]
 
 EXTRA = "qcd-ephys[cluster]"
 
@@ -182,7 +182,7 @@ def connect(target: Target, *, attempts: int | None = None, quiet: bool = False
             stack.enter_context(dask.config.set(settings))
             cluster = stack.enter_context(distributed.LocalCluster(
                 n_workers=target.local, processes=True, threads_per_worker=1,
-                dashboard_address=None))
+                dashboard_address=":0"))   # any free port: never a clash
             client = stack.enter_context(distributed.Client(cluster))
         else:
             try:
@@ -237,38 +237,68 @@ def _retry(store: Store, known: Any) -> bool:
     return fm is not None and fm.error_kind == "internal"
 
 
+def measure_batch(items: list[tuple[str, str]], rig: RigConfig,
+                  task: Callable[..., FileMeasures] = measure_task) -> list[FileMeasures]:
+    """What a worker runs for a batch of files: ``task`` for each (client path, worker path)."""
+    return [task(client_path, path, rig) for client_path, path in items]
+
+
 def measure_on(client: Any, files: list[Path], rig: RigConfig, *,
                path_map: tuple[tuple[str, str], ...] = (), window: int | None = None,
+               per_task: int | None = None,
                task: Callable[..., FileMeasures] = measure_task) -> Iterator[FileMeasures]:
     """Each file measured on the cluster, yielded in the order of ``files``.
 
-    At most ``window`` files are submitted and not yet yielded (default: 4 per worker thread,
-    at least 16): that bounds both the futures in flight and the reorder buffer. A file whose
-    workers died too often (the engine's KilledWorker) is an 'internal' error row; any other
-    failure raises ClusterError.
+    Files go out in batches of ``per_task`` consecutive files, one engine task each (default 8,
+    fewer when there are few files per worker thread): the engine's cost is per task, so a
+    batch spreads it. At most ``window`` files are submitted and not yet yielded (default:
+    two batches per worker thread, at least 16): that bounds both the futures in flight and
+    the reorder buffer. A batch whose workers died too often (the engine's KilledWorker) is
+    sent again one file per task; a file alone that still kills its workers is an 'internal'
+    error row. Any other failure raises ClusterError.
     """
     distributed = _import_engine()
-    if window is None:
-        threads = sum(client.nthreads().values())
-        window = max(16, 4 * threads)
-    window = max(1, int(window))
-    done: dict[int, FileMeasures] = {}
-    index: dict[Any, int] = {}
-    ac = distributed.as_completed()
-    submitted = nxt = 0
     n = len(files)
+    threads = max(1, sum(client.nthreads().values())) if per_task is None or window is None \
+        else 1
+    if per_task is None:
+        per_task = max(1, min(8, n // (4 * threads)))
+    batch = max(1, int(per_task))
+    if window is None:
+        window = max(16, 2 * threads * batch)
+    window = max(batch, int(window))
+    done: dict[int, FileMeasures] = {}
+    index: dict[Any, tuple[int, int]] = {}
+    # results come back in the engine's own threads as files finish, not one round trip each
+    ac = distributed.as_completed(with_results=True, raise_errors=False)
+    stamp = f"{os.getpid()}-{time.time_ns()}"
+
+    def submit(start: int, count: int) -> None:
+        items = []
+        for i in range(start, start + count):
+            p = os.fspath(files[i])
+            items.append((p, worker_path(p, path_map)))
+        fut = client.submit(measure_batch, items, rig, task, pure=False,
+                            key=f"qcd-measure-{stamp}-{start}-{count}")
+        index[fut.key] = (start, count)
+        ac.add(fut)
+
+    submitted = nxt = 0
     try:
         while nxt < n:
             while submitted < n and submitted < nxt + window:
-                p = os.fspath(files[submitted])
-                fut = client.submit(task, p, worker_path(p, path_map), rig, pure=False,
-                                    key=f"qcd-measure-{submitted}-{os.getpid()}-{time.time_ns()}")
-                index[fut.key] = submitted
-                ac.add(fut)
-                submitted += 1
-            fut = next(ac)
-            i = index.pop(fut.key)
-            done[i] = _result(fut, files[i], distributed)
+                count = min(batch, n - submitted)
+                submit(submitted, count)
+                submitted += count
+            fut, value = next(ac)
+            start, count = index.pop(fut.key)
+            if count > 1 and _killed(fut, value, distributed):
+                for i in range(start, start + count):       # find the file that kills
+                    submit(i, 1)
+            else:
+                got = _result(fut, value, files[start:start + count], distributed)
+                for j, fm in enumerate(got):
+                    done[start + j] = fm
             fut.release()
             while nxt in done:
                 yield done.pop(nxt)
@@ -278,21 +308,31 @@ def measure_on(client: Any, files: list[Path], rig: RigConfig, *,
         # futures not yet done are released with their keys; nothing is committed for them
 
 
-def _result(fut: Any, path: Path, distributed: Any) -> FileMeasures:
-    try:
-        return fut.result()
-    except distributed.KilledWorker as e:
+def _killed(fut: Any, value: Any, distributed: Any) -> bool:
+    e = value[1] if fut.status == "error" and isinstance(value, tuple) else value
+    return isinstance(e, distributed.KilledWorker)
+
+
+def _result(fut: Any, value: Any, paths: list[Path], distributed: Any) -> list[FileMeasures]:
+    """The FileMeasures a finished future brought back, or the error row of a file whose
+    workers kept dying; ClusterError for any other failure (the engine's, not the file's)."""
+    if fut.status != "error" and isinstance(value, list):
+        return value
+    e = value[1] if fut.status == "error" and isinstance(value, tuple) else value
+    if isinstance(e, distributed.KilledWorker) and len(paths) == 1:
+        path = paths[0]
         worker = getattr(e, "last_worker", None)
         where = getattr(worker, "address", None) or "a worker"
         n = getattr(e, "allowed_failures", None)
         times = f"{n + 1} times" if n is not None else "too often"
-        return error_file(path, "internal",
-                          f"{os.fspath(path)}: the worker measuring it died {times} "
-                          f"(last {where}); tried again on the next backfill", **_stat(path))
-    except Exception as e:
-        raise ClusterError(f"the cluster failed while measuring {os.fspath(path)} "
-                           f"({type(e).__name__}: {e}); files committed so far are kept, "
-                           f"run the same command again to continue") from e
+        return [error_file(path, "internal",
+                           f"{os.fspath(path)}: the worker measuring it died {times} "
+                           f"(last {where}); tried again on the next backfill",
+                           **_stat(path))]
+    raise ClusterError(f"the cluster failed while measuring {os.fspath(paths[0])}"
+                       f"{f' and {len(paths) - 1} more' if len(paths) > 1 else ''} "
+                       f"({type(e).__name__}: {e}); files committed so far are kept, "
+                       f"run the same command again to continue")
 
 
 class Progress:
@@ -337,7 +377,7 @@ def backfill(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, r
              client: Any, clock: Callable[[], float], sender: Sender | None = None,
              on_file: Callable[[FileMeasures], None] | None = None, batch: bool | None = None,
              path_map: tuple[tuple[str, str], ...] = (), window: int | None = None,
-             task: Callable[..., FileMeasures] = measure_task,
+             per_task: int | None = None, task: Callable[..., FileMeasures] = measure_task,
              on_start: Callable[[int, int], None] | None = None) -> ScanResult:
     """``pipeline.scan`` with the measuring on ``client``'s cluster, skipping stored files.
 
@@ -349,6 +389,7 @@ def backfill(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, r
         on_start(len(files), skipped)
 
     def measured(ordered: list[Path]) -> Iterator[FileMeasures]:
-        return measure_on(client, ordered, rig, path_map=path_map, window=window, task=task)
+        return measure_on(client, ordered, rig, path_map=path_map, window=window,
+                          per_task=per_task, task=task)
     return scan(files, rig, store, rules, clock=clock, sender=sender, on_file=on_file,
                 batch=batch, measured=measured, keep_files=False)
