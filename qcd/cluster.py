@@ -254,7 +254,7 @@ def measure_on(client: Any, files: list[Path], rig: RigConfig, *,
     batch spreads it. At most ``window`` files are submitted and not yet yielded (default:
     two batches per worker thread, at least 16): that bounds both the futures in flight and
     the reorder buffer. A batch whose workers died too often (the engine's KilledWorker) is
-    sent again one file per task; a file alone that still kills its workers is an 'internal'
+    sent again one file at a time; a file alone that still kills its workers is an 'internal'
     error row. Any other failure raises ClusterError.
     """
     distributed = _import_engine()
@@ -284,8 +284,16 @@ def measure_on(client: Any, files: list[Path], rig: RigConfig, *,
         ac.add(fut)
 
     submitted = nxt = 0
-    try:
+    suspects: list[int] = []          # files of a batch whose workers kept dying, retried alone
+    retried: set[int] = set()
+    alone = False                     # one of them in flight: they go one at a time, so a file
+    try:                              # that kills its worker takes no other retried one along
         while nxt < n:
+            if suspects and not alone:
+                i = suspects.pop(0)
+                retried.add(i)
+                submit(i, 1)
+                alone = True
             while submitted < n and submitted < nxt + window:
                 count = min(batch, n - submitted)
                 submit(submitted, count)
@@ -293,9 +301,11 @@ def measure_on(client: Any, files: list[Path], rig: RigConfig, *,
             fut, value = next(ac)
             start, count = index.pop(fut.key)
             if count > 1 and _killed(fut, value, distributed):
-                for i in range(start, start + count):       # find the file that kills
-                    submit(i, 1)
+                suspects.extend(range(start, start + count))
             else:
+                if count == 1 and start in retried:
+                    retried.discard(start)
+                    alone = False
                 got = _result(fut, value, files[start:start + count], distributed)
                 for j, fm in enumerate(got):
                     done[start + j] = fm

@@ -363,3 +363,19 @@ def test_progress_says_done_total_rate_eta_and_errors(tmp_path):
     p(error_file("b.abf", "truncated", "b.abf: cut short"))
     assert p.line() == "backfill: 2/4 files, 0.5 files/s, ETA 4s, 1 error"
     assert "error  b.abf  (truncated): b.abf: cut short" in out.getvalue()
+
+
+@pytest.mark.slow
+@on_cluster
+def test_a_batch_with_a_file_that_kills_its_worker_is_sent_again_one_file_at_a_time(
+        archive, rig, client):
+    folder, paths = archive
+    files = paths[:4]                                       # none of them corrupt
+    poison = files[1].name
+    task = lambda c, p, r: _dies_on(c, p, r, poison)  # noqa: E731
+    # one task of 4 files dies twice (the fixture's attempts), then each file goes alone
+    got = list(cluster.measure_on(client, files, rig, per_task=4, window=4, task=task))
+    assert [fm.path for fm in got] == [os.fspath(p) for p in files]
+    assert [fm.status for fm in got] == ["ok", "error", "ok", "ok"]
+    assert got[1].error_kind == "internal" and "died 2 times" in got[1].error
+    client.wait_for_workers(2, timeout=60)
