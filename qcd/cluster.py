@@ -178,7 +178,10 @@ def connect(target: Target, *, attempts: int | None = None, quiet: bool = False
     stack = contextlib.ExitStack()
     try:
         if target.local:
-            settings = {"distributed.scheduler.allowed-failures": max(0, (attempts or 4) - 1)}
+            settings = {"distributed.scheduler.allowed-failures": max(0, (attempts or 4) - 1),
+                        # the engine's sampling profiler costs a worker about 1 ms per file
+                        # (measured in bench_backfill); nobody reads it here
+                        "distributed.worker.profile.enabled": False}
             stack.enter_context(dask.config.set(settings))
             cluster = stack.enter_context(distributed.LocalCluster(
                 n_workers=target.local, processes=True, threads_per_worker=1,

@@ -379,3 +379,30 @@ def test_a_batch_with_a_file_that_kills_its_worker_is_sent_again_one_file_at_a_t
     assert [fm.status for fm in got] == ["ok", "error", "ok", "ok"]
     assert got[1].error_kind == "internal" and "died 2 times" in got[1].error
     client.wait_for_workers(2, timeout=60)
+
+
+def test_cluster_options_need_store_and_cluster(tmp_path, capsys):
+    from qcd.cli import main
+    (tmp_path / "a.abf").write_bytes(b"")
+    assert main(["scan", "--cluster", "local:2", str(tmp_path)]) == 2
+    assert "--cluster: needs --store" in capsys.readouterr().err
+    assert main(["scan", "--store", "--rig", "r", "--path-map", "/a=/b", str(tmp_path)]) == 2
+    assert "--path-map: needs --cluster" in capsys.readouterr().err
+
+
+def test_without_the_extra_cluster_says_which_extra_to_install(tmp_path):
+    folder = tmp_path / "data"
+    folder.mkdir()
+    cfg = tmp_path / "qcd.toml"
+    cfg.write_text(f'database = "{tmp_path / "qcd.sqlite"}"\n[[rig]]\nname = "r"\n'
+                   f'folders = ["{folder}"]\n')
+    # Python's import system refuses a module whose sys.modules entry is None: as if the extra
+    # were not installed
+    code = ("import sys; sys.modules['distributed'] = None; from qcd.cli import main; "
+            f"sys.exit(main(['scan', '--store', '--rig', 'r', '--config', {str(cfg)!r}, "
+            f"'--cluster', 'local:1', {str(folder)!r}]))")
+    got = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=60, env=dict(os.environ, PYTHONPATH=os.fspath(ROOT)))
+    assert got.returncode == 1, got.stderr
+    assert "pip install 'qcd-ephys[cluster]'" in got.stderr
+    assert "Traceback" not in got.stderr
