@@ -410,6 +410,23 @@ def _cmd_scan(args: argparse.Namespace) -> int:
     return EXIT_FAILED if failed else EXIT_OK
 
 
+def _archive_files(paths: list[Path]) -> list[str]:
+    """``_scan_files`` for an archive: absolute paths (workers have their own working folder;
+    the service stores absolute paths too) kept as strings, a third of a Path's memory."""
+    from qcd.intake import recordings_in
+    out: list[str] = []
+    seen: set[str] = set()
+    for p in paths:
+        if not p.exists():
+            raise ConfigError(None, "", f"no such file or folder: {p}")
+        for q in recordings_in(p.absolute()):
+            s = str(q)
+            if s not in seen:
+                seen.add(s)
+                out.append(s)
+    return out
+
+
 def _scan_cluster(args: argparse.Namespace, cfg, rig, rules, sender) -> int:
     """``scan --store --cluster``: qcd.cluster measures, this process stores (one writer)."""
     import time
@@ -418,7 +435,7 @@ def _scan_cluster(args: argparse.Namespace, cfg, rig, rules, sender) -> int:
     from qcd.store import Store
     target = parse_target(args.cluster)
     path_map = parse_path_map(args.path_map)
-    files = _scan_files(list(args.paths))
+    files = _archive_files(list(args.paths))
     progress: list[Progress] = []
 
     def started(total: int, skipped: int) -> None:

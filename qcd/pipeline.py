@@ -321,7 +321,7 @@ def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules
          clock: Callable[[], float], sender: Sender | None = None,
          on_file: Callable[[FileMeasures], None] | None = None, batch: bool | None = None,
          workers: int = 1,
-         measured: Callable[[list[Path]], Iterable[FileMeasures]] | None = None,
+         measured: Callable[[list], Iterable[FileMeasures]] | None = None,
          keep_files: bool = True) -> ScanResult:
     """``qcd scan --store``: measure -> store -> judge -> alerts -> delivery, in recording order.
 
@@ -336,7 +336,7 @@ def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules
         files = [p for p, _ in ordered]
         results = measure_all(files, rig, workers, headers=[rec for _, rec in ordered])
     else:
-        files = [Path(p) for p in paths]
+        files = paths if isinstance(paths, list) else list(paths)
         results = measured(files)
     batch = len(files) > DIGEST_FILES if batch is None else batch
     name = rig.name
