@@ -446,6 +446,8 @@ def _scan_cluster(args: argparse.Namespace, cfg, rig, rules, sender) -> int:
     def said(fm) -> None:
         progress[0](fm)
     with Store(cfg.database) as store, connect(target, quiet=not args.debug) as client:
+        print(f"qcd scan: rig {rig.name}: {len(files)} file(s) found; skipping the stored ones "
+              f"and ordering the rest by recording time", flush=True)
         res = backfill(files, rig, store, rules, client=client, clock=time.time, sender=sender,
                        on_file=said, path_map=path_map, on_start=started)
     print(f"qcd scan: rig {rig.name}: {res.count - len(res.failed)} of {res.count} "

@@ -50,7 +50,7 @@ if TYPE_CHECKING:
     from qcd.store import Store
 
 __all__ = ["ClusterError", "Target", "parse_target", "parse_path_map", "worker_path",
-           "connect", "pending", "measure_on", "measure_batch", "backfill", "Progress", "EXTRA"]
+           "connect", "pending", "order_keys_task", "measure_on", "measure_batch", "backfill", "Progress", "EXTRA"]
 
 EXTRA = "qcd-ephys[cluster]"
 
@@ -209,14 +209,17 @@ def connect(target: Target, *, attempts: int | None = None, quiet: bool = False
 
 
 def pending(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, *,
+            client: Any = None, path_map: tuple[tuple[str, str], ...] = (),
             stat: Callable[[str], os.stat_result] = os.stat) -> tuple[list[str], int]:
     """(paths not yet stored, in recording order; how many were skipped as stored).
 
     A file is stored when the rig's current row for its path has the same size and mtime and
-    is not an 'internal' error (those are measured again). Only the order keys are kept (a
-    float and the path string per file: about 0.2 KB).
+    is not an 'internal' error (those are measured again). With ``client`` the headers that
+    give the order are read by the cluster's workers (an archive on a file server is read
+    in parallel, not one header at a time here). Only the order keys are kept (a float and
+    the path string per file).
     """
-    keys: list[tuple[float, str]] = []
+    todo: list[str] = []
     skipped = 0
     for p in paths:
         p = os.fspath(p)
@@ -229,9 +232,58 @@ def pending(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, *,
                 known.mtime == float(st.st_mtime) and not _retry(store, known):
             skipped += 1
             continue
-        keys.append(order_key(p))
+        todo.append(p)
+    keys = _keys_on(client, todo, path_map) if client is not None and todo else \
+        [(order_key(p)[0], p) for p in todo]
+    del todo
     keys.sort()
     return [p for _, p in keys], skipped
+
+
+def order_keys_task(items: list[tuple[str, str]]) -> list[tuple[float, str]]:
+    """What a worker runs to order files: (header time or mtime, client path) of each
+    (client path, worker path)."""
+    return [(order_key(path)[0], client_path) for client_path, path in items]
+
+
+def _keys_on(client: Any, paths: list[str], path_map: tuple[tuple[str, str], ...], *,
+             per_task: int = 256) -> list[tuple[float, str]]:
+    """The order keys of ``paths``, read on the workers, a bounded number of tasks at once.
+    A task the engine gave up on (its workers died) is read here instead."""
+    distributed = _import_engine()
+    window = 2 * max(1, sum(client.nthreads().values()))
+    ac = distributed.as_completed(with_results=True, raise_errors=False)
+    index: dict[Any, int] = {}
+    starts = iter(range(0, len(paths), per_task))
+    stamp = f"{os.getpid()}-{time.time_ns()}"
+
+    def submit() -> None:
+        start = next(starts, None)
+        if start is None:
+            return
+        items = [(p, worker_path(p, path_map)) for p in paths[start:start + per_task]]
+        fut = client.submit(order_keys_task, items, pure=False, key=f"qcd-order-{stamp}-{start}")
+        index[fut.key] = start
+        ac.add(fut)
+    for _ in range(window):
+        submit()
+    keys: list[tuple[float, str]] = []
+    try:
+        for fut, value in ac:
+            start = index.pop(fut.key)
+            if fut.status != "error" and isinstance(value, list):
+                keys.extend(value)
+            elif _killed(fut, value, distributed):
+                keys.extend((order_key(p)[0], p) for p in paths[start:start + per_task])
+            else:
+                e = value[1] if isinstance(value, tuple) else value
+                raise ClusterError(f"the cluster failed while reading headers for the order "
+                                   f"({type(e).__name__}: {e}); nothing was stored yet")
+            fut.release()
+            submit()
+    finally:
+        ac.clear()
+    return keys
 
 
 def _retry(store: Store, known: Any) -> bool:
@@ -398,7 +450,7 @@ def backfill(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, r
     ``on_start(to_measure, skipped)`` is called once the files are ordered. The result keeps
     only the error files (``count`` counts all), so memory does not grow with the archive.
     """
-    files, skipped = pending(paths, rig, store)
+    files, skipped = pending(paths, rig, store, client=client, path_map=path_map)
     if on_start is not None:
         on_start(len(files), skipped)
 

@@ -406,3 +406,13 @@ def test_without_the_extra_cluster_says_which_extra_to_install(tmp_path):
     assert got.returncode == 1, got.stderr
     assert "pip install 'qcd-ephys[cluster]'" in got.stderr
     assert "Traceback" not in got.stderr
+
+
+@pytest.mark.slow
+@on_cluster
+def test_the_workers_read_the_headers_for_the_same_recording_order(archive, rig, client,
+                                                                     store):
+    folder, paths = archive
+    here, _ = cluster.pending(sorted(paths), rig, store)
+    there, _ = cluster.pending(sorted(paths), rig, store, client=client)
+    assert here == there == [os.fspath(p) for p in paths]      # the mtimes' order
