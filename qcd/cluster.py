@@ -181,7 +181,10 @@ def connect(target: Target, *, attempts: int | None = None, quiet: bool = False
             settings = {"distributed.scheduler.allowed-failures": max(0, (attempts or 4) - 1),
                         # the engine's sampling profiler costs a worker about 1 ms per file
                         # (measured in bench_backfill); nobody reads it here
-                        "distributed.worker.profile.enabled": False}
+                        "distributed.worker.profile.enabled": False,
+                        # the in-process scheduler's debugging log of task transitions kept
+                        # each task's arguments: 1.6-1.9 KB per file measured, 0.2-0.4 without
+                        "distributed.admin.low-level-log-length": 0}
             stack.enter_context(dask.config.set(settings))
             cluster = stack.enter_context(distributed.LocalCluster(
                 n_workers=target.local, processes=True, threads_per_worker=1,

@@ -83,7 +83,8 @@ def rig(archive):
 @pytest.fixture(scope="module")
 def client():
     """One LocalCluster of 2 single-thread worker processes for the module; a file may kill
-    its worker twice before it is an error row."""
+    its worker twice before it is an error row. Tests that kill workers leave their restart to
+    the engine's nannies, in the background; a test that needs both waits for them."""
     with cluster.connect(cluster.Target(None, 2), attempts=2, quiet=True) as c:
         yield c
 
@@ -182,6 +183,7 @@ def _slow_first(client_path: str, path: str, rig: RigConfig, log: str, slow: str
 def test_files_measured_out_of_order_are_committed_in_recording_order(archive, rig, client,
                                                                         tmp_path):
     folder, paths = archive
+    client.wait_for_workers(2, timeout=120)                 # one is held back, one goes on
     files = [p for i, p in enumerate(paths[:12]) if i not in CORRUPT]
     log = tmp_path / "completed.txt"
     task = lambda c, p, r: _slow_first(c, p, r, os.fspath(log), files[0].name)  # noqa: E731
@@ -214,7 +216,6 @@ def test_a_worker_killed_mid_run_loses_and_doubles_no_file(archive, rig, rules, 
         rows = _strip_ids(_dump(store))
     assert killed
     assert rows == inline[0]                                # every file once, same as inline
-    client.wait_for_workers(2, timeout=60)                  # the nanny restarted it
 
 
 def _kill_tree(proc: subprocess.Popen) -> None:
@@ -315,7 +316,6 @@ def test_a_file_that_kills_its_worker_is_retried_then_stored_as_an_error(archive
         # a rerun measures it again (a worker death is not the file's verdict); the rest stay
         todo, skipped = cluster.pending(files, rig, store)
         assert todo == [os.fspath(files[2])] and skipped == len(files) - 1
-    client.wait_for_workers(2, timeout=60)
 
 
 @pytest.mark.slow
@@ -378,7 +378,6 @@ def test_a_batch_with_a_file_that_kills_its_worker_is_sent_again_one_file_at_a_t
     assert [fm.path for fm in got] == [os.fspath(p) for p in files]
     assert [fm.status for fm in got] == ["ok", "error", "ok", "ok"]
     assert got[1].error_kind == "internal" and "died 2 times" in got[1].error
-    client.wait_for_workers(2, timeout=60)
 
 
 def test_cluster_options_need_store_and_cluster(tmp_path, capsys):
