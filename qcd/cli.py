@@ -411,16 +411,19 @@ def _cmd_scan(args: argparse.Namespace) -> int:
 
 
 def _archive_files(paths: list[Path]) -> list[str]:
-    """``_scan_files`` for an archive: absolute paths (workers have their own working folder;
-    the service stores absolute paths too) kept as strings, a third of a Path's memory."""
+    """``_scan_files`` for an archive: absolute, resolved paths (workers have their own working
+    folder; the service stores files under its resolved folders) kept as strings, a third of
+    a Path's memory."""
+    import os
+
     from qcd.intake import recordings_in
     out: list[str] = []
     seen: set[str] = set()
     for p in paths:
         if not p.exists():
             raise ConfigError(None, "", f"no such file or folder: {p}")
-        for q in recordings_in(p.absolute()):
-            s = str(q)
+        for q in recordings_in(Path(os.path.realpath(p))):
+            s = os.path.realpath(q)
             if s not in seen:
                 seen.add(s)
                 out.append(s)
