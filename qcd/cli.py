@@ -77,6 +77,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--store", action="store_true",
                    help="store, judge, alert and deliver as the service does (needs --rig)")
     p.add_argument("--rig", metavar="NAME", help="rig the files belong to (with --store)")
+    p.add_argument("--cluster", metavar="ADDRESS",
+                   help="with --store: measure on a Dask cluster, tcp://HOST:PORT of a running "
+                        "scheduler or local:N for N local worker processes; files already "
+                        "stored are skipped, so a rerun continues (needs qcd-ephys[cluster])")
+    p.add_argument("--path-map", action="append", default=[], metavar="CLIENT=WORKER",
+                   help="with --cluster: the workers see files under CLIENT as under WORKER "
+                        "(repeatable)")
     _common(p)
 
     p = sub.add_parser("watch", help="run the service: watch the rigs' folders",
@@ -352,6 +359,11 @@ def _scan_row(fm: FileMeasures, width: int, mains_hz: float | None = None) -> st
 def _cmd_scan(args: argparse.Namespace) -> int:
     if args.workers < 1:
         raise ConfigError(None, "workers", f"needs at least 1, got {args.workers}")
+    if (args.cluster or args.path_map) and not args.store:
+        raise ConfigError(None, "--cluster" if args.cluster else "--path-map",
+                          "needs --store (the cluster measures, this process stores)")
+    if args.path_map and not args.cluster:
+        raise ConfigError(None, "--path-map", "needs --cluster")
     if args.store:
         # measure -> store -> judge -> alerts -> delivery, as the service does (qcd.pipeline)
         import time
@@ -379,6 +391,8 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         if cfg.notify or cfg.notify_config is not None:
             from qcd.notify import Sender
             sender = Sender.from_config(cfg)
+        if args.cluster:
+            return _scan_cluster(args, cfg, rig, rules, sender)
         files = _scan_files(list(args.paths))
 
         def said(fm) -> None:
@@ -387,9 +401,9 @@ def _cmd_scan(args: argparse.Namespace) -> int:
             print(printable(f"stored  {fm.path}  {what}"), flush=True)
         with Store(cfg.database) as store:
             res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
-                       workers=args.workers)
-        failed = [fm for fm in res.files if fm.status == "error"]
-        print(f"qcd scan: rig {rig.name}: {len(res.files) - len(failed)} of {len(res.files)} "
+                       workers=args.workers, keep_files=False)
+        failed = res.failed
+        print(f"qcd scan: rig {rig.name}: {res.count - len(failed)} of {res.count} "
               f"file(s) measured and stored" + _failed_text(failed))
         for a in res.opened:
             print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "
@@ -438,6 +452,65 @@ def _cmd_scan(args: argparse.Namespace) -> int:
     if not files:
         print("qcd scan: no *.abf files found", file=sys.stderr)
     return EXIT_FAILED if failed else EXIT_OK
+
+
+def _archive_files(paths: list[Path]) -> list[str]:
+    """``_scan_files`` for an archive: absolute, resolved paths (workers have their own working
+    folder; the service stores files under its resolved folders) kept as strings, a third of
+    a Path's memory."""
+    import os
+
+    from qcd.intake import recordings_in
+    out: list[str] = []
+    seen: set[str] = set()
+    for p in paths:
+        if not p.exists():
+            raise ConfigError(None, "", f"no such file or folder: {p}")
+        for q in recordings_in(Path(os.path.realpath(p))):
+            s = os.path.realpath(q)
+            if s not in seen:
+                seen.add(s)
+                out.append(s)
+    return out
+
+
+def _scan_cluster(args: argparse.Namespace, cfg, rig, rules, sender) -> int:
+    """``scan --store --cluster``: qcd.cluster measures, this process stores (one writer)."""
+    import time
+
+    from qcd.cluster import Progress, backfill, connect, parse_path_map, parse_target
+    from qcd.store import Store
+    target = parse_target(args.cluster)
+    path_map = parse_path_map(args.path_map)
+    files = _archive_files(list(args.paths))
+    progress: list[Progress] = []
+
+    def started(total: int, skipped: int) -> None:
+        print(f"qcd scan: rig {rig.name}: {total} file(s) to measure on {target}"
+              + (f", {skipped} already stored (skipped)" if skipped else ""), flush=True)
+        progress.append(Progress(total))
+
+    def said(fm) -> None:
+        progress[0](fm)
+    with Store(cfg.database) as store, connect(target, quiet=not args.debug) as client:
+        print(f"qcd scan: rig {rig.name}: {len(files)} file(s) found; skipping the stored ones "
+              f"and ordering the rest by recording time", flush=True)
+        res = backfill(files, rig, store, rules, client=client, clock=time.time, sender=sender,
+                       on_file=said, path_map=path_map, on_start=started)
+    print(f"qcd scan: rig {rig.name}: {res.count - len(res.failed)} of {res.count} "
+          f"file(s) measured and stored" + _failed_text(res.failed))
+    for a in res.opened:
+        print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "
+              f"mode {a['mode']})")
+    for mode, n in res.learning.items():
+        print(f"learning ({mode}): {n} of {rules.settings.learning_files} files; history "
+              f"checks send no messages until then")
+    if res.digest is not None:
+        print(f"digest queued: {res.digest.title}")
+    ob = res.outbox
+    print(f"messages: {ob.get('sent', 0)} sent, {ob.get('pending', 0)} pending, "
+          f"{ob.get('stuck', 0)} stuck" + ("" if sender else " (no notification targets)"))
+    return EXIT_FAILED if res.failed or ob.get("stuck", 0) else EXIT_OK
 
 
 def _failed_text(failed: list[FileMeasures]) -> str:

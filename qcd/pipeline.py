@@ -37,7 +37,7 @@ if TYPE_CHECKING:
 
 __all__ = ["measure", "measure_all", "watched_channels", "process", "commit", "error_file",
            "flush_digest", "tick", "judge_file", "chart_input", "relearn", "scan", "ScanResult",
-           "recording_order", "DIGEST_FILES", "in_rig_zone"]
+           "recording_order", "order_key", "DIGEST_FILES", "in_rig_zone"]
 
 # More files than this in one ``scan`` is a backlog: one digest instead of a message per file.
 DIGEST_FILES = 20
@@ -462,6 +462,12 @@ def _by_mtime(path: Path) -> tuple[float, str]:
         return 0.0, os.fspath(path)
 
 
+def order_key(path: str | os.PathLike) -> tuple[float, str]:
+    """The recording-order key of one file (header time, else mtime; then the path); the
+    header is read and dropped, so a caller can order many files in little memory."""
+    return _opened(Path(path))[0]
+
+
 def _in_order(paths: Iterable[str | os.PathLike]) -> list[tuple[Path, Recording | None]]:
     opened = [(Path(p), _opened(Path(p))) for p in paths]
     return [(p, rec) for p, (_, rec) in sorted(opened, key=lambda x: x[1][0])]
@@ -479,6 +485,8 @@ class ScanResult:
     digest: alerts.Message | None = None                    # the digest Message, if any
     outbox: dict[str, int] = field(default_factory=dict)
     learning: dict[str, int] = field(default_factory=dict)  # mode -> good files, still learning
+    count: int = 0                                          # files committed
+    failed: list[FileMeasures] = field(default_factory=list)  # the error files among them
 
 
 def measure_all(paths: list[Path], rig: RigConfig, workers: int = 1, *, digest: bool = True,
@@ -501,24 +509,39 @@ def _measure_job(path: Path, rig: RigConfig, recording: Recording | None, digest
 def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules: Rules, *,
          clock: Callable[[], float], sender: Sender | None = None,
          on_file: Callable[[FileMeasures], None] | None = None, batch: bool | None = None,
-         workers: int = 1) -> ScanResult:
+         workers: int = 1,
+         measured: Callable[[list], Iterable[FileMeasures]] | None = None,
+         keep_files: bool = True) -> ScanResult:
     """``qcd scan --store``: measure -> store -> judge -> alerts -> delivery, in recording order.
 
     ``workers`` > 1 measures in that many processes; every result is committed here, in
     recording order, through this one writer. ``batch`` (default: more than DIGEST_FILES
-    files) ends with one digest instead of one message per file.
+    files) ends with one digest instead of one message per file. ``measured`` (qcd.cluster):
+    ``paths`` are already in recording order and it yields their FileMeasures in that order;
+    without ``keep_files`` only the error files are kept in the result (``count`` counts all).
     """
-    # stored as absolute, resolved paths: the service finds them under its (resolved) folders
-    ordered = _in_order(Path(os.path.realpath(p)) for p in paths)
-    files = [p for p, _ in ordered]
+    if measured is None:
+        # stored as absolute, resolved paths: the service finds them under its (resolved) folders
+        ordered = _in_order(Path(os.path.realpath(p)) for p in paths)
+        files = [p for p, _ in ordered]
+        results = measure_all(files, rig, workers, headers=[rec for _, rec in ordered])
+    else:
+        files = paths if isinstance(paths, list) else list(paths)
+        results = measured(files)
     batch = len(files) > DIGEST_FILES if batch is None else batch
     name = rig.name
     was_open = {a["key"] for a in store.open_alerts(name)}
     out = ScanResult()
-    measured = measure_all(files, rig, workers, headers=[rec for _, rec in ordered])
-    for fm in measured:
+    modes: set[str] = set()
+    for fm in results:
         fm = commit(fm, rig, store, rules, clock(), None if batch else sender, batch=batch)
-        out.files.append(fm)
+        out.count += 1
+        if fm.status == "ok":
+            modes.add(fm.mode)
+        else:
+            out.failed.append(fm)
+        if keep_files:
+            out.files.append(fm)
         if on_file is not None:
             on_file(fm)
     if batch:
@@ -527,7 +550,7 @@ def scan(paths: Iterable[str | os.PathLike], rig: RigConfig, store: Store, rules
         _deliver(store, sender, clock())
     out.opened = [a for a in store.open_alerts(name) if a["key"] not in was_open]
     out.outbox = store.outbox_counts()
-    for mode in sorted({fm.mode for fm in out.files if fm.status == "ok"}):
+    for mode in sorted(modes):
         n = store.good_file_count(name, mode)
         if n < rules.settings.learning_files:
             out.learning[mode] = n

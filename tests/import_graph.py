@@ -32,7 +32,7 @@ LAYERS = (
     "measures.steps", "measures.wholecell", "measures.testpulse",
     "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "runlength", "ruleset",
     "charts", "history", "judge", "alerts", "store", "notify", "plan", "blocks", "pulse",
-    "analyze", "intake", "workers", "pipeline", "watch",
+    "analyze", "intake", "workers", "pipeline", "cluster", "watch",
     "status",
     "html", "report", "compare", "export", "digest", "synth", "demo", "cli", "__init__", "__main__",
 )

@@ -727,3 +727,25 @@ def test_reads_leave_no_snapshot_open_so_a_later_write_never_hits_the_upgrade_pi
         # ... and its read-then-write transactions start with BEGIN IMMEDIATE
         s.commit_file("rig-a", fmeasures(path="/n.abf", sha="9" * 64), analysed_at=T0)
         assert len(s.files()) == 2 and len(s.active_mutes(2.0)) == 2
+
+
+def test_history_reads_the_newest_files_from_an_index_without_sorting_the_rig(store):
+    from stored import schema_steps
+    # the query plan as SQLite states it (sqlite.org, "EXPLAIN QUERY PLAN": "USE TEMP B-TREE
+    # FOR ORDER BY" is a sort of every row found); without the m008_backfill index the
+    # history query sorted all files of the rig and mode, so each commit cost grew with the
+    # store
+    assert "m008_backfill" in schema_steps(store)
+    sent: list[str] = []
+    store.db.conn.set_trace_callback(sent.append)
+    try:
+        store.history("rig-a", "voltage_clamp", 0, "noise_rms", limit=30, days=30.0,
+                      before=T0)
+        store.reference_spectrum("rig-a", "voltage_clamp", 0, limit=30, days=30.0, before=T0)
+    finally:
+        store.db.conn.set_trace_callback(None)
+    queries = [q for q in sent if q.lstrip().upper().startswith("SELECT")]
+    assert len(queries) == 2
+    for q in queries:
+        plan = " | ".join(r[3] for r in store.db.conn.execute("EXPLAIN QUERY PLAN " + q))
+        assert "files_rig_time" in plan and "TEMP B-TREE" not in plan, plan
