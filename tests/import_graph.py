@@ -34,7 +34,8 @@ LAYERS = (
     "charts", "history", "judge", "alerts", "codec", "schema", "store", "notify",
     "plan", "blocks", "pulse", "analyze", "intake", "workers", "pipeline", "cluster", "watch",
     "status",
-    "html", "report", "compare", "export", "digest", "synth", "demo", "cli", "__init__", "__main__",
+    "html", "report", "compare", "export", "digest", "synth", "demo",
+    "table", "scan", "review", "control", "cli", "__init__", "__main__",
 )
 
 
