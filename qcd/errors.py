@@ -1,10 +1,12 @@
-"""Errors qcd raises on purpose. Imports nothing from qcd, so every layer can use it."""
+"""Errors qcd raises on purpose, and the exit codes the command line gives them. Imports
+nothing from qcd, so every layer can use it."""
 from __future__ import annotations
 
 import os
 
 __all__ = ["QcdError", "ConfigError", "RecordingError", "DeliveryError", "StoreError",
-           "RECORDING_ERROR_KINDS", "printable", "path_bytes"]
+           "RECORDING_ERROR_KINDS", "printable", "path_bytes", "EXIT_OK", "EXIT_FAILED",
+           "EXIT_USAGE"]
 
 # Stable codes stored with every failed file (files.error_kind). Never rename one.
 RECORDING_ERROR_KINDS = (
@@ -77,3 +79,8 @@ class DeliveryError(QcdError):
 
 class StoreError(QcdError):
     """The database cannot be opened, migrated or written."""
+
+
+# Exit codes of the qcd command (qcd.cli maps errors to them; the command bodies return them):
+# all good; some file failed (or an alert or delivery problem was found); usage or config error.
+EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2

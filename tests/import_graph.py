@@ -31,10 +31,11 @@ LAYERS = (
     "measures.mains", "measures.humfit", "measures.zoom",
     "measures.steps", "measures.wholecell", "measures.testpulse",
     "config", "abf", "hdf5", "recording", "nwb", "neoread", "results", "runlength", "ruleset",
-    "charts", "history", "judge", "alerts", "store", "notify", "plan", "blocks", "pulse",
-    "analyze", "intake", "workers", "pipeline", "cluster", "watch",
+    "charts", "history", "judge", "alerts", "codec", "schema", "store", "notify",
+    "plan", "blocks", "pulse", "analyze", "intake", "workers", "pipeline", "cluster", "watch",
     "status",
-    "html", "report", "compare", "export", "digest", "synth", "demo", "cli", "__init__", "__main__",
+    "html", "report", "compare", "export", "digest", "synth", "demo",
+    "table", "scan", "review", "control", "cli", "__init__", "__main__",
 )
 
 

@@ -178,6 +178,29 @@ def test_scan_as_a_process_prints_no_traceback(tmp_path):
     assert "Traceback" not in proc.stderr + proc.stdout
 
 
+@pytest.mark.parametrize("command", _commands())
+def test_every_command_has_a_body_in_the_module_cli_names(command):
+    from qcd.cli import _COMMANDS, _body
+    body = _body(command)
+    assert body.__module__ == f"qcd.{_COMMANDS[command]}"
+    assert body.__name__ == "_cmd_" + command.replace("-", "_")
+
+
+def test_scan_help_loads_no_command_module_and_scan_only_its_own(tmp_path):
+    # start-up time of `qcd scan`: a command's module is imported only when that command runs
+    code = ("import sys\nfrom qcd.cli import main\ntry:\n    main(sys.argv[1:])\n"
+            "except SystemExit:\n    pass\n"
+            "print(' '.join(sorted(m for m in sys.modules if m.startswith(('qcd', 'numpy')))))")
+    loaded = {}
+    for args in (["scan", "--help"], ["scan", "--json", str(tmp_path / "none")]):
+        proc = subprocess.run([sys.executable, "-c", code, *args], capture_output=True,
+                              text=True, cwd=ROOT, timeout=120)
+        loaded[args[1]] = set(proc.stdout.split("\n")[-2].split())
+    assert loaded["--help"] == {"qcd", "qcd.cli", "qcd.errors"}
+    assert {"qcd.scan", "qcd.table"} <= loaded["--json"]
+    assert not {"qcd.review", "qcd.control"} & loaded["--json"]
+
+
 # --- qcd mute ------------------------------------------------------------------------------------
 
 def _mute_config(tmp_path):
