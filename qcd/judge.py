@@ -264,6 +264,18 @@ def _values(rows: Iterable[Any], limit: int) -> list[float]:
 _IMPRECISE = 3.0       # a past value 3x less precise than the rig's usual stays out of the reference
 
 
+def _clean(history: History) -> History:
+    """The history of files with no flag at all, where the history function offers it (the
+    store's does): the noise-source hints compare with those, so a fault that lasts longer
+    than the window does not become the normal its own hint is measured against."""
+    def clean(mode: str, channel: int, measure: str) -> Sequence[tuple[float, float]]:
+        try:
+            return history(mode, channel, measure, clean_files=True)  # type: ignore[call-arg]
+        except TypeError:                    # a plain history function (tests, scripts)
+            return history(mode, channel, measure)
+    return clean
+
+
 def _precise(history: History, mode: str, ch: ChannelMeasures, name: str, limit: int,
              side: str = "both") -> list[float]:
     """``_values`` of a measure's history; for a measure that carries a standard error
@@ -532,7 +544,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     continue
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
-                    groups = noise_hints(ch, mode, history, rules) if groups is None else groups
+                    groups = noise_hints(ch, mode, _clean(history), rules) if groups is None else groups
                     g = groups or ([_HINT_MEASURES[m.name]] if m.name in _HINT_MEASURES else [])
                     hint = _hint_text(g)
                 out.append(Finding(
@@ -601,7 +613,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     stat_text += f" (a jump, flagged by {jump})"
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
-                    groups = noise_hints(ch, mode, history, rules) if groups is None else groups
+                    groups = noise_hints(ch, mode, _clean(history), rules) if groups is None else groups
                     g = groups or ([_HINT_MEASURES[m.name]] if m.name in _HINT_MEASURES else [])
                     hint = _hint_text(g)
                 if chart_row is not None:

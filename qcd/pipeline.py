@@ -161,10 +161,11 @@ def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now
         if row["start_at"] is not None:
             starts[(ch, measure)] = max(starts.get((ch, measure), -math.inf), row["start_at"])
 
-    def history(mode: str, channel: int, measure: str) -> list[tuple[float, float]]:
+    def history(mode: str, channel: int, measure: str, clean_files: bool = False
+                ) -> list[tuple[float, float]]:
         return store.history(name, mode, channel, measure, limit=st.history_files,
                              days=st.history_days, before=before,
-                             after=starts.get((channel, measure)))
+                             after=starts.get((channel, measure)), clean_files=clean_files)
 
     def charts(mode: str, channel: int, measure: str, rule: HistoryRule) -> ChartInput | None:
         row = stored.get((mode, channel, measure, rule.name)) or {}

@@ -281,10 +281,12 @@ class Store:
 
     def history(self, rig: str, mode: str, channel: int, measure: str, *, limit: int = 30,
                 days: float = 30.0, before: float, after: float | None = None,
-                skip: int = 0) -> list[tuple[float, float]]:
+                skip: int = 0, clean_files: bool = False) -> list[tuple[float, float]]:
         """[(recorded_at, value)] of ok, current files in [before - days, before) whose value of
         this measure was not flagged, newest first, at most ``limit``; ``after``: only files
-        recorded at or after it (a re-learn); ``skip``: leave out the newest ``skip`` of them.
+        recorded at or after it (a re-learn); ``skip``: leave out the newest ``skip`` of them;
+        ``clean_files``: only files with no flag at all (what the noise-source hints compare
+        with, so a lasting fault on one measure does not become the normal of the others).
 
         The flag is per measure: a file whose hum was flagged still gives its seal resistance
         to the baseline, so a lasting condition on one measure cannot keep a rig learning.
@@ -294,6 +296,7 @@ class Store:
             "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
             "AND f.superseded = 0 AND f.recorded_at < ? AND f.recorded_at >= ? "
             "AND m.channel = ? AND m.name = ? AND m.flagged = 0 AND m.value IS NOT NULL "
+            + ("AND f.flagged = 0 " if clean_files else "") +
             "ORDER BY f.recorded_at DESC, f.id DESC LIMIT ? OFFSET ?",
             (rig, mode, before, max(before - days * 86400.0,
                                     -math.inf if after is None else float(after)),

@@ -224,6 +224,10 @@ def test_history_excludes_flagged_superseded_error_and_out_of_window_rows(store)
         (T0 - DAY, 0.02)
     assert store.history("rig-a", "voltage_clamp", 0, "spectral_lines", before=T0) == []
     assert flagged_measures(store, fid4) == {(0, "hum_rms")}
+    # what the noise-source hints compare with: files with no flag at all, so f4 (its hum
+    # flagged) stays out of the noise history too
+    assert store.history("rig-a", "voltage_clamp", 0, "noise_rms", before=T0,
+                         clean_files=True) == [h for h in hist if h != (T0 - 1.5 * DAY, 40.0)]
     assert store.files("rig-a", since=T0 - 1.6 * DAY, until=T0 - 1.4 * DAY)[0]["flagged"]
     # ok and current, flagged or not: f1 f2 f3 f4 f6 f7 f10' f11
     assert store.good_file_count("rig-a", "voltage_clamp") == 8
