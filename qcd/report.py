@@ -483,14 +483,6 @@ def _when(t: float | None, zone: str | None = "UTC") -> str:
     return local_text(t, zone)
 
 
-def _alert_text(a: dict, zone: str | None = "UTC") -> str:
-    parts = [str(a.get(k)) for k in ("measure", "rule") if a.get(k)]
-    ch = a.get("channel")
-    chs = f" ch{ch}" if ch not in (None, "", -1) else ""
-    return (f"{' / '.join(parts) or a.get('key', '?')}{chs} since "
-            f"{_when(a.get('opened_at'), zone)}")
-
-
 def _mute_text(x: dict, zone: str | None = "UTC") -> str:
     until = "its alerts resolve" if x.get("end_at") is None else _when(x["end_at"], zone)
     rules = "" if x.get("rule_glob") in (None, "*") else f" (rules {x['rule_glob']})"

@@ -81,23 +81,10 @@ def _cmd_scan(args: argparse.Namespace) -> int:
         with Store(cfg.database) as store:
             res = scan(files, rig, store, rules, clock=time.time, sender=sender, on_file=said,
                        workers=args.workers, keep_files=False)
-        failed = res.failed
-        print(f"qcd scan: rig {rig.name}: {res.count - len(failed)} of {res.count} "
-              f"file(s) measured and stored" + _failed_text(failed))
-        for a in res.opened:
-            print(f"alert opened: {a['measure']} channel {a['channel']} (rule {a['rule']}, "
-                  f"mode {a['mode']})")
-        for mode, n in res.learning.items():
-            print(f"learning ({mode}): {n} of {rules.settings.learning_files} files; history "
-                  f"checks send no messages until then")
-        if res.digest is not None:
-            print(f"digest queued: {res.digest.title}")
-        ob = res.outbox
-        print(f"messages: {ob.get('sent', 0)} sent, {ob.get('pending', 0)} pending, "
-              f"{ob.get('stuck', 0)} stuck" + ("" if sender else " (no notification targets)"))
+        code = _said_stored(res, rig, rules, sender)
         if not files:
             print("qcd scan: no *.abf files found", file=sys.stderr)
-        return EXIT_FAILED if failed or ob.get("stuck", 0) else EXIT_OK
+        return code
     import json
 
     from qcd.config import RigConfig, parse_pulse
@@ -176,6 +163,11 @@ def _scan_cluster(args: argparse.Namespace, cfg, rig, rules, sender) -> int:
               f"and ordering the rest by recording time", flush=True)
         res = backfill(files, rig, store, rules, client=client, clock=time.time, sender=sender,
                        on_file=said, path_map=path_map, on_start=started)
+    return _said_stored(res, rig, rules, sender)
+
+
+def _said_stored(res, rig, rules, sender) -> int:
+    """What a ``scan --store`` did (inline, workers or cluster), and its exit code."""
     print(f"qcd scan: rig {rig.name}: {res.count - len(res.failed)} of {res.count} "
           f"file(s) measured and stored" + _failed_text(res.failed))
     for a in res.opened:
