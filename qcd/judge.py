@@ -164,6 +164,12 @@ def _number(v: Any) -> float | None:
 _GROWN_Z = 3.0          # a band "grew" at robust z > 3 on log values ...
 _GROWN_RATIO = 1.5      # ... and at least 1.5x its median (common practice, not a published rule)
 _SE_SIGMAS = 2.0        # a value with a standard error counts as its value -+ 2 SE
+# The hum hint asks on every bad noise file whether the hum itself grew: its reading counts by
+# the lower bound of its power 3 standard errors down (one-sided 0.13 % for a normal error;
+# the short-window hum fit's error has a heavier tail, about 0.3 % beyond 3 SE and 0.03 %
+# beyond 4 SE in simulation under a 3.5x broadband floor), so a fault of dozens of files does
+# not show a wrong grounding hint now and then. METHODS §4.5.
+_HUM_SIGMAS = 3.0
 
 
 def _se(ch: Any, name: str) -> float:
@@ -171,6 +177,19 @@ def _se(ch: Any, name: str) -> float:
     m = ch.measures.get(f"{name}_se")
     v = _number(m.value) if m is not None else None
     return v if v is not None and v > 0 else 0.0
+
+
+def _rms_lower(rms: float, rms_se: float, sigmas: float) -> float:
+    """The RMS at the power ``sigmas`` standard errors below a reading, at least 0.
+
+    ``rms_se`` is a hum-like error: how far one standard error of the power moves the RMS up,
+    sqrt(P + se_P) - sqrt(P) (qcd.measures.mains.Hum.rms_se), so se_P = (rms + rms_se)^2 - rms^2.
+    The bound is taken on the power, where the error is symmetric: on the RMS scale a step down
+    is longer than the step up (sqrt is concave), and rms - k rms_se would sit short of k
+    standard errors."""
+    p = rms * rms
+    se_p = (rms + rms_se) ** 2 - p
+    return math.sqrt(max(p - sigmas * se_p, 0.0))
 
 
 def _ratio(value: float, past: list[float]) -> tuple[float, bool] | None:
@@ -199,9 +218,10 @@ def noise_hints(ch: ChannelMeasures, mode: str, history: History, rules: Rules
 
     Like is compared with like: when the noise floor rose in (nearly) every band together, that
     is one broadband change (headstage, pipette, bath), and a band or the drift counts on its
-    own only where it grew 1.5x beyond that common factor. Mains hum counts only by its lower
-    bound, hum_rms - 2 hum_rms_se, whose error comes from the noise floor beside the harmonics,
-    so a rising floor alone cannot make the hum look grown."""
+    own only where it grew 1.5x beyond that common factor. Mains hum counts only by the lower
+    bound of its power, 3 standard errors down (hum_rms_se; the error comes from the noise
+    floor beside the harmonics), so a rising floor alone cannot make the hum look grown, not
+    even now and then over a fault of many files."""
     n_hist = rules.settings.history_files
 
     def past(name: str) -> list[float]:
@@ -239,7 +259,7 @@ def noise_hints(ch: ChannelMeasures, mode: str, history: History, rules: Rules
             grown[group] = max(grown.get(group, 0.0), r / common)
     hum = value("hum_rms")
     if hum is not None:
-        r = _ratio(hum - _SE_SIGMAS * _se(ch, "hum_rms"), past("hum_rms"))
+        r = _ratio(_rms_lower(hum, _se(ch, "hum_rms"), _HUM_SIGMAS), past("hum_rms"))
         if r is not None and r[1]:
             grown[_MAINS] = r[0]
     return sorted(grown, key=lambda g: -grown[g])[:3]     # biggest growth first

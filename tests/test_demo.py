@@ -272,11 +272,11 @@ def test_report_hints_name_the_scripted_sources(lab):
 
 
 @pytest.mark.slow
-def test_morning_report_and_first_alert_name_each_scripted_source(lab):
+def test_morning_report_and_every_alert_name_each_scripted_source(lab):
     # what a user reads: the default morning report (qcd report, --since 18h, at 07:30 after the
-    # last day) and the first message each rig sent. ground -> grounding with the safety
-    # caution; headstage -> the broadband hint and not grounding; seal -> the seal limit and
-    # no noise hint; healthy -> nothing.
+    # last day) and every message each rig sent, the first one and each reminder after it.
+    # ground -> grounding with the safety caution; headstage -> the broadband hint and not
+    # grounding; seal -> the seal limit and no noise hint; healthy -> nothing.
     from qcd.judge import SAFETY_NOTE
     from qcd.report import build_report, parse_since, render_text
     result, store, _ = lab
@@ -285,34 +285,45 @@ def test_morning_report_and_first_alert_name_each_scripted_source(lab):
     rigs = {x.rig: x for x in report.rigs}
     text = {rig: render_text(build_report(store, now, parse_since("18h", now), [rig]))
             for rig in rigs}
-    first: dict[str, dict] = {}
+    sent: dict[str, list[dict]] = {}
     for row in stored.outbox_rows(store):
-        first.setdefault(row["rig"], row)
+        sent.setdefault(row["rig"], []).append(row)
+    said = {rig: [m for m in msgs if m["kind"] != "resolved"] for rig, msgs in sent.items()}
 
-    ground, msg = rigs["field-1"], first["field-1"]
+    ground = rigs["field-1"]
     assert any("grounding" in h for h in ground.hints)
     assert ground.safety_note and "electrician" in ground.safety_note
-    assert "hum_rms" in msg["title"] and "grounding" in msg["body"] and SAFETY_NOTE in msg["body"]
+    assert "hum_rms" in sent["field-1"][0]["title"]
+    assert said["field-1"]
+    for msg in said["field-1"]:
+        assert "grounding" in msg["body"] and SAFETY_NOTE in msg["body"], msg["title"]
 
-    head, msg = rigs["patch-2"], first["patch-2"]
+    head = rigs["patch-2"]
     assert head.hints and all("headstage" in h and "broadband" in h for h in head.hints)
     assert not any(w in h for h in head.hints for w in ("grounding", "mains"))
     assert head.safety_note is None and "hum_rms" not in text["patch-2"].split("open alerts")[1]
-    assert "noise_rms" in msg["title"] and "headstage" in msg["body"]
-    assert "grounding" not in msg["body"] and "hum" not in msg["title"]
+    assert "noise_rms" in sent["patch-2"][0]["title"]
+    assert said["patch-2"]
+    for msg in sent["patch-2"]:
+        assert "grounding" not in msg["body"] and "hum" not in msg["title"], msg["title"]
+        assert SAFETY_NOTE not in msg["body"]
+    for msg in said["patch-2"]:
+        assert "headstage" in msg["body"] and "broadband" in msg["body"], msg["title"]
 
-    seal, msg = rigs["patch-3"], first["patch-3"]
+    seal = rigs["patch-3"]
     assert any(a["rule"] == "gigaseal" for a in seal.open_alerts)
     assert "seal resistance below 1 GOhm, channel 0" in text["patch-3"]
     assert "(rule gigaseal)" in text["patch-3"]
     assert any("gigaseal: below 1 GOhm" in flag for f in seal.files for flag in f["flags"])
     assert not seal.hints and seal.safety_note is None
+    msg = sent["patch-3"][0]
     assert "seal_resistance" in msg["title"] and "below 1 GOhm" in msg["title"]
-    assert "Possible source" not in msg["body"]
+    for msg in sent["patch-3"]:
+        assert "Possible source" not in msg["body"], msg["title"]
 
     healthy = rigs["patch-1"]
     assert not healthy.hints and not healthy.open_alerts and healthy.n_flagged == 0
-    assert "patch-1" not in first
+    assert "patch-1" not in sent
 
 
 def test_demo_command_rejects_too_few_days(capsys):

@@ -368,6 +368,26 @@ def test_a_hum_creep_gives_the_grounding_hint_with_the_safety_caution(rules):
     assert "broadband" not in f["hum_jump"].hint
 
 
+def test_a_noisy_hum_reading_counts_by_its_power_three_errors_down(rules):
+    # a reading of the demo's headstage fault (bands 3.5x, hum unchanged): hum_rms 0.853 pA
+    # with hum_rms_se 0.095 pA, i.e. power 0.728 pA^2 whose one SE, 0.171 pA^2, moves the RMS
+    # up by 0.095 (sqrt(0.728 + 0.171) - sqrt(0.728), METHODS §4.2). Its lower bound 3 SE
+    # down is sqrt(0.728 - 3 x 0.171) = 0.46 pA (arithmetic), short of 1.5x the clean
+    # history's upper bounds (0.28 + 2 x 0.03 pA): broadband only. On the RMS scale,
+    # 0.853 - 2 x 0.095 = 0.66 pA would have passed 1.5x and added the grounding hint.
+    normal = dict(_NORMAL, hum_rms=0.28, hum_rms_se=0.03)
+    now = {k: (v * 3.5, "pA") for k, v in _NORMAL.items() if k != "hum_rms"}
+    now["hum_rms"], now["hum_rms_se"] = (0.853, "pA"), (0.095, "pA")
+    f = _by_rule(judge(_fm(now), "r", _histories(normal), rules, 0))
+    assert f["noise_jump"].bad
+    assert "headstage" in f["noise_jump"].hint and "grounding" not in f["noise_jump"].hint
+    # the same error on a hum that did grow: sqrt(2.25 - 3 x 0.294) = 1.17 pA, 3.4x the normal
+    now["hum_rms"], now["hum_rms_se"] = (1.5, "pA"), (0.095, "pA")
+    f = _by_rule(judge(_fm(now), "r", _histories(normal), rules, 0))
+    assert "grounding" in f["noise_jump"].hint and "headstage" in f["noise_jump"].hint
+    assert SAFETY_NOTE in f["noise_jump"].hint
+
+
 def test_a_band_counts_on_its_own_only_beyond_the_broadband_factor(rules):
     # the floor doubled everywhere, and 10-70 Hz grew 8x: broadband plus vibration
     now = {k: (v * 2.0, "pA") for k, v in _NORMAL.items() if k.startswith("band")}
