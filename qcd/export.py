@@ -83,13 +83,19 @@ def _reason(rule: str, measure: str, value: Any, unit: str, text: str, kind: str
     return f"{rule}: {measure}{shown} ({text.replace(';', ',')})"
 
 
+def _no_history(mode: str, channel: int, measure: str, *, clean_files: bool = False
+                ) -> list[tuple[float, float]]:
+    """A history with no files (fixed limits only; the hints then name the measure's group)."""
+    return []
+
+
 def file_verdicts(fm: FileMeasures, rig: str, limits: Rules, drift: Iterable[dict],
                   now: float) -> dict[int | None, list[str]]:
     """{channel: reasons} of one measured file: its fixed limits judged now by ``judge`` with
     ``limits`` (rules without history), plus the stored bad drift findings ``drift``.
     A file-level finding counts for each channel it names (every channel when it names none)."""
     out: dict[int | None, list[str]] = {c.index: [] for c in fm.channels}
-    found: list[Finding] = judge(fm, rig, lambda *a: [], limits, now)
+    found: list[Finding] = judge(fm, rig, _no_history, limits, now)
     for f in found:
         if not f.bad or f.kind == "drift" or f.learning:
             continue

@@ -9,7 +9,7 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable, Sequence
+from typing import Any, Callable, Iterable, Protocol, Sequence
 
 import numpy as np
 
@@ -24,7 +24,18 @@ __all__ = ["Finding", "Chart", "CusumChart", "judge", "robust_z", "baseline", "e
 
 log = logging.getLogger(__name__)
 
-History = Callable[[str, int, str], Sequence[tuple[float, float]]]
+
+
+class History(Protocol):
+    """The rig's history before the file judged: ``history(mode, channel, measure)`` ->
+    [(recorded_at, value)] of good files whose value of this measure was not flagged, newest
+    first (qcd.pipeline.judge_file binds qcd.store.Store.history); ``clean_files=True``: only
+    files with no flag at all, what the noise-source hints compare with."""
+
+    def __call__(self, mode: str, channel: int, measure: str, *, clean_files: bool = False
+                 ) -> Sequence[tuple[float, float]]: ...
+
+
 # (mode, channel, measure, rule) -> the chart's reference and state before this file, or None
 Charts = Callable[[str, int, str, HistoryRule], "_charts.ChartInput | None"]
 
@@ -285,14 +296,12 @@ _IMPRECISE = 3.0       # a past value 3x less precise than the rig's usual stays
 
 
 def _clean(history: History) -> History:
-    """The history of files with no flag at all, where the history function offers it (the
-    store's does): the noise-source hints compare with those, so a fault that lasts longer
-    than the window does not become the normal its own hint is measured against."""
-    def clean(mode: str, channel: int, measure: str) -> Sequence[tuple[float, float]]:
-        try:
-            return history(mode, channel, measure, clean_files=True)  # type: ignore[call-arg]
-        except TypeError:                    # a plain history function (tests, scripts)
-            return history(mode, channel, measure)
+    """The history of files with no flag at all: the noise-source hints compare with those,
+    so a fault that lasts longer than the window does not become the normal its own hint is
+    measured against."""
+    def clean(mode: str, channel: int, measure: str, *, clean_files: bool = True
+              ) -> Sequence[tuple[float, float]]:
+        return history(mode, channel, measure, clean_files=True)
     return clean
 
 
@@ -526,7 +535,8 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
     """Every evaluated (channel, measure, rule) of one file as a Finding, plus rig-level ones.
 
     ``history(mode, channel, measure)`` gives the rig's [(recorded_at, value)] of good,
-    unflagged files before this one (the 'z' rules' window). ``charts(mode, channel,
+    unflagged files before this one (the 'z' rules' window); with ``clean_files=True`` only
+    files with no flag at all (the hints' comparison; see History). ``charts(mode, channel,
     measure, rule)`` gives an 'ewma'/'cusum' rule's reference and chart before this file
     (qcd.charts.ChartInput); their findings carry the chart after it (``Finding.chart``).
     Without ``charts`` the sequential rules are not evaluated.

@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 
 from qcd.errors import RecordingError
-from qcd.hdf5 import EXTRA_HINT, check_end, h5py_module
+from qcd.hdf5 import check_end, h5py_module
 from qcd.recording import Channel, Header, Recording, SampledCommand
 
 __all__ = ["open_nwb"]

@@ -161,7 +161,7 @@ def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now
         if row["start_at"] is not None:
             starts[(ch, measure)] = max(starts.get((ch, measure), -math.inf), row["start_at"])
 
-    def history(mode: str, channel: int, measure: str, clean_files: bool = False
+    def history(mode: str, channel: int, measure: str, *, clean_files: bool = False
                 ) -> list[tuple[float, float]]:
         return store.history(name, mode, channel, measure, limit=st.history_files,
                              days=st.history_days, before=before,

@@ -346,7 +346,7 @@ def test_titles_read_as_sentences():
     rules = load_rules()
     # an unreadable file, as the judge reports it
     (f,) = judge(FileMeasures("/d/x.abf", "error", error="/d/x.abf: bad signature",
-                              error_kind="bad_signature"), "rig-b", lambda *a: [], rules, 0.0)
+                              error_kind="bad_signature"), "rig-b", lambda *a, **k: [], rules, 0.0)
     _, (m,) = advance({}, [f], [], 0.0, SET)
     assert m.title == "qcd rig-b: a file could not be read: bad signature"
     # a fixed limit: opened, still bad a day later, resolved

@@ -107,15 +107,15 @@ def test_clipping_is_one_rig_level_finding_per_file_naming_the_clipped_channels(
     from qcd.judge import judge
     # default limit: more than 0.1 % of samples at the rails (rules/default.toml; common practice)
     (f,) = [x for x in judge(_clipping_file([0.0, 0.02, 0.0005, 0.004]), "r",
-                             lambda *a: [], rules, 0) if x.rule == "clipping"]
+                             lambda *a, **k: [], rules, 0) if x.rule == "clipping"]
     assert f.bad and f.kind == "rig" and f.channel == -1 and f.channels == (1, 3)
     assert f.value == 0.02                                       # the worst channel's share
     assert f.limit_text == "above 0.001 on channels 1 (IN 1), 3 (IN 3)"
-    (ok,) = [x for x in judge(_clipping_file([0.0, 0.0, 0.0]), "r", lambda *a: [], rules, 0)
+    (ok,) = [x for x in judge(_clipping_file([0.0, 0.0, 0.0]), "r", lambda *a, **k: [], rules, 0)
              if x.rule == "clipping"]
     assert not ok.bad and ok.clear and ok.channels == ()
     # one channel just under the limit: not bad, and not clear (inside the 10 % clear margin)
-    (near,) = [x for x in judge(_clipping_file([0.0, 0.00095]), "r", lambda *a: [], rules, 0)
+    (near,) = [x for x in judge(_clipping_file([0.0, 0.00095]), "r", lambda *a, **k: [], rules, 0)
                if x.rule == "clipping"]
     assert not near.bad and not near.clear
 

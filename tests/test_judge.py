@@ -103,7 +103,7 @@ def _fm(measures: dict[str, tuple[float, str]], mode: str = "voltage_clamp",
     return FileMeasures(path=path, status="ok", mode=mode, channels=(ch,))
 
 
-def _no_history(mode, channel, measure):
+def _no_history(mode, channel, measure, *, clean_files=False):
     return []
 
 
@@ -161,7 +161,7 @@ def test_error_file_gives_a_rig_level_intake_finding(rules):
 
 
 def _history_from(values, measure="hum_rms"):
-    def history(mode, channel, name):
+    def history(mode, channel, name, *, clean_files=False):
         if name != measure:
             return []
         return [(1000.0 - i, v) for i, v in enumerate(values)]      # newest first
@@ -191,7 +191,7 @@ def test_vibration_hint_names_the_grown_band(rules):
     fm = _fm({"noise_rms": (3.0, "pA"), "band_rms_10_70": (3.0, "pA"),
               "band_rms_1k_corner": (1.0, "pA")})
 
-    def history(mode, channel, name):
+    def history(mode, channel, name, *, clean_files=False):
         return [(1000.0 - i, v) for i, v in enumerate(past)]
     f = _by_rule(judge(fm, "r", history, rules, 0))
     assert f["noise_jump"].bad
@@ -272,7 +272,7 @@ def test_a_renamed_lifecycle_key_is_refused_with_its_new_name(tmp_path: Path, ta
     p.write_text(f"{head}{rule}\n{old} = 2\n")
     with pytest.raises(ConfigError) as ei:
         load_rules([p])
-    assert f"lab.toml" in str(ei.value) and f"write {new!r} instead of {old!r}" in str(ei.value)
+    assert "lab.toml" in str(ei.value) and f"write {new!r} instead of {old!r}" in str(ei.value)
     p.write_text(f"{head}{rule}\n{new} = 2\n")
     r = load_rules([p])
     got = r.settings if table == "settings" else (r.limits + r.history)[0]
@@ -286,7 +286,7 @@ def test_strong_non_mains_line_suggests_switching_supplies(rules):
     ch = fm.channels[0]
     ch.measures["spectral_lines"] = Measure("spectral_lines", [[1234.5, 1.2], [3000.0, 0.1]], "pA")
 
-    def history(mode, channel, name):
+    def history(mode, channel, name, *, clean_files=False):
         return [(1000.0 - i, v) for i, v in enumerate(past)] if name == "noise_rms" else []
     f = _by_rule(judge(fm, "r", history, rules, 0))
     assert f["noise_jump"].bad and "switching power supplies" in f["noise_jump"].hint
@@ -333,7 +333,7 @@ def _histories(normal: dict[str, float], n: int = 30, seed: int = 5):
     rng = np.random.default_rng(seed)
     rows = {k: [(1000.0 - i, v * math.exp(rng.normal(0, 0.05))) for i in range(n)]
             for k, v in normal.items()}
-    return lambda mode, channel, name: rows.get(name, [])
+    return lambda mode, channel, name, *, clean_files=False: rows.get(name, [])
 
 
 _NORMAL = {"noise_rms": 1.2, "noise_rms_1k": 0.9, "hum_rms": 0.26, "band_rms_0p5_10": 0.2,
@@ -386,6 +386,42 @@ def test_a_noisy_hum_reading_counts_by_its_power_three_errors_down(rules):
     f = _by_rule(judge(_fm(now), "r", _histories(normal), rules, 0))
     assert "grounding" in f["noise_jump"].hint and "headstage" in f["noise_jump"].hint
     assert SAFETY_NOTE in f["noise_jump"].hint
+
+
+def test_hints_compare_with_the_clean_history_and_the_rules_with_the_measures_own(rules):
+    # a broadband fault older than the window: the measure's own history (files whose value
+    # of it was not flagged) is full of fault-level bands, the clean one (files with no flag)
+    # still holds the normal. The jump rule reads the first, the hint the second.
+    fault = {k: v * 3.5 for k, v in _NORMAL.items() if k != "hum_rms"}
+    own, clean = _histories(dict(_NORMAL, **fault)), _histories(_NORMAL)
+    now = {k: (v, "pA") for k, v in fault.items()}
+    now["noise_rms"] = (_NORMAL["noise_rms"] * 7.0, "pA")        # 2x the fault's level
+    asked = []
+
+    def history(mode, channel, name, *, clean_files=False):
+        asked.append((name, clean_files))
+        return (clean if clean_files else own)(mode, channel, name)
+    f = _by_rule(judge(_fm(now), "r", history, rules, 0))
+    assert f["noise_jump"].bad                   # 2x against the fault-level own history
+    assert "broadband" in f["noise_jump"].hint and "headstage" in f["noise_jump"].hint
+    assert ("noise_rms", False) in asked and ("band_rms_70_1k", True) in asked
+    assert ("band_rms_70_1k", False) not in asked
+
+
+def test_an_error_inside_the_history_is_not_retried_without_clean_files(rules):
+    # a TypeError raised by the store's query itself propagates: it is not taken for a
+    # history function that does not know clean_files and silently retried without it
+    calls = []
+
+    def history(mode, channel, name, *, clean_files=False):
+        calls.append(clean_files)
+        if clean_files:
+            raise TypeError("unsupported operand in the query")
+        return [(1000.0 - i, 1.2) for i in range(30)]
+    with pytest.raises(TypeError, match="unsupported operand"):
+        judge(_fm({"noise_rms": (5.0, "pA"), "band_rms_70_1k": (3.0, "pA")}), "r", history,
+              rules, 0)
+    assert calls.count(True) == 1
 
 
 def test_a_band_counts_on_its_own_only_beyond_the_broadband_factor(rules):
