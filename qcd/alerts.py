@@ -369,8 +369,7 @@ def flush_digest(states: Mapping[str, AlertState | dict], mutes: Iterable[Mute],
     n_res = len(events) - n_open
     title = (f"qcd digest of the files caught up on: {n_open} open, {n_res} resolved "
              f"({', '.join(rigs)})")
-    body = "\n\n".join(_describe(e, zones) for e in sorted(
-        events, key=lambda e: (e.what == "resolved", e.state.key)))
+    body = _body(sorted(events, key=lambda e: (e.what == "resolved", e.state.key)), zones)
     return out, Message(alert_key=f"digest:{first.state.key}", transition=first.seq,
                         kind="digest", priority=PRIORITY["digest"] if n_open else
                         PRIORITY["resolved"], rig=rigs[0] if len(rigs) == 1 else "*",
@@ -401,7 +400,24 @@ def _what(s: AlertState) -> str:
     return f"{s.measure}{where}" if s.measure != "file" else "file intake"
 
 
-def _describe(e: _Event, zones: Mapping[str, str | None] | None = None) -> str:
+def _body(events: list[_Event], zones: Mapping[str, str | None] | None = None) -> str:
+    """The events described one after another. When every one of several carries the same
+    hint (one file's noise alerts share their noise-source hint), it is said once, after them."""
+    hints = {e.state.hint if _shows_hint(e) else "" for e in events}
+    shared = hints.pop() if len(events) > 1 and len(hints) == 1 else ""
+    parts = [_describe(e, zones, hint=not shared) for e in events]
+    if shared:
+        both = "both alerts" if len(events) == 2 else f"all {len(events)} alerts"
+        parts.append(f"For {both} above: {shared}")
+    return "\n\n".join(parts)
+
+
+def _shows_hint(e: _Event) -> bool:
+    return e.what not in ("resolved", "relearned")
+
+
+def _describe(e: _Event, zones: Mapping[str, str | None] | None = None, *,
+              hint: bool = True) -> str:
     s = e.state
     zone = (zones or {}).get(s.rig, "UTC")
     lines = [f"{_HEAD[e.what]}: {_what(s)} on rig {s.rig} ({s.mode}; rule {s.rule}, {s.severity})",
@@ -424,7 +440,7 @@ def _describe(e: _Event, zones: Mapping[str, str | None] | None = None) -> str:
     elif e.what == "backlog":
         lines.append(f"  open since {_when(s.opened_at, zone)} (found while catching up on files "
                      f"recorded earlier)")
-    if s.hint and e.what not in ("resolved", "relearned"):
+    if hint and s.hint and _shows_hint(e):
         lines.append(f"  {s.hint}")
     return "\n".join(lines)
 
@@ -497,7 +513,7 @@ def _group(events: list[_Event], now: float,
         first = min(evs, key=lambda e: (e.state.key, e.seq))
         kinds = [_KIND[e.what] for e in evs]
         kind = max(kinds, key=lambda k: PRIORITY[k])
-        body = "\n\n".join(_describe(e, zones) for e in evs)
+        body = _body(evs, zones)
         out.append(Message(alert_key=first.state.key, transition=first.seq, kind=kind,
                            priority=PRIORITY[kind], rig=rig, title=_title(rig, evs), body=body))
     return out

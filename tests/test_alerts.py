@@ -364,3 +364,26 @@ def test_titles_read_as_sentences():
     hum = replace(F(True, open_after_files=1), headline="1.9x its normal")
     _, (m,) = advance({}, [hum], [], 0.0, SET)
     assert m.title == "qcd rig-a: hum_rms on channel 0 is 1.9x its normal"
+
+
+def test_a_hint_two_alerts_share_is_said_once_after_them():
+    # one file opens noise_rms and noise_rms_1k with the same noise-source hint: the message
+    # says the hint once, after both; different hints, or an alert without one, keep their own
+    two = [F(True, rule="noise_jump", measure="noise_rms"),
+           F(True, rule="noise_1k_jump", measure="noise_rms_1k")]
+    _, msgs, _ = run([two, two])
+    (m,) = msgs
+    assert m.body.count("check grounding") == 1
+    assert m.body.endswith("For both alerts above: check grounding")
+    assert m.body.index("noise_rms_1k") < m.body.index("check grounding")
+    other = [two[0], replace(two[1], hint="check the headstage")]
+    _, msgs, _ = run([other, other])
+    (m,) = msgs
+    assert m.body.count("check grounding") == 1 and m.body.count("check the headstage") == 1
+    assert "For both" not in m.body
+    bare = [two[0], replace(two[1], hint="")]
+    _, msgs, _ = run([bare, bare])
+    (m,) = msgs
+    assert m.body.count("check grounding") == 1 and "For both" not in m.body
+    (with_hint,) = [b for b in m.body.split("\n\n") if "check grounding" in b]
+    assert with_hint.startswith("OPEN: noise_rms channel 0")
