@@ -298,7 +298,7 @@ _IMPRECISE = 3.0       # a past value 3x less precise than the rig's usual stays
 def _clean(history: History) -> History:
     """The history of files with no flag at all: the noise-source hints compare with those,
     so a fault that lasts longer than the window does not become the normal its own hint is
-    measured against."""
+    measured against. This view is clean whatever ``clean_files`` it is called with."""
     def clean(mode: str, channel: int, measure: str, *, clean_files: bool = True
               ) -> Sequence[tuple[float, float]]:
         return history(mode, channel, measure, clean_files=True)

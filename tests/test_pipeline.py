@@ -367,6 +367,7 @@ def test_a_broadband_fault_longer_than_the_history_keeps_its_hint_and_its_hum(tm
     from qcd import synth
     from qcd.config import TestPulse
     from qcd.report import build_report, parse_since
+    from qcd.results import HINTS
     assert rules.settings.history_files < 36
     rig = RigConfig(name="rig-hs", folders=(tmp_path,), mains_hz=50.0,
                     test_pulse=TestPulse(-5.0, synth.STEP_START_S, synth.STEP_LEN_S))
@@ -390,10 +391,14 @@ def test_a_broadband_fault_longer_than_the_history_keeps_its_hint_and_its_hum(tm
     assert {m["rig"] for m in sent} == {"rig-hs"}
     said = [m for m in sent if m["kind"] != "resolved"]
     assert len(said) >= 8 and sum(m["kind"] == "reminder" for m in said) >= 7
+    broad = f"Possible source (a check to make, not a diagnosis): {HINTS['broad'].text}."
     for m in said:
         assert "noise_rms" in m["title"] and "hum" not in m["title"], m["title"]
         assert "headstage" in m["body"] and "broadband" in m["body"], m["title"]
         assert "grounding" not in m["body"] and "mains" not in m["body"], m["body"]
+        # the broadband source alone: no band grew beyond the common factor
+        hints = [line for line in m["body"].splitlines() if "Possible source" in line]
+        assert hints and all(h.endswith(broad) for h in hints), hints
     report = build_report(store, at + 7.5 * 3600.0, parse_since("18h", at + 7.5 * 3600.0))
     (r,) = report.rigs
     assert r.hints and all("headstage" in h and "grounding" not in h for h in r.hints)
