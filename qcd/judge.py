@@ -25,7 +25,6 @@ __all__ = ["Finding", "Chart", "CusumChart", "judge", "robust_z", "baseline", "e
 log = logging.getLogger(__name__)
 
 
-
 class History(Protocol):
     """The rig's history before the file judged: ``history(mode, channel, measure)`` ->
     [(recorded_at, value)] of good files whose value of this measure was not flagged, newest
