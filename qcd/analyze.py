@@ -10,7 +10,6 @@ qcd.results, qcd.units, qcd.errors.
 """
 from __future__ import annotations
 
-import hashlib
 import logging
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -288,6 +287,7 @@ def _file_facts(p: Path, digest: bool) -> dict[str, Any]:
         st = p.stat()
         facts.update(size=int(st.st_size), mtime=float(st.st_mtime))
         if digest and p.is_file():
+            import hashlib                  # here: qcd scan without --store has no digest
             h = hashlib.sha256()
             with open(p, "rb") as f:
                 for block in iter(lambda: f.read(1 << 22), b""):

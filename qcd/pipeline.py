@@ -10,7 +10,7 @@ qcd.notify, qcd.errors.
 """
 from __future__ import annotations
 
-import hashlib
+import importlib
 import logging
 import math
 import os
@@ -34,15 +34,19 @@ def _judging(module: str) -> Any:
     return {"alerts": alerts, "charts": charts, "history": history, "judge": judge}[module]
 
 
+_JUDGING = ("alerts", "charts", "history", "judge")
+
+
 class _Later:
-    """A module of ``_judging`` (or one of its names), loaded when first called or looked into."""
+    """A module of ``_judging`` or the standard library (or one of its names), loaded when
+    first called or looked into."""
 
     def __init__(self, module: str, name: str | None = None) -> None:
         self._where = (module, name)
 
     def _get(self) -> Any:
         module, name = self._where
-        m = _judging(module)
+        m = _judging(module) if module in _JUDGING else importlib.import_module(module)
         return m if name is None else getattr(m, name)
 
     def __getattr__(self, attr: str) -> Any:
@@ -53,6 +57,7 @@ class _Later:
 
 
 alerts, history = _Later("alerts"), _Later("history")
+hashlib = _Later("hashlib")           # the digest: only when files are stored
 ChartInput, ChartState, Reference = (_Later("charts", n) for n in
                                      ("ChartInput", "ChartState", "Reference"))
 replay, reset = _Later("charts", "replay"), _Later("charts", "reset")
