@@ -73,5 +73,6 @@ def test_a_one_file_scan_loads_only_what_measuring_needs(tmp_path):
     assert {"qcd.analyze", "qcd.pipeline"} <= loaded
     unused = {"qcd.judge", "qcd.alerts", "qcd.charts", "qcd.history", "qcd.runlength",
               "qcd.store", "qcd.notify", "scipy.stats", "scipy.optimize", "watchdog",
-              "concurrent.futures.process", "sqlite_utils", "apprise", "matplotlib"}
+              "concurrent.futures.process", "sqlite_utils", "apprise", "matplotlib",
+              "numpy.ma"}
     assert not unused & loaded, unused & loaded

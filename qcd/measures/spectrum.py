@@ -13,6 +13,8 @@ import sys
 
 import numpy as np
 
+from qcd.measures.noise import median
+
 __all__ = ["block_fft", "BlockFFT", "hann_psd", "WelchAccumulator", "mains_mask", "band_rms",
            "BANDS", "corner_hz", "alias_ratio_db", "ALIAS_LIMIT_DB", "line_threshold",
            "spectral_lines", "compact_spectrum"]
@@ -354,7 +356,7 @@ def band_rms(freqs: np.ndarray, psd: np.ndarray, lo: float, hi: float,
     kept = sel & ~mask
     if not kept.any():
         return None
-    power = float(np.sum(psd[kept]) * df + mask.sum() * np.median(psd[kept]) * df)
+    power = float(np.sum(psd[kept]) * df + mask.sum() * median(psd[kept]) * df)
     return math.sqrt(max(power, 0.0))
 
 
@@ -374,7 +376,7 @@ def _running_median(x: np.ndarray, width: int) -> np.ndarray:
     view = np.lib.stride_tricks.sliding_window_view(padded, width)
     if width % 2:                    # the middle element: numpy.median's value, less overhead
         return np.partition(view, h, axis=1)[:, h].astype(float)
-    return np.median(view, axis=1)
+    return median(view, axis=1)
 
 
 def alias_ratio_db(freqs: np.ndarray, psd: np.ndarray) -> float | None:
@@ -384,7 +386,7 @@ def alias_ratio_db(freqs: np.ndarray, psd: np.ndarray) -> float | None:
     lo = psd[(freqs >= 0.02 * fn) & (freqs <= 0.10 * fn)]
     if len(hi) < 3 or len(lo) < 3:
         return None
-    mh, ml = float(np.median(hi)), float(np.median(lo))
+    mh, ml = float(median(hi)), float(median(lo))
     if ml <= 0 or mh <= 0:
         return None
     return 10 * math.log10(mh / ml)
@@ -407,7 +409,7 @@ def corner_hz(freqs: np.ndarray, psd: np.ndarray, k_segments: int = 1) -> float 
     lo = sm[(freqs >= 0.02 * fn) & (freqs <= 0.10 * fn)]
     if len(lo) < 3:
         return None
-    plateau = float(np.median(lo))
+    plateau = float(median(lo))
     if plateau <= 0:
         return None
     target = plateau / 10 ** 0.3
