@@ -10,7 +10,6 @@ qcd.results, qcd.units, qcd.errors.
 """
 from __future__ import annotations
 
-import hashlib
 import logging
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -167,14 +166,14 @@ class _Run:
             keep = ~events
             if rec.gap_free or len(a["sd"]) >= 3:
                 out["event_blocks"] = Measure("event_blocks", int(events.sum()), "")
-            put(out, "noise_rms", float(np.median(a["sd"][keep])), dim)
-            put(out, "noise_rms_1k", float(np.median(a["sd_band"][keep])), dim)
+            put(out, "noise_rms", float(nz.median(a["sd"][keep])), dim)
+            put(out, "noise_rms_1k", float(nz.median(a["sd_band"][keep])), dim)
             if fs / 2 <= 1000.0:
                 notes.append(f"noise_rms_1k: the file's bandwidth ({fs / 2:g} Hz Nyquist) is "
                              f"already below 1 kHz")
-            pp = float(np.median(a["pp"][keep]))
+            pp = float(nz.median(a["pp"][keep]))
             put(out, "noise_pp", pp, dim)
-            rms = float(np.median(a["sd"][keep]))
+            rms = float(nz.median(a["sd"][keep]))
             if rms > 0:
                 out["pp_over_rms"] = Measure("pp_over_rms", pp / rms, "")
             put(out, "holding", float(np.mean(a["mean"][keep])), dim)
@@ -204,7 +203,7 @@ class _Run:
         """Every baseline window holds one value (an input not connected, a converter at a
         rail): holding that value and exact zeros for noise, no spectral measures."""
         a = acc.arrays()
-        value = float(np.median(a["mean"]))
+        value = float(nz.median(a["mean"]))
         if self.rec.gap_free:
             out["event_blocks"] = Measure("event_blocks", 0, "")
         put(out, "holding", value, self.dim)
@@ -288,6 +287,7 @@ def _file_facts(p: Path, digest: bool) -> dict[str, Any]:
         st = p.stat()
         facts.update(size=int(st.st_size), mtime=float(st.st_mtime))
         if digest and p.is_file():
+            import hashlib                  # here: qcd scan without --store has no digest
             h = hashlib.sha256()
             with open(p, "rb") as f:
                 for block in iter(lambda: f.read(1 << 22), b""):

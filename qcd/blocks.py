@@ -55,18 +55,21 @@ class Blocks:
         by default from ``t0`` (block centres) on one stretch, as in a gap-free file."""
         if starts is None:
             starts = np.rint(np.asarray(t0) * self.fs - self.L / 2).astype(np.int64)
-        _, mx, mn = nz.peak_to_peak(blocks)
-        if self.rails is not None:
-            lo, hi = self.rails
-            for i in np.flatnonzero((mx >= hi) | (mn <= lo)):
-                self.clipped += nz.clipping_count(blocks[i], self.rails)
-        finite = np.isfinite(mx) & np.isfinite(mn)      # float files may hold NaN/inf samples
-        self.flat += int(np.count_nonzero((mx == mn) & finite))
-        if not finite.all():
-            self.nonfinite += int((~finite).sum())
-            blocks, t0, starts = blocks[finite], t0[finite], starts[finite]
-            if not len(blocks):
-                return
+        integer = blocks.dtype.kind in "iu"
+        if not integer:
+            # float samples: NaN/inf and clipping from each row's range before transforming
+            _, mx, mn = nz.peak_to_peak(blocks)
+            if self.rails is not None:
+                lo, hi = self.rails
+                for i in np.flatnonzero((mx >= hi) | (mn <= lo)):
+                    self.clipped += nz.clipping_count(blocks[i], self.rails)
+            finite = np.isfinite(mx) & np.isfinite(mn)      # float files may hold NaN/inf
+            self.flat += int(np.count_nonzero((mx == mn) & finite))
+            if not finite.all():
+                self.nonfinite += int((~finite).sum())
+                blocks, t0, starts = blocks[finite], t0[finite], starts[finite]
+                if not len(blocks):
+                    return
         sub = blocks[:, ::self._median_step]
         h = sub.shape[1] // 2
         if sub.shape[1] % 2:
@@ -77,10 +80,12 @@ class Blocks:
         # spectra in groups of rows small enough (~2 MB) to stay in cache across the passes
         g = max(1, (1 << 21) // ((4 if self.fft.single else 8) * self.L))
         for a in range(0, blocks.shape[0], g):
-            X, mean, _ = self.fft(blocks[a:a + g], med[a:a + g])
+            X, mean, slope = self.fft(blocks[a:a + g], med[a:a + g])
             if self.humfit is not None:
                 self.humfit.add(self.fft.detrended)
-            pp, _, _ = nz.peak_to_peak(self.fft.detrended)     # still in cache
+            pp, dmx, dmn = nz.peak_to_peak(self.fft.detrended)     # still in cache
+            if integer:
+                self._integer_rows(blocks[a:a + g], slope, pp, dmx, dmn)
             sd, sd_band = nz.parseval_sd(X, self.L, self.fs)
             self.welch.add(X, sd)
             if self.lines is not None:
@@ -89,6 +94,28 @@ class Blocks:
                 self.parts[k].append(v)
         for k, v in (("median", med), ("t", t0)):
             self.parts[k].append(v)
+
+    def _integer_rows(self, rows: np.ndarray, slope: np.ndarray, pp: np.ndarray,
+                      dmx: np.ndarray, dmn: np.ndarray) -> None:
+        """Flat rows and clipping of integer rows from the detrended range, without a pass
+        over the raw samples: a row is x = base + slope c + r (r the residual, c the centred
+        sample index), so its range lies within base + |slope| max|c| + [min r, max r]; only a
+        row whose bound reaches a rail is counted sample by sample. A row holds one value
+        exactly when its slope and the range of its residual are 0 (integer samples: the
+        offset, line and residual are then exact)."""
+        self.flat += int(np.count_nonzero((slope == 0) & (pp == 0)))
+        if self.rails is None:
+            return
+        lo, hi = self.rails
+        base = self.fft.base if self.fft.base is not None else 0.0
+        reach = np.abs(slope) * ((self.L - 1) / 2.0)
+        top = base + reach + dmx
+        bottom = base - reach + dmn
+        # float32 residuals: a margin of a count plus their rounding, so a bound never
+        # falls short of the row's true maximum (minimum)
+        margin = 1.0 + 1e-4 * (np.abs(top) + np.abs(bottom))
+        for i in np.flatnonzero((top + margin >= hi) | (bottom - margin <= lo)):
+            self.clipped += nz.clipping_count(rows[i], self.rails)
 
     def arrays(self) -> dict[str, np.ndarray]:
         """Per-block values in SI."""

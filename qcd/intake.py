@@ -17,13 +17,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable
 
-from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent, FileAttribEvent,
-                             FileClosedEvent, FileCreatedEvent,
-                             FileDeletedEvent, FileModifiedEvent, FileMovedEvent,
-                             FileSystemEventHandler)
-from watchdog.observers import Observer
-from watchdog.observers.polling import PollingObserver
-
 from qcd.errors import RecordingError
 
 if TYPE_CHECKING:
@@ -436,8 +429,11 @@ class Hint:
     what: str
 
 
-class _Inbox(FileSystemEventHandler):
-    """Only enqueues a Hint per event. Runs on watchdog's thread."""
+class _Inbox:
+    """Only enqueues a Hint per event. Runs on watchdog's thread, which calls ``dispatch``.
+
+    watchdog is imported where folders are watched, not with this module: ``qcd scan`` uses
+    intake's file finding only and never loads it."""
 
     def __init__(self, q: "queue.Queue[Hint]", rig: str, root: Path) -> None:
         self._q, self._rig, self._root = q, rig, root
@@ -445,7 +441,10 @@ class _Inbox(FileSystemEventHandler):
     def _put(self, path: Any, what: str) -> None:
         self._q.put(Hint(self._rig, os.fsdecode(path), what))
 
-    def on_any_event(self, event) -> None:
+    def dispatch(self, event) -> None:
+        from watchdog.events import (DirCreatedEvent, DirDeletedEvent, DirMovedEvent,
+                                     FileAttribEvent, FileClosedEvent, FileCreatedEvent,
+                                     FileDeletedEvent, FileModifiedEvent, FileMovedEvent)
         t = type(event)
         if t in (FileCreatedEvent, FileModifiedEvent):
             self._put(event.src_path, "written")
@@ -510,6 +509,8 @@ class _FolderWatch:
                 log.warning("%s: folder not found; waiting for it", self.root)
             self.state = "missing"
             return False
+        from watchdog.observers import Observer
+        from watchdog.observers.polling import PollingObserver
         obs = (PollingObserver(timeout=self._poll_interval_s) if self.polling else Observer())
         obs.name = f"qcd-observer-{self.rig.name}"
         try:

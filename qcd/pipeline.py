@@ -10,7 +10,7 @@ qcd.notify, qcd.errors.
 """
 from __future__ import annotations
 
-import hashlib
+import importlib
 import logging
 import math
 import os
@@ -19,14 +19,49 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
-from qcd import alerts, history
 from qcd.analyze import analyze_path
-from qcd.charts import ChartInput, ChartState, Reference, replay, reset
 from qcd.errors import StoreError, printable
-from qcd.judge import Finding, judge
 from qcd.results import ChannelMeasures, FileMeasures, file_time
 from qcd.workers import imap
 from qcd.zones import localize
+
+
+def _judging(module: str) -> Any:
+    """Judging, charts and alerts, imported on first use: measuring alone (``qcd scan``, the
+    workers) never needs them, and qcd.charts brings scipy.stats (qcd.runlength), about half a
+    second of a scan's start-up."""
+    from qcd import alerts, charts, history, judge
+    return {"alerts": alerts, "charts": charts, "history": history, "judge": judge}[module]
+
+
+_JUDGING = ("alerts", "charts", "history", "judge")
+
+
+class _Later:
+    """A module of ``_judging`` or the standard library (or one of its names), loaded when
+    first called or looked into."""
+
+    def __init__(self, module: str, name: str | None = None) -> None:
+        self._where = (module, name)
+
+    def _get(self) -> Any:
+        module, name = self._where
+        m = _judging(module) if module in _JUDGING else importlib.import_module(module)
+        return m if name is None else getattr(m, name)
+
+    def __getattr__(self, attr: str) -> Any:
+        return getattr(self._get(), attr)
+
+    def __call__(self, *args: Any, **kwargs: Any) -> Any:
+        return self._get()(*args, **kwargs)
+
+
+alerts, history = _Later("alerts"), _Later("history")
+hashlib = _Later("hashlib")           # the digest: only when files are stored
+ChartInput, ChartState, Reference = (_Later("charts", n) for n in
+                                     ("ChartInput", "ChartState", "Reference"))
+replay, reset = _Later("charts", "replay"), _Later("charts", "reset")
+Finding, judge = _Later("judge", "Finding"), _Later("judge", "judge")
 
 if TYPE_CHECKING:
     from qcd.config import RigConfig

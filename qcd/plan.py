@@ -56,7 +56,7 @@ class Dims:
             return False
         first = next(rec.chunks(ch.index, 0 if rec.n_sweeps else None, size=n, stop=n), None)
         return first is not None and len(first) > 0 and \
-            float(np.median(np.abs(first))) > _ABSURD_AMPERES
+            float(nz.median(np.abs(first))) > _ABSURD_AMPERES
 
 
 def _mode(rec: Any, dims: Dims, notes: list[str], *, declared: str | None = None,
@@ -136,8 +136,8 @@ def _recorded_span(y: np.ndarray) -> tuple[int, int | None] | None:
     if len(y) < 8:
         return None
     d = np.diff(y)
-    sd = nz.MAD_SCALE * float(np.median(np.abs(d - np.median(d)))) / math.sqrt(2.0)
-    hold = float(np.median(y[:max(3, min(len(y) // 20, 50))]))
+    sd = nz.MAD_SCALE * float(nz.median(np.abs(d - nz.median(d)))) / math.sqrt(2.0)
+    hold = float(nz.median(y[:max(3, min(len(y) // 20, 50))]))
     scale = float(np.max(np.abs(y))) or 1.0
     away = np.abs(y - hold) > max(6.0 * sd, 1e-6 * scale)
     idx = np.flatnonzero(away)
@@ -284,7 +284,7 @@ def _plan_steps(rec: Any, dims: Dims, mode: str, ch: int, primary: int | None,
     amps = np.array([s.amplitude for s in plan.steps if s is not None])
     if mode == "voltage_clamp" and len(amps) > 1:
         spread = float(amps.max() - amps.min())
-        if spread > _TP_SPREAD * float(np.median(np.abs(amps))):
+        if spread > _TP_SPREAD * float(nz.median(np.abs(amps))):
             plan.reason = (f"the step size changes from sweep to sweep ({amps.min() * 1e3:g} to "
                            f"{amps.max() * 1e3:g} mV, a step family): not a test pulse")
             plan.steps = [None] * rec.n_sweeps

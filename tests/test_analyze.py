@@ -452,3 +452,63 @@ def test_declared_mains_gives_hum_on_short_episodic_baselines():
     assert ms["hum_rms"].value <= ms["hum_rms_max"].value < ms["noise_rms"].value
     assert ms["hum_rms_max"].unit == "pA"
     assert any("hum_rms_max" in n for n in fitted.notes)
+
+
+def _write_counts_abf1(path: Path, counts: np.ndarray, fs: float) -> None:
+    """A gap-free ABF1 holding the given int16 converter counts as they are (pyabf's writer
+    for the header, nOperationMode 3, the samples after its 2048-byte header)."""
+    import pyabf.abfWriter
+    pyabf.abfWriter.writeABF1(np.zeros((1, 1024)) + 100.0, str(path), fs, "pA")
+    with open(path, "r+b") as f:
+        f.seek(8)
+        f.write(struct.pack("<h", 3))                      # gap-free
+        for at, value in ((10, len(counts)), (16, 1), (138, len(counts))):
+            f.seek(at)                      # lActualAcqLength, lActualEpisodes, per episode
+            f.write(struct.pack("<i", value))
+        f.truncate(2048)
+        f.seek(2048)
+        f.write(np.asarray(counts, dtype="<i2").tobytes())
+
+
+@pytest.mark.parametrize("single", [False, True])
+def test_gap_free_clipping_counts_every_sample_at_a_rail(tmp_path, monkeypatch, single):
+    # the converter's rails are its most negative and most positive counts (16 bits: -32768
+    # and 32767); the reference is the count of such samples taken directly on the integers
+    import qcd.analyze as an
+    if single:
+        monkeypatch.setattr(an, "_SINGLE_MIN_SAMPLES", 0)
+    fs, L = 10_000.0, 10_000
+    rng = np.random.default_rng(5)
+    x = np.rint(rng.normal(0, 300, 12 * L)).astype(np.int64)
+    x[2 * L + 17] = 32767                                   # single samples at each rail
+    x[5 * L + 3:5 * L + 40] = -32768                        # a run at the low rail
+    ramp = np.linspace(-32000, 33500, L)                    # a steep line into the high rail
+    x[7 * L:8 * L] = np.rint(ramp + rng.normal(0, 3, L))
+    x[9 * L:10 * L] = np.rint(np.linspace(-31000, 31000, L))   # steep, never at a rail
+    x = np.clip(x, -32768, 32767)
+    path = tmp_path / "rails.abf"
+    _write_counts_abf1(path, x, fs)
+    ms = analyze_path(path, digest=False).channels[0].measures
+    expected = np.count_nonzero((x >= 32767) | (x <= -32768)) / len(x)
+    assert expected > 0
+    assert ms["clipping_fraction"].value == expected
+
+
+@pytest.mark.parametrize("single", [False, True])
+def test_a_line_in_every_window_is_not_taken_for_samples_that_do_not_change(
+        tmp_path, monkeypatch, single):
+    # analytic: an exact integer ramp in each 1 s window leaves a residual of zero after the
+    # window's least-squares line, yet its samples change; only a constant is "flat"
+    import qcd.analyze as an
+    if single:
+        monkeypatch.setattr(an, "_SINGLE_MIN_SAMPLES", 0)
+    L = 5000
+    x = np.tile(np.arange(L) - L // 2, 6)
+    path = tmp_path / "ramps.abf"
+    _write_counts_abf1(path, x, 5000.0)
+    ch = analyze_path(path, digest=False).channels[0]
+    assert not any("samples do not change" in n for n in ch.notes)
+    import pyabf                                          # reference reader for the scale
+    window_sd = float(np.std(pyabf.ABF(str(path)).data[0][:L]))
+    assert window_sd > 0
+    assert ch.measures["noise_rms"].value < 1e-4 * window_sd

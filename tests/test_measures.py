@@ -336,3 +336,26 @@ def test_any_split_into_pieces_gives_the_same_psd_and_block_values(cuts):
         sds.append(sd)
     np.testing.assert_allclose(np.concatenate(sds), sd_all, rtol=1e-12)
     np.testing.assert_allclose(many.psd()[0], one.psd()[0], rtol=1e-10)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_median_equals_numpy_median(seed):
+    # reference: numpy.median itself, value and dtype, over odd and even lengths, NaN, integers,
+    # float32 and one axis of a 2-D array
+    from qcd.measures.noise import median
+    rng = np.random.default_rng(seed)
+    cases = [rng.normal(size=n) for n in (1, 2, 3, 10, 11, 1000, 1001)]
+    cases += [rng.integers(-5, 5, size=n) for n in (4, 7)]
+    cases += [rng.normal(size=9).astype(np.float32), [3.0, 1.0, 2.0, 8.0]]
+    with_nan = rng.normal(size=12)
+    with_nan[5] = np.nan
+    cases.append(with_nan)
+    for x in cases:
+        got, want = median(x), np.median(x)
+        np.testing.assert_array_equal(got, want)
+        assert np.asarray(got).dtype == np.asarray(want).dtype
+    rows = rng.normal(size=(6, 8))
+    rows[2, 3] = np.nan
+    for m in (rows, rows[:, :7], rows.T):
+        np.testing.assert_array_equal(median(m, axis=1), np.median(m, axis=1))
+        np.testing.assert_array_equal(median(m), np.median(m))

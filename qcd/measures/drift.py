@@ -5,6 +5,8 @@ import functools
 
 import numpy as np
 
+from qcd.measures.noise import median
+
 __all__ = ["theil_sen", "baseline_drift", "MAX_POINTS"]
 
 MAX_POINTS = 1000     # above this, medians are pooled into MAX_POINTS groups first
@@ -22,8 +24,8 @@ def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     ok = dt != 0
     if not ok.any():
         raise ValueError("Theil-Sen needs two distinct times")
-    slope = float(np.median((y[j] - y[i])[ok] / dt[ok]))
-    return slope, float(np.median(y - slope * t))
+    slope = float(median((y[j] - y[i])[ok] / dt[ok]))
+    return slope, float(median(y - slope * t))
 
 
 @functools.lru_cache(maxsize=4)
@@ -41,9 +43,9 @@ def _pool(t: np.ndarray, y: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]
     cut = r * (q + 1)
 
     def medians(v: np.ndarray) -> np.ndarray:
-        parts = [np.median(v[:cut].reshape(r, q + 1), axis=1)] if r else []
+        parts = [median(v[:cut].reshape(r, q + 1), axis=1)] if r else []
         if q:
-            parts.append(np.median(v[cut:].reshape(n - r, q), axis=1))
+            parts.append(median(v[cut:].reshape(n - r, q), axis=1))
         return np.concatenate(parts)
     return medians(t), medians(y)
 

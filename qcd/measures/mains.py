@@ -14,7 +14,6 @@ from __future__ import annotations
 import functools
 import math
 from dataclasses import dataclass, replace
-from statistics import NormalDist
 from typing import Any
 
 import numpy as np
@@ -200,7 +199,7 @@ def _level(shape: float, p: float, rel_sd: float) -> float:
 
 @functools.lru_cache(maxsize=512)
 def _level_cached(shape: float, p: float, rel_sd: float) -> float:
-    z, w = _HERMITE
+    z, w = _hermite()
     f = np.maximum(1.0 + rel_sd * z, 0.05)
 
     def tails(ts: np.ndarray) -> np.ndarray:
@@ -209,6 +208,7 @@ def _level_cached(shape: float, p: float, rel_sd: float) -> float:
 
     # one vectorised pass over a grid around the Wilson-Hilferty level of the gamma alone
     # (Wilson & Hilferty 1931), then log-linear interpolation of the tail between grid points
+    from statistics import NormalDist     # here: imported only when a level is computed
     zp = NormalDist().inv_cdf(1.0 - p)
     t0 = max((1.0 - 1.0 / (9.0 * shape) + zp / math.sqrt(9.0 * shape)) ** 3, 1e-3)
     ts = np.geomspace(0.5 * t0, 2.0 * t0 * (1.0 + 5.0 * rel_sd), 97)
@@ -275,8 +275,12 @@ def gamma_q(a: float, x: np.ndarray) -> np.ndarray:
     return np.clip(out, 0.0, 1.0)
 
 
-_z, _w = np.polynomial.hermite_e.hermegauss(24)
-_HERMITE = (_z, _w / _w.sum())
+@functools.cache
+def _hermite() -> tuple[np.ndarray, np.ndarray]:
+    """24-point Gauss-Hermite nodes and weights (probabilists'), the weights summing to 1;
+    made on first use, not when the module loads."""
+    z, w = np.polynomial.hermite_e.hermegauss(24)
+    return z, w / w.sum()
 
 
 def _grandke(psd, k, floor, df) -> float:

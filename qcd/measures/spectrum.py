@@ -13,6 +13,8 @@ import sys
 
 import numpy as np
 
+from qcd.measures.noise import median
+
 __all__ = ["block_fft", "BlockFFT", "hann_psd", "WelchAccumulator", "mains_mask", "band_rms",
            "BANDS", "corner_hz", "alias_ratio_db", "ALIAS_LIMIT_DB", "line_threshold",
            "spectral_lines", "compact_spectrum"]
@@ -83,6 +85,7 @@ class BlockFFT:
         self._c32 = self.c.astype(np.float32)
         self._work32: np.ndarray | None = None
         self._trend32: np.ndarray | None = None
+        self.base: np.ndarray | None = None   # the offset taken off each row before (single)
 
     def __call__(self, blocks: np.ndarray, offset: np.ndarray | None = None
                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -110,6 +113,7 @@ class BlockFFT:
                  else np.zeros(nb))
         _take_lines(blocks, slope, self.c, self._trend)
         self.detrended = blocks            # the residual rows, until the next call
+        self.base = None
         np.fft.rfft(blocks, axis=1, out=X)
         mean = X[:, 0].real / self.n
         X[:, 0] = 0.0
@@ -126,13 +130,16 @@ class BlockFFT:
             self._trend32 = np.empty(self.n, dtype=np.float32)
         work = self._work32[:nb]
         off = np.zeros(nb) if offset is None else np.rint(np.asarray(offset, dtype=float))
-        np.subtract(blocks, off.astype(np.float32)[:, None], out=work)    # exact, one pass
+        work[...] = blocks                 # exact; a plain conversion, then the offset in
+        work -= off.astype(np.float32)[:, None]     # place: faster than one mixed-type pass
         # float32 sums (a fifth of the time of float64 ones): the slope's rounding, ~1e-7 of
-        # its terms, moves the residual's variance by far less than that
+        # its terms, moves the residual's variance by far less than that (einsum, not a BLAS
+        # product: a threaded BLAS spins its threads and costs more CPU than it saves)
         slope = (np.einsum("bj,j->b", work, self._c32).astype(np.float64) / self.ss
                  if self.ss > 0 else np.zeros(nb))
         _take_lines(work, slope.astype(np.float32), self._c32, self._trend32)
         self.detrended = work
+        self.base = off
         X = self._rfft32(work)
         mean = X[:, 0].real.astype(np.float64) / self.n + off
         X[:, 0] = 0.0
@@ -269,8 +276,10 @@ class WelchAccumulator:
         e0, eN = _hann_edges(X, self.n)
         self.e0 += float(e0.sum())
         self.eN += float(eN.sum())
-        if self._rows is None:
-            self._rows = np.empty((self.keep, self.m), dtype=complex)
+        if self._rows is None:             # kept as transformed (complex64 on the single
+            self._rows = np.empty((self.keep, self.m), dtype=X.dtype)    # path: no widening)
+        elif self._rows.dtype != X.dtype:
+            self._rows = self._rows.astype(np.result_type(self._rows, X))
         heap = self._heap
         rows = X.shape[0]
         first = min(rows, max(self.keep - len(heap), 0))       # rows that fill free slots
@@ -306,7 +315,7 @@ class WelchAccumulator:
         self.exact = all(i in kept for i in exclude)
         for i in exclude:
             if i in kept:
-                total -= hann_psd(kept[i][None, :], self.n, self.fs)[0]
+                total -= hann_psd(kept[i][None, :].astype(complex), self.n, self.fs)[0]
                 n -= 1
         if n <= 0:
             return np.maximum(self._total() / max(self.count, 1), 0.0), self.count
@@ -347,7 +356,7 @@ def band_rms(freqs: np.ndarray, psd: np.ndarray, lo: float, hi: float,
     kept = sel & ~mask
     if not kept.any():
         return None
-    power = float(np.sum(psd[kept]) * df + mask.sum() * np.median(psd[kept]) * df)
+    power = float(np.sum(psd[kept]) * df + mask.sum() * median(psd[kept]) * df)
     return math.sqrt(max(power, 0.0))
 
 
@@ -367,7 +376,7 @@ def _running_median(x: np.ndarray, width: int) -> np.ndarray:
     view = np.lib.stride_tricks.sliding_window_view(padded, width)
     if width % 2:                    # the middle element: numpy.median's value, less overhead
         return np.partition(view, h, axis=1)[:, h].astype(float)
-    return np.median(view, axis=1)
+    return median(view, axis=1)
 
 
 def alias_ratio_db(freqs: np.ndarray, psd: np.ndarray) -> float | None:
@@ -377,7 +386,7 @@ def alias_ratio_db(freqs: np.ndarray, psd: np.ndarray) -> float | None:
     lo = psd[(freqs >= 0.02 * fn) & (freqs <= 0.10 * fn)]
     if len(hi) < 3 or len(lo) < 3:
         return None
-    mh, ml = float(np.median(hi)), float(np.median(lo))
+    mh, ml = float(median(hi)), float(median(lo))
     if ml <= 0 or mh <= 0:
         return None
     return 10 * math.log10(mh / ml)
@@ -400,7 +409,7 @@ def corner_hz(freqs: np.ndarray, psd: np.ndarray, k_segments: int = 1) -> float 
     lo = sm[(freqs >= 0.02 * fn) & (freqs <= 0.10 * fn)]
     if len(lo) < 3:
         return None
-    plateau = float(np.median(lo))
+    plateau = float(median(lo))
     if plateau <= 0:
         return None
     target = plateau / 10 ** 0.3
