@@ -16,8 +16,11 @@ from typing import Sequence
 
 import numpy as np
 
-from qcd.charts import Reference
+from qcd.charts import CHART_TESTS, Reference, inflation
+from qcd.charts import limit as chart_limit
 from qcd.measures.noise import MAD_SCALE
+from qcd.ruleset import HistoryRule
+from qcd.runlength import QN_MAX, qn_scale, widen_for
 
 __all__ = ["learn", "follow", "reference_of", "provisional", "day_icc", "day_autocorrelation",
            "progress_text"]
@@ -70,9 +73,13 @@ def day_autocorrelation(times: Sequence[float], values: Sequence[float]) -> floa
 
 def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: float = 0.0
                  ) -> Reference | None:
-    """The reference of (recorded_at, value) rows: median and 1.4826 MAD of the values (their
-    logs when ``log``), the scale floored at ``min_spread`` (log units, or a fraction of the
-    median's size otherwise) (Iglewicz & Hoaglin 1993)."""
+    """The reference of (recorded_at, value) rows: median and Qn scale of the values (their
+    logs when ``log``; Rousseeuw & Croux 1993, qcd.runlength.qn_scale), the scale floored at
+    ``min_spread`` (log units, or a fraction of the median's size otherwise).
+
+    Qn rather than 1.4826 MAD: both resist a few odd files, but the MAD has 37 % efficiency at
+    the normal, Qn 82 %, and a chart's false-alarm rate grows steeply when its scale comes out
+    small: with Qn the limits need less widening for the same budget (``_widened``)."""
     pts = [(float(t), float(v)) for t, v in rows if v is not None and math.isfinite(float(v))
            and (not log or float(v) > 0)]
     if len(pts) < 3:
@@ -80,7 +87,8 @@ def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: 
     t = np.array([p[0] for p in pts])
     y = np.array([math.log(p[1]) if log else p[1] for p in pts])
     center = float(np.median(y))
-    scale = MAD_SCALE * float(np.median(np.abs(y - center)))
+    scale = float(qn_scale(y)) if len(y) <= QN_MAX else \
+        MAD_SCALE * float(np.median(np.abs(y - center)))
     floor = min_spread if log else min_spread * abs(center)
     scale = max(scale, floor, 1e-12)
     icc, per_day = day_icc(t, y)
@@ -89,17 +97,32 @@ def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: 
                      rho=day_autocorrelation(t, y))
 
 
-def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin: float
-              ) -> Reference | None:
-    """``ref`` with its limits widened by 1 + margin/sqrt(days) for the days its rows span."""
+def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin: float,
+             rule: HistoryRule | None = None, arl0: float | None = None) -> Reference | None:
+    """``ref`` with its limits widened for the estimation error of its center and scale.
+
+    A chart rule with a false-alarm budget (``arl0_files``): by the factor whose mean
+    in-control false-alarm rate, over rigs whose reference has as many files, days, files a
+    day, icc and day-to-day correlation as this one, meets the budget (Monte Carlo of the chart
+    on simulated references, qcd.runlength.widen_for). Otherwise by 1 + margin/sqrt(days) for
+    the days the rows span. ``arl0``: another budget than the rule's (a provisional
+    reference's, which charts only until the full reference is learned)."""
     if ref is None:
         return None
     days = len({math.floor(t / DAY_S) for t, _ in rows})
-    return Reference(**{**ref.to_dict(), "widen": 1.0 + margin / math.sqrt(max(days, 1))})
+    if rule is not None and rule.arl0_files and rule.test in CHART_TESTS:
+        stat, lim = (rule.k, rule.h) if rule.test == "cusum" else (rule.lam, chart_limit(rule))
+        w = widen_for(rule.test, rule.side, stat, lim, arl0 or rule.arl0_files, files=ref.n,
+                      days=days, per_day=ref.n / max(days, 1), icc=ref.icc, rho=ref.rho,
+                      inflate=inflation(rule, ref))
+    else:
+        w = 1.0 + margin / math.sqrt(max(days, 1))
+    return Reference(**{**ref.to_dict(), "widen": w})
 
 
 def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: bool,
-          min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
+          min_spread: float = 0.0, margin: float = 0.0, rule: HistoryRule | None = None,
+          arl0: float | None = None) -> Reference | None:
     """The fixed reference from good rows (oldest first, recorded after the reference start):
     the first rows up to the one that makes ``files`` files over at least ``days`` days; None
     while there are not enough yet (still learning).
@@ -108,7 +131,8 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
     spans. A scale estimated from a few independent days can be far too small (the MAD of n
     normal values has a relative error of about 1.2/sqrt(n), and a day's files count as about
     one), and a chart's false-alarm rate grows steeply as its scale shrinks; the margin keeps
-    the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py)."""
+    the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py). With a
+    ``rule`` that states its budget, the widening is calibrated for it instead (``_widened``)."""
     usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
     if not usable:
         return None
@@ -116,12 +140,13 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
     for i, (t, _) in enumerate(usable):
         if i + 1 >= files and t - first >= days * DAY_S:
             return _widened(reference_of(usable[: i + 1], log=log, min_spread=min_spread),
-                            usable[: i + 1], margin)
+                            usable[: i + 1], margin, rule, arl0)
     return None
 
 
 def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days: float,
-           log: bool, min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
+           log: bool, min_spread: float = 0.0, margin: float = 0.0,
+           rule: HistoryRule | None = None) -> Reference | None:
     """A following reference: the NEWEST good rows (already behind the guard gap) back to the
     one that makes ``files`` files over ``days`` days; None when there are not enough."""
     usable = [(t, v) for t, v in rows_newest_first if math.isfinite(v) and (not log or v > 0)]
@@ -132,7 +157,7 @@ def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days
         if i + 1 >= files and newest - t >= days * DAY_S:
             chosen = usable[: i + 1][::-1]
             return _widened(reference_of(chosen, log=log, min_spread=min_spread), chosen,
-                            margin)
+                            margin, rule)
     return None
 
 
@@ -141,12 +166,17 @@ PROVISIONAL_DAYS = 3.0     # a provisional reference spans at least 3 days (comm
 
 def provisional(rows: Sequence[tuple[float, float]], *, files: int, log: bool,
                 min_spread: float = 0.0, margin: float = 1.0,
-                days: float = PROVISIONAL_DAYS) -> Reference | None:
+                days: float = PROVISIONAL_DAYS, rule: HistoryRule | None = None,
+                arl0: float | None = None) -> Reference | None:
     """A young rig's provisional reference while the full one learns: its first good rows up
     to the one that makes ``files`` files over ``days`` days (fixed, so a creep after them
     cannot enter), widened like ``learn`` by 1 + margin/sqrt(days) for the (few) days they
-    span: one or two days say little about a rig's day-to-day scatter. None before that."""
-    return learn(rows, files=files, days=days, log=log, min_spread=min_spread, margin=margin)
+    span: one or two days say little about a rig's day-to-day scatter. With a ``rule`` that
+    states a budget the widening is calibrated (``_widened``) for ``arl0`` files per false
+    alarm: a provisional reference charts only until the full one is learned. None before
+    that."""
+    return learn(rows, files=files, days=days, log=log, min_spread=min_spread, margin=margin,
+                 rule=rule, arl0=arl0)
 
 
 def progress_text(rows: Sequence[tuple[float, float]], files: int, days: float) -> str:
