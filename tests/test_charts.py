@@ -374,3 +374,73 @@ def test_a_following_reference_keeps_behind_its_guard_gap(tmp_path):
         assert ref.last_at <= last - 2 * 86400.0
         assert ref.first_at > first.last_at                   # the old files have moved out
         assert ref.median == pytest.approx(0.12, rel=0.1)
+
+
+# --- the step chart --------------------------------------------------------------------------
+
+STEP_RULES = """
+    [settings]
+    reference_files = 40
+    reference_days = 10
+    [[history]]
+    name = "hum_jump"
+    measure = "hum_rms"
+    test = "z"
+    side = "up"
+    log = true
+    z = 4
+    [[history]]
+    name = "hum_step"
+    measure = "hum_rms"
+    test = "cusum"
+    step = true
+    side = "up"
+    log = true
+    k = 1.25
+    arl0_files = 6000
+    open_after_files = 1
+    [[history]]
+    name = "hum_drift"
+    measure = "hum_rms"
+    test = "cusum"
+    side = "up"
+    log = true
+    k = 0.5
+    arl0_files = 6000
+    """
+
+
+def test_a_stored_step_opens_the_step_chart_within_two_files_and_the_jump_rule_stands_down(
+        tmp_path):
+    # a doubling at 10 % log scatter (6.9 sigma) after a 40-file, 11-day reference: the step
+    # chart (k 1.25, h 2.81, one signalling file opens) opens by the 2nd stepped file; the
+    # robust-z rule of the same measure stands down and the drift chart is held: one alert
+    rules = rules_file(tmp_path, STEP_RULES)
+    with Store(tmp_path / "q.sqlite") as s:
+        _feed(s, rules, _stable(44))
+        assert chart_of(s, "hum_step", "hum_rms")["ref"] is not None
+        assert not s.open_alerts(RIG.name)
+        step = [2.0 * v for v in _stable(2, 11)]
+        opened = []
+        for k, v in enumerate(step):
+            _feed(s, rules, [v], start=44 + k)
+            opened.append([a["rule"] for a in s.open_alerts(RIG.name)])
+        assert "hum_step" in opened[0] or "hum_step" in opened[1]
+        assert opened[-1] == ["hum_step"]
+        assert "stands down" in finding(s, "hum_jump")["limit_text"]
+        assert "flagged by hum_step" in finding(s, "hum_drift")["limit_text"]
+        body = outbox_rows(s)[-1]["body"]
+        assert "hum_rms" in body and "CUSUM" in body
+
+
+def test_only_the_step_chart_runs_on_a_provisional_reference(tmp_path):
+    # 16 files over 4 days: the full reference (40 files, 10 days) is far off; the step chart
+    # charts against the provisional one (first 10 files over 3 days, its own budget), the
+    # drift chart still learns: a few days' scale is too uncertain for its long memory
+    rules = rules_file(tmp_path, STEP_RULES)
+    with Store(tmp_path / "q.sqlite") as s:
+        _feed(s, rules, _stable(16))
+        assert "provisional reference" in finding(s, "hum_step")["limit_text"]
+        assert "learning the reference: 15 of 40 files" in finding(s, "hum_drift")["limit_text"]
+        assert "CUSUM" not in finding(s, "hum_drift")["limit_text"]
+        assert chart_of(s, "hum_step", "hum_rms")["ref"] is None      # not stored: provisional

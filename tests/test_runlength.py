@@ -134,3 +134,18 @@ def test_estimated_reference_widening_is_one_for_a_known_reference_and_grows_as_
     rates = false_rates("cusum", "up", 0.5, h, 80, 20, 4, 0.0, 0.0, 1.0)
     assert len(rates) == len(WIDEN_GRID)
     assert all(b <= a for a, b in zip(rates, rates[1:]))
+
+
+def test_qn_is_consistent_for_the_normal_sd_and_more_efficient_than_the_mad():
+    # Rousseeuw & Croux (1993): Qn with its small-sample factors is unbiased for sigma at the
+    # normal and has 82 % asymptotic efficiency (the MAD 37 %): variance ratio about 0.45
+    import numpy as np
+    from qcd.runlength import qn_scale
+    rng = np.random.default_rng(7)
+    for n in (5, 10, 11, 20, 80):
+        q = qn_scale(rng.standard_normal((8000, n)))
+        assert q.mean() == pytest.approx(1.0, abs=0.02)
+    x = rng.standard_normal((4000, 80))
+    q = qn_scale(x)
+    mad = 1.482602218505602 * np.median(np.abs(x - np.median(x, axis=1)[:, None]), axis=1)
+    assert 0.35 < q.var() / mad.var() < 0.6
