@@ -26,6 +26,9 @@ __all__ = ["learn", "follow", "reference_of", "provisional", "day_icc", "day_aut
            "progress_text"]
 
 DAY_S = 86400.0
+# reference sizes the widening is simulated for (a reference counts as the next smaller one)
+_FILES_GRID = (3, 5, 7, 10, 12, 15, 20, 25, 30, 40, 50, 60, 80, 100, 120, 160, 200, 250, 300,
+               400)
 
 
 def day_icc(times: Sequence[float], values: Sequence[float]) -> tuple[float, float]:
@@ -112,9 +115,10 @@ def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin:
     days = len({math.floor(t / DAY_S) for t, _ in rows})
     if rule is not None and rule.arl0_files and rule.test in CHART_TESTS:
         stat, lim = (rule.k, rule.h) if rule.test == "cusum" else (rule.lam, chart_limit(rule))
-        w = widen_for(rule.test, rule.side, stat, lim, arl0 or rule.arl0_files, files=ref.n,
+        n = max([g for g in _FILES_GRID if g <= ref.n] or [ref.n])     # shared simulations
+        w = widen_for(rule.test, rule.side, stat, lim, arl0 or rule.arl0_files, files=n,
                       days=days, per_day=ref.n / max(days, 1), icc=ref.icc, rho=ref.rho,
-                      inflate=inflation(rule, ref))
+                      inflate=inflation(rule, ref), opens=rule.open_after_files)
     else:
         w = 1.0 + margin / math.sqrt(max(days, 1))
     return Reference(**{**ref.to_dict(), "widen": w})
@@ -162,21 +166,26 @@ def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days
 
 
 PROVISIONAL_DAYS = 3.0     # a provisional reference spans at least 3 days (common practice)
+PROVISIONAL_GUARD_DAYS = 2.0   # ... and holds the good files older than 2 days
 
 
 def provisional(rows: Sequence[tuple[float, float]], *, files: int, log: bool,
                 min_spread: float = 0.0, margin: float = 1.0,
                 days: float = PROVISIONAL_DAYS, rule: HistoryRule | None = None,
-                arl0: float | None = None) -> Reference | None:
-    """A young rig's provisional reference while the full one learns: its first good rows up
-    to the one that makes ``files`` files over ``days`` days (fixed, so a creep after them
-    cannot enter), widened like ``learn`` by 1 + margin/sqrt(days) for the (few) days they
-    span: one or two days say little about a rig's day-to-day scatter. With a ``rule`` that
-    states a budget the widening is calibrated (``_widened``) for ``arl0`` files per false
-    alarm: a provisional reference charts only until the full one is learned. None before
-    that."""
-    return learn(rows, files=files, days=days, log=log, min_spread=min_spread, margin=margin,
-                 rule=rule, arl0=arl0)
+                arl0: float | None = None, before: float | None = None) -> Reference | None:
+    """A young rig's provisional reference while the full one learns: its good rows recorded
+    before ``before`` (a guard gap behind the file charted, so a fault of the last days
+    cannot enter), once there are ``files`` of them over ``days`` days; it grows with the
+    rig, so its scale gets better day by day. Its limits are widened like ``learn``'s: with a
+    ``rule`` that states a budget, calibrated (``_widened``) for ``arl0`` files per false
+    alarm (a provisional reference charts only until the full one is learned); otherwise by
+    1 + margin/sqrt(days). None before that."""
+    usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)
+              and (before is None or t < before)]
+    if len(usable) < files or usable[-1][0] - usable[0][0] < days * DAY_S:
+        return None
+    return _widened(reference_of(usable, log=log, min_spread=min_spread), usable, margin,
+                    rule, arl0)
 
 
 def progress_text(rows: Sequence[tuple[float, float]], files: int, days: float) -> str:

@@ -211,7 +211,8 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
             young = None if not rule.step else history.provisional(
                 rows, files=st.learning_files, log=rule.log, min_spread=rule.min_spread,
                 margin=st.reference_margin, rule=rule, arl0=st.provisional_arl0_files,
-                days=min(history.PROVISIONAL_DAYS, st.reference_days))
+                days=min(history.PROVISIONAL_DAYS, st.reference_days),
+                before=at - history.PROVISIONAL_GUARD_DAYS * 86400.0)
             if young is None:
                 return ChartInput(None, ChartState.from_dict(state), at, start_at=start_at,
                                   learning=learning)

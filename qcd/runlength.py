@@ -174,15 +174,17 @@ def _day_series(rng: np.random.Generator, rigs: int, days: int, per_day: int, ic
 
 @lru_cache(maxsize=256)
 def false_rates(test: str, side: str, stat: float, limit: float, files: int, days: int,
-                per_day: int, icc: float, rho: float, inflate: float, *, rigs: int = MC_RIGS,
-                monitor: int = MC_FILES, seed: int = MC_SEED) -> tuple[float, ...]:
+                per_day: int, icc: float, rho: float, inflate: float, opens: int = 1, *,
+                rigs: int = MC_RIGS, monitor: int = MC_FILES, seed: int = MC_SEED
+                ) -> tuple[float, ...]:
     """In-control signals per file of a chart on an ESTIMATED reference, for each factor of
     ``WIDEN_GRID``, averaged over simulated rigs (Monte Carlo, fixed seed).
 
     Each simulated rig learns its reference (median and Qn, as qcd.history) from ``files`` files over
     ``days`` days (``per_day`` a day), with the day effects of ``_day_series``, then charts
     ``monitor`` more files standardised as qcd.charts does, x = (y - center) / (scale
-    sqrt(inflate) w), restarting the chart after each signal. ``stat``: k (cusum) or lambda
+    sqrt(inflate) w). A signal is ``opens`` files in a row beyond the limit (the rule's
+    open_after_files: what opens an alert); the chart restarts after it (as on a resolve). ``stat``: k (cusum) or lambda
     (ewma); ``limit``: h or the EWMA's asymptotic limit L sqrt(lam/(2-lam)). The rate is the
     mean over rigs, so it is the false-alarm rate a fleet of such rigs would see; a reference
     from few days gives some rigs a far too small scale, and those rigs dominate it."""
@@ -207,20 +209,25 @@ def false_rates(test: str, side: str, stat: float, limit: float, files: int, day
     for sgn in sides:
         xs = sgn * x
         s = np.zeros((rigs, len(WIDEN_GRID)))
+        run = np.zeros((rigs, len(WIDEN_GRID)), dtype=int)
         for t in range(xs.shape[1]):
             v = xs[:, t, None] * inv_w
             if test == "cusum":
                 s = np.maximum(s + v - stat, 0.0)
             else:
                 s = stat * v + (1.0 - stat) * s
-            hit = s > limit
+            beyond = s > limit
+            run = np.where(beyond, run + 1, 0)
+            hit = run >= opens
             count += hit.sum(axis=0)
             s[hit] = 0.0
+            run[hit] = 0
     return tuple(float(c) / (rigs * xs.shape[1]) for c in count)
 
 
 def widen_for(test: str, side: str, stat: float, limit: float, arl0: float, *, files: int,
-              days: int, per_day: float, icc: float, rho: float, inflate: float = 1.0) -> float:
+              days: int, per_day: float, icc: float, rho: float, inflate: float = 1.0,
+              opens: int = 1) -> float:
     """The smallest widening factor w (of ``WIDEN_GRID``, interpolated in log rate) whose
     mean in-control false-alarm rate on an estimated reference (``false_rates``) is at most
     1/``arl0`` per file. Inputs are rounded (days and files a day to whole numbers, icc and rho
@@ -229,7 +236,8 @@ def widen_for(test: str, side: str, stat: float, limit: float, arl0: float, *, f
     rates = false_rates(test, side, round(stat, 4), round(limit, 4), int(files),
                         max(1, int(round(days))), max(1, int(round(per_day))),
                         round(min(max(icc, 0.0), 0.95) * 20) / 20,
-                        round(min(max(rho, 0.0), 0.9) * 20) / 20, round(inflate, 2))
+                        round(min(max(rho, 0.0), 0.9) * 20) / 20, round(inflate, 2),
+                        max(1, int(opens)))
     target = 1.0 / arl0
     for i, r in enumerate(rates):
         if r <= target:

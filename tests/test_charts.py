@@ -434,13 +434,18 @@ def test_a_stored_step_opens_the_step_chart_within_two_files_and_the_jump_rule_s
 
 
 def test_only_the_step_chart_runs_on_a_provisional_reference(tmp_path):
-    # 16 files over 4 days: the full reference (40 files, 10 days) is far off; the step chart
-    # charts against the provisional one (first 10 files over 3 days, its own budget), the
-    # drift chart still learns: a few days' scale is too uncertain for its long memory
+    # 24 files over 6 days: the full reference (40 files, 10 days) is still off; the step
+    # chart charts against the provisional one (the good files older than 2 days, at least 10
+    # over 3 days; its own budget), the drift chart still learns: a few days' scale is too
+    # uncertain for its long memory
     rules = rules_file(tmp_path, STEP_RULES)
     with Store(tmp_path / "q.sqlite") as s:
-        _feed(s, rules, _stable(16))
+        _feed(s, rules, _stable(9))
+        assert "provisional" not in finding(s, "hum_step")["limit_text"]
+        _feed(s, rules, _stable(24)[9:], start=9)
         assert "provisional reference" in finding(s, "hum_step")["limit_text"]
-        assert "learning the reference: 15 of 40 files" in finding(s, "hum_drift")["limit_text"]
+        # the 24th file (day 5, 14:00) sees days 0-2 and day 3 before 14:00: 15 files
+        assert "from 15 files" in finding(s, "hum_step")["limit_text"]
+        assert "learning the reference: 23 of 40 files" in finding(s, "hum_drift")["limit_text"]
         assert "CUSUM" not in finding(s, "hum_drift")["limit_text"]
         assert chart_of(s, "hum_step", "hum_rms")["ref"] is None      # not stored: provisional
