@@ -23,7 +23,7 @@ from qcd.ruleset import HistoryRule
 from qcd.runlength import QN_MAX, qn_scale, widen_for
 
 __all__ = ["learn", "follow", "reference_of", "provisional", "day_icc", "day_autocorrelation",
-           "progress_text"]
+           "progress_text", "readmit"]
 
 DAY_S = 86400.0
 # reference sizes the widening is simulated for (a reference counts as the next smaller one)
@@ -98,6 +98,46 @@ def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: 
     return Reference(center=center, scale=scale, n=len(pts), first_at=float(t.min()),
                      last_at=float(t.max()), log=log, icc=icc, per_day=per_day,
                      rho=day_autocorrelation(t, y))
+
+
+READMIT_Z = 3.5        # flagged files within this many scales of the good files' median
+
+
+def readmit(all_rows: Sequence[tuple[float, float]], good_rows: Sequence[tuple[float, float]],
+            *, log: bool, z: float = READMIT_Z) -> list[tuple[float, float]]:
+    """The rows to learn a reference from: the good (unflagged) rows, plus the flagged ones
+    (in ``all_rows`` but not in ``good_rows``) that lie within ``z`` robust scales (Qn) of
+    the good rows' median, in recording order.
+
+    Leaving out every flagged file biases the reference when some flags were false alarms
+    (a young rig's provisional step chart, a jump rule): the files left out are the high ones,
+    so the center comes out low and the scale small, and the charts then signal again and
+    again. A file the checks flagged as far off (a real fault) stays out; one that is a
+    plausible part of the rig's scatter comes back (|z| < 3.5: Iglewicz & Hoaglin 1993)."""
+    good = [(float(t), float(v)) for t, v in good_rows]
+    left: dict[tuple[float, float], int] = {}
+    for r in good:
+        left[r] = left.get(r, 0) + 1
+    flagged = []
+    for t, v in all_rows:
+        r = (float(t), float(v))
+        if left.get(r, 0) > 0:
+            left[r] -= 1
+        else:
+            flagged.append(r)
+    if not flagged:
+        return good
+    ref = reference_of(good, log=log)
+    if ref is None:
+        return good
+    back = []
+    for t, v in flagged:
+        if not math.isfinite(v) or (log and v <= 0):
+            continue
+        y = math.log(v) if log else v
+        if abs(y - ref.center) <= z * ref.scale:
+            back.append((t, v))
+    return sorted(good + back)
 
 
 def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin: float,

@@ -200,6 +200,12 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
     if reference is None:
         rows = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
                                     limit=max(4 * st.reference_files, 400))
+        if rows:       # flagged files within the good ones' scatter come back (qcd.history)
+            every = store.chart_points(rig, mode, channel, measure,
+                                       after=None if start_at is None else start_at - 1e-6,
+                                       before=at)
+            rows = history.readmit(every[:max(4 * st.reference_files, 400)], rows,
+                                   log=rule.log)
         reference = history.learn(rows, files=st.reference_files, days=st.reference_days,
                                   log=rule.log, min_spread=rule.min_spread,
                                   margin=st.reference_margin, rule=rule)
