@@ -449,3 +449,15 @@ def test_only_the_step_chart_runs_on_a_provisional_reference(tmp_path):
         assert "learning the reference: 23 of 40 files" in finding(s, "hum_drift")["limit_text"]
         assert "CUSUM" not in finding(s, "hum_drift")["limit_text"]
         assert chart_of(s, "hum_step", "hum_rms")["ref"] is None      # not stored: provisional
+
+
+def test_readmit_brings_back_flagged_files_within_the_scatter_but_not_a_fault():
+    # good files: the logs of 0.1 x exp(N(0, 0.1)); two flagged ones: 1.15x (a false alarm,
+    # z ~ 1.4) comes back, 3x (z ~ 11, a fault) stays out (|z| < 3.5: Iglewicz & Hoaglin 1993)
+    from qcd.history import readmit
+    good = [(float(i), v) for i, v in enumerate(_stable(30))]
+    flagged = [(30.5, 0.115), (31.5, 0.3)]
+    rows = readmit(sorted(good + flagged), good, log=True)
+    assert (30.5, 0.115) in rows and (31.5, 0.3) not in rows
+    assert len(rows) == 31 and rows == sorted(rows)
+    assert readmit(good, good, log=True) == good

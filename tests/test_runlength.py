@@ -130,6 +130,9 @@ def test_estimated_reference_widening_is_one_for_a_known_reference_and_grows_as_
     mid = widen_for("cusum", "up", 0.5, h, 3000, files=80, days=20, per_day=4, icc=0.0, rho=0.0)
     few = widen_for("cusum", "up", 0.5, h, 3000, files=10, days=3, per_day=4, icc=0.0, rho=0.0)
     assert 1.05 < mid < 1.5 and few > mid
+    # two signalling files in a row to open an alert: fewer false alerts, less widening
+    assert widen_for("cusum", "up", 0.5, h, 3000, files=80, days=20, per_day=4, icc=0.0,
+                     rho=0.0, opens=2) < mid
     # the simulated false-alarm rate falls as the limits widen (same random numbers)
     rates = false_rates("cusum", "up", 0.5, h, 80, 20, 4, 0.0, 0.0, 1.0)
     assert len(rates) == len(WIDEN_GRID)
