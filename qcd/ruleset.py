@@ -46,7 +46,7 @@ class RuleSettings:
     reference_margin: float = 1.5    # its limits widened 1 + margin/sqrt(days) (estimation)
     follow_days: float = 0.0         # > 0: the reference follows the rig from files older ...
     follow_files: int = 20           # ... than this many days and files (0: fixed reference)
-    provisional_arl0_files: float = 200.0   # a step chart on a provisional reference
+    provisional_arl0_files: float = 1000.0   # a step chart on a provisional reference
 
 
 @dataclass(frozen=True)
