@@ -25,8 +25,15 @@ given the rig's TRUE reference before its first file (center, scale, day share, 
 a day; no widening): the known-parameter floor of the same charts, to set beside the real
 code, which learns its reference from the rig's files.
 
-Not collected by pytest; figures go in the notes. About 3 ms a file on one core: 200
-rig-years take about 20 minutes with --jobs 2.
+Not collected by pytest; figures in docs/methods.md §10, measured with
+
+    python tests/benchmarks/bench_drift.py --quick --rig-years 48 --rigs 30 --jobs 2 --day-share 0
+    python tests/benchmarks/bench_drift.py --quick --rig-years 48 --rigs 30 --jobs 2 --day-share 0 --oracle
+    python tests/benchmarks/bench_drift.py --quick --rig-years 8 --rigs 10 --day-share 0.5
+
+About 10-20 ms a file and process with learned references (most of it the simulations that
+calibrate each new reference's limits, qcd.runlength.widen_for), 2-3 ms with --oracle: 48
+rig-years take about 17 minutes with --jobs 2 on a shared machine, 200 about an hour.
 """
 from __future__ import annotations
 
