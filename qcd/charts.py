@@ -89,6 +89,8 @@ def inflation(rule: HistoryRule, ref: Reference) -> float:
     the sum of w_i^2, averaged over where in its day the newest file falls. CUSUM (which sums
     many files): the long-run ratio 1 + (m - 1) icc + 2 m icc rho / (1 - rho), the design
     effect of a day's mean (Kish 1965) with the days' autocorrelation added."""
+    if rule.step:
+        return 1.0                   # a step chart's limit is calibrated with the day effects
     m = max(1, int(round(ref.per_day)))
     icc = min(max(ref.icc, 0.0), 1.0)
     rho = min(max(ref.rho, 0.0), 0.9)
@@ -133,7 +135,7 @@ def standardise(value: float, ref: Reference, rule: HistoryRule | None = None) -
             return None
         value = math.log(value)
     f = inflation(rule, ref) if rule is not None else 1.0
-    return (value - ref.center) / (ref.scale * math.sqrt(f) * max(ref.widen, 1.0))
+    return (value - ref.center) / (ref.scale * math.sqrt(f) * max(ref.widen, 0.5))
 
 
 def step(rule: HistoryRule, state: ChartState, x: float, at: float) -> ChartState:

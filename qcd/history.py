@@ -16,13 +16,19 @@ from typing import Sequence
 
 import numpy as np
 
-from qcd.charts import Reference
+from qcd.charts import CHART_TESTS, Reference, inflation
+from qcd.charts import limit as chart_limit
 from qcd.measures.noise import MAD_SCALE
+from qcd.ruleset import HistoryRule
+from qcd.runlength import QN_MAX, qn_scale, widen_for
 
 __all__ = ["learn", "follow", "reference_of", "provisional", "day_icc", "day_autocorrelation",
-           "progress_text"]
+           "progress_text", "readmit"]
 
 DAY_S = 86400.0
+# reference sizes the widening is simulated for (a reference counts as the next smaller one)
+_FILES_GRID = (3, 5, 7, 10, 12, 15, 20, 25, 30, 40, 50, 60, 80, 100, 120, 160, 200, 250, 300,
+               400)
 
 
 def day_icc(times: Sequence[float], values: Sequence[float]) -> tuple[float, float]:
@@ -70,9 +76,13 @@ def day_autocorrelation(times: Sequence[float], values: Sequence[float]) -> floa
 
 def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: float = 0.0
                  ) -> Reference | None:
-    """The reference of (recorded_at, value) rows: median and 1.4826 MAD of the values (their
-    logs when ``log``), the scale floored at ``min_spread`` (log units, or a fraction of the
-    median's size otherwise) (Iglewicz & Hoaglin 1993)."""
+    """The reference of (recorded_at, value) rows: median and Qn scale of the values (their
+    logs when ``log``; Rousseeuw & Croux 1993, qcd.runlength.qn_scale), the scale floored at
+    ``min_spread`` (log units, or a fraction of the median's size otherwise).
+
+    Qn rather than 1.4826 MAD: both resist a few odd files, but the MAD has 37 % efficiency at
+    the normal, Qn 82 %, and a chart's false-alarm rate grows steeply when its scale comes out
+    small: with Qn the limits need less widening for the same budget (``_widened``)."""
     pts = [(float(t), float(v)) for t, v in rows if v is not None and math.isfinite(float(v))
            and (not log or float(v) > 0)]
     if len(pts) < 3:
@@ -80,7 +90,8 @@ def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: 
     t = np.array([p[0] for p in pts])
     y = np.array([math.log(p[1]) if log else p[1] for p in pts])
     center = float(np.median(y))
-    scale = MAD_SCALE * float(np.median(np.abs(y - center)))
+    scale = float(qn_scale(y)) if len(y) <= QN_MAX else \
+        MAD_SCALE * float(np.median(np.abs(y - center)))
     floor = min_spread if log else min_spread * abs(center)
     scale = max(scale, floor, 1e-12)
     icc, per_day = day_icc(t, y)
@@ -89,17 +100,73 @@ def reference_of(rows: Sequence[tuple[float, float]], *, log: bool, min_spread: 
                      rho=day_autocorrelation(t, y))
 
 
-def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin: float
-              ) -> Reference | None:
-    """``ref`` with its limits widened by 1 + margin/sqrt(days) for the days its rows span."""
+READMIT_Z = 3.5        # flagged files within this many scales of the good files' median
+
+
+def readmit(all_rows: Sequence[tuple[float, float]], good_rows: Sequence[tuple[float, float]],
+            *, log: bool, z: float = READMIT_Z) -> list[tuple[float, float]]:
+    """The rows to learn a reference from: the good (unflagged) rows, plus the flagged ones
+    (in ``all_rows`` but not in ``good_rows``) that lie within ``z`` robust scales (Qn) of
+    the good rows' median, in recording order.
+
+    Leaving out every flagged file biases the reference when some flags were false alarms
+    (a young rig's provisional step chart, a jump rule): the files left out are the high ones,
+    so the center comes out low and the scale small, and the charts then signal again and
+    again. A file the checks flagged as far off (a real fault) stays out; one that is a
+    plausible part of the rig's scatter comes back (|z| < 3.5: Iglewicz & Hoaglin 1993)."""
+    good = [(float(t), float(v)) for t, v in good_rows]
+    left: dict[tuple[float, float], int] = {}
+    for r in good:
+        left[r] = left.get(r, 0) + 1
+    flagged = []
+    for t, v in all_rows:
+        r = (float(t), float(v))
+        if left.get(r, 0) > 0:
+            left[r] -= 1
+        else:
+            flagged.append(r)
+    if not flagged:
+        return good
+    ref = reference_of(good, log=log)
+    if ref is None:
+        return good
+    back = []
+    for t, v in flagged:
+        if not math.isfinite(v) or (log and v <= 0):
+            continue
+        y = math.log(v) if log else v
+        if abs(y - ref.center) <= z * ref.scale:
+            back.append((t, v))
+    return sorted(good + back)
+
+
+def _widened(ref: Reference | None, rows: Sequence[tuple[float, float]], margin: float,
+             rule: HistoryRule | None = None, arl0: float | None = None) -> Reference | None:
+    """``ref`` with its limits widened for the estimation error of its center and scale.
+
+    A chart rule with a false-alarm budget (``arl0_files``): by the factor whose mean
+    in-control false-alarm rate, over rigs whose reference has as many files, days, files a
+    day, icc and day-to-day correlation as this one, meets the budget (Monte Carlo of the chart
+    on simulated references, qcd.runlength.widen_for). Otherwise by 1 + margin/sqrt(days) for
+    the days the rows span. ``arl0``: another budget than the rule's (a provisional
+    reference's, which charts only until the full reference is learned)."""
     if ref is None:
         return None
     days = len({math.floor(t / DAY_S) for t, _ in rows})
-    return Reference(**{**ref.to_dict(), "widen": 1.0 + margin / math.sqrt(max(days, 1))})
+    if rule is not None and rule.arl0_files and rule.test in CHART_TESTS:
+        stat, lim = (rule.k, rule.h) if rule.test == "cusum" else (rule.lam, chart_limit(rule))
+        n = max([g for g in _FILES_GRID if g <= ref.n] or [ref.n])     # shared simulations
+        w = widen_for(rule.test, rule.side, stat, lim, arl0 or rule.arl0_files, files=n,
+                      days=days, per_day=ref.n / max(days, 1), icc=ref.icc, rho=ref.rho,
+                      inflate=inflation(rule, ref), opens=rule.open_after_files)
+    else:
+        w = 1.0 + margin / math.sqrt(max(days, 1))
+    return Reference(**{**ref.to_dict(), "widen": w})
 
 
 def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: bool,
-          min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
+          min_spread: float = 0.0, margin: float = 0.0, rule: HistoryRule | None = None,
+          arl0: float | None = None) -> Reference | None:
     """The fixed reference from good rows (oldest first, recorded after the reference start):
     the first rows up to the one that makes ``files`` files over at least ``days`` days; None
     while there are not enough yet (still learning).
@@ -108,7 +175,8 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
     spans. A scale estimated from a few independent days can be far too small (the MAD of n
     normal values has a relative error of about 1.2/sqrt(n), and a day's files count as about
     one), and a chart's false-alarm rate grows steeply as its scale shrinks; the margin keeps
-    the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py)."""
+    the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py). With a
+    ``rule`` that states its budget, the widening is calibrated for it instead (``_widened``)."""
     usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
     if not usable:
         return None
@@ -116,12 +184,13 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
     for i, (t, _) in enumerate(usable):
         if i + 1 >= files and t - first >= days * DAY_S:
             return _widened(reference_of(usable[: i + 1], log=log, min_spread=min_spread),
-                            usable[: i + 1], margin)
+                            usable[: i + 1], margin, rule, arl0)
     return None
 
 
 def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days: float,
-           log: bool, min_spread: float = 0.0, margin: float = 0.0) -> Reference | None:
+           log: bool, min_spread: float = 0.0, margin: float = 0.0,
+           rule: HistoryRule | None = None) -> Reference | None:
     """A following reference: the NEWEST good rows (already behind the guard gap) back to the
     one that makes ``files`` files over ``days`` days; None when there are not enough."""
     usable = [(t, v) for t, v in rows_newest_first if math.isfinite(v) and (not log or v > 0)]
@@ -132,21 +201,31 @@ def follow(rows_newest_first: Sequence[tuple[float, float]], *, files: int, days
         if i + 1 >= files and newest - t >= days * DAY_S:
             chosen = usable[: i + 1][::-1]
             return _widened(reference_of(chosen, log=log, min_spread=min_spread), chosen,
-                            margin)
+                            margin, rule)
     return None
 
 
 PROVISIONAL_DAYS = 3.0     # a provisional reference spans at least 3 days (common practice)
+PROVISIONAL_GUARD_DAYS = 2.0   # ... and holds the good files older than 2 days
 
 
 def provisional(rows: Sequence[tuple[float, float]], *, files: int, log: bool,
                 min_spread: float = 0.0, margin: float = 1.0,
-                days: float = PROVISIONAL_DAYS) -> Reference | None:
-    """A young rig's provisional reference while the full one learns: its first good rows up
-    to the one that makes ``files`` files over ``days`` days (fixed, so a creep after them
-    cannot enter), widened like ``learn`` by 1 + margin/sqrt(days) for the (few) days they
-    span: one or two days say little about a rig's day-to-day scatter. None before that."""
-    return learn(rows, files=files, days=days, log=log, min_spread=min_spread, margin=margin)
+                days: float = PROVISIONAL_DAYS, rule: HistoryRule | None = None,
+                arl0: float | None = None, before: float | None = None) -> Reference | None:
+    """A young rig's provisional reference while the full one learns: its good rows recorded
+    before ``before`` (a guard gap behind the file charted, so a fault of the last days
+    cannot enter), once there are ``files`` of them over ``days`` days; it grows with the
+    rig, so its scale gets better day by day. Its limits are widened like ``learn``'s: with a
+    ``rule`` that states a budget, calibrated (``_widened``) for ``arl0`` files per false
+    alarm (a provisional reference charts only until the full one is learned); otherwise by
+    1 + margin/sqrt(days). None before that."""
+    usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)
+              and (before is None or t < before)]
+    if len(usable) < files or usable[-1][0] - usable[0][0] < days * DAY_S:
+        return None
+    return _widened(reference_of(usable, log=log, min_spread=min_spread), usable, margin,
+                    rule, arl0)
 
 
 def progress_text(rows: Sequence[tuple[float, float]], files: int, days: float) -> str:

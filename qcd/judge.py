@@ -401,12 +401,15 @@ def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = "",
 
 
 def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, key: dict,
-           jumped: bool = False) -> tuple[bool, bool, str, str, dict] | None:
+           jumped: bool = False, se: float = 0.0) -> tuple[bool, bool, str, str, dict] | None:
     """(bad, clear, text, headline, chart to store) of one file on a sequential chart.
 
-    ``jumped``: a jump rule flagged this value. It is charted, but the chart is held at its
-    clear level (``charts.hold``), so that a few outliers alone cannot open a drift alert
-    after the jump's alert has resolved; a drift that goes on takes the chart up again."""
+    ``jumped``: a jump rule (robust z, or a step chart) flagged this value. It is charted, but
+    the chart is held at its clear level (``charts.hold``), so that a few outliers alone cannot
+    open a drift alert after the jump's alert has resolved; a drift that goes on takes the
+    chart up again. ``se``: the value's standard error; as for the other rules
+    (``_interval``), the chart is bad only when it would be bad for every value within
+    -+ 2 SE, and clear only when clear for all of them (the stored chart steps the value)."""
     store = dict(key, start_at=ci.start_at, state=ci.state.to_dict(),
                  ref=None if ci.ref is None or ci.provisional else ci.ref.to_dict())
     if ci.ref is None:
@@ -416,6 +419,12 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
         return None
     new = _charts.step(rule, ci.state, x, ci.at)
     bad, clear, stat, lim = _charts.verdict(rule, new)
+    if se > 0 and (bad or not clear):
+        for end in (value - _SE_SIGMAS * se, value + _SE_SIGMAS * se):
+            xe = _charts.standardise(max(end, 1e-300) if value > 0 else end, ci.ref, rule)
+            if xe is not None:
+                b, c, _, _ = _charts.verdict(rule, _charts.step(rule, ci.state, xe, ci.at))
+                bad, clear = bad and b, clear and c
     if jumped:
         new = _charts.hold(rule, new)
     store["state"] = _charts.replay(rule, new, ci.tail, ci.ref).to_dict()
@@ -602,7 +611,13 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                       if charts is not None and r.test in _charts.CHART_TESTS}
             refs = {ci.ref.log: ci.ref.scale for ci in inputs.values()     # learned ones
                     if ci is not None and ci.ref is not None and not ci.provisional}
-            for rule in sorted(hist_rules, key=lambda r: r.test != "z"):    # z rules first
+            # a step chart with a learned reference takes over from the jump rules of its side
+            stood_down = {r.side for r in hist_rules if r.step and inputs.get(r.name) is not None
+                          and inputs[r.name].ref is not None and not inputs[r.name].provisional}
+            if "both" in stood_down:
+                stood_down |= {"up", "down"}
+            # z rules first, then step charts, then drift charts: what flags first is "the jump"
+            for rule in sorted(hist_rules, key=lambda r: (r.test != "z", not r.step)):
                 chart_row, headline = None, ""
                 if rule.test in _charts.CHART_TESTS:
                     ci = inputs.get(rule.name)
@@ -610,7 +625,8 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                         continue
                     res = _chart(rule, value, ci, m.unit,
                                  dict(mode=mode, channel=ch.index, measure=m.name,
-                                      rule=rule.name), jumped=bool(jump))
+                                      rule=rule.name), jumped=bool(jump),
+                                 se=_se(ch, m.name))
                     if res is None:
                         continue
                     bad, clear_ok, stat_text, headline, chart_row = res
@@ -633,13 +649,18 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     if res is None:
                         continue
                     bad, clear_ok, stat_text = res
+                    if rule.side in stood_down:
+                        bad, clear_ok = False, True
+                        stat_text += " (stands down: the step chart watches for jumps)"
                 if rule.test == "z" and bad:
-                    jump = rule.name
+                    jump = jump or rule.name
                 elif bad and jump:
                     # a jump already flagged explains the trend statistic: one alert, not two;
                     # neither bad nor clear, so an open trend alert neither grows nor clears
                     bad = clear_ok = False
                     stat_text += f" (a jump, flagged by {jump})"
+                elif bad and rule.step:
+                    jump = rule.name
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
                     groups = noise_hints(ch, mode, _clean(history), rules) if groups is None else groups

@@ -230,20 +230,30 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                              skip=st.follow_files)
         followed = history.follow(rows, files=st.reference_files, days=st.reference_days,
                                   log=rule.log, min_spread=rule.min_spread,
-                                  margin=st.reference_margin)
+                                  margin=st.reference_margin, rule=rule)
         reference = followed or reference
     if reference is None:
         rows = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
                                     limit=max(4 * st.reference_files, 400))
+        if rows:       # flagged files within the good ones' scatter come back (qcd.history)
+            every = store.chart_points(rig, mode, channel, measure,
+                                       after=None if start_at is None else start_at - 1e-6,
+                                       before=at)
+            rows = history.readmit(every[:max(4 * st.reference_files, 400)], rows,
+                                   log=rule.log)
         reference = history.learn(rows, files=st.reference_files, days=st.reference_days,
                                   log=rule.log, min_spread=rule.min_spread,
-                                  margin=st.reference_margin)
+                                  margin=st.reference_margin, rule=rule)
         learning = history.progress_text(rows, st.reference_files, st.reference_days)
         if reference is None:
-            young = history.provisional(rows, files=st.learning_files, log=rule.log,
-                                        min_spread=rule.min_spread,
-                                        margin=st.reference_margin,
-                                        days=min(history.PROVISIONAL_DAYS, st.reference_days))
+            # only a step chart runs on a young rig's provisional reference, its limit
+            # calibrated for the reference's few files and days and the provisional budget: a
+            # few days say too little about the scale for a slow-drift chart's long memory
+            young = None if not rule.step else history.provisional(
+                rows, files=st.learning_files, log=rule.log, min_spread=rule.min_spread,
+                margin=st.reference_margin, rule=rule, arl0=st.provisional_arl0_files,
+                days=min(history.PROVISIONAL_DAYS, st.reference_days),
+                before=at - history.PROVISIONAL_GUARD_DAYS * 86400.0)
             if young is None:
                 return ChartInput(None, ChartState.from_dict(state), at, start_at=start_at,
                                   learning=learning)

@@ -46,6 +46,7 @@ class RuleSettings:
     reference_margin: float = 1.5    # its limits widened 1 + margin/sqrt(days) (estimation)
     follow_days: float = 0.0         # > 0: the reference follows the rig from files older ...
     follow_files: int = 20           # ... than this many days and files (0: fixed reference)
+    provisional_arl0_files: float = 1000.0   # a step chart on a provisional reference
 
 
 @dataclass(frozen=True)
@@ -90,6 +91,9 @@ class HistoryRule:
     k: float = 0.5                   # 'cusum': reference value (sigma units)
     h: float = 5.0                   # 'cusum': decision interval (sigma units)
     arl0_files: float | None = None  # 'ewma'/'cusum': in-control run length L or h was set for
+    step: bool = False               # 'cusum': a step chart (qcd.judge: opens on its own, also
+                                     # on a young rig's provisional reference; jump rules stand
+                                     # down while it has a learned reference)
     min_spread: float = 0.05         # floor of the robust scale (log units, or fraction of median)
     min_spread_abs: float | None = None   # or an absolute floor in SI ('min_spread = "12 pA"')
     spread_dimension: str = ""
@@ -118,13 +122,14 @@ _SETTINGS_KEYS = {"history_files": ("history_files", int), "history_days": ("his
                   "reference_files": ("reference_files", int),
                   "reference_days": ("reference_days", float),
                   "reference_margin": ("reference_margin", float),
-                  "follow_days": ("follow_days", float), "follow_files": ("follow_files", int)}
+                  "follow_days": ("follow_days", float), "follow_files": ("follow_files", int),
+                  "provisional_arl0_files": ("provisional_arl0_files", float)}
 _MAY_BE_ZERO = {"follow_days", "follow_files", "reference_margin"}
 _LIMIT_KEYS = {"name", "measure", "modes", "above", "below", "equals", "absolute", "scope",
                "severity", "open_after_files", "resolve_after_files", "remind_hours",
                "clear_margin", "enabled"}
 _HISTORY_KEYS = {"name", "measure", "modes", "test", "side", "log", "z", "clear_z", "lambda", "L",
-                 "k", "h", "arl0_files", "min_spread", "severity", "open_after_files", "resolve_after_files",
+                 "k", "h", "arl0_files", "step", "min_spread", "severity", "open_after_files", "resolve_after_files",
                  "remind_hours", "enabled"}
 # Keys of earlier rule files and the names they have now: a clear error, never a silent default.
 _RENAMED = {"for_files": "open_after_files", "clear_files": "resolve_after_files",
@@ -295,6 +300,12 @@ def _history_rule(path: Path, where: str, t: dict, settings: RuleSettings) -> Hi
         if not isinstance(t["log"], bool):
             raise ConfigError(path, f"{where}.log", f"expected true or false, got {t['log']!r}")
         kw["log"] = t["log"]
+    if "step" in t:
+        if not isinstance(t["step"], bool):
+            raise ConfigError(path, f"{where}.step", f"expected true or false, got {t['step']!r}")
+        if t["step"] and test != "cusum":
+            raise ConfigError(path, f"{where}.step", "only a 'cusum' rule can be a step chart")
+        kw["step"] = t["step"]
     if isinstance(t.get("min_spread"), str):
         kw["min_spread_abs"], kw["spread_dimension"] = _rule_quantity(path, where, "min_spread",
                                                                       t["min_spread"])

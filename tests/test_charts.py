@@ -374,3 +374,90 @@ def test_a_following_reference_keeps_behind_its_guard_gap(tmp_path):
         assert ref.last_at <= last - 2 * 86400.0
         assert ref.first_at > first.last_at                   # the old files have moved out
         assert ref.median == pytest.approx(0.12, rel=0.1)
+
+
+# --- the step chart --------------------------------------------------------------------------
+
+STEP_RULES = """
+    [settings]
+    reference_files = 40
+    reference_days = 10
+    [[history]]
+    name = "hum_jump"
+    measure = "hum_rms"
+    test = "z"
+    side = "up"
+    log = true
+    z = 4
+    [[history]]
+    name = "hum_step"
+    measure = "hum_rms"
+    test = "cusum"
+    step = true
+    side = "up"
+    log = true
+    k = 1.25
+    arl0_files = 6000
+    open_after_files = 1
+    [[history]]
+    name = "hum_drift"
+    measure = "hum_rms"
+    test = "cusum"
+    side = "up"
+    log = true
+    k = 0.5
+    arl0_files = 6000
+    """
+
+
+def test_a_stored_step_opens_the_step_chart_within_two_files_and_the_jump_rule_stands_down(
+        tmp_path):
+    # a doubling at 10 % log scatter (6.9 sigma) after a 40-file, 11-day reference: the step
+    # chart (k 1.25, h 2.81, one signalling file opens) opens by the 2nd stepped file; the
+    # robust-z rule of the same measure stands down and the drift chart is held: one alert
+    rules = rules_file(tmp_path, STEP_RULES)
+    with Store(tmp_path / "q.sqlite") as s:
+        _feed(s, rules, _stable(44))
+        assert chart_of(s, "hum_step", "hum_rms")["ref"] is not None
+        assert not s.open_alerts(RIG.name)
+        step = [2.0 * v for v in _stable(2, 11)]
+        opened = []
+        for k, v in enumerate(step):
+            _feed(s, rules, [v], start=44 + k)
+            opened.append([a["rule"] for a in s.open_alerts(RIG.name)])
+        assert "hum_step" in opened[0] or "hum_step" in opened[1]
+        assert opened[-1] == ["hum_step"]
+        assert "stands down" in finding(s, "hum_jump")["limit_text"]
+        assert "flagged by hum_step" in finding(s, "hum_drift")["limit_text"]
+        body = outbox_rows(s)[-1]["body"]
+        assert "hum_rms" in body and "CUSUM" in body
+
+
+def test_only_the_step_chart_runs_on_a_provisional_reference(tmp_path):
+    # 24 files over 6 days: the full reference (40 files, 10 days) is still off; the step
+    # chart charts against the provisional one (the good files older than 2 days, at least 10
+    # over 3 days; its own budget), the drift chart still learns: a few days' scale is too
+    # uncertain for its long memory
+    rules = rules_file(tmp_path, STEP_RULES)
+    with Store(tmp_path / "q.sqlite") as s:
+        _feed(s, rules, _stable(9))
+        assert "provisional" not in finding(s, "hum_step")["limit_text"]
+        _feed(s, rules, _stable(24)[9:], start=9)
+        assert "provisional reference" in finding(s, "hum_step")["limit_text"]
+        # the 24th file (day 5, 14:00) sees days 0-2 and day 3 before 14:00: 15 files
+        assert "from 15 files" in finding(s, "hum_step")["limit_text"]
+        assert "learning the reference: 23 of 40 files" in finding(s, "hum_drift")["limit_text"]
+        assert "CUSUM" not in finding(s, "hum_drift")["limit_text"]
+        assert chart_of(s, "hum_step", "hum_rms")["ref"] is None      # not stored: provisional
+
+
+def test_readmit_brings_back_flagged_files_within_the_scatter_but_not_a_fault():
+    # good files: the logs of 0.1 x exp(N(0, 0.1)); two flagged ones: 1.15x (a false alarm,
+    # z ~ 1.4) comes back, 3x (z ~ 11, a fault) stays out (|z| < 3.5: Iglewicz & Hoaglin 1993)
+    from qcd.history import readmit
+    good = [(float(i), v) for i, v in enumerate(_stable(30))]
+    flagged = [(30.5, 0.115), (31.5, 0.3)]
+    rows = readmit(sorted(good + flagged), good, log=True)
+    assert (30.5, 0.115) in rows and (31.5, 0.3) not in rows
+    assert len(rows) == 31 and rows == sorted(rows)
+    assert readmit(good, good, log=True) == good

@@ -292,16 +292,42 @@ def test_strong_non_mains_line_suggests_switching_supplies(rules):
     assert f["noise_jump"].bad and "switching power supplies" in f["noise_jump"].hint
 
 
-def test_a_jump_flagged_by_z_does_not_also_open_the_trend_rule(rules):
+def test_a_jump_opens_one_alert_not_two(rules):
+    # a 5x jump: with a learned reference the step chart flags it (32 sigma on log values) and
+    # the robust-z jump rule stands down; the drift chart is held and does not also flag
     rng = np.random.default_rng(1)
     past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
     from qcd.charts import Reference
     charts, _ = _charting(Reference(math.log(0.1), 0.05, 40, 0.0, 0.0, log=True))
     f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0,
                        charts))
-    assert f["hum_jump"].bad
+    assert f["hum_step"].bad and f["hum_step"].open_after_files == 1
+    assert not f["hum_jump"].bad and f["hum_jump"].clear
+    assert "stands down" in f["hum_jump"].limit_text
     assert not f["hum_drift"].bad and not f["hum_drift"].clear
-    assert "flagged by hum_jump" in f["hum_drift"].limit_text
+    assert "flagged by hum_step" in f["hum_drift"].limit_text
+    # no reference learned yet (no charts): the robust z flags the same jump
+    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0))
+    assert f["hum_jump"].bad and "hum_step" not in f
+
+
+def test_step_chart_on_a_provisional_reference_yields_to_the_jump_rule(rules):
+    # while the reference is provisional the z rule keeps watching; the step chart it flags
+    # with is held, and does not open a second alert
+    from qcd.charts import ChartInput, ChartState, Reference
+    rng = np.random.default_rng(1)
+    past = list(0.1 * np.exp(rng.normal(0, 0.05, 30)))
+    ref = Reference(math.log(0.1), 0.05, 10, 0.0, 0.0, log=True, widen=2.0)
+
+    def charts(mode, channel, measure, rule):
+        if rule.step:
+            return ChartInput(ref, ChartState(), at=1.0, learning="learning", provisional=True)
+        return ChartInput(None, ChartState(), at=1.0, learning="learning")
+    f = _by_rule(judge(_fm({"hum_rms": (0.5, "pA")}), "r", _history_from(past), rules, 0,
+                       charts))
+    assert f["hum_jump"].bad
+    assert not f["hum_step"].bad and "flagged by hum_jump" in f["hum_step"].limit_text
+    assert not f["hum_drift"].bad and f["hum_drift"].learning
 
 
 def test_holding_shift_uses_an_absolute_spread_floor(rules):

@@ -133,10 +133,13 @@ def test_qcd_rules_lists_each_history_rule_with_its_false_alarm_rate(lab, capsys
     c, db, now = lab
     assert main(["rules"] + c) == 0
     out = capsys.readouterr().out
-    # 6 files in the last 30 days: 0.2 a day; CUSUM h 6.16 -> 3000 files (qcd.runlength)
+    # 6 files in the last 30 days: 0.2 a day; CUSUM h 7.54 -> 12000 files (qcd.runlength)
     line = next(ln for ln in out.splitlines() if ln.startswith("hum_drift:"))
-    assert "one signal per 3,000 files (set for 3000)" in line
-    assert "rig-b: 0.2 files a day -> one signal per 15,000 days" in out
+    assert "one signal per 12,000 files (set for 12000)" in line
+    assert "rig-b: 0.2 files a day -> one signal per 60,000 days" in out
+    # the step chart: CUSUM k 1.25, h 2.93 -> 8000 files, opening on one file
+    line = next(ln for ln in out.splitlines() if ln.startswith("hum_step:"))
+    assert "one signal per 8,000 files (set for 8000)" in line and "needs 1 in a row" in line
     # robust z beyond 4, one tail: 1/P(Z > 4) = 31,574 files (normal table)
     assert "hum_jump: hum_rms, robust z beyond 4, side up, log; in control one signal per " \
            "31,574 files" in out

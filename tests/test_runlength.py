@@ -8,7 +8,8 @@ import pytest
 
 from qcd.errors import ConfigError
 from qcd.ruleset import load_rules
-from qcd.runlength import cusum_arl, cusum_h_for, ewma_arl, ewma_L_for
+from qcd.runlength import (WIDEN_GRID, cusum_arl, cusum_h_for, ewma_arl, ewma_L_for, false_rates,
+                           widen_for)
 
 SHIFTS = (0, .25, .5, .75, 1, 1.5, 2, 2.5, 3, 4, 5)
 # Lucas & Crosier (1982) Table 1, two-sided CUSUM k = 0.5, h = 4 (as quoted in R spc)
@@ -82,7 +83,72 @@ def test_a_rule_with_arl0_gets_its_limit_and_refuses_both(tmp_path):
         load_rules([p])
 
 
-def test_shipped_drift_rules_state_their_budget():
+def test_shipped_chart_rules_state_their_budget():
+    # each shipped chart's limit is the one whose Brook-Evans ARL is its budget (one-sided)
     rules = {r.name: r for r in load_rules().history}
-    for name in ("hum_drift", "noise_drift"):
-        assert rules[name].arl0_files == 3000
+    for name in ("hum_drift", "noise_drift", "hum_step", "noise_step"):
+        r = rules[name]
+        assert r.arl0_files >= 3000
+        assert cusum_arl(r.k, r.h, side="up") == pytest.approx(r.arl0_files, rel=2e-3)
+    assert rules["hum_step"].step and rules["hum_step"].open_after_files == 1
+
+
+def _p_within_two(k: float, h: float, shift: float) -> float:
+    """P(an upper CUSUM from 0 signals at file 1 or 2 after a step of ``shift`` sigma), by
+    numeric integration over the first file (Page 1954 recursion, iid normal)."""
+    from scipy.integrate import quad
+    from scipy.stats import norm
+    first = norm.sf(k + h - shift)                       # S1 = x1 - k > h
+    # S1 = max(0, x1 - k) <= h, then S1 + x2 - k > h
+    at_zero = norm.cdf(k - shift) * norm.sf(k + h - shift)
+    inside, _ = quad(lambda s: norm.pdf(s + k - shift) * norm.sf(h - s + k - shift), 0.0, h)
+    return first + at_zero + inside
+
+
+def test_step_chart_constants_catch_a_doubling_within_two_files_at_known_parameters():
+    # a 2x step at 20 % log scatter is ln 2 / 0.2 = 3.47 sigma; the shipped step chart
+    # (k 1.25, h for its budget) signals by the 2nd stepped file with probability ~0.86 when
+    # the reference is known; 2 bad files in a row of the drift chart would need far more
+    r = {x.name: x for x in load_rules().history}["noise_step"]
+    p = _p_within_two(r.k, r.h, 3.4657)
+    assert 0.83 < p < 0.92
+    # the same integral reproduces the Markov chain's one-file run length at a big shift:
+    # ARL = 1/P(signal) when a single file always decides (shift far beyond k + h)
+    assert _p_within_two(r.k, r.h, 12.0) == pytest.approx(1.0, abs=1e-9)
+    assert cusum_arl(r.k, r.h, 12.0, side="up") == pytest.approx(1.0, abs=1e-6)
+
+
+def test_estimated_reference_widening_is_one_for_a_known_reference_and_grows_as_it_shrinks():
+    # a reference of 4000 independent files is as good as known: the Monte Carlo rate of the
+    # chart on it matches the Brook-Evans budget, so no widening (within Monte Carlo error)
+    h = cusum_h_for(3000, 0.5)
+    known = widen_for("cusum", "up", 0.5, h, 3000, files=4000, days=1000, per_day=4, icc=0.0,
+                      rho=0.0)
+    assert known == pytest.approx(1.0, abs=0.05)
+    # a reference from 80 files over 20 days has an estimated scale (1.4826 MAD: relative
+    # error about 1.2/sqrt(80), Rousseeuw & Croux 1993): wider; 10 files over 3 days, wider still
+    mid = widen_for("cusum", "up", 0.5, h, 3000, files=80, days=20, per_day=4, icc=0.0, rho=0.0)
+    few = widen_for("cusum", "up", 0.5, h, 3000, files=10, days=3, per_day=4, icc=0.0, rho=0.0)
+    assert 1.05 < mid < 1.5 and few > mid
+    # two signalling files in a row to open an alert: fewer false alerts, less widening
+    assert widen_for("cusum", "up", 0.5, h, 3000, files=80, days=20, per_day=4, icc=0.0,
+                     rho=0.0, opens=2) < mid
+    # the simulated false-alarm rate falls as the limits widen (same random numbers)
+    rates = false_rates("cusum", "up", 0.5, h, 80, 20, 4, 0.0, 0.0, 1.0)
+    assert len(rates) == len(WIDEN_GRID)
+    assert all(b <= a for a, b in zip(rates, rates[1:]))
+
+
+def test_qn_is_consistent_for_the_normal_sd_and_more_efficient_than_the_mad():
+    # Rousseeuw & Croux (1993): Qn with its small-sample factors is unbiased for sigma at the
+    # normal and has 82 % asymptotic efficiency (the MAD 37 %): variance ratio about 0.45
+    import numpy as np
+    from qcd.runlength import qn_scale
+    rng = np.random.default_rng(7)
+    for n in (5, 10, 11, 20, 80):
+        q = qn_scale(rng.standard_normal((8000, n)))
+        assert q.mean() == pytest.approx(1.0, abs=0.02)
+    x = rng.standard_normal((4000, 80))
+    q = qn_scale(x)
+    mad = 1.482602218505602 * np.median(np.abs(x - np.median(x, axis=1)[:, None]), axis=1)
+    assert 0.35 < q.var() / mad.var() < 0.6
