@@ -13,7 +13,7 @@ import math
 from functools import lru_cache
 
 import numpy as np
-from scipy.stats import norm
+from scipy.special import ndtr   # the standard normal CDF (scipy.stats.norm.cdf without loading scipy.stats)
 
 __all__ = ["cusum_arl", "ewma_arl", "cusum_h_for", "ewma_L_for", "arl", "limit_for",
            "false_rates", "widen_for", "WIDEN_GRID", "qn_scale",
@@ -48,9 +48,9 @@ def cusum_arl(k: float, h: float, shift: float = 0.0, *, side: str = "up",
     c = np.arange(m) * w
     edges = (np.arange(m + 1) - 0.5) * w   # state j >= 1 covers ((j-1/2) w, (j+1/2) w]
     # P(S' in state j | S = c_i): S' = c_i + x - k, x ~ N(shift, 1)
-    cdf = norm.cdf(edges[None, :] - c[:, None] + k - shift)
+    cdf = ndtr(edges[None, :] - c[:, None] + k - shift)
     Q = np.diff(cdf, axis=1)
-    Q[:, 0] = norm.cdf(0.5 * w - c + k - shift)       # everything at or below zero -> state 0
+    Q[:, 0] = ndtr(0.5 * w - c + k - shift)       # everything at or below zero -> state 0
     start = int(round(head_start * h / w)) if head_start else 0
     return _solve(Q, min(start, m - 1))
 
@@ -75,7 +75,7 @@ def ewma_arl(lam: float, L: float, shift: float = 0.0, *, side: str = "both",
     edges = lo + np.arange(m + 1) * w
     mid = edges[:-1] + 0.5 * w
     # z' = (1-lam) z + lam x in [e_j, e_j+1)  <=>  x in [(e_j - (1-lam) z)/lam, ...)
-    cdf = norm.cdf((edges[None, :] - (1.0 - lam) * mid[:, None]) / lam - shift)
+    cdf = ndtr((edges[None, :] - (1.0 - lam) * mid[:, None]) / lam - shift)
     Q = np.diff(cdf, axis=1)
     if side != "both":
         Q[:, 0] += cdf[:, 0]              # below the grid: lumped into its lowest state
