@@ -26,28 +26,21 @@ from qcd.workers import imap
 from qcd.zones import localize
 
 
-def _judging(module: str) -> Any:
-    """Judging, charts and alerts, imported on first use: measuring alone (``qcd scan``, the
-    workers) never needs them, and qcd.charts brings scipy.stats (qcd.runlength), about half a
-    second of a scan's start-up."""
-    from qcd import alerts, charts, history, judge
-    return {"alerts": alerts, "charts": charts, "history": history, "judge": judge}[module]
-
-
-_JUDGING = ("alerts", "charts", "history", "judge")
-
-
 class _Later:
-    """A module of ``_judging`` or the standard library (or one of its names), loaded when
-    first called or looked into."""
+    """A module (or one of its names) imported when first called or looked into: measuring
+    alone (``qcd scan``, the workers) never needs judging, charts or alerts, and a one-file
+    scan's start-up counts (DEVELOPERS.md)."""
 
     def __init__(self, module: str, name: str | None = None) -> None:
         self._where = (module, name)
+        self._got: Any = None
 
     def _get(self) -> Any:
-        module, name = self._where
-        m = _judging(module) if module in _JUDGING else importlib.import_module(module)
-        return m if name is None else getattr(m, name)
+        if self._got is None:
+            module, name = self._where
+            m = importlib.import_module(module)
+            self._got = m if name is None else getattr(m, name)
+        return self._got
 
     def __getattr__(self, attr: str) -> Any:
         return getattr(self._get(), attr)
@@ -56,12 +49,12 @@ class _Later:
         return self._get()(*args, **kwargs)
 
 
-alerts, history = _Later("alerts"), _Later("history")
+alerts, history = _Later("qcd.alerts"), _Later("qcd.history")
 hashlib = _Later("hashlib")           # the digest: only when files are stored
-ChartInput, ChartState, Reference = (_Later("charts", n) for n in
+ChartInput, ChartState, Reference = (_Later("qcd.charts", n) for n in
                                      ("ChartInput", "ChartState", "Reference"))
-replay, reset = _Later("charts", "replay"), _Later("charts", "reset")
-Finding, judge = _Later("judge", "Finding"), _Later("judge", "judge")
+replay, reset = _Later("qcd.charts", "replay"), _Later("qcd.charts", "reset")
+Finding, judge = _Later("qcd.judge", "Finding"), _Later("qcd.judge", "judge")
 
 if TYPE_CHECKING:
     from qcd.config import RigConfig
@@ -202,17 +195,29 @@ def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now
                              days=st.history_days, before=before,
                              after=starts.get((channel, measure)), clean_files=clean_files)
 
+    learned: dict[tuple, tuple[list, list]] = {}
+
+    def learning_rows(store: Store, rig: str, mode: str, channel: int, measure: str,
+                      st: RuleSettings, at: float, start_at: float | None
+                      ) -> tuple[list, list]:
+        key = (mode, channel, measure, start_at)
+        if key not in learned:
+            learned[key] = _learning_rows(store, rig, mode, channel, measure, st, at, start_at)
+        return learned[key]
+
     def charts(mode: str, channel: int, measure: str, rule: HistoryRule) -> ChartInput | None:
         row = stored.get((mode, channel, measure, rule.name)) or {}
         return chart_input(store, name, mode, channel, measure, rule, st, before,
                            row.get("start_at", starts.get((channel, measure))),
-                           row.get("state"), row.get("ref"))
+                           row.get("state"), row.get("ref"), learning_rows)
     return judge(fm, name, history, rules, now, charts)
 
 
 def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                 rule: HistoryRule, st: RuleSettings, at: float, start_at: float | None,
-                state: dict | None, ref: dict | None) -> ChartInput | None:
+                state: dict | None, ref: dict | None,
+                learning_rows: Callable[..., tuple[list, list]] | None = None
+                ) -> ChartInput | None:
     """The reference and the chart of one rule just before a file recorded ``at``.
 
     The reference: the stored one (fixed once learned); while there is none, learned from the
@@ -221,6 +226,8 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
     stored files it has not seen yet, in recording order; a file recorded before the chart's
     latest (a backlog) gets the chart as it stood at its time, and the later files are stepped
     through again after it (``ChartInput.tail``). None: the file lies before the chart's start.
+    ``learning_rows``: ``_learning_rows`` or a caller's memo of it (the rules of one measure
+    learn from the same files).
     """
     reference = Reference.from_dict(ref)
     if st.follow_days > 0:
@@ -233,14 +240,10 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                                   margin=st.reference_margin, rule=rule)
         reference = followed or reference
     if reference is None:
-        rows = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
-                                    limit=max(4 * st.reference_files, 400))
-        if rows:       # flagged files within the good ones' scatter come back (qcd.history)
-            every = store.chart_points(rig, mode, channel, measure,
-                                       after=None if start_at is None else start_at - 1e-6,
-                                       before=at)
-            rows = history.readmit(every[:max(4 * st.reference_files, 400)], rows,
-                                   log=rule.log)
+        good, every = (learning_rows or _learning_rows)(store, rig, mode, channel, measure,
+                                                        st, at, start_at)
+        # flagged files within the good ones' scatter come back (qcd.history)
+        rows = history.readmit(every, good, log=rule.log) if good else good
         reference = history.learn(rows, files=st.reference_files, days=st.reference_days,
                                   log=rule.log, min_spread=rule.min_spread,
                                   margin=st.reference_margin, rule=rule)
@@ -261,6 +264,22 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                             start_at, learning)
         state = None          # charted again from the full reference's end, in its units
     return _charted(store, rig, mode, channel, measure, rule, reference, state, at, start_at)
+
+
+def _learning_rows(store: Store, rig: str, mode: str, channel: int, measure: str,
+                   st: RuleSettings, at: float, start_at: float | None
+                   ) -> tuple[list[tuple[float, float]], list[tuple[float, float]]]:
+    """(good unflagged rows, every row) recorded since ``start_at`` and before ``at``, oldest
+    first, each at most 4 references long (at least 400): what a reference learns from."""
+    limit = max(4 * st.reference_files, 400)
+    good = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
+                                limit=limit)
+    if not good:
+        return good, []
+    every = store.chart_points(rig, mode, channel, measure,
+                               after=None if start_at is None else start_at - 1e-6, before=at,
+                               limit=limit)
+    return good, every
 
 
 def _charted(store: Store, rig: str, mode: str, channel: int, measure: str, rule: HistoryRule,

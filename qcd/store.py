@@ -319,17 +319,18 @@ class Store:
         return [(float(t), float(v)) for t, v in rows]
 
     def chart_points(self, rig: str, mode: str, channel: int, measure: str, *,
-                     after: float | None, before: float | None = None
-                     ) -> list[tuple[float, float]]:
+                     after: float | None, before: float | None = None,
+                     limit: int | None = None) -> list[tuple[float, float]]:
         """[(recorded_at, value)] of every ok, current file (flagged or not) recorded in
-        (after, before), oldest first: what a drift chart steps through."""
+        (after, before), oldest first (the first ``limit``): what a drift chart steps through."""
         rows = self._one_all(
             "SELECT f.recorded_at, m.value FROM files f JOIN measures m ON m.file_id = f.id "
             "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.superseded = 0 "
             "AND f.recorded_at > ? AND f.recorded_at < ? AND m.channel = ? AND m.name = ? "
-            "AND m.value IS NOT NULL ORDER BY f.recorded_at, f.id",
+            "AND m.value IS NOT NULL ORDER BY f.recorded_at, f.id LIMIT ?",
             (rig, mode, -math.inf if after is None else float(after),
-             math.inf if before is None else float(before), channel, measure))
+             math.inf if before is None else float(before), channel, measure,
+             -1 if limit is None else int(limit)))
         return [(float(t), float(v)) for t, v in rows]
 
     def charts(self, rig: str, mode: str | None = None) -> dict[tuple, dict[str, Any]]:

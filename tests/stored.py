@@ -10,6 +10,7 @@ from datetime import datetime, timezone
 from typing import Any
 
 from qcd.alerts import Mute
+from qcd.codec import _decode_value   # the kinds as the store writes them
 from qcd.results import ChannelMeasures, FileMeasures, Measure
 from qcd.store import MIGRATIONS, Store
 
@@ -18,17 +19,6 @@ def _rows(store: Store, sql: str, params: tuple = ()) -> list[dict[str, Any]]:
     cur = store.db.conn.execute(sql, params)
     names = [d[0] for d in cur.description]
     return [dict(zip(names, row)) for row in cur.fetchall()]
-
-
-def _value(value: float | None, kind: str, text: str | None) -> Any:
-    """A measures row back to the value FileMeasures carried (kinds as store.py writes them)."""
-    if kind == "bool":
-        return bool(value)
-    if kind == "int":
-        return int(text) if text is not None else int(value)
-    if kind == "float":
-        return float(text) if text is not None else float(value)
-    return json.loads(text) if text is not None else None
 
 
 def schema_steps(store: Store) -> list[str]:
@@ -69,7 +59,7 @@ def file_measures(store: Store, file_id: int) -> dict[int, dict[str, tuple[Any, 
     out: dict[int, dict[str, tuple[Any, str]]] = {}
     for r in _rows(store, "SELECT channel, name, value, unit, kind, json FROM measures "
                           "WHERE file_id = ? ORDER BY rowid", (file_id,)):
-        out.setdefault(r["channel"], {})[r["name"]] = (_value(r["value"], r["kind"], r["json"]),
+        out.setdefault(r["channel"], {})[r["name"]] = (_decode_value(r["value"], r["kind"], r["json"]),
                                                        r["unit"])
     return out
 
