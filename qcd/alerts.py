@@ -14,6 +14,7 @@ import fnmatch
 from dataclasses import asdict, dataclass, field, fields
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
+from qcd.units import readable
 from qcd.zones import local_text
 
 if TYPE_CHECKING:
@@ -391,7 +392,8 @@ def _when(t: float | None, zone: str | None = "UTC") -> str:
 
 
 def _value(s: AlertState) -> str:
-    return "-" if s.value is None else f"{s.value:.4g} {s.unit}".strip()
+    """'6.09 uV': in the unit that reads best, as the report (the stored unit may be mV)."""
+    return "-" if s.value is None else readable(s.value, s.unit, digits=4)
 
 
 def _what(s: AlertState) -> str:

@@ -491,3 +491,24 @@ def test_a_learned_reference_floors_the_jump_rules_window_scale(rules):
     floored = _by_rule(judge(fm, "r", _history_from(past), rules, 0, charts))
     z = math.log(0.15 / float(np.median(past))) / 0.2
     assert not floored["hum_jump"].bad and f"robust z {z:+.1f}" in floored["hum_jump"].limit_text
+
+
+def test_a_field_channels_hum_is_said_in_microvolts_as_the_report_shows_it(rules):
+    # a field channel stores its measures in mV; its hum is a few uV (the demo's field rig:
+    # 0.006088 mV against a normal near 0.00325 mV). The message gives the value and the
+    # normal range in uV, as the report's table does (1 mV = 1000 uV, SI prefixes).
+    from qcd.alerts import advance
+    from qcd.ruleset import RuleSettings
+    rng = np.random.default_rng(3)
+    past = list(0.00325 * np.exp(rng.normal(0, 0.05, 30)))
+    f = _by_rule(judge(_fm({"hum_rms": (0.006088, "mV")}), "r", _history_from(past), rules, 0))
+    text = f["hum_jump"].limit_text
+    assert f["hum_jump"].bad and "uV" in text and "mV" not in text
+    median = float(text.split("(median ")[1].split(",")[0])
+    assert median == pytest.approx(np.median(past) * 1000, rel=1e-2)
+    states, msgs = {}, []
+    for t in (0.0, 600.0, 1200.0):
+        states, out = advance(states, [f["hum_jump"]], (), t, RuleSettings())
+        msgs += out
+    assert msgs and "value: 6.088 uV; normal " in msgs[0].body
+    assert "mV" not in msgs[0].body

@@ -9,6 +9,7 @@ realistic spread. Times are chosen and passed in as ``now``; file times come fro
 """
 from __future__ import annotations
 
+import re
 import os
 import signal
 import sqlite3
@@ -102,7 +103,7 @@ def test_normal_rig_sends_nothing_then_hum_opens_one_alert_and_resolves(lab, rig
     (msg,) = http_sink.wait_for(1)
     assert "rig-e2e" in msg["title"] and "hum_rms" in msg["title"]
     assert "rig-e2e" in msg["message"] and "cell031.abf" in msg["message"]
-    assert "pA" in msg["message"] and "normal" in msg["message"]
+    assert re.search(r"value: [0-9.]+ [fpn]A; normal [0-9.]+-[0-9.]+ [fpn]A", msg["message"])
     assert "grounding" in msg["message"] and "electrician" in msg["message"]
     (alert,) = store.open_alerts("rig-e2e")
     assert alert["measure"] == "hum_rms" and alert["rule"] == "hum_jump"
