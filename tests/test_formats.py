@@ -25,7 +25,6 @@ import pytest
 from conftest import ABF_FILES, abf, require_data
 from qcd.analyze import analyze, analyze_path
 from qcd.config import PATTERNS, TestPulse
-from qcd.errors import RecordingError
 from qcd.intake import header_fits
 from qcd.neoread import open_neo
 from qcd.recording import SUFFIXES, not_finished, open_recording
