@@ -9,7 +9,7 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable, Protocol, Sequence
+from typing import Any, Callable, Collection, Iterable, Protocol, Sequence
 
 import numpy as np
 
@@ -538,8 +538,14 @@ def _file_finding(rule: LimitRule, results: list[tuple[ChannelMeasures, Measure,
         channels=tuple(sorted(r[0].index for r in bad)))
 
 
+def _overlap(a: str, b: str) -> bool:
+    """Two rules' sides watch a common direction ('up', 'down' or 'both')."""
+    return a == b or "both" in (a, b)
+
+
 def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: float,
-          charts: Charts | None = None) -> list[Finding]:
+          charts: Charts | None = None,
+          open_alerts: Collection[tuple[str, int, str, str]] = ()) -> list[Finding]:
     """Every evaluated (channel, measure, rule) of one file as a Finding, plus rig-level ones.
 
     ``history(mode, channel, measure)`` gives the rig's [(recorded_at, value)] of good,
@@ -548,6 +554,12 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
     measure, rule)`` gives an 'ewma'/'cusum' rule's reference and chart before this file
     (qcd.charts.ChartInput); their findings carry the chart after it (``Finding.chart``).
     Without ``charts`` the sequential rules are not evaluated.
+
+    ``open_alerts``: (mode, channel, measure, rule) of the history alerts open before this
+    file. One alert per measure and side: the rule holding an open alert carries its episode to
+    the end (a robust-z rule keeps flagging even where a learned step chart would stand it
+    down), and another rule of that measure and side that flags a file yields to it, neither
+    bad nor clear, its chart held at its clear level (docs/methods.md §7).
     """
     st = rules.settings
     path = str(fm.path)
@@ -616,16 +628,23 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                           and inputs[r.name].ref is not None and not inputs[r.name].provisional}
             if "both" in stood_down:
                 stood_down |= {"up", "down"}
+            # the rules of this measure holding an open alert: one alert per measure and side
+            held = [r for r in hist_rules if (mode, ch.index, m.name, r.name) in open_alerts]
+
+            def holder(rule: HistoryRule) -> str:
+                return next((r.name for r in held if r is not rule and _overlap(r.side, rule.side)
+                             ), "")
             # z rules first, then step charts, then drift charts: what flags first is "the jump"
             for rule in sorted(hist_rules, key=lambda r: (r.test != "z", not r.step)):
                 chart_row, headline = None, ""
+                other = holder(rule)
                 if rule.test in _charts.CHART_TESTS:
                     ci = inputs.get(rule.name)
                     if ci is None:
                         continue
                     res = _chart(rule, value, ci, m.unit,
                                  dict(mode=mode, channel=ch.index, measure=m.name,
-                                      rule=rule.name), jumped=bool(jump),
+                                      rule=rule.name), jumped=bool(jump or other),
                                  se=_se(ch, m.name))
                     if res is None:
                         continue
@@ -649,18 +668,22 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     if res is None:
                         continue
                     bad, clear_ok, stat_text = res
-                    if rule.side in stood_down:
+                    if rule.side in stood_down and rule not in held:
                         bad, clear_ok = False, True
                         stat_text += " (stands down: the step chart watches for jumps)"
-                if rule.test == "z" and bad:
-                    jump = jump or rule.name
-                elif bad and jump:
+                if bad and jump and rule.test != "z":
                     # a jump already flagged explains the trend statistic: one alert, not two;
                     # neither bad nor clear, so an open trend alert neither grows nor clears
                     bad = clear_ok = False
                     stat_text += f" (a jump, flagged by {jump})"
-                elif bad and rule.step:
-                    jump = rule.name
+                elif bad and other:
+                    # another rule of this measure and side holds the open alert: one alert,
+                    # not two across files; neither bad nor clear, so this rule's own alert
+                    # neither opens nor resolves while that episode lasts
+                    bad = clear_ok = False
+                    stat_text += f" (the open {other} alert covers it)"
+                elif bad and (rule.test == "z" or rule.step):
+                    jump = jump or rule.name
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
                     groups = noise_hints(ch, mode, _clean(history), rules) if groups is None else groups
