@@ -202,6 +202,26 @@ def _rms_lower(rms: float, rms_se: float, sigmas: float) -> float:
     return math.sqrt(max(p - sigmas * se_p, 0.0))
 
 
+def _rms_upper(rms: float, rms_se: float, sigmas: float) -> float:
+    """The RMS at the power ``sigmas`` standard errors above a reading (``_rms_lower``'s
+    mate): sqrt(P + sigmas se_P)."""
+    p = rms * rms
+    return math.sqrt(p + sigmas * ((rms + rms_se) ** 2 - p))
+
+
+# measures whose standard error is a power's, moved to the RMS (qcd.measures.mains.Hum.rms_se):
+# their interval is taken on the power, where the error is symmetric (METHODS §4.5)
+_POWER_SE = frozenset({"hum_rms"})
+
+
+def _ends(value: float, se: float, power: bool = False) -> tuple[float, float]:
+    """(low, high) of a value -+ 2 standard errors; ``power``: an RMS whose error is its
+    power's, so the ends are sqrt(P -+ 2 se_P) (the low end at least 0)."""
+    if power and value >= 0:
+        return _rms_lower(value, se, _SE_SIGMAS), _rms_upper(value, se, _SE_SIGMAS)
+    return value - _SE_SIGMAS * se, value + _SE_SIGMAS * se
+
+
 def _ratio(value: float, past: list[float]) -> tuple[float, bool] | None:
     """(value / median of past, grown): grown at robust z > 3 on logs and >= 1.5x the median."""
     past = [v for v in past if v > 0]
@@ -401,7 +421,8 @@ def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = "",
 
 
 def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, key: dict,
-           jumped: bool = False, se: float = 0.0) -> tuple[bool, bool, str, str, dict] | None:
+           jumped: bool = False, se: float = 0.0, power: bool = False
+           ) -> tuple[bool, bool, str, str, dict] | None:
     """(bad, clear, text, headline, chart to store) of one file on a sequential chart.
 
     ``jumped``: a jump rule (robust z, or a step chart) flagged this value. It is charted, but
@@ -409,7 +430,8 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
     open a drift alert after the jump's alert has resolved; a drift that goes on takes the
     chart up again. ``se``: the value's standard error; as for the other rules
     (``_interval``), the chart is bad only when it would be bad for every value within
-    -+ 2 SE, and clear only when clear for all of them (the stored chart steps the value)."""
+    -+ 2 SE, and clear only when clear for all of them (the stored chart steps the value);
+    ``power``: the SE is a power's (``_ends``)."""
     store = dict(key, start_at=ci.start_at, state=ci.state.to_dict(),
                  ref=None if ci.ref is None or ci.provisional else ci.ref.to_dict())
     if ci.ref is None:
@@ -420,7 +442,7 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
     new = _charts.step(rule, ci.state, x, ci.at)
     bad, clear, stat, lim = _charts.verdict(rule, new)
     if se > 0 and (bad or not clear):
-        for end in (value - _SE_SIGMAS * se, value + _SE_SIGMAS * se):
+        for end in _ends(value, se, power):
             xe = _charts.standardise(max(end, 1e-300) if value > 0 else end, ci.ref, rule)
             if xe is not None:
                 b, c, _, _ = _charts.verdict(rule, _charts.step(rule, ci.state, xe, ci.at))
@@ -455,15 +477,16 @@ def _interval(evaluate: Callable[[float], tuple | None], m: Measure, se: float,
     """evaluate(value) -> (bad, clear, ...); with a standard error the whole interval
     value -+ 2 SE must be bad to count as bad, and all of it clear to count as clear (a value
     its own noise could have moved across the limit is neither). ``absolute``: the rule
-    compares |value|, so the interval is taken of |value| (from 0 when it spans zero). Other
-    fields come from the value itself."""
+    compares |value|, so the interval is taken of |value| (from 0 when it spans zero). A
+    measure whose error is a power's (``_POWER_SE``: the hum RMS) takes its interval on the
+    power, sqrt(P -+ 2 se_P) (``_ends``). Other fields come from the value itself."""
     if isinstance(m.value, bool) or _number(m.value) is None:
         return evaluate(m.value)
     point = evaluate(float(m.value))
     if point is None or not se:
         return point
     v = float(m.value)
-    low, high = v - _SE_SIGMAS * se, v + _SE_SIGMAS * se
+    low, high = _ends(v, se, m.name in _POWER_SE and not absolute)
     if absolute:
         low, high = (0.0 if low <= 0 <= high else min(abs(low), abs(high))), \
             max(abs(low), abs(high))
@@ -645,7 +668,7 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     res = _chart(rule, value, ci, m.unit,
                                  dict(mode=mode, channel=ch.index, measure=m.name,
                                       rule=rule.name), jumped=bool(jump or other),
-                                 se=_se(ch, m.name))
+                                 se=_se(ch, m.name), power=m.name in _POWER_SE)
                     if res is None:
                         continue
                     bad, clear_ok, stat_text, headline, chart_row = res
