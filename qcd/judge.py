@@ -9,7 +9,7 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable, Protocol, Sequence
+from typing import Any, Callable, Collection, Iterable, Protocol, Sequence
 
 import numpy as np
 
@@ -200,6 +200,26 @@ def _rms_lower(rms: float, rms_se: float, sigmas: float) -> float:
     p = rms * rms
     se_p = (rms + rms_se) ** 2 - p
     return math.sqrt(max(p - sigmas * se_p, 0.0))
+
+
+def _rms_upper(rms: float, rms_se: float, sigmas: float) -> float:
+    """The RMS at the power ``sigmas`` standard errors above a reading (``_rms_lower``'s
+    mate): sqrt(P + sigmas se_P)."""
+    p = rms * rms
+    return math.sqrt(p + sigmas * ((rms + rms_se) ** 2 - p))
+
+
+# measures whose standard error is a power's, moved to the RMS (qcd.measures.mains.Hum.rms_se):
+# their interval is taken on the power, where the error is symmetric (METHODS §4.5)
+_POWER_SE = frozenset({"hum_rms"})
+
+
+def _ends(value: float, se: float, power: bool = False) -> tuple[float, float]:
+    """(low, high) of a value -+ 2 standard errors; ``power``: an RMS whose error is its
+    power's, so the ends are sqrt(P -+ 2 se_P) (the low end at least 0)."""
+    if power and value >= 0:
+        return _rms_lower(value, se, _SE_SIGMAS), _rms_upper(value, se, _SE_SIGMAS)
+    return value - _SE_SIGMAS * se, value + _SE_SIGMAS * se
 
 
 def _ratio(value: float, past: list[float]) -> tuple[float, bool] | None:
@@ -401,7 +421,8 @@ def _drift(rule: HistoryRule, value: float, past: list[float], unit: str = "",
 
 
 def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, key: dict,
-           jumped: bool = False, se: float = 0.0) -> tuple[bool, bool, str, str, dict] | None:
+           jumped: bool = False, se: float = 0.0, power: bool = False
+           ) -> tuple[bool, bool, str, str, dict] | None:
     """(bad, clear, text, headline, chart to store) of one file on a sequential chart.
 
     ``jumped``: a jump rule (robust z, or a step chart) flagged this value. It is charted, but
@@ -409,7 +430,8 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
     open a drift alert after the jump's alert has resolved; a drift that goes on takes the
     chart up again. ``se``: the value's standard error; as for the other rules
     (``_interval``), the chart is bad only when it would be bad for every value within
-    -+ 2 SE, and clear only when clear for all of them (the stored chart steps the value)."""
+    -+ 2 SE, and clear only when clear for all of them (the stored chart steps the value);
+    ``power``: the SE is a power's (``_ends``)."""
     store = dict(key, start_at=ci.start_at, state=ci.state.to_dict(),
                  ref=None if ci.ref is None or ci.provisional else ci.ref.to_dict())
     if ci.ref is None:
@@ -420,7 +442,7 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
     new = _charts.step(rule, ci.state, x, ci.at)
     bad, clear, stat, lim = _charts.verdict(rule, new)
     if se > 0 and (bad or not clear):
-        for end in (value - _SE_SIGMAS * se, value + _SE_SIGMAS * se):
+        for end in _ends(value, se, power):
             xe = _charts.standardise(max(end, 1e-300) if value > 0 else end, ci.ref, rule)
             if xe is not None:
                 b, c, _, _ = _charts.verdict(rule, _charts.step(rule, ci.state, xe, ci.at))
@@ -456,15 +478,16 @@ def _interval(evaluate: Callable[[float], tuple | None], m: Measure, se: float,
     """evaluate(value) -> (bad, clear, ...); with a standard error the whole interval
     value -+ 2 SE must be bad to count as bad, and all of it clear to count as clear (a value
     its own noise could have moved across the limit is neither). ``absolute``: the rule
-    compares |value|, so the interval is taken of |value| (from 0 when it spans zero). Other
-    fields come from the value itself."""
+    compares |value|, so the interval is taken of |value| (from 0 when it spans zero). A
+    measure whose error is a power's (``_POWER_SE``: the hum RMS) takes its interval on the
+    power, sqrt(P -+ 2 se_P) (``_ends``). Other fields come from the value itself."""
     if isinstance(m.value, bool) or _number(m.value) is None:
         return evaluate(m.value)
     point = evaluate(float(m.value))
     if point is None or not se:
         return point
     v = float(m.value)
-    low, high = v - _SE_SIGMAS * se, v + _SE_SIGMAS * se
+    low, high = _ends(v, se, m.name in _POWER_SE and not absolute)
     if absolute:
         low, high = (0.0 if low <= 0 <= high else min(abs(low), abs(high))), \
             max(abs(low), abs(high))
@@ -544,8 +567,14 @@ def _file_finding(rule: LimitRule, results: list[tuple[ChannelMeasures, Measure,
         channels=tuple(sorted(r[0].index for r in bad)))
 
 
+def _overlap(a: str, b: str) -> bool:
+    """Two rules' sides watch a common direction ('up', 'down' or 'both')."""
+    return a == b or "both" in (a, b)
+
+
 def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: float,
-          charts: Charts | None = None) -> list[Finding]:
+          charts: Charts | None = None,
+          open_alerts: Collection[tuple[str, int, str, str]] = ()) -> list[Finding]:
     """Every evaluated (channel, measure, rule) of one file as a Finding, plus rig-level ones.
 
     ``history(mode, channel, measure)`` gives the rig's [(recorded_at, value)] of good,
@@ -554,6 +583,12 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
     measure, rule)`` gives an 'ewma'/'cusum' rule's reference and chart before this file
     (qcd.charts.ChartInput); their findings carry the chart after it (``Finding.chart``).
     Without ``charts`` the sequential rules are not evaluated.
+
+    ``open_alerts``: (mode, channel, measure, rule) of the history alerts open before this
+    file. One alert per measure and side: the rule holding an open alert carries its episode to
+    the end (a robust-z rule keeps flagging even where a learned step chart would stand it
+    down), and another rule of that measure and side that flags a file yields to it, neither
+    bad nor clear, its chart held at its clear level (docs/methods.md §7).
     """
     st = rules.settings
     path = str(fm.path)
@@ -622,17 +657,24 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                           and inputs[r.name].ref is not None and not inputs[r.name].provisional}
             if "both" in stood_down:
                 stood_down |= {"up", "down"}
+            # the rules of this measure holding an open alert: one alert per measure and side
+            held = [r for r in hist_rules if (mode, ch.index, m.name, r.name) in open_alerts]
+
+            def holder(rule: HistoryRule) -> str:
+                return next((r.name for r in held if r is not rule and _overlap(r.side, rule.side)
+                             ), "")
             # z rules first, then step charts, then drift charts: what flags first is "the jump"
             for rule in sorted(hist_rules, key=lambda r: (r.test != "z", not r.step)):
                 chart_row, headline = None, ""
+                other = holder(rule)
                 if rule.test in _charts.CHART_TESTS:
                     ci = inputs.get(rule.name)
                     if ci is None:
                         continue
                     res = _chart(rule, value, ci, m.unit,
                                  dict(mode=mode, channel=ch.index, measure=m.name,
-                                      rule=rule.name), jumped=bool(jump),
-                                 se=_se(ch, m.name))
+                                      rule=rule.name), jumped=bool(jump or other),
+                                 se=_se(ch, m.name), power=m.name in _POWER_SE)
                     if res is None:
                         continue
                     bad, clear_ok, stat_text, headline, chart_row = res
@@ -655,18 +697,22 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     if res is None:
                         continue
                     bad, clear_ok, stat_text = res
-                    if rule.side in stood_down:
+                    if rule.side in stood_down and rule not in held:
                         bad, clear_ok = False, True
                         stat_text += " (stands down: the step chart watches for jumps)"
-                if rule.test == "z" and bad:
-                    jump = jump or rule.name
-                elif bad and jump:
+                if bad and jump and rule.test != "z":
                     # a jump already flagged explains the trend statistic: one alert, not two;
                     # neither bad nor clear, so an open trend alert neither grows nor clears
                     bad = clear_ok = False
                     stat_text += f" (a jump, flagged by {jump})"
-                elif bad and rule.step:
-                    jump = rule.name
+                elif bad and other:
+                    # another rule of this measure and side holds the open alert: one alert,
+                    # not two across files; neither bad nor clear, so this rule's own alert
+                    # neither opens nor resolves while that episode lasts
+                    bad = clear_ok = False
+                    stat_text += f" (the open {other} alert covers it)"
+                elif bad and (rule.test == "z" or rule.step):
+                    jump = jump or rule.name
                 hint = ""
                 if bad and m.name in _NOISE_MEASURES:
                     groups = noise_hints(ch, mode, _clean(history), rules) if groups is None else groups

@@ -180,10 +180,15 @@ def in_rig_zone(fm: FileMeasures, rig: RigConfig) -> FileMeasures:
 
 def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float
                ) -> list[Finding]:
-    """The judge with the rig's history bound to the store (files recorded before this one)."""
+    """The judge with the rig's history bound to the store (files recorded before this one)
+    and the rig's open history alerts (one alert per measure and side: qcd.judge.judge)."""
     st = rules.settings
     name, before = rig.name, file_time(fm.recorded_at, fm.mtime, now)
     stored = store.charts(name, fm.mode) if fm.status == "ok" else {}
+    held = {r.name for r in rules.history}
+    open_alerts = {(a["mode"], a["channel"], a["measure"], a["rule"])
+                   for a in store.open_alerts(name) if a["rule"] in held} \
+        if fm.status == "ok" else set()
     starts: dict[tuple[int, str], float] = {}
     for (_, ch, measure, _), row in stored.items():        # a re-learn: history starts again
         if row["start_at"] is not None:
@@ -210,7 +215,7 @@ def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now
         return chart_input(store, name, mode, channel, measure, rule, st, before,
                            row.get("start_at", starts.get((channel, measure))),
                            row.get("state"), row.get("ref"), learning_rows)
-    return judge(fm, name, history, rules, now, charts)
+    return judge(fm, name, history, rules, now, charts, open_alerts)
 
 
 def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,

@@ -433,6 +433,29 @@ def test_a_stored_step_opens_the_step_chart_within_two_files_and_the_jump_rule_s
         assert "hum_rms" in body and "CUSUM" in body
 
 
+def test_one_alert_per_measure_across_files_the_jump_rule_yields_to_an_open_step_alert(
+        tmp_path):
+    # a young rig (24 files over 6 days: the step chart charts on its provisional reference,
+    # the robust-z rule still works): a rise of 1.35x (robust z 2.9-4.0 against the last good
+    # files, never beyond 4 in a row) adds up in the step chart (k 1.25), which opens on its own;
+    # then a 2x step that the z rule flags (z 6.6) on each file. The z rule must not open a
+    # second alert for the same measure and side while the step chart's is open (it did: two
+    # open alerts, hum_step and hum_jump)
+    rules = rules_file(tmp_path, STEP_RULES)
+    with Store(tmp_path / "q.sqlite") as s:
+        _feed(s, rules, _stable(24))
+        _feed(s, rules, [0.135] * 5, start=24)
+        assert [a["rule"] for a in s.open_alerts(RIG.name)] == ["hum_step"]
+        for k in range(3):
+            _feed(s, rules, [0.2], start=29 + k)
+            assert [a["rule"] for a in s.open_alerts(RIG.name)] == ["hum_step"], k
+        jump = finding(s, "hum_jump")
+        assert not jump["bad"] and "robust z +6.6" in jump["limit_text"]
+        assert "the open hum_step alert covers it" in jump["limit_text"]
+        assert finding(s, "hum_step")["bad"]
+        assert sum(row["kind"] == "firing" for row in outbox_rows(s)) == 1
+
+
 def test_only_the_step_chart_runs_on_a_provisional_reference(tmp_path):
     # 24 files over 6 days: the full reference (40 files, 10 days) is still off; the step
     # chart charts against the provisional one (the good files older than 2 days, at least 10

@@ -325,6 +325,12 @@ def test_morning_report_and_every_alert_name_each_scripted_source(lab):
     assert not healthy.hints and not healthy.open_alerts and healthy.n_flagged == 0
     assert "patch-1" not in sent
 
+    # one alert per measure: no rig ends with two open alerts for one (measure, channel)
+    # (a jump rule and the step chart of the same measure each holding one)
+    for rig in rigs.values():
+        held = [(a["measure"], a["channel"]) for a in rig.open_alerts]
+        assert len(held) == len(set(held)), (rig.rig, [a["rule"] for a in rig.open_alerts])
+
 
 def test_demo_command_rejects_too_few_days(capsys):
     from qcd.cli import main

@@ -512,3 +512,33 @@ def test_a_field_channels_hum_is_said_in_microvolts_as_the_report_shows_it(rules
         msgs += out
     assert msgs and "value: 6.088 uV; normal " in msgs[0].body
     assert "mV" not in msgs[0].body
+
+
+def test_hum_jump_takes_its_interval_on_the_power_of_a_sinusoid_in_white_noise(rules):
+    # the rig's hum: a 50 Hz sinusoid of amplitude sqrt(2) pA, RMS A/sqrt(2) = 1 pA, power
+    # P = A^2/2 = 1 pA^2 (analytic). The history's logs are 0 and -+0.05: median 1 pA, robust
+    # SD 1.4826 x 0.05 = 0.0741, so z > 4 needs a reading above exp(0.2965) = 1.345 pA.
+    # A file with the broadband floor raised reads the unchanged hum 1.9 standard errors high:
+    # P^ = 1 + 1.9 x 2 = 4.8 pA^2 with se_P = 2 pA^2 (the band power minus the floor beside it,
+    # an error symmetric on the power; METHODS §4.2, §4.5), so RMS 2.191 pA and
+    # rms_se = sqrt(6.8) - sqrt(4.8) = 0.417 pA (qcd.measures.mains.Hum). On the power the
+    # 2-SE interval is sqrt(4.8 -+ 4) = 0.894 ... 2.97 pA and holds the true 1 pA: not a jump.
+    # On the RMS scale, 2.191 - 2 x 0.417 = 1.357 pA would have called it one.
+    from qcd.measures.mains import Hum
+
+    def reading(power, power_se):
+        h = Hum(50.0, 50.0, "declared", False, None, ((1, 50.0, power, power_se),), power,
+                power_se)
+        return {"hum_rms": (h.rms, "pA"), "hum_rms_se": (h.rms_se, "pA")}
+    past = [math.exp(d) for d in (0.0, 0.05, -0.05) * 10 + (0.0,)]
+    now = reading(4.8, 2.0)
+    assert now["hum_rms"][0] - 2 * now["hum_rms_se"][0] > math.exp(4 * 1.4826 * 0.05)
+    f = _by_rule(judge(_fm(now), "r", _history_from(past), rules, 0))["hum_jump"]
+    assert not f.bad and not f.clear                     # the value cannot tell
+    # a hum that did grow, to RMS 2.5 pA (P = 6.25 pA^2), read with the same error: the power's
+    # lower end sqrt(6.25 - 4) = 1.5 pA is beyond 1.345 pA: a jump
+    f = _by_rule(judge(_fm(reading(6.25, 2.0)), "r", _history_from(past), rules, 0))["hum_jump"]
+    assert f.bad
+    # and one whose lower end sqrt(3.6 - 2 x 1.0) = 1.265 pA falls short is not
+    f = _by_rule(judge(_fm(reading(3.6, 1.0)), "r", _history_from(past), rules, 0))["hum_jump"]
+    assert not f.bad

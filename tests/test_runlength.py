@@ -85,11 +85,15 @@ def test_a_rule_with_arl0_gets_its_limit_and_refuses_both(tmp_path):
 
 def test_shipped_chart_rules_state_their_budget():
     # each shipped chart's limit is the one whose Brook-Evans ARL is its budget (one-sided)
-    rules = {r.name: r for r in load_rules().history}
-    for name in ("hum_drift", "noise_drift", "hum_step", "noise_step"):
+    from qcd.config import default_rules_path
+    field = default_rules_path().with_name("field.toml")
+    rules = {r.name: r for r in load_rules([default_rules_path(), field]).history}
+    for name in ("hum_drift", "noise_drift", "hum_step", "noise_step", "field_noise_drift"):
         r = rules[name]
         assert r.arl0_files >= 3000
         assert cusum_arl(r.k, r.h, side="up") == pytest.approx(r.arl0_files, rel=2e-3)
+    # one budget for the drift charts of both rule files
+    assert rules["field_noise_drift"].arl0_files == rules["noise_drift"].arl0_files
     assert rules["hum_step"].step and rules["hum_step"].open_after_files == 1
 
 
