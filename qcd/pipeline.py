@@ -277,13 +277,17 @@ def _learning_rows(store: Store, rig: str, mode: str, channel: int, measure: str
     """(good unflagged rows, every row) recorded since ``start_at`` and before ``at``, oldest
     first, each at most 4 references long (at least 400): what a reference learns from."""
     limit = max(4 * st.reference_files, 400)
+    flagged = store.flagged_points(rig, mode, channel, measure,
+                                   after=None if start_at is None else start_at - 1e-6,
+                                   before=at, limit=limit)
+    every = [(t, v) for t, v, _ in flagged]
+    if not any(g for _, _, g in flagged) and (start_at is None or
+                                               all(t >= start_at for t, _ in every)):
+        return every, every       # none flagged: the good rows are these (one query, not two)
     good = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
                                 limit=limit)
     if not good:
         return good, []
-    every = store.chart_points(rig, mode, channel, measure,
-                               after=None if start_at is None else start_at - 1e-6, before=at,
-                               limit=limit)
     return good, every
 
 

@@ -333,6 +333,20 @@ class Store:
              -1 if limit is None else int(limit)))
         return [(float(t), float(v)) for t, v in rows]
 
+    def flagged_points(self, rig: str, mode: str, channel: int, measure: str, *,
+                       after: float | None, before: float, limit: int
+                       ) -> list[tuple[float, float, int]]:
+        """``chart_points`` with each value's flag: [(recorded_at, value, flagged)]."""
+        rows = self._one_all(
+            "SELECT f.recorded_at, m.value, m.flagged FROM files f JOIN measures m "
+            "ON m.file_id = f.id WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
+            "AND f.superseded = 0 AND f.recorded_at > ? AND f.recorded_at < ? "
+            "AND m.channel = ? AND m.name = ? AND m.value IS NOT NULL "
+            "ORDER BY f.recorded_at, f.id LIMIT ?",
+            (rig, mode, -math.inf if after is None else float(after), float(before), channel,
+             measure, int(limit)))
+        return [(float(t), float(v), int(g)) for t, v, g in rows]
+
     def charts(self, rig: str, mode: str | None = None) -> dict[tuple, dict[str, Any]]:
         """{(mode, channel, measure, rule): {start_at, state, ref, updated_at}} of a rig."""
         sql, params = "SELECT * FROM charts WHERE rig = ?", [rig]

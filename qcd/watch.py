@@ -22,6 +22,7 @@ from typing import Any, Callable
 
 from qcd import pipeline
 from qcd.errors import StoreError, printable
+from qcd.results import file_time
 from qcd.intake import (GaveUp, Hint, Intake, Ready, is_candidate_name, is_network_path,
                         scan_folder, _FolderWatch)
 from qcd.workers import Jobs, default_workers
@@ -141,6 +142,11 @@ class Service:
         self._store_trouble: dict | None = None   # {reason, since, failures} while storing fails
         self.store_retry_s = 30.0           # first wait after a failed store (doubles to 10 min)
         self._retry: list[tuple[float, Ready, Any]] = []   # measured, not stored yet
+        # group commit: finished files wait (at most group_files, group_s) to share one
+        # transaction; see _finish_group and DEVELOPERS.md
+        self.group_files, self.group_s = 32, 0.25
+        self._finished: list[tuple[Ready, Any]] = []
+        self._finished_since = 0.0
         self._now = 0.0                     # the clock of the last step (the courier's clock)
         self._courier: Any = None
 
@@ -171,6 +177,12 @@ class Service:
         for fw in self._folders:
             fw.stop()
         self._jobs.close()                   # abandon a long measurement: restart re-measures
+        if self._finished:                   # measured, waiting for their group: stored now
+            group, self._finished = self._finished, []
+            try:
+                self._finish_group(group, time.time() if now is None else now)
+            except Exception:                 # not stored: measured again at the next start
+                log.exception("storing the last measured files")
         if self._courier is not None:        # a send under way is not waited for long
             if not self._courier.stop(wait_s=2.0):
                 log.warning("stopping while a notification is being sent; an unmarked "
@@ -279,7 +291,7 @@ class Service:
             self.stop_event.wait(self.poll_s)
 
     def queue_len(self) -> int:
-        return len(self.intake) + len(self._jobs) + len(self._retry)
+        return len(self.intake) + len(self._jobs) + len(self._retry) + len(self._finished)
 
     # -- intake
 
@@ -366,46 +378,99 @@ class Service:
 
     def _collect(self, now: float) -> bool:
         done = self._jobs.collect()
-        for r, fm in done:
-            self._finish(r, fm, now)
+        if done and not self._finished:
+            self._finished_since = now
+        self._finished.extend(done)
+        if self._finished and self._group_due(now):
+            group, self._finished = self._finished, []
+            self._finish_group(group, now)
         return bool(done)
+
+    def _group_due(self, now: float) -> bool:
+        """Commit the finished files now? Yes, unless more are on the way for the same
+        transaction: a group waits for at most ``group_files`` files and ``group_s`` seconds,
+        and a live file, or a file with nothing more being measured, goes at once."""
+        if len(self._finished) >= self.group_files or not len(self._jobs) or \
+                now - self._finished_since >= self.group_s:
+            return True
+        return any((r.rig, r.path) not in self._backlog_keys for r, _ in self._finished)
+
+    def _finish_group(self, group: list[tuple[Ready, Any]], now: float) -> None:
+        """Commit measured files, several in one transaction (one fsync for all).
+
+        In recording order (header time, else mtime, then the path). A crash before COMMIT
+        stores none of them: no intake state says they are done, so the next start measures
+        them again, and their alerts and outbox rows were never written. When the group's
+        transaction fails, each file is stored alone (and retried alone)."""
+        group.sort(key=lambda x: (x[0].rig, file_time(x[1].recorded_at, x[1].mtime, 0.0) or 0.0,
+                                  os.fspath(x[0].path)))
+        todo = [(r, fm, how) for r, fm in group
+                if (how := self._to_commit(r, fm, now)) is not None]
+        if len(todo) > 1:
+            try:
+                with self.store.transaction():
+                    stored = [self._call_commit(fm, self._rigs[r.rig], now, batch)
+                              for r, fm, batch in todo]
+            except Exception:
+                log.debug("a group of %d files could not be stored together; storing each "
+                          "alone", len(todo), exc_info=True)
+            else:
+                self._store_ok(now)
+                for (r, fm, batch), got in zip(todo, stored):
+                    self._stored(r, fm, got, batch, now)
+                return
+        for r, fm, batch in todo:
+            self._commit_one(r, fm, batch, now)
 
     def _finish(self, r: Ready, fm: Any, now: float) -> None:
         """Commit one measured file, unless it changed while being measured (then wait again)."""
+        batch = self._to_commit(r, fm, now)
+        if batch is not None:
+            self._commit_one(r, fm, batch, now)
+
+    def _to_commit(self, r: Ready, fm: Any, now: float) -> bool | None:
+        """None when the file is not to be stored (removed, changed while it was measured,
+        still unreadable as stored); else whether it is a backlog file (``batch``)."""
         try:
             st = self._stat(os.fspath(r.path))
         except FileNotFoundError:
             log.info("%s: removed before it was stored", r.path)
             self._backlog_done(r)
-            return
+            return None
         except OSError:
             st = None
         if st is not None and (st.st_size, st.st_mtime) != (r.size, r.mtime):
             log.info("%s: changed while it was measured; waiting for it to settle", r.path)
             self.intake.offer(r.rig, r.path, now, live=True)
-            return
-        rig = self._rigs[r.rig]
+            return None
         batch = (r.rig, r.path) in self._backlog_keys
         if fm.error_kind == "unreadable":
             self._unreadable.add((r.rig, r.path))
             try:
                 state = self.store.file_state(r.rig, os.fspath(r.path))
-            except Exception:                 # the commit below says what is wrong
+            except Exception:                 # the commit says what is wrong
                 state = None
             if state is not None and state.error_kind == "unreadable" and \
                     (state.size, state.mtime) == (r.size, r.mtime):
                 self._seen[(r.rig, r.path)] = (r.size, r.mtime)     # still unreadable: as stored
                 self._backlog_done(r)
-                return
+                return None
         else:
             self._unreadable.discard((r.rig, r.path))
+        return batch
+
+    def _commit_one(self, r: Ready, fm: Any, batch: bool, now: float) -> None:
         try:
-            stored = self._call_commit(fm, rig, now, batch)
+            stored = self._call_commit(fm, self._rigs[r.rig], now, batch)
         except Exception as e:
             wait = self._store_failed(e, now, f"storing {printable(r.path)}")
             self._retry.append((now + wait, r, fm))     # kept: stored later, not re-measured
             return
         self._store_ok(now)
+        self._stored(r, fm, stored, batch, now)
+
+    def _stored(self, r: Ready, fm: Any, stored: Any, batch: bool, now: float) -> None:
+        """After the file's transaction committed: the service's own bookkeeping."""
         self._seen[(r.rig, r.path)] = (r.size, r.mtime)
         self._backlog_done(r)
         if getattr(stored, "status", None) is not None:

@@ -238,6 +238,41 @@ def test_history_excludes_flagged_superseded_error_and_out_of_window_rows(store)
     assert store.rigs() == ["rig-a", "rig-b"]
 
 
+def test_learning_rows_from_one_query_equal_the_two_queries(store):
+    """pipeline._learning_rows reads every row with its flag once and, when none is flagged,
+    takes them as the good rows too: the same lists as reference_rows + chart_points (the
+    definition), with and without a flagged row, a start and a limit."""
+    from qcd.pipeline import _learning_rows
+    from qcd.ruleset import load_rules
+    st = replace(load_rules().settings, reference_files=2)          # limit max(8, 400)
+
+    def both(start, before):
+        good = store.reference_rows("rig-a", "voltage_clamp", 0, "noise_rms", start=start,
+                                    before=before, limit=400)
+        every = store.chart_points("rig-a", "voltage_clamp", 0, "noise_rms",
+                                   after=None if start is None else start - 1e-6,
+                                   before=before, limit=400) if good else []
+        return good, every
+    for i in range(6):
+        store.commit_file("rig-a", fmeasures(path=f"/d/g{i}.abf", sha=f"{i:064d}",
+                                             noise=1.0 + i, at=T0 - (6 - i) * DAY),
+                          analysed_at=T0)
+    cases = [(None, T0), (T0 - 4 * DAY, T0), (T0 - 4 * DAY, T0 - 2.5 * DAY), (T0 + DAY, T0)]
+    for start, before in cases:
+        got = _learning_rows(store, "rig-a", "voltage_clamp", 0, "noise_rms", st, before, start)
+        assert got == both(start, before), (start, before)
+    assert _learning_rows(store, "rig-a", "voltage_clamp", 0, "noise_rms", st, T0,
+                          None)[0] == [(T0 - (6 - i) * DAY, 1.0 + i) for i in range(6)]
+    store.commit_file("rig-a", fmeasures(path="/d/h.abf", sha="h" * 64, noise=30.0,
+                                         at=T0 - 3.5 * DAY), analysed_at=T0,
+                      findings=[F(0, "noise_rms", "noise_max", True)])
+    for start, before in cases:
+        got = _learning_rows(store, "rig-a", "voltage_clamp", 0, "noise_rms", st, before, start)
+        assert got == both(start, before), (start, before)
+    good, every = _learning_rows(store, "rig-a", "voltage_clamp", 0, "noise_rms", st, T0, None)
+    assert (T0 - 3.5 * DAY, 30.0) in every and (T0 - 3.5 * DAY, 30.0) not in good
+
+
 def test_finding_without_channel_flags_the_measure_on_every_channel(store):
     fid = store.commit_file("rig-a", fmeasures(), analysed_at=T0,
                             findings=[F(None, "noise_rms", "noise_max", True, value=3.0,

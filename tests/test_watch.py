@@ -441,6 +441,66 @@ def test_measuring_in_worker_processes(tmp_path, store):
     assert [fm.status for fm in rec.committed] == ["ok"] * 4
 
 
+def _at_commits(store: Store, count) -> list[int]:
+    """count() at each COMMIT the store's connection runs (sqlite3's own trace callback)."""
+    seen: list[int] = []
+    store.db.conn.set_trace_callback(
+        lambda sql: seen.append(count()) if sql.strip().upper() == "COMMIT" else None)
+    return seen
+
+
+def test_backlog_files_share_transactions_in_recording_order(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    _tiny_abf(tmp_path / "template.abf", 0)
+    template = (tmp_path / "template.abf").read_bytes()
+    n = 40
+    for i in range(n):                         # mtimes run backwards to the names
+        p = folder / f"f{i:02d}.abf"
+        p.write_bytes(template[:-4] + i.to_bytes(4, "little"))
+        os.utime(p, (1e9 - i * 60, 1e9 - i * 60))
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = Service(cfg, store, workers=2, commit=rec.commit, poll_s=0.02, progress_tty=False,
+                  beat_s=1e9)
+    svc.group_files, svc.group_s = 8, 30.0    # groups close by their size here
+    commits = _at_commits(store, lambda: len(rec.committed))
+    svc.start(time.time())
+    try:
+        wait_until(lambda: len(rec.committed) == n, 60.0,
+                   lambda: svc.step(time.time()) or svc.wait_idle(), interval=0.0)
+    finally:
+        svc.close()
+        store.db.conn.set_trace_callback(None)
+    stored = store.files(rig=RIG, include_superseded=True)
+    assert len(stored) == n
+    # one COMMIT for up to 8 files (the heartbeat and the digest commit on their own)
+    groups = [b - a for a, b in zip([0] + commits, commits) if b > a]
+    assert sum(groups) == n and max(groups) <= 8 and len(groups) <= n // 2, groups
+    # within each transaction the files are stored oldest recording first
+    ends = [0] + [e for a, e in zip([0] + commits, commits) if e > a]
+    for a, b in zip(ends, ends[1:]):
+        times = [fm.mtime for fm in rec.committed[a:b]]
+        assert times == sorted(times), times
+
+
+def test_a_lone_new_file_is_committed_at_once_not_held_for_a_group(tmp_path, store):
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = Service(cfg, store, workers=2, commit=rec.commit, poll_s=0.02, progress_tty=False)
+    svc.group_s = 600.0                        # a group would wait 10 min for more files
+    svc.start(time.time())
+    try:
+        _tiny_abf(folder / "new.abf", 7)
+        wait_until(lambda: rec.committed, 30.0,
+                   lambda: svc.step(time.time()) or svc.wait_idle(), interval=0.0)
+        assert store.file_state(RIG, os.path.realpath(folder / "new.abf")) is not None
+    finally:
+        svc.close()
+
+
 @pytest.mark.slow
 def test_thousand_small_files_dropped_at_once_are_all_measured(tmp_path, store):
     folder = tmp_path / "rig"
@@ -599,11 +659,11 @@ def _write_toml(tmp_path: Path, sink_url: str) -> Path:
 class _Watch:
     """`qcd watch` in a subprocess, its stderr kept in a file for failure messages."""
 
-    def __init__(self, cfg: Path, n: int) -> None:
+    def __init__(self, cfg: Path, n: int, workers: int = 1) -> None:
         self.err = cfg.parent / f"watch{n}.err"
         self._f = open(self.err, "wb")
         self.proc = subprocess.Popen([sys.executable, "-m", "qcd", "watch", "--config",
-                                      str(cfg), "--workers", "1"],
+                                      str(cfg), "--workers", str(workers)],
                                      stdout=subprocess.DEVNULL, stderr=self._f)
 
     def wait(self, timeout: float) -> int:
@@ -730,6 +790,65 @@ def test_kill_9_and_restart_lose_nothing_and_store_nothing_twice(tmp_path):
     assert not queued - received, sink.received               # none lost
     # none twice, except one that was in flight when the process was killed
     assert not (received - queued) - Counter(in_flight), sink.received
+
+
+@pytest.mark.slow
+def test_kill_9_in_a_batched_backlog_stores_each_file_once_and_sends_each_message_once(
+        tmp_path):
+    """Files of a backlog are committed several to a transaction (group commit); a kill -9
+    in the middle loses only the files of the open transaction, which the restart measures
+    again: every file ends with exactly one row, every message is sent once."""
+    sink = HttpSink().start()
+    watches = []
+    n_good, n_bad = 240, 6
+    try:
+        cfg = _write_toml(tmp_path, sink.url)
+        folder, db = tmp_path / "rig", tmp_path / "db" / "qcd.sqlite"
+        _tiny_abf(folder / "t.abf", 0)
+        template = (folder / "t.abf").read_bytes()
+        (folder / "t.abf").unlink()
+        for i in range(n_good):              # distinct contents: the last sample's bytes
+            p = folder / f"f{i:04d}.abf"
+            p.write_bytes(template[:-4] + i.to_bytes(4, "little"))
+            os.utime(p, (1e9 + i, 1e9 + i))
+        for i in range(n_bad):               # unreadable files: alerts, told in the digest
+            p = folder / f"g{i:04d}.abf"
+            p.write_bytes(f"not a recording {i} ".encode() * 200)
+            os.utime(p, (1e9 + n_good + i, 1e9 + n_good + i))
+        total = n_good + n_bad
+        w = _Watch(cfg, 1, workers=2)
+        watches.append(w)
+        wait_until(lambda: _n_files(db) >= 40, 120.0, interval=0.005)
+        w.kill()
+        assert w.proc.returncode == -signal.SIGKILL
+        stored = _n_files(db)
+        assert 40 <= stored < total, stored    # killed part-way through the backlog
+        assert _db_rows(db, "SELECT COUNT(*) FROM outbox")[0][0] == 0   # backlog: no message yet
+        w = _Watch(cfg, 2, workers=2)
+        watches.append(w)
+        wait_until(lambda: _n_files(db) == total, 120.0)
+        wait_until(lambda: _db_rows(db, "SELECT COUNT(*) FROM outbox")[0][0] > 0 and not
+                   _db_rows(db, "SELECT id FROM outbox WHERE status != 'sent'"), 30.0)
+        w.proc.send_signal(signal.SIGTERM)
+        assert w.wait(30) == 0, w.log()
+    finally:
+        for w in watches:
+            w.kill()
+        sink.stop()
+    assert _db_rows(db, "PRAGMA integrity_check") == [("ok",)]
+    # every file exactly one row (none stored twice, none superseded by a second measuring)
+    rows = _db_rows(db, "SELECT path, status FROM files")
+    assert sorted(Path(p).name for p, _ in rows) == sorted(
+        [f"f{i:04d}.abf" for i in range(n_good)] + [f"g{i:04d}.abf" for i in range(n_bad)])
+    assert sum(s == "error" for _, s in rows) == n_bad
+    orphans = _db_rows(db, "SELECT f.path FROM files f WHERE f.status = 'ok' AND NOT EXISTS "
+                           "(SELECT 1 FROM measures m WHERE m.file_id = f.id)")
+    assert orphans == []
+    # every queued message sent exactly once (the backlog's digest names the bad files)
+    outbox = _db_rows(db, "SELECT title, kind FROM outbox")
+    assert [k for _, k in outbox].count("digest") == 1, outbox
+    received = Counter(m["title"] for m in sink.received)
+    assert received == Counter(t for t, _ in outbox), sink.received
 
 
 @pytest.mark.slow

@@ -98,6 +98,7 @@ def main() -> None:
             svc = Service(cfg, store, workers=a.workers, commit=counting_commit,
                           progress_tty=False, poll_s=0.05)
             t_start = time.perf_counter()
+            cpu_start = time.process_time()
             svc.start(time.time())
             t_scan = time.perf_counter() - t_start
             new_closed = None
@@ -109,6 +110,7 @@ def main() -> None:
                 if not busy:
                     svc.wait_idle()
             t_total = time.perf_counter() - t_start
+            cpu_main = time.process_time() - cpu_start
             svc.close()
             new_name = f"f{a.files:05d}.abf"
             delay = committed[new_name] - new_closed
@@ -118,7 +120,8 @@ def main() -> None:
         base_rate = baseline(tmp, template, n_base)
         print(f"start-up scan: {t_scan:.2f} s for {a.files} files")
         print(f"catch-up: {a.files} files in {t_total:.1f} s = {rate:.1f} files/s "
-              f"(workers {svc.workers})")
+              f"(workers {svc.workers}); the service process (intake, judging, storing) "
+              f"{1000 * cpu_main / a.files:.2f} ms CPU per file")
         print(f"baseline (one loop, no service, {n_base} files): {base_rate:.1f} files/s; "
               f"ratio service/baseline = {rate / base_rate:.2f}")
         print(f"new file dropped {a.new_after:g} s into the catch-up: stored {delay:.2f} s after "
