@@ -381,8 +381,10 @@ class Service:
         if done and not self._finished:
             self._finished_since = now
         self._finished.extend(done)
-        if self._finished and self._group_due(now):
-            group, self._finished = self._finished, []
+        while self._finished and self._group_due(now):     # several may finish at once
+            n = self.group_files
+            group, self._finished = self._finished[:n], self._finished[n:]
+            self._finished_since = now
             self._finish_group(group, now)
         return bool(done)
 
