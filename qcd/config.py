@@ -6,7 +6,6 @@ parses durations (``parse_duration``) and writes the commented starter file
 """
 from __future__ import annotations
 
-import difflib
 import logging
 import os
 import re
@@ -19,10 +18,16 @@ from urllib.parse import unquote, urlsplit
 from qcd.errors import ConfigError
 from qcd.zones import check_zone
 
-if sys.version_info >= (3, 11):
-    import tomllib as _toml
-else:  # pragma: no cover - Python 3.10
-    import tomli as _toml
+
+
+def _toml_module():
+    """tomllib (tomli before 3.11), imported when a file is read: a one-file ``qcd scan``
+    builds its RigConfig without reading TOML (DEVELOPERS.md, start-up counts)."""
+    if sys.version_info >= (3, 11):
+        import tomllib
+        return tomllib
+    import tomli  # pragma: no cover - Python 3.10
+    return tomli  # pragma: no cover
 
 __all__ = ["TestPulse", "RigConfig", "Config", "DigestConfig", "load_config", "parse_pulse", "find_config",
            "DECLARED_MODES",
@@ -145,9 +150,10 @@ def read_toml(path: Path) -> dict[str, Any]:
         text = data.decode("utf-8")
     except UnicodeDecodeError as e:
         raise ConfigError(path, "", f"not UTF-8 text (byte {e.start})") from None
+    toml = _toml_module()
     try:
-        return _toml.loads(text)
-    except _toml.TOMLDecodeError as e:
+        return toml.loads(text)
+    except toml.TOMLDecodeError as e:
         # tomllib's message already ends with "(at line L, column C)"
         raise ConfigError(path, "", f"TOML syntax error: {e}") from None
 
@@ -202,6 +208,7 @@ class _Reader:
     def check_keys(self, table: dict, allowed: tuple[str, ...], label: str) -> None:
         for key in table:
             if key not in allowed:
+                import difflib
                 close = (difflib.get_close_matches(key, allowed, n=1)
                          or difflib.get_close_matches(key, _TOP_KEYS + _RIG_KEYS, n=1))
                 hint = f"; expected one of {', '.join(allowed)}"

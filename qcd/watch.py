@@ -381,11 +381,11 @@ class Service:
         if done and not self._finished:
             self._finished_since = now
         self._finished.extend(done)
-        while self._finished and self._group_due(now):     # several may finish at once
-            n = self.group_files
-            group, self._finished = self._finished[:n], self._finished[n:]
-            self._finished_since = now
+        while self._finished and self._group_due(now):
+            group = self._finished[:self.group_files]
+            del self._finished[:self.group_files]
             self._finish_group(group, now)
+            self._finished_since = now
         return bool(done)
 
     def _group_due(self, now: float) -> bool:

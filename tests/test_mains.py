@@ -297,3 +297,29 @@ def test_incomplete_gamma_tail_matches_scipy():
         tol = 1e-9 if a <= 5000 else 2e-2       # beyond 5000: Wilson-Hilferty normal
         ok = ref > 1e-12
         assert np.all(np.abs(got[ok] - ref[ok]) <= tol * ref[ok] + 1e-15), a
+
+
+def test_gauss_hermite_rule_is_numpys_and_integrates_the_normal_moments():
+    # the written-out rule against numpy.polynomial.hermite_e.hermegauss (the reference
+    # library), and against the normal moments E[Z^2k] = (2k-1)!! that a 24-point rule
+    # integrates exactly up to degree 47 (Gauss quadrature; analytic)
+    z, w = mains._hermite()
+    ref_z, ref_w = np.polynomial.hermite_e.hermegauss(24)
+    np.testing.assert_allclose(z, ref_z, rtol=1e-13, atol=0)
+    np.testing.assert_allclose(w, ref_w / ref_w.sum(), rtol=1e-13, atol=0)
+    for k in range(0, 12):
+        want = math.prod(range(2 * k - 1, 0, -2)) if k else 1.0
+        assert float(w @ z ** (2 * k)) == pytest.approx(want, rel=1e-12)
+        assert abs(float(w @ z ** (2 * k + 1))) < 1e-9 * max(want, 1.0)
+
+
+@pytest.mark.parametrize("q", [1e-9, 0.001, 0.025, 0.5, 0.8, 0.999, 1 - 1e-12])
+def test_normal_quantile_is_the_standard_librarys(q):
+    # statistics.NormalDist as the reference; scipy.special.ndtri agrees to 1e-12
+    from statistics import NormalDist
+    import scipy.special
+    assert mains._normal_quantile(q) == NormalDist().inv_cdf(q)
+    assert mains._normal_quantile(q) == pytest.approx(float(scipy.special.ndtri(q)),
+                                                      rel=1e-12, abs=1e-12)
+    with pytest.raises(ValueError):
+        mains._normal_quantile(1.0)

@@ -252,6 +252,25 @@ def test_theil_sen_methods_6_check():
     assert drift.theil_sen(t, y)[0] == pytest.approx(scipy.stats.theilslopes(y, t)[0])
 
 
+def test_theil_sen_is_the_median_of_every_pairwise_slope():
+    # the definition (Theil 1950; Sen 1968), written out with numpy's pair indices, and
+    # scipy.stats.theilslopes as the reference; equal times (a pair with no slope) left out
+    rng = np.random.default_rng(6)
+    for n, ties in ((2, False), (3, False), (200, False), (201, True), (1000, False)):
+        t = np.sort(rng.uniform(0.0, 600.0, n))
+        if ties:
+            t[10:14] = t[10]
+        y = rng.standard_normal(n) + 0.01 * t
+        i, j = np.triu_indices(n, k=1)
+        ok = t[j] != t[i]
+        want = float(np.median((y[j] - y[i])[ok] / (t[j] - t[i])[ok]))
+        assert drift.theil_sen(t, y)[0] == want
+        assert drift.theil_sen(t, y)[0] == pytest.approx(scipy.stats.theilslopes(y, t)[0],
+                                                         rel=1e-12)
+    with pytest.raises(ValueError):
+        drift.theil_sen(np.ones(5), np.arange(5.0))
+
+
 def test_baseline_drift_pools_long_series():
     # per second in, the slope is kept when thousands of windows are pooled
     rng = np.random.default_rng(15)

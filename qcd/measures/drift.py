@@ -1,8 +1,6 @@
 """Drift: Theil-Sen slope of baseline medians against time. numpy only, SI in and out."""
 from __future__ import annotations
 
-import functools
-
 import numpy as np
 
 from qcd.measures.noise import median
@@ -19,21 +17,33 @@ def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     y = np.asarray(y, dtype=float)
     if len(t) < 2:
         raise ValueError("Theil-Sen needs at least two points")
-    i, j = _pairs(len(t))
-    dt = t[j] - t[i]
-    ok = dt != 0
-    if not ok.any():
+    slopes = _pairwise_slopes(t, y)
+    if slopes is None:
         raise ValueError("Theil-Sen needs two distinct times")
-    slope = float(median((y[j] - y[i])[ok] / dt[ok]))
+    slope = float(median(slopes))
     return slope, float(median(y - slope * t))
 
 
-@functools.lru_cache(maxsize=4)
-def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Index pairs i < j of n points (the same for every channel of a file: made once)."""
-    i, j = np.triu_indices(n, k=1)
-    i.flags.writeable = j.flags.writeable = False
-    return i, j
+def _pairwise_slopes(t: np.ndarray, y: np.ndarray) -> np.ndarray | None:
+    """(y[j] - y[i]) / (t[j] - t[i]) for every pair i < j with t[j] != t[i] (row by row into
+    one buffer, in numpy.triu_indices order: the same numbers as indexing with the pair
+    indices, without their n^2/2 gathers); None when no two times differ."""
+    n = len(t)
+    out = np.empty(n * (n - 1) // 2)
+    dts = np.empty_like(out)
+    k = 0
+    for a in range(n - 1):
+        m = n - 1 - a
+        np.subtract(t[a + 1:], t[a], out=dts[k:k + m])
+        np.subtract(y[a + 1:], y[a], out=out[k:k + m])
+        k += m
+    ok = dts != 0
+    if ok.all():
+        out /= dts
+        return out
+    if not ok.any():
+        return None
+    return out[ok] / dts[ok]
 
 
 def _pool(t: np.ndarray, y: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:

@@ -208,8 +208,7 @@ def _level_cached(shape: float, p: float, rel_sd: float) -> float:
 
     # one vectorised pass over a grid around the Wilson-Hilferty level of the gamma alone
     # (Wilson & Hilferty 1931), then log-linear interpolation of the tail between grid points
-    from statistics import NormalDist     # here: imported only when a level is computed
-    zp = NormalDist().inv_cdf(1.0 - p)
+    zp = _normal_quantile(1.0 - p)
     t0 = max((1.0 - 1.0 / (9.0 * shape) + zp / math.sqrt(9.0 * shape)) ** 3, 1e-3)
     ts = np.geomspace(0.5 * t0, 2.0 * t0 * (1.0 + 5.0 * rel_sd), 97)
     tail = tails(ts)
@@ -275,12 +274,46 @@ def gamma_q(a: float, x: np.ndarray) -> np.ndarray:
     return np.clip(out, 0.0, 1.0)
 
 
+# 24-point Gauss-Hermite rule (probabilists', weight exp(-z^2/2)): the values of
+# numpy.polynomial.hermite_e.hermegauss(24), written out so that a scan does not import
+# numpy.polynomial (12-18 ms of start-up); tests/test_mains.py checks them against it and
+# against the normal moments the rule integrates exactly.
+_HERMITE_Z = (
+    -8.507803519195257, -7.437890666021663, -6.541675005098634, -5.732747175251201,
+    -4.97804137463912, -4.260383605019905, -3.56930676407356, -2.8977286432233136,
+    -2.2404678516917524, -1.5934804298164202, -0.953421922932109, -0.31737009662945237,
+    0.31737009662945237, 0.953421922932109, 1.5934804298164202, 2.2404678516917524,
+    2.8977286432233136, 3.56930676407356, 4.260383605019905, 4.97804137463912,
+    5.732747175251201, 6.541675005098634, 7.437890666021663, 8.507803519195257)
+_HERMITE_W = (
+    2.3537725005214355e-16, 9.312059250837578e-13, 4.308054103053398e-10,
+    5.683683542388722e-08, 3.052220346806378e-06, 8.045024864361494e-05,
+    0.0011648770802427275, 0.00996788037903597, 0.05295589223511062, 0.18065110558013295,
+    0.4047189801605703, 0.6037718421428449, 0.6037718421428449, 0.4047189801605703,
+    0.18065110558013295, 0.05295589223511062, 0.00996788037903597, 0.0011648770802427275,
+    8.045024864361494e-05, 3.052220346806378e-06, 5.683683542388722e-08,
+    4.308054103053398e-10, 9.312059250837578e-13, 2.3537725005214355e-16)
+
+
 @functools.cache
 def _hermite() -> tuple[np.ndarray, np.ndarray]:
-    """24-point Gauss-Hermite nodes and weights (probabilists'), the weights summing to 1;
-    made on first use, not when the module loads."""
-    z, w = np.polynomial.hermite_e.hermegauss(24)
+    """24-point Gauss-Hermite nodes and weights (probabilists'), the weights summing to 1."""
+    z, w = np.array(_HERMITE_Z), np.array(_HERMITE_W)
     return z, w / w.sum()
+
+
+def _normal_quantile(q: float) -> float:
+    """The standard normal quantile: statistics.NormalDist().inv_cdf (Wichura's AS241),
+    through its compiled helper when CPython has one (importing statistics loads fractions
+    and decimal, 10-17 ms of a scan's start-up)."""
+    if not 0.0 < q < 1.0:
+        raise ValueError(f"a normal quantile needs 0 < q < 1, got {q}")
+    try:
+        from _statistics import _normal_dist_inv_cdf
+    except ImportError:                    # pragma: no cover - other Pythons
+        from statistics import NormalDist
+        return NormalDist().inv_cdf(q)
+    return _normal_dist_inv_cdf(q, 0.0, 1.0)
 
 
 def _grandke(psd, k, floor, df) -> float:
