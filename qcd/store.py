@@ -323,19 +323,13 @@ class Store:
                      limit: int | None = None) -> list[tuple[float, float]]:
         """[(recorded_at, value)] of every ok, current file (flagged or not) recorded in
         (after, before), oldest first (the first ``limit``): what a drift chart steps through."""
-        rows = self._one_all(
-            "SELECT f.recorded_at, m.value FROM files f JOIN measures m ON m.file_id = f.id "
-            "WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' AND f.superseded = 0 "
-            "AND f.recorded_at > ? AND f.recorded_at < ? AND m.channel = ? AND m.name = ? "
-            "AND m.value IS NOT NULL ORDER BY f.recorded_at, f.id LIMIT ?",
-            (rig, mode, -math.inf if after is None else float(after),
-             math.inf if before is None else float(before), channel, measure,
-             -1 if limit is None else int(limit)))
-        return [(float(t), float(v)) for t, v in rows]
+        return [(t, v) for t, v, _ in self.flagged_points(rig, mode, channel, measure,
+                                                          after=after, before=before,
+                                                          limit=limit)]
 
     def flagged_points(self, rig: str, mode: str, channel: int, measure: str, *,
-                       after: float | None, before: float, limit: int
-                       ) -> list[tuple[float, float, int]]:
+                       after: float | None, before: float | None = None,
+                       limit: int | None = None) -> list[tuple[float, float, int]]:
         """``chart_points`` with each value's flag: [(recorded_at, value, flagged)]."""
         rows = self._one_all(
             "SELECT f.recorded_at, m.value, m.flagged FROM files f JOIN measures m "
@@ -343,8 +337,9 @@ class Store:
             "AND f.superseded = 0 AND f.recorded_at > ? AND f.recorded_at < ? "
             "AND m.channel = ? AND m.name = ? AND m.value IS NOT NULL "
             "ORDER BY f.recorded_at, f.id LIMIT ?",
-            (rig, mode, -math.inf if after is None else float(after), float(before), channel,
-             measure, int(limit)))
+            (rig, mode, -math.inf if after is None else float(after),
+             math.inf if before is None else float(before), channel, measure,
+             -1 if limit is None else int(limit)))
         return [(float(t), float(v), int(g)) for t, v, g in rows]
 
     def charts(self, rig: str, mode: str | None = None) -> dict[tuple, dict[str, Any]]:
