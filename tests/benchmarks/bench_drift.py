@@ -33,7 +33,9 @@ Not collected by pytest; figures in docs/methods.md §10, measured with
 
 About 10-20 ms a file and process with learned references (most of it the simulations that
 calibrate each new reference's limits, qcd.runlength.widen_for), 2-3 ms with --oracle: 48
-rig-years take about 17 minutes with --jobs 2 on a shared machine, 200 about an hour.
+rig-years take about 17 minutes with --jobs 2 on a shared machine, 200 about an hour; with
+other jobs on the machine 20-36 ms a file, 16-26 minutes for each 50 in-control rig-years
+(`--only control --rig-years 50 --seed N`: run seeds in turn and pool them).
 """
 from __future__ import annotations
 
