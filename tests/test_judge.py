@@ -569,6 +569,10 @@ def test_baseline_is_numpy_median_and_mad_to_the_last_bit():
                                                 1e-300), rel_tol=1e-9)
     # non-finite values go through numpy itself: nan propagates as numpy's median does
     assert math.isnan(baseline([1.0, float("nan"), 2.0])[0])
+    for odd in ([1.0, math.inf, 2.0], [1e308, 1e308, -1e308, 5.0]):   # inf; a sum that overflows
+        a = np.asarray(odd)
+        med = float(np.median(a))
+        assert baseline(odd) == (med, max(MAD_SCALE * float(np.median(np.abs(a - med))), 1e-300))
     with pytest.raises(ValueError):
         baseline([])
 
