@@ -115,7 +115,8 @@ def readmit(all_rows: Sequence[tuple[float, float]], good_rows: Sequence[tuple[f
     again. A file the checks flagged as far off (a real fault) stays out; one that is a
     plausible part of the rig's scatter comes back (|z| < 3.5: Iglewicz & Hoaglin 1993)."""
     good = [(float(t), float(v)) for t, v in good_rows]
-    if len(all_rows) == len(good) and [tuple(r) for r in all_rows] == good:
+    if all_rows is good_rows or (len(all_rows) == len(good)
+                                 and [tuple(r) for r in all_rows] == good):
         return good                          # nothing flagged (a young rig's usual case)
     left: dict[tuple[float, float], int] = {}
     for r in good:
