@@ -333,6 +333,26 @@ def test_finding_without_channel_flags_the_measure_on_every_channel(store):
     assert f["rig"] == "rig-a" and f["channel"] is None
 
 
+def test_a_files_findings_are_stored_in_order_each_as_given(store):
+    """commit_file writes all of a file's findings in one statement: every row as the finding
+    gave it (channel None, value None, a name byte that is not UTF-8 escaped), in order."""
+    fs = [F(0, "noise_rms", "noise_max", True, value=3.0, unit="pA", limit_text="> 2 pA",
+            hint="check ground"),
+          F(None, "hum_rms", "hum_jump", False, kind="drift", value=None, limit_text="normal"),
+          F(1, "noise_rms", "noise_max", False, value=0.5, unit="mV", limit_text="caf\udce9")]
+    fid = store.commit_file("rig-a", fmeasures(), analysed_at=T0, findings=fs)
+    got = store.findings(fid)
+    assert [(r["channel"], r["measure"], r["rule"], r["kind"], r["bad"], r["value"], r["unit"])
+            for r in got] == [(f.channel, f.measure, f.rule, f.kind, f.bad, f.value, f.unit)
+                              for f in fs]
+    assert [r["limit_text"] for r in got[:2]] == ["> 2 pA", "normal"]
+    # a name byte that is not UTF-8 (Python's surrogateescape, PEP 383) shown escaped
+    assert got[2]["limit_text"] == "caf\\xe9"
+    fid2 = store.commit_file("rig-a", fmeasures(path="/d/none.abf", sha="b" * 64),
+                             analysed_at=T0, findings=[])
+    assert fid2 != fid and store.findings(fid2) == []
+
+
 def test_reference_spectrum_is_the_median_of_recent_unflagged_spectra(store):
     dens = [(4.0, 1.0, 0.1, 0.3), (2.0, 3.0, 0.2, 0.1), (8.0, 2.0, 0.4, 0.2),
             (1.0, 1.0, 1.0, 1.0)]
