@@ -282,8 +282,9 @@ def _learning_rows(store: Store, rig: str, mode: str, channel: int, measure: str
                                    after=None if start_at is None else start_at - 1e-6,
                                    before=at, limit=limit)
     every = [(t, v) for t, v, _ in flagged]
-    if not any(g for _, _, g in flagged) and (start_at is None or
-                                               all(t >= start_at for t, _ in every)):
+    # oldest first (flagged_points), so the first row is the earliest
+    if not any([g for _, _, g in flagged]) and (start_at is None or not every
+                                                 or every[0][0] >= start_at):
         return every, every       # none flagged: the good rows are these (one query, not two)
     good = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
                                 limit=limit)
