@@ -180,12 +180,18 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
     one), and a chart's false-alarm rate grows steeply as its scale shrinks; the margin keeps
     the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py). With a
     ``rule`` that states its budget, the widening is calibrated for it instead (``_widened``)."""
-    usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
+    rows = rows if isinstance(rows, (list, tuple)) else list(rows)
+    values = [v for _, v in rows]
+    if math.isfinite(sum(values)) and (not log or min(values, default=1.0) > 0):
+        usable = list(rows)            # every row usable (the usual case): no filter to run
+    else:
+        usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
     if not usable:
         return None
     first = usable[0][0]
-    for i, (t, _) in enumerate(usable):
-        if i + 1 >= files and t - first >= days * DAY_S:
+    for i in range(max(math.ceil(files) - 1, 0), len(usable)):   # i + 1 >= files
+        t = usable[i][0]
+        if t - first >= days * DAY_S:
             return _widened(reference_of(usable[: i + 1], log=log, min_spread=min_spread),
                             usable[: i + 1], margin, rule, arl0)
     return None
