@@ -69,8 +69,16 @@ class AlertState:
     channel_name: str = ""
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain dict; ``state`` is 'open' while the flap guard holds the key open."""
-        d = asdict(self)
+        """Plain dict; ``state`` is 'open' while the flap guard holds the key open.
+
+        What ``dataclasses.asdict`` gives (same keys, order and values, the lists copied),
+        made directly: asdict's recursive deep copy was a good part of storing a file."""
+        lists = (self.changes, self.mutes, self.spent)
+        if all(type(v) is list and all(type(x) is int for x in v) for v in lists):
+            d = {name: getattr(self, name) for name in _STATE_FIELDS}
+            d["changes"], d["mutes"], d["spent"] = (list(v) for v in lists)
+        else:
+            d = asdict(self)
         d["machine"] = self.state
         if self.flapping:
             d["state"] = "open"
@@ -94,6 +102,9 @@ class AlertState:
     def new(cls, f: Finding) -> "AlertState":
         return cls(key=f.key, rig=f.rig, mode=f.mode, channel=f.channel, measure=f.measure,
                    rule=f.rule, kind=f.kind)
+
+
+_STATE_FIELDS = tuple(f.name for f in fields(AlertState))
 
 
 @dataclass(frozen=True)

@@ -71,7 +71,9 @@ class ChartState:
     last_at: float | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        return asdict(self)
+        """``dataclasses.asdict``, made directly (every field is a number or None)."""
+        return {"up": self.up, "down": self.down, "n": self.n, "since": self.since,
+                "last_at": self.last_at}
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any] | None) -> "ChartState":

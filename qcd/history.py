@@ -115,7 +115,8 @@ def readmit(all_rows: Sequence[tuple[float, float]], good_rows: Sequence[tuple[f
     again. A file the checks flagged as far off (a real fault) stays out; one that is a
     plausible part of the rig's scatter comes back (|z| < 3.5: Iglewicz & Hoaglin 1993)."""
     good = [(float(t), float(v)) for t, v in good_rows]
-    if len(all_rows) == len(good) and [tuple(r) for r in all_rows] == good:
+    if all_rows is good_rows or (len(all_rows) == len(good)
+                                 and [tuple(r) for r in all_rows] == good):
         return good                          # nothing flagged (a young rig's usual case)
     left: dict[tuple[float, float], int] = {}
     for r in good:
@@ -179,12 +180,18 @@ def learn(rows: Sequence[tuple[float, float]], *, files: int, days: float, log: 
     one), and a chart's false-alarm rate grows steeply as its scale shrinks; the margin keeps
     the budget for most rigs (docs/methods.md §7; tests/benchmarks/bench_drift.py). With a
     ``rule`` that states its budget, the widening is calibrated for it instead (``_widened``)."""
-    usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
+    rows = rows if isinstance(rows, (list, tuple)) else list(rows)
+    values = [v for _, v in rows]
+    if math.isfinite(sum(values)) and (not log or min(values, default=1.0) > 0):
+        usable = list(rows)            # every row usable (the usual case): no filter to run
+    else:
+        usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
     if not usable:
         return None
     first = usable[0][0]
-    for i, (t, _) in enumerate(usable):
-        if i + 1 >= files and t - first >= days * DAY_S:
+    for i in range(max(math.ceil(files) - 1, 0), len(usable)):   # i + 1 >= files
+        t = usable[i][0]
+        if t - first >= days * DAY_S:
             return _widened(reference_of(usable[: i + 1], log=log, min_spread=min_spread),
                             usable[: i + 1], margin, rule, arl0)
     return None

@@ -77,13 +77,53 @@ class Finding:
 
 # --- statistics ----------------------------------------------------------------------------------
 
+def _median(x: Sequence[float]) -> float:
+    """np.median of a short list of finite floats, to the last bit, without numpy's overhead
+    (a history window is some 30 values; numpy's per-call cost is most of the work): the
+    middle value, or the mean of the two middle ones, (a + b) / 2, as numpy computes it."""
+    s = sorted(x)
+    n = len(s)
+    h = n // 2
+    return s[h] if n % 2 else (s[h - 1] + s[h]) / 2
+
+
+def _finite(x: Sequence[float]) -> bool:
+    """Every value finite (a sum of finite values is never nan; one that overflows to inf
+    only sends the list the numpy way, which gives the same answer)."""
+    return bool(x) and math.isfinite(sum(x))
+
+
+def _percentiles(x: Sequence[float], qs: Sequence[float]) -> list[float]:
+    """np.percentile(x, qs) (its default 'linear' method) of finite floats, to the last bit:
+    virtual index (n - 1) q / 100 and numpy's two-sided interpolation (``_lerp``)."""
+    s = sorted(x)
+    n = len(s)
+    out = []
+    for q in qs:
+        vi = (n - 1) * (q / 100)
+        if vi >= n - 1:
+            out.append(s[-1])
+            continue
+        i = math.floor(vi)
+        g = vi - i
+        a, b = s[i], s[i + 1]
+        d = b - a
+        out.append(b - d * (1 - g) if g >= 0.5 else a + d * g)
+    return out
+
+
 def baseline(values: Iterable[float], *, min_spread: float = 0.0) -> tuple[float, float]:
     """(median, 1.4826 x MAD) of ``values``, the scale floored at ``min_spread`` (> 0 always)."""
-    x = np.asarray(list(values), dtype=float)
-    if x.size == 0:
+    x = [float(v) for v in values]
+    if not x:
         raise ValueError("baseline of no values")
-    med = float(np.median(x))
-    scale = MAD_SCALE * float(np.median(np.abs(x - med)))
+    if _finite(x):          # the usual case: plain Python, the same bits as numpy
+        med = _median(x)
+        scale = MAD_SCALE * _median([abs(v - med) for v in x])
+    else:                   # nan and inf as numpy treats them
+        a = np.asarray(x, dtype=float)
+        med = float(np.median(a))
+        scale = MAD_SCALE * float(np.median(np.abs(a - med)))
     return med, max(scale, float(min_spread), 1e-300)
 
 
@@ -340,7 +380,7 @@ def _precise(history: History, mode: str, ch: ChannelMeasures, name: str, limit:
         se = {float(t): float(v) for t, v in history(mode, ch.index, f"{name}_se")}
         errs = [se[float(r[0])] for r in rows if float(r[0]) in se]
         if errs:
-            cap = _IMPRECISE * float(np.median(errs))
+            cap = _IMPRECISE * (_median(errs) if _finite(errs) else float(np.median(errs)))
             rows = [r for r in rows if se.get(float(r[0]), 0.0) < cap or cap <= 0]
             sign = {"up": 1.0, "down": -1.0}.get(side, 0.0)
             rows = [(r[0], float(r[1]) + sign * _SE_SIGMAS * se.get(float(r[0]), 0.0))
@@ -504,8 +544,12 @@ def _interval(evaluate: Callable[[float], tuple | None], m: Measure, se: float,
 def _normal_range(past: list[float], unit: str) -> str:
     """'normal 2.93-3.86 uV (median 3.25, 24 files)': in the unit that reads best for the
     median (the stored unit of a field channel is mV; its hum is a few uV), as the report."""
-    lo, hi = np.percentile(past, [10, 90])
-    med = float(np.median(past))
+    if _finite(past):
+        lo, hi = _percentiles(past, (10, 90))
+        med = _median(past)
+    else:
+        lo, hi = np.percentile(past, [10, 90])
+        med = float(np.median(past))
     shown, f = readable_unit(med, unit)
     return (f"normal {lo * f:.3g}-{hi * f:.3g} {shown} (median {med * f:.3g}, "
             f"{len(past)} files)").replace("  ", " ")

@@ -201,14 +201,17 @@ def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now
                              after=starts.get((channel, measure)), clean_files=clean_files)
 
     learned: dict[tuple, tuple[list, list]] = {}
+    readmitted: dict[tuple, list] = {}
 
     def learning_rows(store: Store, rig: str, mode: str, channel: int, measure: str,
-                      st: RuleSettings, at: float, start_at: float | None
-                      ) -> tuple[list, list]:
+                      st: RuleSettings, at: float, start_at: float | None, log: bool
+                      ) -> list[tuple[float, float]]:
         key = (mode, channel, measure, start_at)
         if key not in learned:
             learned[key] = _learning_rows(store, rig, mode, channel, measure, st, at, start_at)
-        return learned[key]
+        if key + (log,) not in readmitted:
+            readmitted[key + (log,)] = _readmitted(learned[key], log)
+        return readmitted[key + (log,)]
 
     def charts(mode: str, channel: int, measure: str, rule: HistoryRule) -> ChartInput | None:
         row = stored.get((mode, channel, measure, rule.name)) or {}
@@ -221,7 +224,7 @@ def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now
 def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                 rule: HistoryRule, st: RuleSettings, at: float, start_at: float | None,
                 state: dict | None, ref: dict | None,
-                learning_rows: Callable[..., tuple[list, list]] | None = None
+                learning_rows: Callable[..., list[tuple[float, float]]] | None = None
                 ) -> ChartInput | None:
     """The reference and the chart of one rule just before a file recorded ``at``.
 
@@ -231,8 +234,8 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
     stored files it has not seen yet, in recording order; a file recorded before the chart's
     latest (a backlog) gets the chart as it stood at its time, and the later files are stepped
     through again after it (``ChartInput.tail``). None: the file lies before the chart's start.
-    ``learning_rows``: ``_learning_rows`` or a caller's memo of it (the rules of one measure
-    learn from the same files).
+    ``learning_rows``: ``_rows_to_learn`` or a caller's memo of it (the rules of one measure
+    learn from the same files; those of one scale, log or not, from the same rows).
     """
     reference = Reference.from_dict(ref)
     if st.follow_days > 0:
@@ -245,10 +248,8 @@ def chart_input(store: Store, rig: str, mode: str, channel: int, measure: str,
                                   margin=st.reference_margin, rule=rule)
         reference = followed or reference
     if reference is None:
-        good, every = (learning_rows or _learning_rows)(store, rig, mode, channel, measure,
-                                                        st, at, start_at)
-        # flagged files within the good ones' scatter come back (qcd.history)
-        rows = history.readmit(every, good, log=rule.log) if good else good
+        rows = (learning_rows or _rows_to_learn)(store, rig, mode, channel, measure, st, at,
+                                                 start_at, rule.log)
         reference = history.learn(rows, files=st.reference_files, days=st.reference_days,
                                   log=rule.log, min_spread=rule.min_spread,
                                   margin=st.reference_margin, rule=rule)
@@ -281,14 +282,30 @@ def _learning_rows(store: Store, rig: str, mode: str, channel: int, measure: str
                                    after=None if start_at is None else start_at - 1e-6,
                                    before=at, limit=limit)
     every = [(t, v) for t, v, _ in flagged]
-    if not any(g for _, _, g in flagged) and (start_at is None or
-                                               all(t >= start_at for t, _ in every)):
+    # oldest first (flagged_points), so the first row is the earliest
+    if not any([g for _, _, g in flagged]) and (start_at is None or not every
+                                                 or every[0][0] >= start_at):
         return every, every       # none flagged: the good rows are these (one query, not two)
     good = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
                                 limit=limit)
     if not good:
         return good, []
     return good, every
+
+
+def _readmitted(learning: tuple[list, list], log: bool) -> list[tuple[float, float]]:
+    """The rows a reference learns from, of ``_learning_rows``'s (good, every): the good ones,
+    and the flagged files within their scatter come back (qcd.history.readmit)."""
+    good, every = learning
+    return history.readmit(every, good, log=log) if good else good
+
+
+def _rows_to_learn(store: Store, rig: str, mode: str, channel: int, measure: str,
+                   st: RuleSettings, at: float, start_at: float | None, log: bool
+                   ) -> list[tuple[float, float]]:
+    """``_readmitted(_learning_rows(...), log)``: what one rule's reference learns from."""
+    return _readmitted(_learning_rows(store, rig, mode, channel, measure, st, at, start_at),
+                       log)
 
 
 def _charted(store: Store, rig: str, mode: str, channel: int, measure: str, rule: HistoryRule,

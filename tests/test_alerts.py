@@ -387,3 +387,42 @@ def test_a_hint_two_alerts_share_is_said_once_after_them():
     assert m.body.count("check grounding") == 1 and "For both" not in m.body
     (with_hint,) = [b for b in m.body.split("\n\n") if "check grounding" in b]
     assert with_hint.startswith("OPEN: noise_rms channel 0")
+
+
+def _asdict_reference(s: AlertState) -> dict:
+    # reference: the standard library's dataclasses.asdict, plus the documented machine/flap keys
+    from dataclasses import asdict
+    d = asdict(s)
+    d["machine"] = s.state
+    if s.flapping:
+        d["state"] = "open"
+    return d
+
+
+def test_state_dict_is_exactly_dataclasses_asdict_with_copied_lists():
+    # states from real lifecycles (open, flapping, muted episodes), compared key order included
+    seen = []
+    for seq, kw in (([True, True, True], {}), ([True, False, False, False] * 5,
+                                              {"open_after_files": 1}),
+                    ([True, True, False, False, False], {})):
+        states, _, _ = run(seq, **kw)
+        seen += [AlertState.from_dict(d) for d in states.values()]
+    seen.append(replace(seen[0], mutes=[3, 4], spent=[1], changes=[1, 0, 1]))
+    assert any(s.flapping for s in seen)
+    for s in seen:
+        d, ref = s.to_dict(), _asdict_reference(s)
+        assert d == ref and list(d) == list(ref)
+        for k in ("changes", "mutes", "spent"):     # copies: the dict never aliases the state
+            assert d[k] == getattr(s, k) and d[k] is not getattr(s, k)
+    # a list holding something else than ints goes through asdict itself
+    odd = replace(seen[0], changes=[[1], 2])
+    assert odd.to_dict() == _asdict_reference(odd)
+
+
+def test_chart_state_dict_is_dataclasses_asdict():
+    # reference: dataclasses.asdict
+    from dataclasses import asdict
+    from qcd.charts import ChartState
+    for c in (ChartState(), ChartState(1.5, -0.25, 7, 1e9, 1e9 + 60.0)):
+        assert c.to_dict() == asdict(c) and list(c.to_dict()) == list(asdict(c))
+        assert ChartState.from_dict(c.to_dict()) == c

@@ -484,3 +484,35 @@ def test_readmit_brings_back_flagged_files_within_the_scatter_but_not_a_fault():
     assert (30.5, 0.115) in rows and (31.5, 0.3) not in rows
     assert len(rows) == 31 and rows == sorted(rows)
     assert readmit(good, good, log=True) == good
+
+
+def test_learn_takes_the_first_rows_that_make_files_over_days_whatever_the_path():
+    """history.learn: the reference of the first usable rows (finite; positive on a log
+    scale) up to the one that makes ``files`` files over ``days`` days (the definition, written
+    out here), the same whether every row is usable or some are dropped, lists or tuples."""
+    from qcd.history import DAY_S, _widened, reference_of
+    rng = np.random.default_rng(5)
+
+    def definition(rows, files, days, log, margin):
+        usable = [(t, v) for t, v in rows if math.isfinite(v) and (not log or v > 0)]
+        for i, (t, _) in enumerate(usable):
+            if i + 1 >= files and t - usable[0][0] >= days * DAY_S:
+                return _widened(reference_of(usable[: i + 1], log=log), usable[: i + 1], margin)
+        return None
+    found = 0
+    for case in range(300):
+        n = int(rng.integers(0, 60))
+        t = np.sort(rng.uniform(0, 20 * DAY_S, n)) + 1.7e9
+        v = rng.lognormal(0, 0.3, n) * (1 if case % 3 else rng.choice([1, -1], n))
+        rows = [(float(a), float(b)) for a, b in zip(t, v)]
+        if case % 5 == 0 and rows:
+            rows[int(rng.integers(0, n))] = (rows[0][0], math.nan)
+        files, days, log = int(rng.integers(0, 30)), float(rng.uniform(0, 10)), bool(case % 2)
+        want = definition(rows, files, days, log, 1.0)
+        assert learn(rows, files=files, days=days, log=log, margin=1.0) == want
+        assert learn([list(r) for r in rows], files=files, days=days, log=log,
+                     margin=1.0) == want
+        clean = [r for r in rows if math.isfinite(r[1]) and (not log or r[1] > 0)]
+        assert learn(iter(clean), files=files, days=days, log=log, margin=1.0) == want
+        found += want is not None
+    assert 30 < found < 270          # both outcomes were checked many times

@@ -542,3 +542,48 @@ def test_hum_jump_takes_its_interval_on_the_power_of_a_sinusoid_in_white_noise(r
     # and one whose lower end sqrt(3.6 - 2 x 1.0) = 1.265 pA falls short is not
     f = _by_rule(judge(_fm(reading(3.6, 1.0)), "r", _history_from(past), rules, 0))["hum_jump"]
     assert not f.bad
+
+
+# --- the judge's plain-Python statistics against numpy (the reference), bit for bit -----------
+
+def _windows(seed: int = 7):
+    """History windows as the judge sees them: 1-60 finite values, normal, log-normal, rounded
+    (ties) and of any magnitude."""
+    rng = np.random.default_rng(seed)
+    for i in range(4000):
+        n = int(rng.integers(1, 61))
+        yield [float(v) for v in (
+            rng.normal(3.0, 1.0, n), rng.lognormal(0.0, 2.0, n), np.round(rng.normal(0, 5, n), 1),
+            rng.normal(0.0, 1.0, n) * 10.0 ** int(rng.integers(-15, 15)))[i % 4]]
+
+
+def test_baseline_is_numpy_median_and_mad_to_the_last_bit():
+    # reference: numpy.median (and scipy's normal-scaled MAD for the scale's definition)
+    from qcd.measures.noise import MAD_SCALE
+    for x in _windows():
+        a = np.asarray(x)
+        med = float(np.median(a))
+        scale = MAD_SCALE * float(np.median(np.abs(a - med)))
+        assert baseline(x) == (med, max(scale, 1e-300))
+        assert math.isclose(baseline(x)[1], max(median_abs_deviation(a, scale="normal"),
+                                                1e-300), rel_tol=1e-9)
+    # non-finite values go through numpy itself: nan propagates as numpy's median does
+    assert math.isnan(baseline([1.0, float("nan"), 2.0])[0])
+    for odd in ([1.0, math.inf, 2.0], [1e308, 1e308, -1e308, 5.0]):   # inf; a sum that overflows
+        a = np.asarray(odd)
+        med = float(np.median(a))
+        assert baseline(odd) == (med, max(MAD_SCALE * float(np.median(np.abs(a - med))), 1e-300))
+    with pytest.raises(ValueError):
+        baseline([])
+
+
+def test_normal_range_text_is_numpy_percentiles_and_median():
+    # reference: numpy.percentile (default linear method) and numpy.median, same format
+    from qcd.judge import _normal_range, _percentiles
+    for x in _windows(11):
+        lo, hi = np.percentile(x, [10, 90])
+        assert _percentiles(x, (10, 90)) == [lo, hi]
+        med = float(np.median(x))
+        if med > 0:
+            assert f"(median {med:.3g}, {len(x)} files)" in _normal_range(x, "")
+        assert f"normal {lo:.3g}-{hi:.3g}" in _normal_range(x, "")

@@ -273,6 +273,56 @@ def test_learning_rows_from_one_query_equal_the_two_queries(store):
     assert (T0 - 3.5 * DAY, 30.0) in every and (T0 - 3.5 * DAY, 30.0) not in good
 
 
+@pytest.mark.slow
+def test_judge_file_shares_learning_rows_without_changing_a_finding(store):
+    """judge_file reads a measure's learning rows once and readmits them once per scale for
+    all its rules; every finding (texts, verdicts and the charts to store) is what the judge
+    gives with each rule's chart input computed on its own from the store (the definition),
+    on a young rig with a flagged file, while learning and with a provisional reference."""
+    from qcd import pipeline
+    from qcd.config import RigConfig
+    from qcd.judge import judge
+    from qcd.ruleset import load_rules
+    rules = load_rules()
+    st = rules.settings
+    rig = RigConfig("rig-a", (Path("/data/rig-a"),))
+    rng = np.random.default_rng(3)
+    n, texts = 0, set()
+    for day in range(8, 0, -1):
+        for k in range(4):
+            at = T0 - day * DAY + k * 3600.0
+            fid = store.commit_file("rig-a", fmeasures(path=f"/d/y{n}.abf", sha=f"{n:064d}",
+                                                       noise=float(rng.lognormal(0.2, 0.1)),
+                                                       at=at), analysed_at=T0)
+            n += 1
+            if n == 9:      # one flagged file: readmit's other path
+                store.commit_file("rig-a", fmeasures(path="/d/hi.abf", sha="e" * 64, noise=9.0,
+                                                     at=at + 60.0), analysed_at=T0,
+                                  findings=[F(0, "noise_rms", "noise_max", True)])
+        if day not in (7, 2, 1):
+            continue
+        fm = fmeasures(path=f"/d/now{day}.abf", sha=f"{day:064x}", noise=1.3,
+                       at=T0 - day * DAY + 5 * 3600.0)
+        before = file_time(fm.recorded_at, fm.mtime, T0)
+
+        def hist(mode, channel, measure, *, clean_files=False):
+            return store.history("rig-a", mode, channel, measure, limit=st.history_files,
+                                 days=st.history_days, before=before, clean_files=clean_files)
+
+        def alone(mode, channel, measure, rule):
+            return pipeline.chart_input(store, "rig-a", mode, channel, measure, rule, st,
+                                        before, None, None, None)
+        got = pipeline.judge_file(fm, rig, store, rules, T0)
+        want = judge(fm, "rig-a", hist, rules, T0, alone, set())
+        assert got == want
+        assert [f.chart for f in got] == [f.chart for f in want]
+        assert any(f.chart is not None for f in got)
+        texts.update(f.limit_text for f in got if f.measure == "noise_rms" and f.kind == "drift")
+    # the young rig's phases were all judged: learning, then a provisional step chart
+    assert any("learning the reference" in t for t in texts)
+    assert any("provisional reference" in t for t in texts)
+
+
 def test_finding_without_channel_flags_the_measure_on_every_channel(store):
     fid = store.commit_file("rig-a", fmeasures(), analysed_at=T0,
                             findings=[F(None, "noise_rms", "noise_max", True, value=3.0,
@@ -281,6 +331,26 @@ def test_finding_without_channel_flags_the_measure_on_every_channel(store):
     (f,) = store.findings(fid)
     assert f["bad"] is True and f["value"] == 3.0 and f["hint"] == "check ground"
     assert f["rig"] == "rig-a" and f["channel"] is None
+
+
+def test_a_files_findings_are_stored_in_order_each_as_given(store):
+    """commit_file writes all of a file's findings in one statement: every row as the finding
+    gave it (channel None, value None, a name byte that is not UTF-8 escaped), in order."""
+    fs = [F(0, "noise_rms", "noise_max", True, value=3.0, unit="pA", limit_text="> 2 pA",
+            hint="check ground"),
+          F(None, "hum_rms", "hum_jump", False, kind="drift", value=None, limit_text="normal"),
+          F(1, "noise_rms", "noise_max", False, value=0.5, unit="mV", limit_text="caf\udce9")]
+    fid = store.commit_file("rig-a", fmeasures(), analysed_at=T0, findings=fs)
+    got = store.findings(fid)
+    assert [(r["channel"], r["measure"], r["rule"], r["kind"], r["bad"], r["value"], r["unit"])
+            for r in got] == [(f.channel, f.measure, f.rule, f.kind, f.bad, f.value, f.unit)
+                              for f in fs]
+    assert [r["limit_text"] for r in got[:2]] == ["> 2 pA", "normal"]
+    # a name byte that is not UTF-8 (Python's surrogateescape, PEP 383) shown escaped
+    assert got[2]["limit_text"] == "caf\\xe9"
+    fid2 = store.commit_file("rig-a", fmeasures(path="/d/none.abf", sha="b" * 64),
+                             analysed_at=T0, findings=[])
+    assert fid2 != fid and store.findings(fid2) == []
 
 
 def test_reference_spectrum_is_the_median_of_recent_unflagged_spectra(store):
