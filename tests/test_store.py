@@ -291,9 +291,9 @@ def test_judge_file_shares_learning_rows_without_changing_a_finding(store):
     for day in range(8, 0, -1):
         for k in range(4):
             at = T0 - day * DAY + k * 3600.0
-            fid = store.commit_file("rig-a", fmeasures(path=f"/d/y{n}.abf", sha=f"{n:064d}",
-                                                       noise=float(rng.lognormal(0.2, 0.1)),
-                                                       at=at), analysed_at=T0)
+            store.commit_file("rig-a", fmeasures(path=f"/d/y{n}.abf", sha=f"{n:064d}",
+                                                noise=float(rng.lognormal(0.2, 0.1)),
+                                                at=at), analysed_at=T0)
             n += 1
             if n == 9:      # one flagged file: readmit's other path
                 store.commit_file("rig-a", fmeasures(path="/d/hi.abf", sha="e" * 64, noise=9.0,

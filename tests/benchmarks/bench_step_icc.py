@@ -26,7 +26,6 @@ import time
 import numpy as np
 
 from qcd import history
-from qcd.charts import Reference
 from qcd.ruleset import load_rules
 from qcd.runlength import widen_for
 
