@@ -307,7 +307,38 @@ def advance(states: Mapping[str, AlertState | dict], findings: Iterable[Finding]
     if not batch:
         done = {e.state.key for e in events}
         events += _late(out, mutes, rig_bad, now, skip=done)
+        events += _riders(out, events, mutes, rig_bad, now)
     return out, _group(events, now, zones)
+
+
+# a reminder may come this share of its interval early when the rig gets a message anyway
+_RIDE_EARLY = 0.5
+
+
+def _riders(out: dict[str, AlertState], events: list[_Event], mutes: list[Mute],
+            rig_bad: set[str], now: float) -> list[_Event]:
+    """Reminders that ride along with a message the rig gets anyway: an open, announced alert
+    of that rig whose reminder is due or nearly (at least ``_RIDE_EARLY`` of ``remind_h``
+    since its last message) and which is not on its way back (no clear file since its last
+    bad one, ``clear_run`` 0), though this file was not bad for it (a reading that cannot
+    tell, or no finding). Without this, one fault seen by two measures sends a message a day
+    for each, at different hours; with it the rig's reminders come together, one message a
+    day."""
+    rigs = {e.state.rig for e in events}
+    done = {e.state.key for e in events}
+    riders = []
+    for s in sorted(out.values(), key=lambda x: x.key):
+        if s.rig not in rigs or s.key in done or s.state != "open" or not s.announced \
+                or s.flapping or s.last_sent_at is None:
+            continue
+        if now - s.last_sent_at < _RIDE_EARLY * s.remind_h * 3600.0 or s.clear_run:
+            continue
+        if _mute_reason(s, out, mutes, rig_bad, now):
+            continue
+        s.seq += 1
+        s.last_sent_at, s.muted = now, ""
+        riders.append(_Event("reminder", s, s.seq))
+    return riders
 
 
 def resolve(states: Mapping[str, AlertState | dict], keys: Iterable[str], now: float,

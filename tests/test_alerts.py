@@ -426,3 +426,50 @@ def test_chart_state_dict_is_dataclasses_asdict():
     for c in (ChartState(), ChartState(1.5, -0.25, 7, 1e9, 1e9 + 60.0)):
         assert c.to_dict() == asdict(c) and list(c.to_dict()) == list(asdict(c))
         assert ChartState.from_dict(c.to_dict()) == c
+
+
+def test_a_due_reminder_rides_along_with_the_rigs_other_message_of_the_day():
+    # one fault seen by two measures (common practice: a failing ground raises hum and noise).
+    # A file an hour; both alerts open on file 1. A day later file 25 is bad for noise, but
+    # its hum reading cannot tell (neither bad nor clear); file 26 is bad for both. The hum
+    # reminder, due since hour 25, goes with the noise reminder in the rig's one message of
+    # file 25, not in a second message an hour later.
+    def noise(bad=True):
+        return F(bad, rule="noise_jump", measure="noise_rms")
+
+    def hum(bad=True, clear=False):
+        return F(bad, rule="hum_jump", measure="hum_rms", clear=clear)
+    seq = [[noise(), hum()], [noise(), hum()]] + [[]] * 23 + [[noise(), hum(False)],
+                                                             [noise(), hum()]]
+    states, _, per_file = run(seq, dt=H)
+    assert len(per_file[1]) == 1 and "2 new alerts" in per_file[1][0].title
+    (m,) = per_file[25]
+    assert "noise_rms" in m.body and "hum_rms" in m.body and "2 still open" in m.title
+    assert per_file[26] == []                     # the hum reminder was not sent twice
+    # an alert on its way back (a clear file since its last bad one) does not ride along: a
+    # day on, noise is bad again, the hum reads clear
+    quiet = [[]] * 23 + [[noise(), hum(False, clear=True)]] * 2
+    _, msgs, _ = run(quiet, states=states, t0=27 * H, dt=H)
+    (m,) = msgs
+    assert "noise_rms" in m.body and "hum_rms" not in m.body
+
+
+def test_reminders_of_one_rig_due_hours_apart_come_together():
+    # hum opened at 09:00, noise at 15:00 (two files, an hour apart each): without riding
+    # along the rig gets two reminders a day, at 09:00 and 15:00. A reminder comes up to half
+    # its interval early with the rig's other message, so from the next day on: one a day.
+    def noise(bad=True):
+        return F(bad, rule="noise_jump", measure="noise_rms")
+
+    def hum(bad=True):
+        return F(bad, rule="hum_jump", measure="hum_rms")
+    seq = [[hum(), noise(False)], [hum(), noise(False)]] + [[]] * 4 + \
+        [[hum(), noise()], [hum(), noise()]]          # hours 0, 1, then 6, 7
+    day = [[]] * 16 + [[hum(), noise()]] + [[]] * 5 + [[hum(), noise()]] + [[]]   # 24 files
+    states, _, per_file = run(seq + day * 3, t0=9 * H, dt=H)
+    sent = [(i, m) for i, ms in enumerate(per_file) for m in ms]
+    assert [i for i, _ in sent][:2] == [1, 7]         # the two openings
+    later = [(i, m) for i, m in sent if i > 7]
+    assert len(later) == 3, [i for i, _ in later]     # one a day for three days
+    for _, m in later:
+        assert "hum_rms" in m.body and "noise_rms" in m.body
