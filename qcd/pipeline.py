@@ -178,17 +178,23 @@ def in_rig_zone(fm: FileMeasures, rig: RigConfig) -> FileMeasures:
     return fm
 
 
-def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float
-               ) -> list[Finding]:
+def judge_file(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: float,
+               states: dict[str, dict] | None = None) -> list[Finding]:
     """The judge with the rig's history bound to the store (files recorded before this one)
-    and the rig's open history alerts (one alert per measure and side: qcd.judge.judge)."""
+    and the rig's open history alerts (one alert per measure and side: qcd.judge.judge).
+    ``states``: the rig's alert states as stored (``Store.alert_states``) when the caller
+    has read them already."""
     st = rules.settings
     name, before = rig.name, file_time(fm.recorded_at, fm.mtime, now)
     stored = store.charts(name, fm.mode) if fm.status == "ok" else {}
-    held = {r.name for r in rules.history}
-    open_alerts = {(a["mode"], a["channel"], a["measure"], a["rule"])
-                   for a in store.open_alerts(name) if a["rule"] in held} \
-        if fm.status == "ok" else set()
+    open_alerts: set[tuple[str, int, str, str]] = set()
+    if fm.status == "ok":
+        held = {r.name for r in rules.history}
+        if states is None:
+            states = store.alert_states(name)
+        open_alerts = {(a["mode"], a["channel"], a["measure"], a["rule"])
+                       for a in states.values()
+                       if a["rule"] in held and a["state"] not in ("ok", "suspect")}
     starts: dict[tuple[int, str], float] = {}
     for (_, ch, measure, _), row in stored.items():        # a re-learn: history starts again
         if row["start_at"] is not None:
@@ -467,8 +473,8 @@ def _commit(fm: FileMeasures, rig: RigConfig, store: Store, rules: Rules, now: f
                                  f"not measured again")
         return fm
     try:
-        findings = judge_file(fm, rig, store, rules, now)
         before = store.alert_states(name)
+        findings = judge_file(fm, rig, store, rules, now, before)
         states, messages = alerts.advance(_superseded_episodes(store, name, fm, before),
                                           findings, store.active_mutes(now), now,
                                           rules.settings, batch=batch,
