@@ -11,7 +11,7 @@ starts a chart again (after a resolve or a re-learn). Imports numpy and qcd.rule
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, replace
+from dataclasses import asdict, dataclass, fields, replace
 from datetime import datetime, timezone
 from typing import Any, Iterable, Mapping
 
@@ -72,14 +72,16 @@ class ChartState:
 
     def to_dict(self) -> dict[str, Any]:
         """``dataclasses.asdict``, made directly (every field is a number or None)."""
-        return {"up": self.up, "down": self.down, "n": self.n, "since": self.since,
-                "last_at": self.last_at}
+        return {name: getattr(self, name) for name in _CHART_STATE_FIELDS}
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any] | None) -> "ChartState":
         if not d:
             return cls()
         return cls(**{k: d[k] for k in ("up", "down", "n", "since", "last_at") if k in d})
+
+
+_CHART_STATE_FIELDS = tuple(f.name for f in fields(ChartState))
 
 
 def inflation(rule: HistoryRule, ref: Reference) -> float:
