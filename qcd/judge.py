@@ -78,9 +78,12 @@ class Finding:
 # --- statistics ----------------------------------------------------------------------------------
 
 def _median(x: Sequence[float]) -> float:
-    """np.median of a short list of finite floats, to the last bit, without numpy's overhead
-    (a history window is some 30 values; numpy's per-call cost is most of the work): the
-    middle value, or the mean of the two middle ones, (a + b) / 2, as numpy computes it."""
+    """np.median of a short list, to the last bit, without numpy's overhead (a history window
+    is some 30 values; numpy's per-call cost is most of the work): the middle value, or the
+    mean of the two middle ones, (a + b) / 2, as numpy computes it. Lists with nan or inf
+    (or none) go to numpy, for its own answer."""
+    if not _finite(x):
+        return float(np.median(np.asarray(x, dtype=float)))
     s = sorted(x)
     n = len(s)
     h = n // 2
@@ -94,8 +97,11 @@ def _finite(x: Sequence[float]) -> bool:
 
 
 def _percentiles(x: Sequence[float], qs: Sequence[float]) -> list[float]:
-    """np.percentile(x, qs) (its default 'linear' method) of finite floats, to the last bit:
-    virtual index (n - 1) q / 100 and numpy's two-sided interpolation (``_lerp``)."""
+    """np.percentile(x, qs) (its default 'linear' method), to the last bit: virtual index
+    (n - 1) q / 100 and numpy's two-sided interpolation (``_lerp``); lists with nan or inf go
+    to numpy."""
+    if not _finite(x):
+        return [float(v) for v in np.percentile(np.asarray(x, dtype=float), qs)]
     s = sorted(x)
     n = len(s)
     out = []
@@ -117,13 +123,8 @@ def baseline(values: Iterable[float], *, min_spread: float = 0.0) -> tuple[float
     x = [float(v) for v in values]
     if not x:
         raise ValueError("baseline of no values")
-    if _finite(x):          # the usual case: plain Python, the same bits as numpy
-        med = _median(x)
-        scale = MAD_SCALE * _median([abs(v - med) for v in x])
-    else:                   # nan and inf as numpy treats them
-        a = np.asarray(x, dtype=float)
-        med = float(np.median(a))
-        scale = MAD_SCALE * float(np.median(np.abs(a - med)))
+    med = _median(x)
+    scale = MAD_SCALE * _median([abs(v - med) for v in x])
     return med, max(scale, float(min_spread), 1e-300)
 
 
@@ -267,7 +268,7 @@ def _ratio(value: float, past: list[float]) -> tuple[float, bool] | None:
     past = [v for v in past if v > 0]
     if value <= 0 or len(past) < 3:
         return None
-    med = float(np.median(past))
+    med = _median(past)
     z = robust_z(math.log(value), [math.log(v) for v in past], min_spread=0.05)
     return value / med, bool(z > _GROWN_Z and value >= _GROWN_RATIO * med)
 
@@ -321,7 +322,7 @@ def noise_hints(ch: ChannelMeasures, mode: str, history: History, rules: Rules
     up = [r for r, g in spectral.values() if g]
     common = 1.0
     if len(spectral) >= 3 and len(up) >= max(2, len(spectral) - 1):
-        common = float(np.median(up))
+        common = _median(up)
         grown[_BROAD] = common
     for name, (r, g) in bands.items():
         if g and r / common >= _GROWN_RATIO:
@@ -380,7 +381,7 @@ def _precise(history: History, mode: str, ch: ChannelMeasures, name: str, limit:
         se = {float(t): float(v) for t, v in history(mode, ch.index, f"{name}_se")}
         errs = [se[float(r[0])] for r in rows if float(r[0]) in se]
         if errs:
-            cap = _IMPRECISE * (_median(errs) if _finite(errs) else float(np.median(errs)))
+            cap = _IMPRECISE * _median(errs)
             rows = [r for r in rows if se.get(float(r[0]), 0.0) < cap or cap <= 0]
             sign = {"up": 1.0, "down": -1.0}.get(side, 0.0)
             rows = [(r[0], float(r[1]) + sign * _SE_SIGMAS * se.get(float(r[0]), 0.0))
@@ -499,8 +500,7 @@ def _chart(rule: HistoryRule, value: float, ci: _charts.ChartInput, unit: str, k
     else:
         stat_text = f"CUSUM {stat:.1f} sigma, limit {lim:.1f}"
     ratio = (f"{value / med:.2g}x its reference median" if ref.log and med > 0 else
-             f"{'+' if value >= med else '-'}{readable(abs(value - med), unit)} from its "
-             f"reference median")
+             f"{_offset(value, med, unit)} from its reference median")
     text = f"{ratio} of {_charts.span_text(ref)} / {stat_text}; {where}"
     if ci.provisional:
         text += (f"; provisional reference, limit widened {ref.widen:.2g}x while "
@@ -541,15 +541,16 @@ def _interval(evaluate: Callable[[float], tuple | None], m: Measure, se: float,
     return (bad, clear) + tuple(point[2:])
 
 
+def _offset(value: float, med: float, unit: str) -> str:
+    """'+1.2 uV': a value's distance from a median, signed, in the unit that reads best."""
+    return f"{'+' if value >= med else '-'}{readable(abs(value - med), unit)}"
+
+
 def _normal_range(past: list[float], unit: str) -> str:
     """'normal 2.93-3.86 uV (median 3.25, 24 files)': in the unit that reads best for the
     median (the stored unit of a field channel is mV; its hum is a few uV), as the report."""
-    if _finite(past):
-        lo, hi = _percentiles(past, (10, 90))
-        med = _median(past)
-    else:
-        lo, hi = np.percentile(past, [10, 90])
-        med = float(np.median(past))
+    lo, hi = _percentiles(past, (10, 90))
+    med = _median(past)
     shown, f = readable_unit(med, unit)
     return (f"normal {lo * f:.3g}-{hi * f:.3g} {shown} (median {med * f:.3g}, "
             f"{len(past)} files)").replace("  ", " ")
@@ -766,9 +767,9 @@ def judge(fm: FileMeasures, rig_name: str, history: History, rules: Rules, now: 
                     text = stat_text
                 else:
                     text = f"{_normal_range(past, m.unit)}; {stat_text}"
-                    med = float(np.median(past))
+                    med = _median(past)
                     headline = (f"{value / med:.2g}x its normal" if med > 0 and value > 0 else
-                                f"{value - med:+.3g} {m.unit} from its normal")
+                                f"{_offset(value, med, m.unit)} from its normal")
                     if learning:
                         text += f"; learning ({len(past)} of {st.learning_files} files)"
                 out.append(Finding(
