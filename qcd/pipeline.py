@@ -10,7 +10,6 @@ qcd.notify, qcd.errors.
 """
 from __future__ import annotations
 
-import importlib
 import logging
 import math
 import os
@@ -21,40 +20,18 @@ from typing import TYPE_CHECKING, Any, Callable, Iterable, Iterator
 
 from qcd.analyze import analyze_path
 from qcd.errors import StoreError, printable
+from qcd.lazy import Later
 from qcd.results import ChannelMeasures, FileMeasures, file_time
 from qcd.workers import imap
 from qcd.zones import localize
 
 
-class _Later:
-    """A module (or one of its names) imported when first called or looked into: measuring
-    alone (``qcd scan``, the workers) never needs judging, charts or alerts, and a one-file
-    scan's start-up counts (DEVELOPERS.md)."""
-
-    def __init__(self, module: str, name: str | None = None) -> None:
-        self._where = (module, name)
-        self._got: Any = None
-
-    def _get(self) -> Any:
-        if self._got is None:
-            module, name = self._where
-            m = importlib.import_module(module)
-            self._got = m if name is None else getattr(m, name)
-        return self._got
-
-    def __getattr__(self, attr: str) -> Any:
-        return getattr(self._get(), attr)
-
-    def __call__(self, *args: Any, **kwargs: Any) -> Any:
-        return self._get()(*args, **kwargs)
-
-
-alerts, history = _Later("qcd.alerts"), _Later("qcd.history")
-hashlib = _Later("hashlib")           # the digest: only when files are stored
-ChartInput, ChartState, Reference = (_Later("qcd.charts", n) for n in
+alerts, history = Later("qcd.alerts"), Later("qcd.history")
+hashlib = Later("hashlib")           # the digest: only when files are stored
+ChartInput, ChartState, Reference = (Later("qcd.charts", n) for n in
                                      ("ChartInput", "ChartState", "Reference"))
-replay, reset = _Later("qcd.charts", "replay"), _Later("qcd.charts", "reset")
-Finding, judge = _Later("qcd.judge", "Finding"), _Later("qcd.judge", "judge")
+replay, reset = Later("qcd.charts", "replay"), Later("qcd.charts", "reset")
+Finding, judge = Later("qcd.judge", "Finding"), Later("qcd.judge", "judge")
 
 if TYPE_CHECKING:
     from qcd.config import RigConfig

@@ -11,7 +11,6 @@ function's business (``pipeline.measure`` never raises). Imports nothing from qc
 """
 from __future__ import annotations
 
-import importlib
 import logging
 import os
 import signal
@@ -21,20 +20,10 @@ import time
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Iterator
 
+from qcd.lazy import Later
 
-class _OnFirstUse:
-    """A standard module imported when first looked into: ``imap`` with one worker (a one-file
-    ``qcd scan``) runs in this process and never needs the pool's modules."""
-
-    def __init__(self, name: str) -> None:
-        self._name = name
-
-    def __getattr__(self, attr: str) -> Any:
-        return getattr(importlib.import_module(self._name), attr)
-
-
-cf = _OnFirstUse("concurrent.futures")
-multiprocessing = _OnFirstUse("multiprocessing")
+cf = Later("concurrent.futures")   # imap with one worker never needs the pool's modules
+multiprocessing = Later("multiprocessing")
 
 __all__ = ["Jobs", "imap", "default_workers", "pid_alive", "DIED_TWICE"]
 

@@ -26,7 +26,7 @@ PACKAGE = ROOT / "qcd"
 PLUGINS = {"recording": ("nwb", "neoread")}
 
 LAYERS = (
-    "errors", "units", "zones", "measures",
+    "errors", "lazy", "units", "zones", "measures",
     "measures.noise", "measures.drift", "measures.spectrum", "measures.transient",
     "measures.mains", "measures.humfit", "measures.zoom",
     "measures.steps", "measures.wholecell", "measures.testpulse",
