@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 
 from qcd import units
-from qcd.blocks import KEEP_BYTES, MAX_HUM_DF, Blocks, put, spectral
+from qcd.blocks import MAX_HUM_DF, Blocks, put, spectral
 from qcd.errors import RecordingError
 from qcd.measures import drift, humfit, zoom
 from qcd.measures import noise as nz
@@ -69,8 +69,7 @@ class _Run:
                                           (ch.rails[1] - offset) / gain)))
             single = rec.n_samples * len(rec.channels) >= _SINGLE_MIN_SAMPLES
             acc = Blocks(L, fs, gain * self.factor, offset * self.factor, raw_rails,
-                          keep_bytes=KEEP_BYTES // len(rec.channels), single=single) \
-                if L >= _MIN_BLOCK else None
+                          single=single, reread=self._reread) if L >= _MIN_BLOCK else None
             acc_s = acc
             self.L = L
         else:
@@ -93,6 +92,18 @@ class _Run:
         self.acc, self.acc_s = acc, acc_s
         self._left: np.ndarray | None = None
         self._done = 0
+
+    def _reread(self, starts: np.ndarray) -> np.ndarray:
+        """Raw blocks of a gap-free channel that begin at ``starts``, read again from the file
+        (the event blocks the PSD leaves out)."""
+        L = self.L
+        rows = [np.concatenate(list(self.rec.raw_chunks(self.c, None, size=L, start=int(s),
+                                                        stop=int(s) + L)))
+                for s in starts]
+        if any(len(r) != L for r in rows):
+            raise RecordingError(self.rec.path, "unreadable", "a block could not be read "
+                                 "again: the file changed while being read")
+        return np.stack(rows)
 
     def feed(self, x: np.ndarray) -> None:
         """The next raw samples of a gap-free channel (converter counts or stored floats);

@@ -7,6 +7,7 @@ Imports qcd.measures, qcd.results, qcd.units.
 from __future__ import annotations
 
 import math
+from typing import Callable
 
 import numpy as np
 
@@ -20,8 +21,8 @@ __all__ = ["Blocks", "put", "spectral", "MAX_HUM_DF", "KEEP_BYTES"]
 
 MAX_HUM_DF = 2.0          # 50 and 60 Hz families need bins of at most 2 Hz to stay apart
 _MEDIAN_SAMPLES = 512     # block medians from every k-th sample, k = L // 512 (speed)
-KEEP_BYTES = 40_000_000   # loudest block spectra kept per file (events taken out of the PSD),
-                          # shared by its channels so that many channels stay in bounded memory
+KEEP_BYTES = 40_000_000   # loudest block spectra kept (events taken out of the PSD) where
+                          # they cannot be read again (episodic windows)
 
 
 class Blocks:
@@ -29,14 +30,20 @@ class Blocks:
 
     Blocks arrive in any linear unit (raw converter counts on the gap-free path); ``scale`` and
     ``offset`` turn results into SI. ``rails`` (same unit as the blocks) count clipped samples.
+    ``reread(starts)``: the raw blocks that begin at these samples, read again from the file
+    (gap-free); given, no block spectra are kept while streaming, and the event blocks' spectra
+    are computed again from their samples when the PSD leaves them out.
     """
 
     def __init__(self, L: int, fs: float, scale: float = 1.0, offset: float = 0.0,
                  rails: tuple[float, float] | None = None, *,
-                 keep_bytes: int = KEEP_BYTES, single: bool = False) -> None:
+                 keep_bytes: int = KEEP_BYTES, single: bool = False,
+                 reread: Callable[[np.ndarray], np.ndarray] | None = None) -> None:
         self.L, self.fs = L, fs
         self.scale, self.offset, self.rails = scale, offset, rails
-        self.welch = sp.WelchAccumulator(L, fs, keep_bytes=keep_bytes)
+        self.reread = reread
+        self._starts: list[np.ndarray] = []      # each block's first sample (with reread)
+        self.welch = sp.WelchAccumulator(L, fs, keep_bytes=0 if reread else keep_bytes)
         self.fft = sp.BlockFFT(L, single=single)   # single: integer blocks in float32
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
@@ -70,13 +77,9 @@ class Blocks:
                 blocks, t0, starts = blocks[finite], t0[finite], starts[finite]
                 if not len(blocks):
                     return
-        sub = blocks[:, ::self._median_step]
-        h = sub.shape[1] // 2
-        if sub.shape[1] % 2:
-            med = np.partition(sub, h, axis=1)[:, h].astype(float)   # a copy, no view kept
-        else:
-            part = np.partition(sub, (h - 1, h), axis=1)
-            med = 0.5 * (part[:, h - 1].astype(float) + part[:, h])
+        if self.reread is not None:
+            self._starts.append(np.asarray(starts, dtype=np.int64))
+        med = self._medians(blocks)
         # spectra in groups of rows small enough (~2 MB) to stay in cache across the passes
         g = max(1, (1 << 21) // ((4 if self.fft.single else 8) * self.L))
         for a in range(0, blocks.shape[0], g):
@@ -94,6 +97,23 @@ class Blocks:
                 self.parts[k].append(v)
         for k, v in (("median", med), ("t", t0)):
             self.parts[k].append(v)
+
+    def _medians(self, blocks: np.ndarray) -> np.ndarray:
+        """Each row's median from every k-th sample (the block medians; on the float32 path
+        also the offset taken off before the transform)."""
+        sub = blocks[:, ::self._median_step]
+        h = sub.shape[1] // 2
+        if sub.shape[1] % 2:
+            return np.partition(sub, h, axis=1)[:, h].astype(float)   # a copy, no view kept
+        part = np.partition(sub, (h - 1, h), axis=1)
+        return 0.5 * (part[:, h - 1].astype(float) + part[:, h])
+
+    def _spectra(self, idx: np.ndarray) -> np.ndarray:
+        """The rfft rows of blocks ``idx`` (Welch order) from their samples read again: the
+        same transform ``add`` made of them."""
+        rows = self.reread(np.concatenate(self._starts)[idx])
+        X, _, _ = self.fft(rows, self._medians(rows))
+        return X.copy()
 
     def _integer_rows(self, rows: np.ndarray, slope: np.ndarray, pp: np.ndarray,
                       dmx: np.ndarray, dmn: np.ndarray) -> None:
@@ -128,7 +148,7 @@ class Blocks:
         return out
 
     def psd(self, exclude: frozenset[int]) -> tuple[np.ndarray, int]:
-        P, n = self.welch.psd(exclude)
+        P, n = self.welch.psd(exclude, self._spectra if self.reread is not None else None)
         if self.lines is not None:
             self.lines.exclude(exclude)
         return P * self.scale ** 2, n

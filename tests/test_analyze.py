@@ -512,3 +512,48 @@ def test_a_line_in_every_window_is_not_taken_for_samples_that_do_not_change(
     window_sd = float(np.std(pyabf.ABF(str(path)).data[0][:L]))
     assert window_sd > 0
     assert ch.measures["noise_rms"].value < 1e-4 * window_sd
+
+
+@pytest.mark.parametrize("single", [False, True])
+def test_event_blocks_read_again_leave_the_psd_of_welch_without_them(single):
+    # gap-free blocks keep no spectra while streaming: the PSD takes the event blocks out by
+    # transforming their samples again (Blocks.reread). Reference: scipy.signal.welch (Hann,
+    # 1 s segments, no overlap, linear detrend) of the blocks without events. 25 events in 60
+    # blocks, more than the 16 loudest spectra a channel of a 16-channel file used to keep
+    import scipy.signal as ss
+
+    from qcd.blocks import Blocks
+    from qcd.measures import noise as nz
+    fs, L, n = 2000.0, 2000, 60
+    rng = np.random.default_rng(31)
+    x = np.rint(rng.normal(300, 40, (n, L))).astype(np.int16)
+    events = sorted(int(i) for i in rng.choice(n, 25, replace=False))
+    x[events] += np.rint(400 * np.sin(np.linspace(0, 50, L))).astype(np.int16)
+    raw = x.ravel()
+    asked: list[int] = []
+
+    def reread(starts):
+        asked.extend(int(s) for s in starts)
+        return np.stack([raw[s:s + L] for s in starts])
+
+    acc = Blocks(L, fs, reread=reread, single=single)
+    for part in np.array_split(np.arange(n), [7, 30]):
+        acc.add(x[part], (part * L + L / 2) / fs)
+    found = nz.event_blocks(np.concatenate(acc.parts["sd"]))
+    assert list(np.flatnonzero(found)) == events
+    P, k = acc.psd(frozenset(events))
+    _, Pw = ss.welch(np.delete(x, events, axis=0).astype(float).ravel(), fs, window="hann",
+                     nperseg=L, noverlap=0, detrend="linear")
+    assert k == n - 25 and acc.welch.exact and asked == [e * L for e in events]
+    if not single:
+        np.testing.assert_allclose(P, Pw, rtol=1e-9, atol=1e-9 * Pw.max())
+        return
+    # float32 transforms: the PSD with the event spectra kept while streaming (the same
+    # transform of the same samples), up to the order of the float64 sums; both differ from
+    # float64 Welch by the float32 rounding of the event blocks' power (about 1e-7 of it; the
+    # events are 100x the noise)
+    kept = Blocks(L, fs, single=True)
+    for part in np.array_split(np.arange(n), [7, 30]):
+        kept.add(x[part], (part * L + L / 2) / fs)
+    np.testing.assert_allclose(P, kept.psd(frozenset(events))[0], rtol=1e-10)
+    np.testing.assert_allclose(P, Pw, rtol=1e-2)

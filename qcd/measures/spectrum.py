@@ -10,6 +10,7 @@ from __future__ import annotations
 import heapq
 import math
 import sys
+from typing import Callable
 
 import numpy as np
 
@@ -246,6 +247,9 @@ class WelchAccumulator:
     X_{k+1})|^2; derived). So a block costs three fused multiply-add passes, not a second
     FFT or windowed copy. The loudest ``keep`` blocks (by ``rms``) are kept so that event blocks
     can be taken out exactly at the end (``psd(exclude)``; ``exact`` says whether all were).
+    ``keep_bytes=0`` keeps none: then ``psd`` is given the excluded blocks' spectra again by a
+    caller that can read them back (a gap-free file), which saves copying the loudest blocks
+    while they stream past.
     """
 
     def __init__(self, n: int, fs: float, keep_bytes: int = 40_000_000) -> None:
@@ -257,7 +261,8 @@ class WelchAccumulator:
         self.e0 = 0.0
         self.eN = 0.0
         self.count = 0
-        self.keep = int(min(4096, max(16, keep_bytes // (16 * max(m, 1)))))
+        self.keep = (int(min(4096, max(16, keep_bytes // (16 * max(m, 1)))))
+                     if keep_bytes > 0 else 0)
         self._heap: list[tuple[float, int, int]] = []      # (rms, block index, slot)
         self._rows: np.ndarray | None = None               # kept spectra, one slot each
         self.exact = True
@@ -276,6 +281,9 @@ class WelchAccumulator:
         e0, eN = _hann_edges(X, self.n)
         self.e0 += float(e0.sum())
         self.eN += float(eN.sum())
+        if not self.keep:
+            self.count += X.shape[0]
+            return
         if self._rows is None:             # kept as transformed (complex64 on the single
             self._rows = np.empty((self.keep, self.m), dtype=X.dtype)    # path: no widening)
         elif self._rows.dtype != X.dtype:
@@ -307,16 +315,29 @@ class WelchAccumulator:
         P[0], P[-1] = self.e0, self.eN
         return P * (_one_sided_weights(self.n) / (self.fs * _hann_s2(self.n)))
 
-    def psd(self, exclude: frozenset[int] | set[int] = frozenset()) -> tuple[np.ndarray, int]:
-        """(mean periodogram without the excluded blocks, number of blocks averaged)."""
+    def psd(self, exclude: frozenset[int] | set[int] = frozenset(),
+            spectra: Callable[[np.ndarray], np.ndarray] | None = None
+            ) -> tuple[np.ndarray, int]:
+        """(mean periodogram without the excluded blocks, number of blocks averaged).
+
+        ``spectra(indices)``: the rfft rows of those blocks (as ``add`` got them), asked for
+        the excluded blocks that were not kept, at most 64 at a time."""
         total = self._total()
         n = self.count
         kept = {idx: self._rows[slot] for _, idx, slot in self._heap}
-        self.exact = all(i in kept for i in exclude)
-        for i in exclude:
+        gone = sorted(i for i in exclude if 0 <= i < self.count)
+        missing = [i for i in gone if i not in kept]
+        self.exact = not missing or spectra is not None
+        for i in gone:
             if i in kept:
                 total -= hann_psd(kept[i][None, :].astype(complex), self.n, self.fs)[0]
                 n -= 1
+        if spectra is not None:
+            for a in range(0, len(missing), 64):
+                part = np.asarray(missing[a:a + 64], dtype=np.int64)
+                X = np.asarray(spectra(part)).astype(complex)
+                total -= hann_psd(X, self.n, self.fs).sum(axis=0)
+                n -= len(part)
         if n <= 0:
             return np.maximum(self._total() / max(self.count, 1), 0.0), self.count
         return np.maximum(total / n, 0.0), n
