@@ -241,11 +241,11 @@ def _gap_free_pass(rec: Any, runs: list[_Run], chunk: int) -> None:
     # (8 MB of 16-bit samples), so each channel still gets many blocks per call
     per = max(L, min(chunk, 4 * chunk // len(runs)) // L * L)
     if len(runs) == 1:
-        for x in rec.raw_chunks(0, None, size=per):
+        for x in rec.raw_chunks(0, None, size=per, reuse=True):
             runs[0].feed(x)
         return
     cols: np.ndarray | None = None
-    for x in rec.raw_chunks_all(None, size=per):
+    for x in rec.raw_chunks_all(None, size=per, reuse=True):
         cols = _by_channel(x, cols)
         for c, r in enumerate(runs):
             r.feed(cols[c, :len(x)])

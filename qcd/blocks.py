@@ -86,7 +86,10 @@ class Blocks:
             X, mean, slope = self.fft(blocks[a:a + g], med[a:a + g])
             if self.humfit is not None:
                 self.humfit.add(self.fft.detrended)
-            pp, dmx, dmn = nz.peak_to_peak(self.fft.detrended)     # still in cache
+            # the detrended rows' range (methods §3.3), taken as each row was detrended
+            dmx = self.fft.top.astype(float)
+            dmn = self.fft.bottom.astype(float)
+            pp = dmx - dmn
             if integer:
                 self._integer_rows(blocks[a:a + g], slope, pp, dmx, dmn)
             sd, sd_band = nz.parseval_sd(X, self.L, self.fs)

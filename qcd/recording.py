@@ -183,6 +183,7 @@ class _MemmapSource:
 
     def __init__(self, lay: _abf.Layout) -> None:
         self._lay = lay
+        self._buf: np.ndarray | None = None
 
     def read(self, a: int, b: int, channel: int | None) -> np.ndarray:
         lay = self._lay
@@ -192,9 +193,39 @@ class _MemmapSource:
             x = np.fromfile(lay.path, dtype=lay.dtype, count=(b - a) * k,
                             offset=lay.data_offset + a * row)
         except (OSError, ValueError) as err:
-            raise RecordingError(lay.path, "unreadable", f"the samples could not be "
-                                 f"read ({err}); the file changed or vanished while "
-                                 f"being read") from err
+            raise self._unreadable(err) from err
+        return self._shaped(x, a, b, channel)
+
+    def read_reused(self, a: int, b: int, channel: int | None) -> np.ndarray:
+        """``read`` into one buffer kept between calls (valid until the next call): a fresh
+        array per chunk costs a page fault per 4 kB on first touch, more than the read."""
+        lay = self._lay
+        k = lay.n_channels
+        count = (b - a) * k
+        if self._buf is None or len(self._buf) < count:
+            self._buf = np.empty(count, dtype=lay.dtype)
+        x = self._buf[:count]
+        raw = memoryview(x.view(np.uint8))
+        got = 0
+        try:
+            with open(lay.path, "rb", buffering=0) as f:
+                f.seek(lay.data_offset + a * k * lay.dtype.itemsize)
+                while got < len(raw):
+                    n = f.readinto(raw[got:])
+                    if not n:
+                        break
+                    got += n
+        except (OSError, ValueError) as err:
+            raise self._unreadable(err) from err
+        return self._shaped(x[:got // lay.dtype.itemsize], a, b, channel)
+
+    def _unreadable(self, err: Exception) -> RecordingError:
+        return RecordingError(self._lay.path, "unreadable", f"the samples could not be read "
+                              f"({err}); the file changed or vanished while being read")
+
+    def _shaped(self, x: np.ndarray, a: int, b: int, channel: int | None) -> np.ndarray:
+        lay = self._lay
+        k = lay.n_channels
         if x.size != (b - a) * k:
             raise RecordingError(lay.path, "unreadable", f"the samples could not be read "
                                  f"({x.size} of {(b - a) * k} values at sample {a}); the "
@@ -276,27 +307,34 @@ class Recording:
         start = min(max(start, 0), stop)
         return base + start, base + stop
 
-    def _reads(self, channel: int | None, a: int, b: int, size: int) -> Iterator[np.ndarray]:
+    def _reads(self, channel: int | None, a: int, b: int, size: int,
+               reuse: bool = False) -> Iterator[np.ndarray]:
         if size < 1:
             raise ValueError(f"chunk size must be at least 1, got {size}")
+        read = (getattr(self._src, "read_reused", None) if reuse else None) or self._src.read
         for s in range(a, b, size):
-            yield self._src.read(s, min(s + size, b), channel)
+            yield read(s, min(s + size, b), channel)
 
     def raw_chunks(self, channel: int, sweep: int | None = None, size: int = _DEFAULT_CHUNK,
-                   *, start: int = 0, stop: int | None = None) -> Iterator[np.ndarray]:
-        """Unscaled samples (the stored type, e.g. int16 or float32) in chunks of at most ``size``."""
+                   *, start: int = 0, stop: int | None = None,
+                   reuse: bool = False) -> Iterator[np.ndarray]:
+        """Unscaled samples (the stored type, e.g. int16 or float32) in chunks of at most
+        ``size``. ``reuse``: the reader may return each chunk in the buffer of the one before
+        (valid until the next chunk is asked for; saves page faults on a long file)."""
         a, b = self._span(channel, sweep, start, stop)
-        yield from self._reads(channel, a, b, size)
+        yield from self._reads(channel, a, b, size, reuse)
 
     def raw_chunks_all(self, sweep: int | None = None, size: int = _DEFAULT_CHUNK,
-                       *, start: int = 0, stop: int | None = None) -> Iterator[np.ndarray]:
+                       *, start: int = 0, stop: int | None = None,
+                       reuse: bool = False) -> Iterator[np.ndarray]:
         """Unscaled samples of every channel as (n, n_channels) arrays, n at most ``size``.
 
         Column k equals ``raw_chunks(k, ...)`` over the same span; one read serves all
-        channels (one memmap window of interleaved samples, one HDF5 hyperslab).
+        channels (one memmap window of interleaved samples, one HDF5 hyperslab). ``reuse`` as
+        for ``raw_chunks``.
         """
         a, b = self._span(None, sweep, start, stop)
-        yield from self._reads(None, a, b, size)
+        yield from self._reads(None, a, b, size, reuse)
 
     def chunks(self, channel: int, sweep: int | None = None, size: int = _DEFAULT_CHUNK,
                *, start: int = 0, stop: int | None = None) -> Iterator[np.ndarray]:

@@ -145,6 +145,9 @@ def test_single_precision_transform_equals_scipy_fft():
     r2c = sp._single_rfft()
     x = np.random.default_rng(3).normal(0, 100, (5, 1001)).astype(np.float32)
     assert np.array_equal(r2c(x), scipy.fft.rfft(x, axis=1))
+    out = np.empty((5, 501), dtype=np.complex64)          # written into a reused buffer
+    got = r2c(x, out)
+    assert np.shares_memory(got, out) and np.array_equal(out, scipy.fft.rfft(x, axis=1))
 
 
 def test_parseval_psd_integral_equals_variance_on_methods_signal():

@@ -316,6 +316,40 @@ def test_any_chunk_size_gives_the_same_samples(size, channel, sweep, start, leng
         assert np.array_equal(got, whole[start:stop])
 
 
+@settings(max_examples=25, deadline=None)
+@given(size=st.integers(1, 50_000), channel=st.one_of(st.none(), st.integers(0, 3)),
+       start=st.integers(0, 450_000), length=st.integers(0, 450_000))
+def test_reused_chunk_buffer_gives_the_same_raw_samples(size, channel, start, length):
+    # raw_chunks(reuse=True) reads each chunk into the buffer of the one before: every chunk,
+    # copied out before the next is asked for, equals the plain read (numpy.fromfile)
+    with open_recording(abf(_PROP_FILE)) as rec:
+        stop = start + length
+        if channel is None:
+            plain = list(rec.raw_chunks_all(None, size=size, start=start, stop=stop))
+            reused = [x.copy() for x in rec.raw_chunks_all(None, size=size, start=start,
+                                                           stop=stop, reuse=True)]
+        else:
+            plain = list(rec.raw_chunks(channel, None, size=size, start=start, stop=stop))
+            reused = [x.copy() for x in rec.raw_chunks(channel, None, size=size, start=start,
+                                                       stop=stop, reuse=True)]
+        assert len(plain) == len(reused)
+        for a, b in zip(plain, reused):
+            assert a.dtype == b.dtype and np.array_equal(a, b)
+
+
+def test_reused_chunk_of_a_truncated_file_is_a_specific_error(tmp_path):
+    src = abf(_PROP_FILE)
+    path = tmp_path / "cut.abf"
+    path.write_bytes(src.read_bytes())
+    with open_recording(path) as rec:
+        n = rec.n_samples
+        with open(path, "r+b") as fh:               # the file shrinks after its header was read
+            fh.truncate(path.stat().st_size - 1000)
+        with pytest.raises(RecordingError, match="values at sample"):
+            for _ in rec.raw_chunks(0, None, size=n, reuse=True):
+                pass
+
+
 def _maps_of(path: Path) -> list[str]:
     with open("/proc/self/maps") as fh:
         return [line for line in fh if str(path) in line]
