@@ -7,6 +7,7 @@ window of Welch's method and the band RMS values are all derived from that one t
 """
 from __future__ import annotations
 
+import functools
 import heapq
 import math
 import sys
@@ -169,6 +170,7 @@ def _take_lines(rows: np.ndarray, slope: np.ndarray, c: np.ndarray, line: np.nda
     return top, bottom
 
 
+@functools.cache
 def _single_rfft():
     """An rfft along rows that keeps float32 as complex64 (numpy's transform is about 3x
     slower in float32, measured), or None without scipy: ``f(x, out)`` writes into ``out``
@@ -178,6 +180,7 @@ def _single_rfft():
     loaded straight from its file: importing the scipy.fft package brings scipy.special along
     (about 0.2 s), more than the transform saves on a file of a few minutes. It is checked
     against numpy's rfft once; anything unexpected falls back to the public scipy.fft.rfft.
+    Found once per process (each channel of each file asks).
     """
     try:
         r2c = _pocketfft_r2c()
@@ -201,11 +204,15 @@ def _pocketfft_r2c():
     import importlib.util
     import os
 
-    import scipy
     name = "scipy.fft._pocketfft.pypocketfft"
     mod = sys.modules.get(name)
     if mod is None:
-        folder = os.path.join(os.path.dirname(scipy.__file__), "fft", "_pocketfft")
+        # scipy's folder from its import spec: importing the scipy package itself costs
+        # 3-4 ms of a scan's start-up (measured) and the transform does not need it
+        spec = importlib.util.find_spec("scipy")
+        if spec is None or not spec.submodule_search_locations:
+            raise ImportError("scipy not found")
+        folder = os.path.join(spec.submodule_search_locations[0], "fft", "_pocketfft")
         path = next(os.path.join(folder, f) for f in sorted(os.listdir(folder))
                     if f.startswith("pypocketfft")
                     and f.endswith(tuple(importlib.machinery.EXTENSION_SUFFIXES)))
