@@ -49,7 +49,8 @@ class _Run:
     their sweeps one by one (``sweeps``)."""
 
     def __init__(self, rec: Any, c: int, dims: Dims, mode: str, plan: StepPlan | None,
-                 windows: list[list[tuple[int, int]]], mains_hz: float | None) -> None:
+                 windows: list[list[tuple[int, int]]], mains_hz: float | None,
+                 shared: dict | None = None) -> None:
         self.rec, self.c, self.mode, self.plan, self.windows = rec, c, mode, plan, windows
         self.mains_hz = mains_hz
         self.ch = ch = rec.channels[c]
@@ -69,7 +70,8 @@ class _Run:
                                           (ch.rails[1] - offset) / gain)))
             single = rec.n_samples * len(rec.channels) >= _SINGLE_MIN_SAMPLES
             acc = Blocks(L, fs, gain * self.factor, offset * self.factor, raw_rails,
-                          single=single, reread=self._reread) if L >= _MIN_BLOCK else None
+                          single=single, reread=self._reread, shared=shared) \
+                if L >= _MIN_BLOCK else None
             acc_s = acc
             self.L = L
         else:
@@ -301,7 +303,8 @@ def analyze(recording: Any, *, pulse: Any = None, mains_hz: float | None = None,
     rec = recording
     notes: list[str] = list(rec.notes)
     dims, mode, primary, plans, windows = plan_file(rec, pulse, notes, mode)
-    runs = [_Run(rec, c, dims, mode, plans.get(c), windows, mains_hz)
+    shared: dict = {}           # the channels' work buffers, fed one after the other
+    runs = [_Run(rec, c, dims, mode, plans.get(c), windows, mains_hz, shared)
             for c in range(len(rec.channels))]
     if rec.gap_free and runs:
         _gap_free_pass(rec, runs, chunk_size)

@@ -32,19 +32,22 @@ class Blocks:
     ``offset`` turn results into SI. ``rails`` (same unit as the blocks) count clipped samples.
     ``reread(starts)``: the raw blocks that begin at these samples, read again from the file
     (gap-free); given, no block spectra are kept while streaming, and the event blocks' spectra
-    are computed again from their samples when the PSD leaves them out.
+    are computed again from their samples when the PSD leaves them out. ``shared``: work
+    buffers shared by Blocks fed one after the other in one thread (sp.BlockFFT).
     """
 
     def __init__(self, L: int, fs: float, scale: float = 1.0, offset: float = 0.0,
                  rails: tuple[float, float] | None = None, *,
                  keep_bytes: int = KEEP_BYTES, single: bool = False,
-                 reread: Callable[[np.ndarray], np.ndarray] | None = None) -> None:
+                 reread: Callable[[np.ndarray], np.ndarray] | None = None,
+                 shared: dict | None = None) -> None:
         self.L, self.fs = L, fs
         self.scale, self.offset, self.rails = scale, offset, rails
         self.reread = reread
         self._starts: list[np.ndarray] = []      # each block's first sample (with reread)
         self.welch = sp.WelchAccumulator(L, fs, keep_bytes=0 if reread else keep_bytes)
-        self.fft = sp.BlockFFT(L, single=single)   # single: integer blocks in float32
+        # single: integer blocks in float32; shared: work buffers of the file's other channels
+        self.fft = sp.BlockFFT(L, single=single, shared=shared)
         self.clipped = 0
         self.nonfinite = 0                # blocks left out for NaN/inf samples
         self.flat = 0                     # blocks whose samples all hold one value

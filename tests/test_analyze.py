@@ -557,3 +557,26 @@ def test_event_blocks_read_again_leave_the_psd_of_welch_without_them(single):
         kept.add(x[part], (part * L + L / 2) / fs)
     np.testing.assert_allclose(P, kept.psd(frozenset(events))[0], rtol=1e-10)
     np.testing.assert_allclose(P, Pw, rtol=1e-2)
+
+
+@pytest.mark.parametrize("single", [False, True])
+def test_channels_sharing_work_buffers_measure_as_alone(single):
+    # the channels of one file share their transform's work buffers (fed one after the other):
+    # each channel's block values and PSD are exactly those of a channel measured alone
+    from qcd.blocks import Blocks
+    fs, L = 2000.0, 2000
+    rng = np.random.default_rng(32)
+    data = [np.rint(rng.normal(m, s, (30, L))).astype(np.int16) for m, s in ((0, 50), (900, 7))]
+    shared: dict = {}
+    together = [Blocks(L, fs, single=single, shared=shared) for _ in data]
+    alone = [Blocks(L, fs, single=single) for _ in data]
+    for part in np.array_split(np.arange(30), [4, 17]):
+        t0 = (part * L + L / 2) / fs
+        for x, a, b in zip(data, together, alone):
+            a.add(x[part], t0)
+        for x, b in zip(data, alone):
+            b.add(x[part], t0)
+    for a, b in zip(together, alone):
+        for key, v in a.arrays().items():
+            np.testing.assert_array_equal(v, b.arrays()[key])
+        np.testing.assert_array_equal(a.psd(frozenset())[0], b.psd(frozenset())[0])
