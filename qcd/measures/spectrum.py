@@ -190,8 +190,10 @@ def _single_rfft():
         probe = np.sin(np.arange(24.0) ** 1.5).reshape(2, 12).astype(np.float32)
         out = np.empty((2, 7), dtype=np.complex64)
         got = r2c(probe, out)
-        if (np.shares_memory(got, out)
-                and np.allclose(got, np.fft.rfft(probe.astype(np.float64), axis=1), atol=1e-5)):
+        # the DFT by its definition (numpy.fft is not loaded on the float32 path otherwise)
+        jk = np.outer(np.arange(12), np.arange(7))
+        want = probe.astype(np.float64) @ np.exp(-2j * np.pi * jk / 12)
+        if np.shares_memory(got, out) and np.allclose(got, want, atol=1e-5):
             return r2c
     except Exception:                      # noqa: BLE001 - any surprise: the public path
         pass
