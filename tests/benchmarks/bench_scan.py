@@ -14,7 +14,9 @@ shared machine it is the steadier of the two, and the ratio is given for both:
 - baseline: pyabf loads the file, scipy.signal.welch (1 s Hann segments, taken in 100-segment
   slices so its segment copies fit in memory) and numpy std of 1 s blocks;
 - floor: one numpy.memmap read and one rfft per 1 s block;
-- targets: qcd at least 2x faster than the baseline, within 1.5x of the floor, under 250 MB.
+- targets: qcd at least 2x faster than the baseline, within 1.2x of the floor by wall time
+  (the floor's CPU time counts the helper threads numpy's BLAS starts on import; qcd runs one
+  BLAS thread), under 250 MB.
 """
 from __future__ import annotations
 
@@ -148,7 +150,7 @@ def report(label: str, size: int, res: dict[str, tuple[float, float, float]]) ->
         print(f"  speed-up over baseline: {res['baseline (pyabf + welch + std)'][0] / q:.2f}x "
               f"(target >= 2)")
     fw, _, fc = res["floor (memmap + rfft)"]
-    print(f"  qcd / floor:            wall {q / fw:.2f}x, CPU {qc / fc:.2f}x (target <= 1.5)")
+    print(f"  qcd / floor:            wall {q / fw:.2f}x, CPU {qc / fc:.2f}x (target <= 1.2, wall)")
     print(f"  qcd peak memory:        {res['qcd scan'][1]:.0f} MB (target < 250)", flush=True)
 
 
