@@ -119,7 +119,9 @@ class Blocks:
     def _spectra(self, idx: np.ndarray) -> np.ndarray:
         """The rfft rows of blocks ``idx`` (Welch order) from their samples read again: the
         same transform ``add`` made of them."""
-        rows = self.reread(np.concatenate(self._starts)[idx])
+        if len(self._starts) > 1:                  # joined once, asked in batches
+            self._starts = [np.concatenate(self._starts)]
+        rows = self.reread(self._starts[0][idx])
         X, _, _ = self.fft(rows, self._medians(rows))
         return X.copy()
 

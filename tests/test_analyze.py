@@ -580,3 +580,45 @@ def test_channels_sharing_work_buffers_measure_as_alone(single):
         for key, v in a.arrays().items():
             np.testing.assert_array_equal(v, b.arrays()[key])
         np.testing.assert_array_equal(a.psd(frozenset())[0], b.psd(frozenset())[0])
+
+
+def test_event_blocks_of_a_real_recording_leave_its_psd_as_welch_without_them(tmp_path):
+    # the real gap-free recording with a large burst written into its current channel in
+    # three 1 s blocks: those blocks are events (SD > 3x the median, DESIGN), read again from
+    # the file and taken out of the PSD. Reference: scipy.signal.welch (Hann, 1 s segments, no
+    # overlap, linear detrend) of pyabf's samples of the other blocks, compacted as qcd stores
+    # a spectrum (qcd.measures.spectrum.compact_spectrum)
+    require_data()
+    import pyabf
+    import scipy.signal as ss
+
+    from qcd.measures import noise as nz
+    from qcd.measures import spectrum as sp
+    src = abf("gapfree_cc_slow_drift.abf")
+    head = pyabf.ABF(str(src), loadData=False)
+    k, fs = head.channelCount, head.dataRate
+    assert head.dataPointByteSize == 2                      # int16 samples, interleaved
+    blob = bytearray(src.read_bytes())
+    data = np.frombuffer(blob, dtype="<i2", offset=head.dataByteStart,
+                         count=head.dataPointCount).reshape(-1, k).copy()
+    L = int(fs)
+    burst = np.rint(8000 * np.sin(np.linspace(0, 60, L))).astype(np.int32)
+    for b in (3, 7, 11):
+        col = data[b * L:(b + 1) * L, 1].astype(np.int32) + burst
+        data[b * L:(b + 1) * L, 1] = np.clip(col, -32768, 32767)
+    blob[head.dataByteStart:head.dataByteStart + data.nbytes] = data.tobytes()
+    path = tmp_path / "bursts.abf"
+    path.write_bytes(bytes(blob))
+    ch = analyze_path(path, digest=False).channels[1]
+    assert ch.measures["event_blocks"].value == 3
+    y = pyabf.ABF(str(path)).data[1].astype(np.float64)     # pyabf scales in float32
+    blocks = y[:len(y) // L * L].reshape(-1, L)
+    sd = np.array([nz.detrended_sd(b) for b in blocks])
+    keep = ~nz.event_blocks(sd)
+    assert list(np.flatnonzero(~keep)) == [3, 7, 11]
+    f, P = ss.welch(blocks[keep].ravel(), fs, window="hann", nperseg=L, noverlap=0,
+                    detrend="linear")
+    cf, cd = sp.compact_spectrum(f, P)
+    assert ch.spectrum.unit == "pA"                         # pyabf's unit of this channel
+    np.testing.assert_allclose(ch.spectrum.freqs_hz, cf, rtol=1e-12)
+    np.testing.assert_allclose(ch.spectrum.density, cd, rtol=1e-6)    # float32 samples
