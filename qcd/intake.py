@@ -466,6 +466,17 @@ class _Inbox:
         # opened / closed_no_write (our own reads), attrib, dir events: nothing to do
 
 
+def _wanted_events() -> list:
+    """The events ``_Inbox`` acts on. Only these are asked of the kernel (watchdog turns the
+    list into the inotify mask): without it every open and close of a file, our own reads
+    included (the header check here, the measuring in the workers), is an event for
+    watchdog's threads to parse and drop, about 20 per file in a backlog."""
+    from watchdog import events as ev
+    return [ev.FileCreatedEvent, ev.FileModifiedEvent, ev.FileAttribEvent, ev.FileClosedEvent,
+            ev.FileMovedEvent, ev.FileDeletedEvent, ev.DirMovedEvent, ev.DirCreatedEvent,
+            ev.DirDeletedEvent]
+
+
 class _FolderWatch:
     """One observer for one rig folder; re-created when the folder comes back."""
 
@@ -515,7 +526,7 @@ class _FolderWatch:
         obs.name = f"qcd-observer-{self.rig.name}"
         try:
             obs.schedule(_Inbox(self._q, self.rig.name, self.root), os.fspath(self.root),
-                         recursive=True)
+                         recursive=True, event_filter=_wanted_events())
             obs.start()
         except OSError as e:                 # e.g. inotify watch limit, folder vanished again
             try:

@@ -261,16 +261,18 @@ def _learning_rows(store: Store, rig: str, mode: str, channel: int, measure: str
     """(good unflagged rows, every row) recorded since ``start_at`` and before ``at``, oldest
     first, each at most 4 references long (at least 400): what a reference learns from."""
     limit = max(4 * st.reference_files, 400)
-    flagged = store.flagged_points(rig, mode, channel, measure,
-                                   after=None if start_at is None else start_at - 1e-6,
-                                   before=at, limit=limit)
+    flagged = store.learning_points(rig, mode, channel, measure, start=start_at, before=at,
+                                    limit=limit)
     every = [(t, v) for t, v, _ in flagged]
     # oldest first (flagged_points), so the first row is the earliest
     if not any([g for _, _, g in flagged]) and (start_at is None or not every
                                                  or every[0][0] >= start_at):
         return every, every       # none flagged: the good rows are these (one query, not two)
-    good = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
-                                limit=limit)
+    if len(flagged) < limit:      # every row since start_at is here: the good ones among them
+        good = [(t, v) for t, v, g in flagged if not g and (start_at is None or t >= start_at)]
+    else:
+        good = store.reference_rows(rig, mode, channel, measure, start=start_at, before=at,
+                                    limit=limit)
     if not good:
         return good, []
     return good, every

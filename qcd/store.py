@@ -117,6 +117,11 @@ class Store:
         self._before_commit = before_commit
         self._lock = threading.RLock()
         self._depth = 0                      # nesting of _write() in this thread
+        # learning_points, remembered within one write transaction (no other writer then):
+        # key -> (before, rows); commit_file says which entries its file changes, any other
+        # write inside the transaction forgets them all, and its end (COMMIT or ROLLBACK) too
+        self._learnt: dict[tuple, tuple[float, list[tuple[float, float, int]]]] = {}
+        self._kept = False                   # commit_file's own write: it forgets precisely
         self._closed = True
         if not self.path.parent.is_dir():
             raise StoreError(f"{self.path}: folder {self.path.parent} does not exist")
@@ -204,15 +209,18 @@ class Store:
         """One write transaction around reads and writes that belong together (read alert
         states, judge, commit): no other process writes in between. Store calls inside it
         join it instead of starting their own."""
-        with self._write():
+        with self._write(joins=True):
             yield
 
     @contextmanager
-    def _write(self) -> Iterator[sqlite3.Connection]:
-        """One write transaction, BEGIN IMMEDIATE (waits up to timeout_s for another writer)."""
+    def _write(self, joins: bool = False) -> Iterator[sqlite3.Connection]:
+        """One write transaction, BEGIN IMMEDIATE (waits up to timeout_s for another writer).
+        ``joins``: only joins a transaction under way (writes nothing itself)."""
         with self._lock:
             conn = self.db.conn
             if self._depth:                  # inside transaction(): one COMMIT at its end
+                if not (joins or self._kept):
+                    self._learnt.clear()
                 self._depth += 1
                 try:
                     yield conn
@@ -225,6 +233,7 @@ class Store:
                 raise StoreError(f"{self.path}: cannot start a write ({e}); another process "
                                  f"held the database longer than {self.timeout_s:g} s") from e
             self._depth = 1
+            self._learnt.clear()
             try:
                 yield conn
                 conn.execute("COMMIT")
@@ -236,6 +245,7 @@ class Store:
                 raise
             finally:
                 self._depth = 0
+                self._learnt.clear()
 
     def _rows(self, sql: str, params: Iterable[Any] = ()) -> list[dict[str, Any]]:
         with self._lock, self._reading():
@@ -347,6 +357,57 @@ class Store:
              -1 if limit is None else int(limit)))
         return [(float(t), float(v), int(g)) for t, v, g in rows]
 
+    def learning_points(self, rig: str, mode: str, channel: int, measure: str, *,
+                        start: float | None, before: float, limit: int
+                        ) -> list[tuple[float, float, int]]:
+        """``flagged_points`` of the files recorded at or after ``start`` (to within 1 us) and
+        before ``before``, the first ``limit``: the rows a reference learns from.
+
+        Inside a write transaction (``transaction()``: the service's group of files) the rows
+        are remembered per (rig, mode, channel, measure, start, limit), and a later file's call
+        reads only the rows recorded since the last one's ``before``; ``commit_file`` forgets
+        the entries whose rows its file changes (a row recorded before their ``before``, a
+        row superseded), every other write forgets them all, and so does the transaction's
+        end. The rows returned are those of the query, exactly (tests/test_pipeline_learning.py)."""
+        after = None if start is None else start - 1e-6
+        with self._lock:
+            if not self._depth:               # outside a transaction another writer may come
+                return self.flagged_points(rig, mode, channel, measure, after=after,
+                                           before=before, limit=limit)
+            key = (rig, mode, int(channel), measure, after, int(limit))
+            got = self._learnt.get(key)
+            if got is None:
+                rows = self.flagged_points(rig, mode, channel, measure, after=after,
+                                           before=before, limit=limit)
+            else:
+                hi, rows = got
+                if before <= hi:              # the rows recorded earlier: a prefix of these
+                    return [r for r in rows if r[0] < before]
+                if len(rows) < limit:         # the rest, recorded in [hi, before)
+                    rows = rows + self._points_from(rig, mode, channel, measure, hi, before,
+                                                    limit - len(rows))
+            self._learnt[key] = (before, rows)
+            return list(rows)
+
+    def _points_from(self, rig: str, mode: str, channel: int, measure: str, lo: float,
+                     before: float, limit: int) -> list[tuple[float, float, int]]:
+        """``flagged_points`` of the files recorded in [lo, before), oldest first."""
+        rows = self._one_all(
+            "SELECT f.recorded_at, m.value, m.flagged FROM files f JOIN measures m "
+            "ON m.file_id = f.id WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
+            "AND f.superseded = 0 AND f.recorded_at >= ? AND f.recorded_at < ? "
+            "AND m.channel = ? AND m.name = ? AND m.value IS NOT NULL "
+            "ORDER BY f.recorded_at, f.id LIMIT ?",
+            (rig, mode, float(lo), float(before), channel, measure, int(limit)))
+        return [(float(t), float(v), int(g)) for t, v, g in rows]
+
+    def _forget(self, rig: str, mode: str | None = None, at: float | None = None) -> None:
+        """Drop the remembered learning rows a write changed: of ``rig`` (its ``mode``; None:
+        every mode) whose ``before`` lies after ``at`` (None: all of them)."""
+        for key, (hi, _) in list(self._learnt.items()):
+            if key[0] == rig and (mode is None or key[1] == mode) and (at is None or at < hi):
+                del self._learnt[key]
+
     def charts(self, rig: str, mode: str | None = None) -> dict[tuple, dict[str, Any]]:
         """{(mode, channel, measure, rule): {start_at, state, ref, updated_at}} of a rig."""
         sql, params = "SELECT * FROM charts WHERE rig = ?", [rig]
@@ -452,6 +513,16 @@ class Store:
         messages = list(messages)
         any_bad, named = _bad_targets(findings)
         path, raw = _path_key(fm.path)
+        self._kept = True                     # this write says below which rows it changes
+        try:
+            return self._commit_file(rig, fm, analysed_at, findings, alert_states, messages,
+                                     charts, any_bad, named, path, raw)
+        finally:
+            self._kept = False
+
+    def _commit_file(self, rig: str, fm: FileMeasures, analysed_at: float,
+                     findings: list, alert_states: list, messages: list, charts: list,
+                     any_bad: bool, named: set, path: str, raw: bytes | None) -> int:
         with self._write() as conn:
             replaces: list[int] = []
             if fm.sha256:
@@ -474,10 +545,15 @@ class Store:
                             named = set()
                     else:
                         replaces.append(int(row[0]))
-            conn.execute("UPDATE files SET superseded = 1 WHERE rig = ? AND path = ? AND "
-                         "path_bytes IS ? AND superseded = 0", (rig, path, raw))
+            gone = conn.execute("UPDATE files SET superseded = 1 WHERE rig = ? AND path = ? AND "
+                                "path_bytes IS ? AND superseded = 0", (rig, path, raw)).rowcount
             for old in replaces:
                 conn.execute("UPDATE files SET superseded = 1 WHERE id = ?", (old,))
+            if gone or replaces:              # rows may have left the learning rows
+                self._forget(rig)
+            if fm.status == "ok":             # rows joined at its time
+                self._forget(rig, fm.mode, file_time(fm.recorded_at, fm.mtime,
+                                                     float(analysed_at)))
             file_id = self._insert_file(conn, rig, fm, path, analysed_at, any_bad)
             if raw is not None:
                 conn.execute("UPDATE files SET path_bytes = ? WHERE id = ?", (raw, file_id))

@@ -145,6 +145,8 @@ class Service:
         # group commit: finished files wait (at most group_files, group_s) to share one
         # transaction; see _finish_group and DEVELOPERS.md
         self.group_files, self.group_s = 32, 0.25
+        # backlog batches: small files share one worker job (see _submit_all)
+        self.batch_files, self.batch_bytes = 8, 4 << 20
         self._finished: list[tuple[Ready, Any]] = []
         self._finished_since = 0.0
         self._now = 0.0                     # the clock of the last step (the courier's clock)
@@ -240,13 +242,12 @@ class Service:
             if n:
                 log.info("rescan found %d file(s) the events missed", n)
         busy = False
-        capacity = max(1, 2 * self.workers)
+        capacity = max(1, 2 * self.workers * self.batch_files)   # files out at a time
         out = len(self._jobs)
         ready, gave_up = self.intake.check(now, backlog_window=max(0, capacity - out))
         for g in gave_up:
             self._give_up(g, now)
-        for r in ready:
-            self._submit(r, now)
+        self._submit_all(ready, now)
         busy |= self._collect(now)
         if self._retry:
             self._retry_commits(now)
@@ -366,11 +367,30 @@ class Service:
     # -- measuring and committing
 
     def _submit(self, r: Ready, now: float) -> None:
-        if not self._needs(r.rig, r.path, _StatLike(r.size, r.mtime), default=True):
-            self.counts["skipped"] += 1
-            self._backlog_done(r)
-            return
-        self._jobs.submit(r, os.fspath(r.path), self._rigs[r.rig], recording=r.header)
+        self._submit_all([r], now)
+
+    def _submit_all(self, ready: list[Ready], now: float) -> None:
+        """Hand the ready files to the workers: a live file, or a large one, as a job of its
+        own (measured at once); small backlog files several to a job (``batch_files``, at
+        most ``batch_bytes`` together), which saves a trip through the pool's queues each."""
+        batch: list[tuple[Ready, tuple, dict]] = []
+        size = 0
+        for r in ready:
+            if not self._needs(r.rig, r.path, _StatLike(r.size, r.mtime), default=True):
+                self.counts["skipped"] += 1
+                self._backlog_done(r)
+                continue
+            job = (r, (os.fspath(r.path), self._rigs[r.rig]), {"recording": r.header})
+            if r.live or r.size > self.batch_bytes or self.batch_files <= 1:
+                self._jobs.submit_many([job])
+                continue
+            if batch and (len(batch) >= self.batch_files or size + r.size > self.batch_bytes):
+                self._jobs.submit_many(batch)
+                batch, size = [], 0
+            batch.append(job)
+            size += r.size
+        if batch:
+            self._jobs.submit_many(batch)
 
     def _crashed(self, r: Ready, reason: str) -> Any:
         return pipeline.error_file(r.path, "internal", f"{r.path}: {reason}", size=r.size,

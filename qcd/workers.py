@@ -4,9 +4,10 @@ Shared by the service (``Jobs``: submit now, collect later), ``qcd scan --worker
 ``scan --store`` (``imap``: results in the order asked for) and the demo's file writer.
 
 The crash rule: a worker that dies (killed, out of memory, a crash inside a library) takes
-every job in flight with it. Those jobs run again in a new pool; a job whose worker died
-twice, or whose result could not be handed back, gives ``on_crash(key, reason)`` instead of
-a result, so one bad file never stops the others. Exceptions inside a job are the job
+every job in flight with it, each job of a batch included. Those jobs run again in a new
+pool, one at a time and alone, so a job whose worker dies again is the one to blame; it, or
+a job whose result could not be handed back, gives ``on_crash(key, reason)`` instead of a
+result, so one bad file never stops the others (``Jobs``). Exceptions inside a job are the job
 function's business (``pipeline.measure`` never raises). Imports nothing from qcd.
 """
 from __future__ import annotations
@@ -17,6 +18,7 @@ import signal
 import sys
 import threading
 import time
+from collections import deque
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Iterator
 
@@ -94,74 +96,137 @@ class _Job:
     crashes: int = 0
 
 
+def _run_all(fn: Callable[..., Any], calls: list[tuple[tuple, dict]]) -> list[Any]:
+    """In a worker: ``fn`` for each (args, kwargs) of a batch, results in the same order."""
+    return [fn(*args, **kwargs) for args, kwargs in calls]
+
+
 class Jobs:
     """``fn(*args, **kwargs)`` for each submitted job, in ``workers`` spawned processes.
 
-    ``workers=0`` runs the jobs in this process, one per ``collect()`` call, in the order
-    submitted. ``collect()`` returns ``[(key, result)]`` of the jobs finished so far;
-    ``on_crash(key, reason)`` gives the result of a job the crash rule ends (None: raise).
+    ``submit`` hands one job to a worker; ``submit_many`` hands several to one worker as one
+    batch (one trip through the pool's queues for all of them). ``workers=0`` runs the jobs
+    in this process, one per ``collect()`` call, in the order submitted. ``collect()`` returns
+    ``[(key, result)]`` of the jobs finished so far; ``on_crash(key, reason)`` gives the result
+    of a job the crash rule ends (None: raise). ``len()`` counts jobs, not batches.
+
+    The crash rule for batches: when a worker dies, every job in flight (each member of each
+    batch) is a suspect. Suspects run again one at a time, alone in the pool (other jobs wait
+    meanwhile), so the one whose worker dies again is known: it gives
+    ``on_crash(key, DIED_TWICE)``, and every other suspect gives its own result. A job's result
+    is handed back only with its whole batch's, so none is ever given twice.
     """
 
     def __init__(self, fn: Callable[..., Any], workers: int, *,
                  on_crash: Callable[[Any, str], Any] | None = None) -> None:
         self.fn, self.workers, self.on_crash = fn, max(0, int(workers)), on_crash
         self._pool: cf.ProcessPoolExecutor | None = None
-        self._running: dict[cf.Future, _Job] = {}
+        self._running: dict[cf.Future, list[_Job]] = {}
         self._inline: list[_Job] = []
+        self._suspects: deque[_Job] = deque()    # in flight when a worker died: run alone
+        self._alone = False                     # a suspect is running, nothing else
+        self._held: deque[list[_Job]] = deque()  # submitted while suspects are tried
 
     def __len__(self) -> int:
-        return len(self._running) + len(self._inline)
+        return (sum(len(m) for m in self._running.values()) + len(self._inline)
+                + len(self._suspects) + sum(len(m) for m in self._held))
 
     def submit(self, key: Any, *args: Any, **kwargs: Any) -> None:
-        job = _Job(key, args, kwargs)
-        if self.workers == 0:
-            self._inline.append(job)
-        else:
-            self._start(job)
+        self.submit_many([(key, args, kwargs)])
 
-    def _start(self, job: _Job) -> None:
+    def submit_many(self, jobs: Iterable[tuple[Any, tuple, dict]]) -> None:
+        """One batch of ``(key, args, kwargs)`` jobs, run one after another by one worker."""
+        members = [_Job(key, tuple(args), dict(kwargs)) for key, args, kwargs in jobs]
+        if not members:
+            return
+        if self.workers == 0:
+            self._inline.extend(members)
+        elif self._suspects or self._alone:
+            self._held.append(members)
+        else:
+            self._start(members)
+
+    def _start(self, members: list[_Job]) -> None:
         if self._pool is None:
             self._pool = _new_pool(self.workers)
-        self._running[self._pool.submit(self.fn, *job.args, **job.kwargs)] = job
+        calls = [(j.args, j.kwargs) for j in members]
+        try:
+            fut = self._pool.submit(_run_all, self.fn, calls)
+        except cf.process.BrokenProcessPool:  # a worker died since the last collect()
+            if self._running:                 # which tells its jobs; these wait for it
+                self._held.append(members)
+                return
+            log.error("a worker process died; starting new ones")
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            self._pool = _new_pool(self.workers)
+            fut = self._pool.submit(_run_all, self.fn, calls)
+        self._running[fut] = members
+
+    def _pump(self) -> None:
+        """Start what waits: the next suspect alone, else every held batch."""
+        if self._alone:
+            return
+        if self._suspects:
+            if not self._running:
+                self._alone = True
+                self._start([self._suspects.popleft()])
+            return
+        held, self._held = self._held, deque()
+        for members in held:
+            self._start(members)
 
     def collect(self) -> list[tuple[Any, Any]]:
-        """The finished jobs as ``(key, result)``; crashed ones run again (see the module)."""
+        """The finished jobs as ``(key, result)``; crashed ones run again (see the class)."""
         if self._inline:
             job = self._inline.pop(0)
             return [(job.key, self.fn(*job.args, **job.kwargs))]
-        out, again, broken = [], [], False
+        out: list[tuple[Any, Any]] = []
+        broken = False
         for fut in [f for f in self._running if f.done()]:
-            job = self._running.pop(fut)
+            members = self._running.pop(fut)
+            if len(members) == 1:
+                self._alone = False
             try:
-                out.append((job.key, fut.result()))
+                out.extend(zip((j.key for j in members), fut.result()))
             except cf.process.BrokenProcessPool:
                 broken = True
-                job.crashes += 1
-                if job.crashes >= 2:
-                    out.append((job.key, self._crashed(job, DIED_TWICE)))
+                self._died(members, out)
+            except Exception as e:            # the results could not be handed back
+                if len(members) > 1:          # which one's? each of them again, alone
+                    self._held.extendleft([j] for j in reversed(members))
                 else:
-                    again.append(job)
-            except Exception as e:            # the result could not be handed back
-                out.append((job.key, self._crashed(
-                    job, f"the measuring process could not return its result ({e!r})")))
+                    out.append((members[0].key, self._crashed(
+                        members[0],
+                        f"the measuring process could not return its result ({e!r})")))
         if broken:
-            self._restart(again)
+            self._restart(out)
+        self._pump()
         return out
+
+    def _died(self, members: list[_Job], out: list[tuple[Any, Any]]) -> None:
+        for job in members:
+            job.crashes += 1
+            if job.crashes >= 2:
+                out.append((job.key, self._crashed(job, DIED_TWICE)))
+            else:
+                self._suspects.append(job)
 
     def _crashed(self, job: _Job, reason: str) -> Any:
         if self.on_crash is None:
             raise RuntimeError(f"job {job.key!r}: {reason}")
         return self.on_crash(job.key, reason)
 
-    def _restart(self, again: list[_Job]) -> None:
+    def _restart(self, out: list[tuple[Any, Any]]) -> None:
+        """A new pool; every job still in flight in the old one is a suspect as well."""
         log.error("a worker process died; starting new ones")
         old, self._pool = self._pool, None
-        pending = again + list(self._running.values())
+        in_flight = list(self._running.values())
         self._running.clear()
+        self._alone = False
         if old is not None:
             old.shutdown(wait=False, cancel_futures=True)
-        for job in pending:
-            self._start(job)
+        for members in in_flight:
+            self._died(members, out)
 
     def wait(self, timeout: float | None) -> None:
         """Until a running job finishes, or ``timeout`` seconds (None: no limit)."""
@@ -171,6 +236,9 @@ class Jobs:
     def close(self, grace_s: float = 5.0) -> None:
         """Stop the workers; a job still running after ``grace_s`` is abandoned."""
         self._inline.clear()
+        self._suspects.clear()
+        self._held.clear()
+        self._alone = False
         if self._pool is not None:
             for fut in self._running:
                 fut.cancel()

@@ -484,6 +484,51 @@ def test_backlog_files_share_transactions_in_recording_order(tmp_path, store):
         assert times == sorted(times), times
 
 
+@pytest.mark.slow
+def test_a_worker_killed_mid_batch_loses_no_file_and_stores_none_twice(tmp_path, store, caplog):
+    """Small backlog files go to the workers several to a job; kill -9 of a worker while
+    batches are out: each file of them is measured again (qcd.workers' crash rule), every file
+    ends with exactly one row, all measured (the files themselves are fine)."""
+    import multiprocessing
+    import pyabf.abfWriter
+    folder = tmp_path / "rig"
+    folder.mkdir()
+    # 200,000 samples a file: a batch of them takes long enough to be killed half-way
+    sweeps = np.random.default_rng(0).normal(0.0, 5.0, size=(1, 200_000)).astype(np.float32)
+    pyabf.abfWriter.writeABF1(sweeps, str(tmp_path / "template.abf"), 10000.0, units="pA")
+    template = (tmp_path / "template.abf").read_bytes()
+    n = 96
+    for i in range(n):
+        p = folder / f"f{i:03d}.abf"
+        p.write_bytes(template[:-4] + i.to_bytes(4, "little"))
+        os.utime(p, (1e9 + i, 1e9 + i))
+    cfg = _config(tmp_path, [folder], settle_s=0.2)
+    rec = Recorder(store)
+    svc = Service(cfg, store, workers=2, commit=rec.commit, poll_s=0.02, progress_tty=False)
+    assert svc.batch_files > 1
+    killed = []
+    step = lambda: svc.step(time.time()) or svc.wait_idle()
+    with caplog.at_level("INFO", logger="qcd"):
+        svc.start(time.time())
+        try:
+            wait_until(lambda: len(rec.committed) >= 16, 60.0, step, interval=0.0)
+            in_flight = len(svc._jobs)
+            workers = multiprocessing.active_children()
+            assert workers and in_flight > svc.batch_files, (workers, in_flight)
+            os.kill(workers[0].pid, signal.SIGKILL)
+            killed.append(workers[0].pid)
+            wait_until(lambda: len(rec.committed) >= n, 120.0, step, interval=0.0)
+            for _ in range(20):               # nothing more arrives (no second copy)
+                step()
+        finally:
+            svc.close()
+    assert "a worker process died" in caplog.text       # the kill really hit the pool
+    assert sorted(rec.paths()) == [f"f{i:03d}.abf" for i in range(n)]      # each once
+    assert [fm.status for fm in rec.committed] == ["ok"] * n
+    rows = store.files(rig=RIG, include_superseded=True)
+    assert len(rows) == n and all(r["status"] == "ok" for r in rows)
+
+
 def test_a_lone_new_file_is_committed_at_once_not_held_for_a_group(tmp_path, store):
     folder = tmp_path / "rig"
     folder.mkdir()

@@ -56,3 +56,38 @@ def test_without_workers_one_job_runs_per_collect_in_submission_order():
     assert jobs.collect() == [("k3", 9)]
     assert jobs.collect() == [("k1", 1)]
     assert jobs.collect() == [("k2", 4)] and len(jobs) == 0 and jobs.collect() == []
+
+
+def test_a_batch_whose_worker_dies_gives_every_other_job_its_result_once():
+    # the crash rule (qcd.workers.Jobs): every job of the batches in flight runs again alone;
+    # only the one that kills its worker again gives the crash result
+    crashed = []
+
+    def on_crash(key, reason):
+        crashed.append((key, reason))
+        return "crashed"
+    jobs = Jobs(square_or_die, 2, on_crash=on_crash)
+    try:
+        jobs.submit_many([(f"a{x}", (x,), {}) for x in (1, 2, -1, 3)])
+        jobs.submit_many([(f"b{x}", (x,), {}) for x in (4, 5, 6)])
+        assert len(jobs) == 7
+        got: list = []
+        while len(got) < 7:
+            jobs.wait(30.0)
+            got.extend(jobs.collect())
+        keys = [k for k, _ in got]
+        assert sorted(keys) == sorted(["a1", "a2", "a-1", "a3", "b4", "b5", "b6"])  # each once
+        assert dict(got) == {"a1": 1, "a2": 4, "a-1": "crashed", "a3": 9, "b4": 16,
+                             "b5": 25, "b6": 36}
+        assert crashed == [("a-1", DIED_TWICE)] and len(jobs) == 0
+        jobs.submit_many([("c", (7,), {}), ("d", (8,), {})])    # the pool goes on
+        assert _drain(jobs, 2) == {"c": 49, "d": 64}
+    finally:
+        jobs.close()
+
+
+def test_without_workers_a_batch_runs_one_job_per_collect():
+    jobs = Jobs(square_or_die, 0)
+    jobs.submit_many([("x", (2,), {}), ("y", (3,), {})])
+    assert len(jobs) == 2
+    assert jobs.collect() == [("x", 4)] and jobs.collect() == [("y", 9)] and len(jobs) == 0
