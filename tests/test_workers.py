@@ -25,6 +25,16 @@ def _drain(jobs: Jobs, n: int) -> dict:
     return got
 
 
+def _crash_log():
+    """A list of (key, reason) and the on_crash that fills it, giving "crashed"."""
+    crashed: list = []
+
+    def on_crash(key, reason):
+        crashed.append((key, reason))
+        return "crashed"
+    return crashed, on_crash
+
+
 def test_results_come_back_in_the_order_asked_for():
     xs = list(range(12))
     assert list(imap(square_or_die, [(x,) for x in xs], 2)) == [x * x for x in xs]
@@ -32,11 +42,7 @@ def test_results_come_back_in_the_order_asked_for():
 
 
 def test_a_job_whose_worker_dies_twice_gives_its_crash_result_and_the_pool_goes_on():
-    crashed = []
-
-    def on_crash(key, reason):
-        crashed.append((key, reason))
-        return "crashed"
+    crashed, on_crash = _crash_log()
     jobs = Jobs(square_or_die, 1, on_crash=on_crash)
     try:
         jobs.submit("bad", -1)
@@ -61,11 +67,7 @@ def test_without_workers_one_job_runs_per_collect_in_submission_order():
 def test_a_batch_whose_worker_dies_gives_every_other_job_its_result_once():
     # the crash rule (qcd.workers.Jobs): every job of the batches in flight runs again alone;
     # only the one that kills its worker again gives the crash result
-    crashed = []
-
-    def on_crash(key, reason):
-        crashed.append((key, reason))
-        return "crashed"
+    crashed, on_crash = _crash_log()
     jobs = Jobs(square_or_die, 2, on_crash=on_crash)
     try:
         jobs.submit_many([(f"a{x}", (x,), {}) for x in (1, 2, -1, 3)])
