@@ -274,6 +274,26 @@ def test_theil_sen_is_the_median_of_every_pairwise_slope():
         drift.theil_sen(np.ones(5), np.arange(5.0))
 
 
+def test_flat_median_is_numpy_median_bit_for_bit():
+    # numpy.median as the reference: odd and even sizes, repeated values (rounded data give
+    # equal slopes), infinities and a NaN (numpy's answer NaN)
+    rng = np.random.default_rng(61)
+    for n in (2, 3, 4, 5, 10, 11, 999, 1000, 4001, 499_500):
+        for rounded in (False, True):
+            v = rng.standard_normal(n) * 3.0
+            if rounded:
+                v = np.round(v, 1)
+            got = drift._flat_median(v)
+            assert np.float64(got).tobytes() == np.float64(np.median(v)).tobytes(), (n, rounded)
+    v = rng.standard_normal(100)
+    v[[3, 70]] = np.inf
+    v[5] = -np.inf
+    assert drift._flat_median(v) == np.median(v)
+    v[40] = np.nan
+    with np.errstate(invalid="ignore"):
+        assert np.isnan(drift._flat_median(v)) and np.isnan(np.median(v))
+
+
 def test_baseline_drift_pools_long_series():
     # per second in, the slope is kept when thousands of windows are pooled
     rng = np.random.default_rng(15)

@@ -244,10 +244,12 @@ def gamma_q(a: float, x: np.ndarray) -> np.ndarray:
         xl = x[low]
         term = np.full(len(xl), 1.0 / a)
         total = term.copy()
-        for n in range(1, 1000):
-            term = term * xl / (a + n)
+        cut = np.empty(len(xl))
+        for n in range(1, 1000):                        # in place: the same operations
+            term *= xl
+            term /= a + n
             total += term
-            if np.all(term < total * 1e-15):
+            if np.less(term, np.multiply(total, 1e-15, out=cut)).all():
                 break
         out[low] = 1.0 - lead[low] * total
     high = pos & ~low
