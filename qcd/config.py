@@ -58,6 +58,7 @@ class TestPulse:
 
 @dataclass(frozen=True)
 class RigConfig:
+    """One rig of the config: its folders and what its recordings are."""
     name: str
     folders: tuple[Path, ...]
     patterns: tuple[str, ...] = PATTERNS
@@ -91,6 +92,7 @@ class DigestConfig:
 
 @dataclass(frozen=True)
 class Config:
+    """The whole qcd.toml, checked."""
     path: Path | None                    # the qcd.toml it came from (None: built in)
     database: Path
     rules: tuple[Path, ...]
