@@ -168,13 +168,13 @@ NO_BASELINE = False
 def report(label: str, size: int, res: dict[str, tuple[float, float, float]]) -> None:
     print(f"\n{label}: {size / 1e9:.2f} GB")
     for k, (wall, mb, cpu) in res.items():
-        print(f"  {k:<32} {wall:8.2f} s wall {cpu:8.2f} s CPU {mb:8.1f} MB peak")
+        print(f"  {k:<32} {wall:8.3f} s wall {cpu:8.3f} s CPU {mb:8.1f} MB peak")
     q, _, qc = res["qcd scan"]
     if "baseline (pyabf + welch + std)" in res:
         print(f"  speed-up over baseline: {res['baseline (pyabf + welch + std)'][0] / q:.2f}x "
               f"(target >= 2)")
     fw, _, fc = res["floor (memmap + rfft)"]
-    print(f"  qcd / floor:            wall {q / fw:.2f}x, CPU {qc / fc:.2f}x (target <= 1.2, wall)")
+    print(f"  qcd / floor:            wall {q / fw:.3f}x, CPU {qc / fc:.3f}x (target <= 1.2, wall)")
     print(f"  qcd peak memory:        {res['qcd scan'][1]:.0f} MB (target < 250)", flush=True)
 
 
