@@ -76,6 +76,7 @@ class CommandLayout:
 
 @dataclass(frozen=True)
 class ChannelLayout:
+    """One input channel of the header: name, unit, scaling, rails and filter."""
     index: int
     name: str
     unit: str

@@ -58,6 +58,7 @@ class TestPulse:
 
 @dataclass(frozen=True)
 class RigConfig:
+    """One rig of the config: its folders and what its recordings are."""
     name: str
     folders: tuple[Path, ...]
     patterns: tuple[str, ...] = PATTERNS
@@ -91,6 +92,7 @@ class DigestConfig:
 
 @dataclass(frozen=True)
 class Config:
+    """The whole qcd.toml, checked."""
     path: Path | None                    # the qcd.toml it came from (None: built in)
     database: Path
     rules: tuple[Path, ...]
@@ -192,8 +194,9 @@ _RIG_KEYS = ("name", "folders", "patterns", "polling", "test_pulse", "mains_hz",
 DECLARED_MODES = ("voltage_clamp", "current_clamp", "extracellular")
 _PULSE_KEYS = ("amplitude", "start_ms", "length_ms")
 _DIGEST_KEYS = ("at", "targets", "enabled")
-_HHMM = re.compile(r"([01]?\d|2[0-3]):([0-5]\d)\Z")
-_RIG_NAME = re.compile(r"[A-Za-z0-9_.-]+\Z")
+# patterns as text: compiled on first use (re keeps them), not at every start of qcd
+_HHMM = r"([01]?\d|2[0-3]):([0-5]\d)\Z"
+_RIG_NAME = r"[A-Za-z0-9_.-]+\Z"
 
 
 class _Reader:
@@ -307,7 +310,7 @@ def _digest(path: Path, table: object) -> DigestConfig:
         raise r.fail("", f"expected a [digest] table, got {_kind(table)}")
     r.check_keys(table, _DIGEST_KEYS, "[digest]")
     at = r.string(table, "at") if "at" in table else "07:30"
-    m = _HHMM.match(at.strip())
+    m = re.match(_HHMM, at.strip())
     if not m:
         raise r.fail("at", f"expected a local time of day as HH:MM (24 h), e.g. \"07:30\", "
                            f"got {at!r}")
@@ -331,7 +334,7 @@ def _rig(path: Path, base: Path, index: int, table: object,
     if "name" not in table:
         raise r.fail("name", f"missing in {label} (every rig needs a name)")
     name = r.string(table, "name")
-    if not _RIG_NAME.match(name):
+    if not re.match(_RIG_NAME, name):
         raise r.fail("name", f"{name!r}: use only letters, digits, '_', '.' and '-'")
     r.where = f"rig {name!r}: "
     if "folders" not in table:
@@ -474,8 +477,8 @@ MASK = "***"
 _HOST_SCHEMES = {"json", "jsons", "form", "forms", "xml", "xmls", "http", "https", "mailto",
                  "mailtos", "ntfy", "ntfys", "mqtt", "mqtts", "syslog", "rsyslog", "smtp",
                  "smtps", "file", "windows", "macosx", "dbus", "gnome", "kde", "glib", "qt"}
-_SECRET_PARAM = re.compile(r"pass|pwd|token|secret|key|auth|sig|cred|session|bearer", re.I)
-_TOKEN_LIKE = re.compile(r"(?=.*[A-Za-z])(?=.*\d)[A-Za-z0-9_\-]{16,}\Z")
+_SECRET_PARAM = r"(?i)pass|pwd|token|secret|key|auth|sig|cred|session|bearer"
+_TOKEN_LIKE = r"(?=.*[A-Za-z])(?=.*\d)[A-Za-z0-9_\-]{16,}\Z"
 
 
 def redact(url: str) -> str:
@@ -512,7 +515,7 @@ def redact(url: str) -> str:
     segments = parts.path.split("/")
     segs = []
     for s in segments:
-        if s and (token_style or _TOKEN_LIKE.match(s) or _mixed_token(s)):
+        if s and (token_style or re.match(_TOKEN_LIKE, s) or _mixed_token(s)):
             segs.append(MASK)
         else:
             segs.append(s)
@@ -523,7 +526,7 @@ def redact(url: str) -> str:
         for item in parts.query.split("&"):
             k, eq, v = item.partition("=")
             name = unquote(k).lstrip("+-: ")
-            items.append(f"{k}={MASK}" if eq and _SECRET_PARAM.search(name) else item)
+            items.append(f"{k}={MASK}" if eq and re.search(_SECRET_PARAM, name) else item)
         query = "?" + "&".join(items)
     return f"{parts.scheme}://{new_netloc}{path}{query}"
 
@@ -533,7 +536,7 @@ def _mixed_token(seg: str) -> bool:
     return len(seg) >= 8 and bool(re.search(r"\d", seg)) and bool(re.search(r"[A-Za-z]", seg))
 
 
-_URL_IN_TEXT = re.compile(r"\b[A-Za-z][A-Za-z0-9+.-]*://[^\s'\"<>]+")
+_URL_IN_TEXT = r"\b[A-Za-z][A-Za-z0-9+.-]*://[^\s'\"<>]+"
 
 
 def redact_text(text: str, urls: tuple[str, ...] | list[str] = ()) -> str:
@@ -542,7 +545,7 @@ def redact_text(text: str, urls: tuple[str, ...] | list[str] = ()) -> str:
     for u in sorted(urls, key=len, reverse=True):
         if u:
             out = out.replace(u, redact(u))
-    return _URL_IN_TEXT.sub(lambda m: redact(m.group(0)), out)
+    return re.sub(_URL_IN_TEXT, lambda m: redact(m.group(0)), out)
 
 
 def secrets_of(url: str) -> set[str]:
@@ -572,7 +575,7 @@ def secrets_of(url: str) -> set[str]:
     for item in parts.query.split("&") if parts.query else ():
         k, eq, v = item.partition("=")
         name = unquote(k)
-        if eq and (name.startswith("+") or _SECRET_PARAM.search(name.lstrip("+-: "))):
+        if eq and (name.startswith("+") or re.search(_SECRET_PARAM, name.lstrip("+-: "))):
             out.add(v)
     return {s for x in out for s in (x, unquote(x)) if len(s) >= 4}
 
@@ -691,7 +694,7 @@ polling = false
 
 # --- durations ---------------------------------------------------------------------------------
 
-_DURATION = re.compile(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*(s|sec|m|min|h|d|w)?\s*\Z", re.I)
+_DURATION = r"(?i)\s*(\d+(?:\.\d*)?|\.\d+)\s*(s|sec|m|min|h|d|w)?\s*\Z"
 _DURATION_S = {"s": 1.0, "sec": 1.0, "m": 60.0, "min": 60.0, "h": 3600.0, "d": 86400.0,
                "w": 604800.0}
 
@@ -699,7 +702,7 @@ _DURATION_S = {"s": 1.0, "sec": 1.0, "m": 60.0, "min": 60.0, "h": 3600.0, "d": 8
 def parse_duration(text: str, key: str = "duration") -> float:
     """'90m', '2h', '1.5d', '45s', '1w' -> seconds (> 0). A bare number is refused: '2' could
     mean minutes or hours, so the error asks for the unit."""
-    m = _DURATION.match(str(text))
+    m = re.match(_DURATION, str(text))
     if not m:
         raise ConfigError(None, key, f"expected a duration like 30m, 2h or 1d, got {text!r}")
     if m.group(2) is None:

@@ -185,6 +185,9 @@ class Spectrum:
 
 @dataclass(frozen=True)
 class ChannelMeasures:
+    """One channel's measures, notes and spectrum."""
+    # (a docstring of its own: without one, dataclass builds one from inspect.signature at
+    # import, a cost of every start)
     index: int                       # input channel index in the file (0-based)
     name: str
     unit: str                        # the channel's own unit string, cleaned ('pA', '?')
@@ -196,6 +199,7 @@ class ChannelMeasures:
 
 @dataclass(frozen=True)
 class FileMeasures:
+    """One file's outcome: its facts, channels and notes, or the error that stopped it."""
     path: str
     status: str                      # 'ok' | 'error'
     error: str | None = None         # one sentence naming the file and the reason

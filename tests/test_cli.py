@@ -284,3 +284,12 @@ def test_top_level_help_gives_one_example_command_per_line(capsys):
     assert [x.split()[:2] for x in examples] == [["qcd", "demo"], ["qcd", "scan"],
                                                  ["qcd", "watch"], ["qcd", "<command>"]]
     assert not any(" | " in x for x in examples)
+
+
+def test_description_is_the_wrapped_text():
+    # textwrap.fill at 79 columns as the reference for the written-out description
+    import textwrap
+
+    from qcd.cli import DESCRIPTION, build_parser
+    assert DESCRIPTION == textwrap.fill(" ".join(DESCRIPTION.split()), 79)
+    assert build_parser().description == DESCRIPTION

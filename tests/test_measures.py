@@ -274,6 +274,48 @@ def test_theil_sen_is_the_median_of_every_pairwise_slope():
         drift.theil_sen(np.ones(5), np.arange(5.0))
 
 
+def test_pairwise_slopes_are_the_definition_bit_for_bit():
+    # every pair i < j in numpy.triu_indices order, (y[j] - y[i]) / (t[j] - t[i]), pairs of
+    # equal times left out: strictly increasing times (the row-by-row division), times with
+    # ties and unsorted times (the general path)
+    rng = np.random.default_rng(62)
+    for n in (2, 3, 50, 1000):
+        t = np.sort(rng.uniform(0.0, 600.0, n))
+        cases = [t]
+        if n > 3:
+            tied = t.copy()
+            tied[1:3] = tied[1]
+            cases += [tied, rng.permutation(t)]
+        for tt in cases:
+            y = np.round(rng.standard_normal(n), 2)
+            i, j = np.triu_indices(n, k=1)
+            ok = tt[j] != tt[i]
+            want = (y[j] - y[i])[ok] / (tt[j] - tt[i])[ok]
+            got = drift._pairwise_slopes(tt, y)
+            assert got.tobytes() == want.tobytes()
+
+
+def test_flat_median_is_numpy_median_bit_for_bit():
+    # numpy.median as the reference: odd and even sizes, repeated values (rounded data give
+    # equal slopes), infinities and a NaN (numpy's answer NaN)
+    rng = np.random.default_rng(61)
+    for n in (2, 3, 4, 5, 10, 11, 999, 1000, 4001, 499_500):
+        for rounded in (False, True):
+            v = rng.standard_normal(n) * 3.0
+            if rounded:
+                v = np.round(v, 1)
+            want = np.median(v)
+            got = drift._flat_median(v.copy())
+            assert np.float64(got).tobytes() == np.float64(want).tobytes(), (n, rounded)
+    v = rng.standard_normal(100)
+    v[[3, 70]] = np.inf
+    v[5] = -np.inf
+    assert drift._flat_median(v.copy()) == np.median(v)
+    v[40] = np.nan
+    with np.errstate(invalid="ignore"):
+        assert np.isnan(drift._flat_median(v.copy())) and np.isnan(np.median(v))
+
+
 def test_baseline_drift_pools_long_series():
     # per second in, the slope is kept when thousands of windows are pooled
     rng = np.random.default_rng(15)

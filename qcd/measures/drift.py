@@ -20,8 +20,32 @@ def theil_sen(t: np.ndarray, y: np.ndarray) -> tuple[float, float]:
     slopes = _pairwise_slopes(t, y)
     if slopes is None:
         raise ValueError("Theil-Sen needs two distinct times")
-    slope = float(median(slopes))
+    slope = float(_flat_median(slopes))
     return slope, float(median(y - slope * t))
+
+
+def _flat_median(v: np.ndarray) -> float:
+    """numpy.median of a 1-D float array, for the n^2/2 pairwise slopes; reorders ``v`` (a
+    buffer of the caller's, partitioned in place: no copy of its 4 MB at 1000 points). One
+    partition at the lower middle and the minimum above it give the same middle pair (order
+    statistics are values, whatever the selection), then the same mean; a third of the time of
+    partitioning at both middles and the end (measured, 499500 random slopes). NaN anywhere:
+    median's own path (NaNs sort last, numpy's answer is NaN)."""
+    n = len(v)
+    half = n // 2
+    if n < 2:
+        return median(v)
+    if n % 2:
+        v.partition(half)
+        mid = np.mean(v[half:half + 1])
+        upper = v[half + 1:].max()
+    else:
+        v.partition(half - 1)
+        mid = np.mean(np.array([v[half - 1], v[half:].min()]))
+        upper = v[half:].max()
+    if np.isnan(mid) or np.isnan(upper):
+        return median(v)
+    return mid
 
 
 def _pairwise_slopes(t: np.ndarray, y: np.ndarray) -> np.ndarray | None:
@@ -30,6 +54,20 @@ def _pairwise_slopes(t: np.ndarray, y: np.ndarray) -> np.ndarray | None:
     indices, without their n^2/2 gathers); None when no two times differ."""
     n = len(t)
     out = np.empty(n * (n - 1) // 2)
+    if n > 1 and bool(np.all(t[1:] > t[:-1])):
+        # strictly increasing times (block times are): no pair has t[j] == t[i], and the
+        # difference of two different doubles is never 0, so every pair is divided row by row
+        # through one short buffer, without a second n^2/2 array of time differences (its
+        # 4 MB of fresh pages cost more than the division, measured at 1000 points)
+        line = np.empty(n - 1)
+        k = 0
+        for a in range(n - 1):
+            m = n - 1 - a
+            seg = out[k:k + m]
+            np.subtract(y[a + 1:], y[a], out=seg)
+            seg /= np.subtract(t[a + 1:], t[a], out=line[:m])
+            k += m
+        return out
     dts = np.empty_like(out)
     k = 0
     for a in range(n - 1):

@@ -17,6 +17,9 @@ CPU time, peak resident memory of the child):
   of every channel (float64, as numpy's rfft of int16 data takes it);
 - floor NWB: one h5py read of all 16 channels per chunk, then the same rffts.
 
+Both floors run with one BLAS thread, as qcd runs (bench_scan.floor_env: the variables
+qcd/__init__.py sets), so the ratio compares like with like.
+
 Targets: qcd within 1.3x of the floor (1.5x for NWB), peak memory under 250 MB.
 """
 from __future__ import annotations
@@ -34,6 +37,9 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+from bench_scan import blas_note, floor_env  # noqa: E402
+
 DATA = Path(os.environ.get("QCD_ABF_DATA", HERE.parents[2] / "shared" / "data" / "abf"))
 TEMPLATE = DATA / "gapfree_16_channels.abf"
 N_CH = 16
@@ -132,10 +138,10 @@ print(float(acc[1:].sum()))
 """
 
 
-def run(cmd: list[str]) -> tuple[float, float, float]:
+def run(cmd: list[str], env: dict[str, str] | None = None) -> tuple[float, float, float]:
     """(wall s, CPU s, peak MB) of one child."""
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
     err = proc.stderr.read()
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - t0
@@ -150,8 +156,8 @@ def bench(label: str, cmds: tuple[list[str], list[str]], path: Path) -> None:
             pass
     best: dict[str, tuple[float, float, float]] = {}
     for _ in range(REPEATS):
-        for name, cmd in zip(("qcd scan", "floor"), cmds):
-            w, c, mb = run(cmd)
+        for name, cmd, env in zip(("qcd scan", "floor"), cmds, (None, floor_env())):
+            w, c, mb = run(cmd, env)
             w0, c0, m0 = best.get(name, (w, c, mb))
             best[name] = (min(w0, w), min(c0, c), max(m0, mb))
     (qw, qc, qm), (fw, fc, fm) = best["qcd scan"], best["floor"]
@@ -188,7 +194,7 @@ def main() -> int:
                              check=True, capture_output=True, text=True).stdout.split()
         offset, fs = int(out[0]), float(out[1])
         print(f"wrote {path} ({path.stat().st_size / 1e9:.2f} GB, {fs:g} Hz) and the NWB in "
-              f"{time.perf_counter() - t0:.1f} s", flush=True)
+              f"{time.perf_counter() - t0:.1f} s; {blas_note()}", flush=True)
         abf = (f"16-channel ABF2: {path.stat().st_size / 1e9:.2f} GB", (
             [py, "-m", "qcd", "scan", "--json", str(path)],
             [py, "-c", _FLOOR_ABF, str(path), str(offset), str(n_rows), str(fs)]))

@@ -13,10 +13,14 @@ shared machine it is the steadier of the two, and the ratio is given for both:
 
 - baseline: pyabf loads the file, scipy.signal.welch (1 s Hann segments, taken in 100-segment
   slices so its segment copies fit in memory) and numpy std of 1 s blocks;
-- floor: one numpy.memmap read and one rfft per 1 s block;
-- targets: qcd at least 2x faster than the baseline, within 1.2x of the floor by wall time
-  (the floor's CPU time counts the helper threads numpy's BLAS starts on import; qcd runs one
-  BLAS thread), under 250 MB.
+- floor: one numpy.memmap read and one rfft per 1 s block, run with one BLAS thread as qcd
+  runs (FLOOR_ENV: qcd/__init__.py sets OPENBLAS_NUM_THREADS and MKL_NUM_THREADS to 1 unless
+  the user chose otherwise). An FFT makes no use of BLAS threads, yet with numpy's default the
+  helper threads started on import take CPU time and, on a busy 2-core machine, wall time from
+  the floor (30-minute file under load 3, measured: 0.366 s default, 0.310 s one thread), so
+  the ratio compares like with like;
+- targets: qcd at least 2x faster than the baseline, within 1.2x of the floor by wall time,
+  under 250 MB.
 """
 from __future__ import annotations
 
@@ -35,6 +39,23 @@ FS = 20_000.0
 ROOT = Path(__file__).resolve().parents[2]   # the checkout whose qcd is measured
 HEADER = 2048          # pyabf's ABF1 writer puts the data at block 4
 REPEATS = 3            # qcd and floor runs per file; the fastest counts
+
+# the thread settings qcd/__init__.py makes before numpy loads (a value the user set is kept,
+# as qcd keeps it): the floor's child gets the same, so floor and qcd run alike
+BLAS_THREAD_VARS = ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+def floor_env() -> dict[str, str]:
+    """This process's environment with one BLAS thread where the user set none, as qcd runs."""
+    env = dict(os.environ)
+    for var in BLAS_THREAD_VARS:
+        env.setdefault(var, "1")
+    return env
+
+
+def blas_note() -> str:
+    return "floor run with " + ", ".join(f"{v}={floor_env()[v]}" for v in BLAS_THREAD_VARS) + \
+        " (as qcd sets them)"
 
 
 def write_gapfree_abf1(path: Path, n_samples: int, fs: float = FS, seed: int = 0) -> None:
@@ -103,10 +124,12 @@ print(float(acc[1:].sum()))
 """
 
 
-def run_measured(cmd: list[str]) -> tuple[float, float, str, float]:
+def run_measured(cmd: list[str], env: dict[str, str] | None = None
+                 ) -> tuple[float, float, str, float]:
     """Run cmd in a child: (wall s, peak RSS MB, stdout, CPU s) through os.wait4."""
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, cwd=ROOT)
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, cwd=ROOT,
+                            env=env)
     out = proc.stdout.read()
     err = proc.stderr.read()
     _, status, usage = os.wait4(proc.pid, 0)
@@ -128,8 +151,9 @@ def bench(path: Path, n: int) -> dict[str, tuple[float, float, float]]:
     qcd = [py, "-m", "qcd", "scan", "--json", str(path)]
     floor = [py, "-c", _FLOOR, str(path), str(HEADER), str(n), str(FS)]
     for _ in range(REPEATS):
-        for name, cmd in (("qcd scan", qcd), ("floor (memmap + rfft)", floor)):
-            wall, mb, _, cpu = run_measured(cmd)
+        for name, cmd, env in (("qcd scan", qcd, None),
+                               ("floor (memmap + rfft)", floor, floor_env())):
+            wall, mb, _, cpu = run_measured(cmd, env)
             w0, m0, c0 = res.get(name, (wall, mb, cpu))
             res[name] = (min(w0, wall), max(m0, mb), min(c0, cpu))
     if not NO_BASELINE:
@@ -144,13 +168,13 @@ NO_BASELINE = False
 def report(label: str, size: int, res: dict[str, tuple[float, float, float]]) -> None:
     print(f"\n{label}: {size / 1e9:.2f} GB")
     for k, (wall, mb, cpu) in res.items():
-        print(f"  {k:<32} {wall:8.2f} s wall {cpu:8.2f} s CPU {mb:8.1f} MB peak")
+        print(f"  {k:<32} {wall:8.3f} s wall {cpu:8.3f} s CPU {mb:8.1f} MB peak")
     q, _, qc = res["qcd scan"]
     if "baseline (pyabf + welch + std)" in res:
         print(f"  speed-up over baseline: {res['baseline (pyabf + welch + std)'][0] / q:.2f}x "
               f"(target >= 2)")
     fw, _, fc = res["floor (memmap + rfft)"]
-    print(f"  qcd / floor:            wall {q / fw:.2f}x, CPU {qc / fc:.2f}x (target <= 1.2, wall)")
+    print(f"  qcd / floor:            wall {q / fw:.3f}x, CPU {qc / fc:.3f}x (target <= 1.2, wall)")
     print(f"  qcd peak memory:        {res['qcd scan'][1]:.0f} MB (target < 250)", flush=True)
 
 
@@ -175,7 +199,8 @@ def main() -> int:
         # at each start (0.1-0.2 s of a 30-minute file's scan, measured)
         subprocess.run([sys.executable, "-m", "compileall", "-q", str(ROOT / "qcd")],
                        check=True)
-    print(f"qcd from {ROOT}, bytecode {'not ' if args.no_compile else ''}compiled beforehand")
+    print(f"qcd from {ROOT}, bytecode {'not ' if args.no_compile else ''}compiled beforehand; "
+          f"{blas_note()}")
     with tempfile.TemporaryDirectory(prefix="qcd-bench-", dir="/tmp") as tmp:
         for label, n in cases:
             path = Path(tmp) / "bench.abf"

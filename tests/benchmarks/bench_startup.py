@@ -7,7 +7,9 @@ Variants, each in its own child process, alternated so that a busy moment of a s
 hits all of them alike; the fastest run of each counts (wall time and CPU time, user + system,
 of that child from os.wait4):
 
-- floor: ``python -c "import numpy, scipy.signal"`` (what measuring needs at the least);
+- floor: ``python -c "import numpy, scipy.signal"`` (what measuring needs at the least), with
+  one BLAS thread as qcd runs (bench_scan.floor_env), so numpy's import starts no extra threads
+  that qcd's does not;
 - qcd scan of a 10 s gap-free ABF1 file (written in /tmp, deleted afterwards);
 - qcd scan of a file with a test pulse (vc_model_cell_step.abf from ../shared/data/abf or
   QCD_ABF_DATA, when present: the whole-cell fit imports scipy.optimize too).
@@ -29,17 +31,18 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from bench_scan import write_gapfree_abf1  # noqa: E402
+from bench_scan import blas_note, floor_env, write_gapfree_abf1  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]          # the checkout whose qcd is measured
 DATA = Path(os.environ.get("QCD_ABF_DATA", HERE.parents[2] / "shared" / "data" / "abf"))
 
 
-def run(cmd: list[str]) -> tuple[float, float]:
+def run(cmd: list[str], env: dict[str, str] | None = None) -> tuple[float, float]:
     """(wall s, CPU s) of one child."""
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=ROOT)
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=ROOT,
+                            env=env)
     err = proc.stderr.read()
     _, status, usage = os.wait4(proc.pid, 0)
     wall = time.perf_counter() - t0
@@ -57,7 +60,8 @@ def main() -> int:
     py = sys.executable
     if not args.no_compile:
         subprocess.run([py, "-m", "compileall", "-q", str(ROOT / "qcd")], check=True)
-    print(f"qcd from {ROOT}, bytecode {'not ' if args.no_compile else ''}compiled beforehand")
+    print(f"qcd from {ROOT}, bytecode {'not ' if args.no_compile else ''}compiled beforehand; "
+          f"{blas_note()}")
     with tempfile.TemporaryDirectory(prefix="qcd-bench-", dir="/tmp") as tmp:
         small = Path(tmp) / "small.abf"
         write_gapfree_abf1(small, 200_000)
@@ -68,12 +72,13 @@ def main() -> int:
             variants["qcd scan, test-pulse file"] = [py, "-m", "qcd", "scan", str(cell)]
         else:
             print(f"({cell} not found: test-pulse variant left out)")
-        for cmd in variants.values():           # compile caches, page cache
-            run(cmd)
+        envs = {name: floor_env() if name.startswith("floor") else None for name in variants}
+        for name, cmd in variants.items():      # compile caches, page cache
+            run(cmd, envs[name])
         best: dict[str, tuple[float, float]] = {}
         for _ in range(args.runs):
             for name, cmd in variants.items():
-                wall, cpu = run(cmd)
+                wall, cpu = run(cmd, envs[name])
                 w0, c0 = best.get(name, (wall, cpu))
                 best[name] = (min(w0, wall), min(c0, cpu))
     fw, fc = best["floor: import numpy, scipy.signal"]
