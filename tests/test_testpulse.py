@@ -942,3 +942,39 @@ def test_average_of_recorded_command_steps_that_differ_by_noise_and_a_sample():
     y10, s10 = _cell_sweep(CELL_A, fc, fs, 0.5, dv=-10 * mV)
     with pytest.raises(ValueError):
         tp.average_response([resp[0], tp.step_response(y10, fs, s10)])
+
+
+@pytest.mark.parametrize("fc", [1e3, 2e3, 5e3, 10e3, 123.4])
+def test_bessel_lowpass_is_scipys_4_pole_bessel_bit_for_bit(fc):
+    # reference: scipy.signal.bessel (norm="mag", -3 dB at the corner); qcd writes out the
+    # 1 rad/s prototype and scales it as scipy does, so the poles and gain are the same floats
+    from qcd.measures import transient as tr
+    wo = 2 * math.pi * fc
+    _, p, k = signal.bessel(4, wo, analog=True, norm="mag", output="zpk")
+    lp = tr.LowPass.bessel(fc)
+    assert lp.poles == tuple(complex(v) for v in p)
+    res = [complex(k / np.prod([p[j] - p[m] for m in range(4) if m != j])) for j in range(4)]
+    assert lp.residues == tuple(res)
+    # -3 dB at the corner (definition of norm="mag") and unity DC gain
+    H = lambda s: sum(r / (s - q) for r, q in zip(lp.residues, lp.poles))  # noqa: E731
+    assert abs(H(1j * wo)) == pytest.approx(1 / math.sqrt(2), rel=1e-9)
+    assert H(0).real == pytest.approx(1.0, rel=1e-12)
+    # another order goes through scipy itself
+    _, p2, _ = signal.bessel(2, wo, analog=True, norm="mag", output="zpk")
+    assert tr.LowPass.bessel(fc, poles=2).poles == tuple(complex(v) for v in p2)
+
+
+def test_measuring_a_test_pulse_loads_neither_scipy_signal_nor_scipy_stats():
+    # start-up: scipy.signal brings scipy.stats along (about 0.35 s, measured); the model fit
+    # needs neither. The F test's survival function is scipy.special.fdtrc, which is what
+    # scipy.stats.f.sf computes (checked here on a few points, scipy as the reference)
+    import subprocess
+    import sys
+    code = ("import sys; from qcd.measures import testpulse; "
+            "print(sorted(m for m in ('scipy.signal', 'scipy.stats') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.strip()
+    assert out == "[]"
+    from scipy import special, stats
+    for x, d1, d2 in [(0.0, 1, 5.0), (3.3, 2, 50.0), (12.0, 3, 7.5), (1e4, 1, 1.0)]:
+        assert special.fdtrc(d1, d2, x) == stats.f.sf(x, d1, d2)

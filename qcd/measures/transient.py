@@ -13,13 +13,24 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize, signal, stats
+from scipy import optimize
+from scipy.special import fdtrc      # the F distribution's survival function (scipy.stats.f.sf)
 
 __all__ = ["LowPass", "ExpFit", "Selection", "fit_components", "select_components",
            "refusal", "fast_part", "BESSEL4_NOISE_BW", "LEAD"]
 
 # Equivalent white-noise bandwidth of a 4-pole Bessel low-pass, times its corner (METHODS §3.2).
 BESSEL4_NOISE_BW = 1.0464
+
+# scipy.signal.bessel(4, 1.0, analog=True, norm="mag", output="zpk"): the 4-pole Bessel
+# low-pass with its -3 dB corner at 1 rad/s (poles, gain), written out so that measuring a test
+# pulse does not import scipy.signal and, through it, scipy.stats (0.35 s of a scan's start-up,
+# measured); tests/test_transient.py pins them to scipy's
+_BESSEL4_POLES = ((-0.995208764350272 + 1.257105739454664j),
+                  (-1.3700678305514422 + 0.41024971749375155j),
+                  (-1.3700678305514422 - 0.41024971749375155j),
+                  (-0.995208764350272 - 1.257105739454664j))
+_BESSEL4_GAIN = 5.258199010244144
 
 LEAD = 2                  # samples before the first one at the new level: they pin the onset
 _GROWTH = 0.05            # later samples enter as block means, blocks ~5% of the elapsed time
@@ -42,8 +53,12 @@ class LowPass:
 
     @classmethod
     def bessel(cls, corner_hz: float, poles: int = 4) -> "LowPass":
-        z, p, k = signal.bessel(poles, 2 * math.pi * corner_hz, analog=True, norm="mag",
-                                output="zpk")
+        wo = 2 * math.pi * corner_hz
+        if poles == 4:                # as scipy scales its 1 rad/s prototype (lp2lp_zpk)
+            p, k = wo * np.array(_BESSEL4_POLES), _BESSEL4_GAIN * wo ** 4
+        else:
+            from scipy import signal
+            _, p, k = signal.bessel(poles, wo, analog=True, norm="mag", output="zpk")
         p = np.asarray(p, dtype=complex)
         res = []
         for j in range(len(p)):
@@ -407,8 +422,7 @@ def select_components(y: np.ndarray, fs: float, lowpass: LowPass | None, sign: f
         dof = max(f.n_points - f.n_params, 1)
         s2 = max(f.sse / dof, noise_floor ** 2)
         d = max(base.sse - f.sse, 0.0) / (f.n_params - base.n_params)
-        return float(stats.f.sf(d / s2 / corr, f.n_params - base.n_params,
-                                max(dof / corr, 1.0)))
+        return float(fdtrc(f.n_params - base.n_params, max(dof / corr, 1.0), d / s2 / corr))
 
     for n in range(1, max_n + 1):
         f = fit_components(y, fs, lowpass, n, tau_lo=tau_lo, tau_hi=tau_hi, prev=prev,
