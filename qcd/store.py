@@ -344,13 +344,15 @@ class Store:
 
     def flagged_points(self, rig: str, mode: str, channel: int, measure: str, *,
                        after: float | None, before: float | None = None,
-                       limit: int | None = None) -> list[tuple[float, float, int]]:
-        """``chart_points`` with each value's flag: [(recorded_at, value, flagged)]."""
+                       limit: int | None = None, inclusive: bool = False
+                       ) -> list[tuple[float, float, int]]:
+        """``chart_points`` with each value's flag: [(recorded_at, value, flagged)];
+        ``inclusive``: files recorded at ``after`` too."""
         rows = self._one_all(
             "SELECT f.recorded_at, m.value, m.flagged FROM files f JOIN measures m "
             "ON m.file_id = f.id WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
-            "AND f.superseded = 0 AND f.recorded_at > ? AND f.recorded_at < ? "
-            "AND m.channel = ? AND m.name = ? AND m.value IS NOT NULL "
+            f"AND f.superseded = 0 AND f.recorded_at {'>=' if inclusive else '>'} ? "
+            "AND f.recorded_at < ? AND m.channel = ? AND m.name = ? AND m.value IS NOT NULL "
             "ORDER BY f.recorded_at, f.id LIMIT ?",
             (rig, mode, -math.inf if after is None else float(after),
              math.inf if before is None else float(before), channel, measure,
@@ -384,22 +386,11 @@ class Store:
                 if before <= hi:              # the rows recorded earlier: a prefix of these
                     return [r for r in rows if r[0] < before]
                 if len(rows) < limit:         # the rest, recorded in [hi, before)
-                    rows = rows + self._points_from(rig, mode, channel, measure, hi, before,
-                                                    limit - len(rows))
+                    rows = rows + self.flagged_points(rig, mode, channel, measure, after=hi,
+                                                      inclusive=True, before=before,
+                                                      limit=limit - len(rows))
             self._learnt[key] = (before, rows)
             return list(rows)
-
-    def _points_from(self, rig: str, mode: str, channel: int, measure: str, lo: float,
-                     before: float, limit: int) -> list[tuple[float, float, int]]:
-        """``flagged_points`` of the files recorded in [lo, before), oldest first."""
-        rows = self._one_all(
-            "SELECT f.recorded_at, m.value, m.flagged FROM files f JOIN measures m "
-            "ON m.file_id = f.id WHERE f.rig = ? AND f.mode = ? AND f.status = 'ok' "
-            "AND f.superseded = 0 AND f.recorded_at >= ? AND f.recorded_at < ? "
-            "AND m.channel = ? AND m.name = ? AND m.value IS NOT NULL "
-            "ORDER BY f.recorded_at, f.id LIMIT ?",
-            (rig, mode, float(lo), float(before), channel, measure, int(limit)))
-        return [(float(t), float(v), int(g)) for t, v, g in rows]
 
     def _forget(self, rig: str, mode: str | None = None, at: float | None = None) -> None:
         """Drop the remembered learning rows a write changed: of ``rig`` (its ``mode``; None:
