@@ -777,10 +777,30 @@ def _arrive(folder: Path, names, corrupt: int = 0) -> None:
 
 
 @pytest.mark.slow
-def test_kill_9_and_restart_lose_nothing_and_store_nothing_twice(tmp_path):
+
+
+@contextlib.contextmanager
+def _sink_and_services():
+    """A loopback HTTP sink and a list for the ``_Watch`` services a test starts; at the end
+    every service still running is killed and the sink stopped."""
     sink = HttpSink().start()
-    watches = []
+    watches: list = []
     try:
+        yield sink, watches
+    finally:
+        for w in watches:
+            w.kill()
+        sink.stop()
+
+
+def _stop_cleanly(w) -> None:
+    """SIGTERM: the service finishes what it holds and exits with 0."""
+    w.proc.send_signal(signal.SIGTERM)
+    assert w.wait(30) == 0, w.log()
+
+
+def test_kill_9_and_restart_lose_nothing_and_store_nothing_twice(tmp_path):
+    with _sink_and_services() as (sink, watches):
         cfg = _write_toml(tmp_path, sink.url)
         folder, db = tmp_path / "rig", tmp_path / "db" / "qcd.sqlite"
         w = _Watch(cfg, 1)
@@ -811,12 +831,7 @@ def test_kill_9_and_restart_lose_nothing_and_store_nothing_twice(tmp_path):
         wait_until(lambda: not pending(), 30.0)
         st = _status(cfg)
         assert st.returncode == 0 and "alive" in st.stdout, st.stdout
-        w.proc.send_signal(signal.SIGTERM)
-        assert w.wait(30) == 0, w.log()
-    finally:
-        for w in watches:
-            w.kill()
-        sink.stop()
+        _stop_cleanly(w)
     # every file exactly one row, never superseded by a second measurement of the same file
     rows = _db_rows(db, "SELECT path, status, error_kind FROM files")
     names = sorted(Path(p).name for p, _, _ in rows)
@@ -843,10 +858,8 @@ def test_kill_9_in_a_batched_backlog_stores_each_file_once_and_sends_each_messag
     """Files of a backlog are committed several to a transaction (group commit); a kill -9
     in the middle loses only the files of the open transaction, which the restart measures
     again: every file ends with exactly one row, every message is sent once."""
-    sink = HttpSink().start()
-    watches = []
     n_good, n_bad = 240, 6
-    try:
+    with _sink_and_services() as (sink, watches):
         cfg = _write_toml(tmp_path, sink.url)
         folder, db = tmp_path / "rig", tmp_path / "db" / "qcd.sqlite"
         _tiny_abf(folder / "t.abf", 0)
@@ -874,12 +887,7 @@ def test_kill_9_in_a_batched_backlog_stores_each_file_once_and_sends_each_messag
         wait_until(lambda: _n_files(db) == total, 120.0)
         wait_until(lambda: _db_rows(db, "SELECT COUNT(*) FROM outbox")[0][0] > 0 and not
                    _db_rows(db, "SELECT id FROM outbox WHERE status != 'sent'"), 30.0)
-        w.proc.send_signal(signal.SIGTERM)
-        assert w.wait(30) == 0, w.log()
-    finally:
-        for w in watches:
-            w.kill()
-        sink.stop()
+        _stop_cleanly(w)
     assert _db_rows(db, "PRAGMA integrity_check") == [("ok",)]
     # every file exactly one row (none stored twice, none superseded by a second measuring)
     rows = _db_rows(db, "SELECT path, status FROM files")
@@ -898,26 +906,20 @@ def test_kill_9_in_a_batched_backlog_stores_each_file_once_and_sends_each_messag
 
 @pytest.mark.slow
 def test_sigterm_stops_cleanly_with_nothing_half_written(tmp_path):
-    sink = HttpSink().start()
-    w = None
-    try:
+    with _sink_and_services() as (sink, watches):
         cfg = _write_toml(tmp_path, sink.url)
         folder, db = tmp_path / "rig", tmp_path / "db" / "qcd.sqlite"
         w = _Watch(cfg, 1)
+        watches.append(w)
         _arrive(folder, _REAL[:1])
         wait_until(lambda: _n_files(db) >= 1, 60.0)
         st = _status(cfg)
         assert st.returncode == 0 and "alive" in st.stdout and RIG in st.stdout, st.stdout
         _arrive(folder, _REAL[1:5])
         time.sleep(0.6)                        # mid-work: files settling and being measured
-        w.proc.send_signal(signal.SIGTERM)
-        assert w.wait(30) == 0, w.log()
+        _stop_cleanly(w)
         st = _status(cfg)
         assert st.returncode == 1 and "stopped cleanly" in st.stdout, st.stdout
-    finally:
-        if w is not None:
-            w.kill()
-        sink.stop()
     assert _db_rows(db, "PRAGMA integrity_check") == [("ok",)]
     # a stored ok file has all its channels and measures (one transaction per file)
     orphans = _db_rows(db, "SELECT f.path FROM files f WHERE f.status = 'ok' AND NOT EXISTS "
